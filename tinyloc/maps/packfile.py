@@ -1,0 +1,548 @@
+"""The packed map file (``.tlm``): writer and random-access window reader.
+
+Layout (all little-endian; the full specification is ``maps_packed/FORMAT.md``)::
+
+    header   magic b"TLMAP\\r\\n\\x1a", version u16, flags u16, header_size u32,
+             origin lat/lon (f64 deg), origin h (f64 m), res_m f64, x_min f64, y_max f64,
+             rows u32, cols u32, tile u16, n_channels u16, n_tiles u32,
+             class table (n_channels x [class index u8, name length u8, ASCII name]),
+             CRC-32 of everything before it
+    index    n_tiles x [offset u64, length u32, crc32 u32] (row-major tiles), CRC-32 of the index
+    tiles    zlib streams; each inflates to n_channels x tile x tile uint8 coverage (value / 255).
+             length 0 = a tile with nothing on it (all zero, but known).
+
+The reader checks every declared size against hard limits and against the file
+size *before* allocating, so a damaged or hostile file costs at most what the
+file itself justifies. A tile whose checksum or stream is bad reads as unknown
+(``known_out`` = 0) and is reported once as a warning; the rest of the map works.
+"""
+
+from __future__ import annotations
+
+from collections import OrderedDict
+from dataclasses import dataclass
+import logging
+import math
+import os
+from pathlib import Path
+import struct
+import threading
+import zlib
+
+import numpy as np
+
+from ..errors import InputError, MapFormatError
+from ..geo import LocalFrame
+
+log = logging.getLogger("tinyloc.maps")
+
+MAGIC = b"TLMAP\r\n\x1a"
+VERSION = 1
+_FIXED = struct.Struct("<8sHHI6dIIHHI")  # 80 bytes
+_ENTRY = struct.Struct("<QII")  # 16 bytes
+MIN_HEADER = _FIXED.size + 4
+# Hard limits (the decoder refuses anything beyond them before allocating).
+MAX_HEADER = 65536
+MAX_SIDE = 1 << 18          # cells per side (131 km at 0.5 m)
+MAX_TILES = 1 << 22
+MIN_TILE, MAX_TILE = 8, 1024
+MAX_CHANNELS = 64
+MAX_RES_M = 1000.0
+ZLIB_LEVEL = 9
+INV255 = np.float32(1.0 / 255.0)
+DEFAULT_CACHE_BYTES = 32 << 20
+
+
+@dataclass(frozen=True)
+class MapMeta:
+    """Georeference and layout of a packed map.
+
+    Cell (row i, col j) has its centre at ``x = x_min + (j + 0.5) * res_m``,
+    ``y = y_max - (i + 0.5) * res_m`` (ENU metres at the origin; row 0 is north).
+    """
+
+    lat0_deg: float
+    lon0_deg: float
+    h0_m: float
+    res_m: float
+    x_min: float
+    y_max: float
+    rows: int
+    cols: int
+    tile: int
+    class_names: tuple
+    class_ids: tuple
+    version: int = VERSION
+
+    # Aliases, so "origin" reads naturally at call sites.
+    @property
+    def origin_lat(self) -> float:
+        return self.lat0_deg
+
+    @property
+    def origin_lon(self) -> float:
+        return self.lon0_deg
+
+    @property
+    def origin_h(self) -> float:
+        return self.h0_m
+
+    @property
+    def x_max(self) -> float:
+        return self.x_min + self.cols * self.res_m
+
+    @property
+    def y_min(self) -> float:
+        return self.y_max - self.rows * self.res_m
+
+    @property
+    def n_channels(self) -> int:
+        return len(self.class_names)
+
+    @property
+    def tile_rows(self) -> int:
+        return -(-self.rows // self.tile)
+
+    @property
+    def tile_cols(self) -> int:
+        return -(-self.cols // self.tile)
+
+
+def _check_meta(m: MapMeta, where: str) -> None:
+    """Shared by writer and reader: the same limits on both sides."""
+    def bad(msg):
+        return MapFormatError(f"{where}: {msg}")
+
+    for name in ("lat0_deg", "lon0_deg", "h0_m", "x_min", "y_max"):
+        if not math.isfinite(getattr(m, name)):
+            raise bad(f"header field {name} is not finite")
+    if abs(m.lat0_deg) > 90.0 or abs(m.lon0_deg) > 180.0:
+        raise bad("header origin latitude/longitude out of range")
+    if not (math.isfinite(m.res_m) and 0.0 < m.res_m <= MAX_RES_M):
+        raise bad(f"header resolution {m.res_m!r} m is not in (0, {MAX_RES_M:g}]")
+    if not (1 <= m.rows <= MAX_SIDE and 1 <= m.cols <= MAX_SIDE):
+        raise bad(f"header declares {m.rows} x {m.cols} cells (limit 1..{MAX_SIDE} per side)")
+    if not MIN_TILE <= m.tile <= MAX_TILE:
+        raise bad(f"header declares tile size {m.tile} (limit {MIN_TILE}..{MAX_TILE})")
+    if not 1 <= m.n_channels <= MAX_CHANNELS:
+        raise bad(f"header declares {m.n_channels} channels (limit 1..{MAX_CHANNELS})")
+    if m.tile_rows * m.tile_cols > MAX_TILES:
+        raise bad(f"header declares {m.tile_rows * m.tile_cols} tiles (limit {MAX_TILES})")
+
+
+def _header_bytes(m: MapMeta) -> bytes:
+    table = b""
+    for cid, name in zip(m.class_ids, m.class_names):
+        nb = name.encode("ascii")
+        if not 1 <= len(nb) <= 255 or not 0 <= cid <= 255:
+            raise InputError(f"class {name!r}: name must be 1..255 ASCII characters and index 0..255")
+        table += struct.pack("<BB", cid, len(nb)) + nb
+    size = _FIXED.size + len(table) + 4
+    fixed = _FIXED.pack(MAGIC, VERSION, 0, size, m.lat0_deg, m.lon0_deg, m.h0_m, m.res_m, m.x_min, m.y_max,
+                        m.rows, m.cols, m.tile, m.n_channels, m.tile_rows * m.tile_cols)
+    body = fixed + table
+    return body + struct.pack("<I", zlib.crc32(body))
+
+
+class PackWriter:
+    """Writes a packed map tile by tile (any order); the index is written on :meth:`close`.
+
+    The file appears at ``path`` only when complete (written to a temporary name, then renamed).
+    """
+
+    def __init__(self, path, meta: MapMeta, *, level: int = ZLIB_LEVEL):
+        _check_meta(meta, str(path))
+        self.path = Path(path)
+        self.meta = meta
+        self.level = level
+        self._tmp = self.path.with_name(self.path.name + ".part")
+        self._f = open(self._tmp, "wb")
+        head = _header_bytes(meta)
+        self._n = meta.tile_rows * meta.tile_cols
+        self._index = [(0, 0, 0)] * self._n
+        self._written = [False] * self._n
+        self._f.write(head)
+        self._f.write(b"\0" * (self._n * _ENTRY.size + 4))
+        self._index_at = len(head)
+        self._pos = self._index_at + self._n * _ENTRY.size + 4
+        self.stored_bytes = 0
+        self.empty_tiles = 0
+
+    def write_tile(self, tile_row: int, tile_col: int, data: np.ndarray) -> None:
+        """Store one tile: ``data`` (C, tile, tile) uint8 coverage (edge tiles padded with 0)."""
+        m = self.meta
+        if data.shape != (m.n_channels, m.tile, m.tile) or data.dtype != np.uint8:
+            raise InputError(f"tile data must be uint8 {(m.n_channels, m.tile, m.tile)}, got {data.dtype} {data.shape}")
+        k = tile_row * m.tile_cols + tile_col
+        if not data.any():
+            self._index[k] = (0, 0, 0)
+            self.empty_tiles += 1
+        else:
+            blob = zlib.compress(np.ascontiguousarray(data).tobytes(), self.level)
+            self._f.write(blob)
+            self._index[k] = (self._pos, len(blob), zlib.crc32(blob))
+            self._pos += len(blob)
+            self.stored_bytes += len(blob)
+        self._written[k] = True
+
+    def close(self) -> int:
+        """Write the index, rename into place; returns the file size in bytes."""
+        if self._f is None:
+            return self.path.stat().st_size
+        try:
+            idx = b"".join(_ENTRY.pack(*e) for e in self._index)
+            self._f.seek(self._index_at)
+            self._f.write(idx + struct.pack("<I", zlib.crc32(idx)))
+            self._f.close()
+            self._f = None
+            os.replace(self._tmp, self.path)
+        except BaseException:
+            self.abort()
+            raise
+        return self.path.stat().st_size
+
+    def abort(self) -> None:
+        """Drop the partial file."""
+        if self._f is not None:
+            self._f.close()
+            self._f = None
+        try:
+            self._tmp.unlink()
+        except FileNotFoundError:
+            pass
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, et, ev, tb):
+        if et is None:
+            self.close()
+        else:
+            self.abort()
+
+
+def write_packed(path, meta: MapMeta, coverage: np.ndarray) -> int:
+    """Write a whole (C, rows, cols) float coverage array (0..1) as a packed map; returns bytes written."""
+    t = meta.tile
+    with PackWriter(path, meta) as w:
+        for tr in range(meta.tile_rows):
+            for tc in range(meta.tile_cols):
+                block = np.zeros((meta.n_channels, t, t), dtype=np.uint8)
+                src = coverage[:, tr * t:(tr + 1) * t, tc * t:(tc + 1) * t]
+                block[:, :src.shape[1], :src.shape[2]] = quantize(src)
+                w.write_tile(tr, tc, block)
+    return w.path.stat().st_size
+
+
+def quantize(cov: np.ndarray) -> np.ndarray:
+    """Coverage 0..1 -> uint8 0..255 (rounded; out-of-range values clipped)."""
+    return np.rint(np.clip(cov, 0.0, 1.0) * 255.0).astype(np.uint8)
+
+
+_DAMAGED = object()
+
+
+class PackedMap:
+    """Random-access reader of a packed map. Open with :meth:`open`.
+
+    Attributes
+    ----------
+    meta : MapMeta
+    frame : LocalFrame
+        The ENU frame at the map's origin.
+    path : Path
+    """
+
+    def __init__(self, path: Path, f, meta: MapMeta, index: np.ndarray, cache_bytes: int, file_size: int):
+        self.path = path
+        self._f = f
+        self.meta = meta
+        self.frame = LocalFrame(meta.lat0_deg, meta.lon0_deg, meta.h0_m)
+        self._index = index
+        self._cache: OrderedDict = OrderedDict()
+        self._cache_bytes = max(int(cache_bytes), 0)
+        self._cached = 0
+        self._damaged: set = set()
+        self._lock = threading.Lock()
+        self.file_size = file_size
+        self._tile_nbytes = meta.n_channels * meta.tile * meta.tile
+
+    # ------------------------------------------------------------------ opening
+    @classmethod
+    def open(cls, path, *, cache_bytes: int = DEFAULT_CACHE_BYTES) -> "PackedMap":
+        """Open and validate a packed map (header, class table and tile index; tiles are read on demand).
+
+        Parameters
+        ----------
+        path : str or Path
+        cache_bytes : int
+            Upper bound of the decoded-tile cache (bytes); 0 disables caching.
+
+        Raises
+        ------
+        MapFormatError
+            Wrong magic, unsupported version, truncated file, checksum mismatch
+            in the header or index, or declared sizes beyond the limits.
+        """
+        p = Path(path)
+        try:
+            f = open(p, "rb")
+        except FileNotFoundError:
+            raise MapFormatError(f"{p}: no such file") from None
+        except IsADirectoryError:
+            raise MapFormatError(f"{p}: is a directory, not a packed map") from None
+        except OSError as e:
+            raise MapFormatError(f"{p}: cannot read ({e.strerror or e})") from None
+        try:
+            size = os.fstat(f.fileno()).st_size
+            meta, index = _read_head(f, size, str(p))
+        except BaseException:
+            f.close()
+            raise
+        return cls(p, f, meta, index, cache_bytes, size)
+
+    def close(self) -> None:
+        if self._f is not None:
+            self._f.close()
+            self._f = None
+        self._cache.clear()
+        self._cached = 0
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    def __repr__(self):
+        m = self.meta
+        return f"PackedMap({str(self.path)!r}, {m.rows}x{m.cols} cells at {m.res_m:g} m, {m.n_channels} classes)"
+
+    # ------------------------------------------------------------------ geometry
+    def cell_of(self, x_m, y_m):
+        """ENU metres -> continuous (row, col) cell coordinates (a cell centre is at +0.5)."""
+        m = self.meta
+        if np.ndim(x_m) == 0 and np.ndim(y_m) == 0:
+            return (m.y_max - float(y_m)) / m.res_m, (float(x_m) - m.x_min) / m.res_m
+        return ((m.y_max - np.asarray(y_m, dtype=np.float64)) / m.res_m,
+                (np.asarray(x_m, dtype=np.float64) - m.x_min) / m.res_m)
+
+    def xy_of(self, row, col):
+        """Continuous (row, col) -> ENU metres (x east, y north)."""
+        m = self.meta
+        return m.x_min + np.asarray(col, dtype=np.float64) * m.res_m, m.y_max - np.asarray(row, dtype=np.float64) * m.res_m
+
+    @property
+    def tiles_damaged(self) -> int:
+        """Number of distinct damaged tiles met so far."""
+        return len(self._damaged)
+
+    @property
+    def cache_used_bytes(self) -> int:
+        return self._cached
+
+    def clear_cache(self) -> None:
+        """Forget every decoded tile (the next reads are cold)."""
+        with self._lock:
+            self._cache.clear()
+            self._cached = 0
+
+    # ------------------------------------------------------------------ reading
+    def read_window(self, row0: int, col0: int, out: np.ndarray, *, known_out: np.ndarray | None = None) -> int:
+        """Fill ``out[C, H, W]`` with cells [row0, row0+H) x [col0, col0+W) (global cell indices).
+
+        Parameters
+        ----------
+        row0, col0 : int
+            Global cell index of the window's north-west cell; may be negative or
+            past the map (those cells are unknown).
+        out : (C, H, W) float32
+            Caller-owned buffer; receives coverage 0..1 (0 where unknown).
+        known_out : (H, W) uint8, optional
+            Receives 1 where the cell is inside the map and its tile is sound, else 0.
+
+        Returns
+        -------
+        int
+            Number of damaged tiles met by this window (each is logged once as a warning).
+        """
+        m = self.meta
+        if out.ndim != 3 or out.shape[0] != m.n_channels or out.dtype != np.float32:
+            raise InputError(f"read_window: out must be float32 ({m.n_channels}, H, W), got {out.dtype} {out.shape}")
+        _, h, w = out.shape
+        if known_out is not None and (known_out.shape != (h, w) or known_out.dtype != np.uint8):
+            raise InputError(f"read_window: known_out must be uint8 ({h}, {w}), got {known_out.dtype} {known_out.shape}")
+        row0, col0 = int(row0), int(col0)
+        r_lo, r_hi = max(row0, 0), min(row0 + h, m.rows)
+        c_lo, c_hi = max(col0, 0), min(col0 + w, m.cols)
+        inside_all = r_lo == row0 and c_lo == col0 and r_hi == row0 + h and c_hi == col0 + w
+        if not inside_all:
+            out[...] = 0.0
+        if known_out is not None:
+            known_out[...] = 0
+        if r_lo >= r_hi or c_lo >= c_hi:
+            return 0
+        t = m.tile
+        damaged = 0
+        for tr in range(r_lo // t, (r_hi - 1) // t + 1):
+            a0, a1 = max(r_lo, tr * t), min(r_hi, (tr + 1) * t)
+            for tc in range(c_lo // t, (c_hi - 1) // t + 1):
+                b0, b1 = max(c_lo, tc * t), min(c_hi, (tc + 1) * t)
+                dst = out[:, a0 - row0:a1 - row0, b0 - col0:b1 - col0]
+                tile = self._tile(tr, tc)
+                if tile is _DAMAGED:
+                    damaged += 1
+                    dst[...] = 0.0
+                    continue
+                if tile is None:
+                    dst[...] = 0.0
+                else:
+                    np.multiply(tile[:, a0 - tr * t:a1 - tr * t, b0 - tc * t:b1 - tc * t], INV255, out=dst)
+                if known_out is not None:
+                    known_out[a0 - row0:a1 - row0, b0 - col0:b1 - col0] = 1
+        return damaged
+
+    def coverage_at(self, x_m: float, y_m: float):
+        """Coverage of every channel in the cell holding ENU point (x, y): (C,) float32, or None if unknown."""
+        r, c = self.cell_of(x_m, y_m)
+        buf = np.zeros((self.meta.n_channels, 1, 1), dtype=np.float32)
+        known = np.zeros((1, 1), dtype=np.uint8)
+        self.read_window(int(math.floor(r)), int(math.floor(c)), buf, known_out=known)
+        return buf[:, 0, 0] if known[0, 0] else None
+
+    def read_all(self, *, known_out: np.ndarray | None = None) -> np.ndarray:
+        """The whole map as (C, rows, cols) float32 (allocates; for tools, not for the robot's loop)."""
+        m = self.meta
+        out = np.empty((m.n_channels, m.rows, m.cols), dtype=np.float32)
+        self.read_window(0, 0, out, known_out=known_out)
+        return out
+
+    def _tile(self, tr: int, tc: int):
+        """Decoded tile (C, t, t) uint8, None for an empty tile, or _DAMAGED."""
+        k = tr * self.meta.tile_cols + tc
+        off, length, crc = (int(v) for v in self._index[k])
+        if length == 0:
+            return None
+        if k in self._damaged:
+            return _DAMAGED
+        with self._lock:
+            hit = self._cache.get(k)
+            if hit is not None:
+                self._cache.move_to_end(k)
+                return hit
+            if self._f is None:
+                raise InputError(f"{self.path}: map is closed")
+            self._f.seek(off)
+            blob = self._f.read(length)
+        tile = self._decode(k, blob, crc)
+        if tile is _DAMAGED:
+            return tile
+        if self._cache_bytes >= tile.nbytes:
+            with self._lock:
+                self._cache[k] = tile
+                self._cached += tile.nbytes
+                while self._cached > self._cache_bytes:
+                    _, old = self._cache.popitem(last=False)
+                    self._cached -= old.nbytes
+        return tile
+
+    def _decode(self, k: int, blob: bytes, crc: int):
+        m = self.meta
+        reason = None
+        if len(blob) != int(self._index[k][1]):
+            reason = "file shorter than its index says"
+        elif zlib.crc32(blob) != crc:
+            reason = "CRC-32 mismatch"
+        else:
+            try:
+                d = zlib.decompressobj()
+                raw = d.decompress(blob, self._tile_nbytes)
+                if len(raw) != self._tile_nbytes or d.unconsumed_tail or not d.eof:
+                    reason = "stream does not inflate to the declared tile size"
+            except zlib.error as e:
+                reason = f"bad zlib stream ({e})"
+        if reason is not None:
+            with self._lock:
+                first = k not in self._damaged
+                self._damaged.add(k)
+            if first:
+                tr, tc = divmod(k, m.tile_cols)
+                log.warning("%s: damaged tile (row %d, col %d): %s; its cells read as unknown",
+                            self.path, tr, tc, reason)
+            return _DAMAGED
+        return np.frombuffer(raw, dtype=np.uint8).reshape(m.n_channels, m.tile, m.tile)
+
+
+def _read_head(f, size: int, where: str):
+    """Parse and check the header and the tile index; raises MapFormatError."""
+    def bad(msg):
+        return MapFormatError(f"{where}: {msg}")
+
+    head = f.read(min(size, MAX_HEADER))
+    if not head:
+        raise bad("truncated: the file is empty")
+    if head[:len(MAGIC)] != MAGIC[:len(head)]:
+        raise bad("not a tinyloc packed map (wrong magic bytes)")
+    if len(head) < MIN_HEADER:
+        raise bad(f"truncated: file is {size} bytes, shorter than the smallest header ({MIN_HEADER} bytes)")
+    (magic, version, flags, hsize, lat0, lon0, h0, res, x_min, y_max, rows, cols, tile, nch,
+     ntiles) = _FIXED.unpack_from(head)
+    if version > VERSION:
+        raise bad(f"format version {version} is newer than this tinyloc reads ({VERSION}); update tinyloc")
+    if version < 1:
+        raise bad(f"unsupported format version {version}")
+    if not MIN_HEADER <= hsize <= MAX_HEADER:
+        raise bad(f"header declares its size as {hsize} bytes (limit {MIN_HEADER}..{MAX_HEADER})")
+    if hsize > size:
+        raise bad(f"truncated: header needs {hsize} bytes, file has {size}")
+    (crc,) = struct.unpack_from("<I", head, hsize - 4)
+    if zlib.crc32(head[:hsize - 4]) != crc:
+        raise bad("header checksum mismatch (the file is damaged)")
+    if flags != 0:
+        raise bad(f"unknown header flags 0x{flags:04x} (written by a newer tinyloc?)")
+    names, ids = [], []
+    pos = _FIXED.size
+    for i in range(nch if nch <= MAX_CHANNELS else 0):
+        if pos + 2 > hsize - 4:
+            raise bad(f"class table runs past the header (entry {i})")
+        cid, n = head[pos], head[pos + 1]
+        name = head[pos + 2:pos + 2 + n]
+        if n == 0 or pos + 2 + n > hsize - 4:
+            raise bad(f"class table entry {i} is malformed")
+        try:
+            names.append(name.decode("ascii"))
+        except UnicodeDecodeError:
+            raise bad(f"class table entry {i} is not ASCII") from None
+        ids.append(cid)
+        pos += 2 + n
+    meta = MapMeta(lat0, lon0, h0, res, x_min, y_max, rows, cols, tile, tuple(names), tuple(ids), version)
+    if nch > MAX_CHANNELS:
+        raise bad(f"header declares {nch} channels (limit 1..{MAX_CHANNELS})")
+    _check_meta(meta, where)
+    if pos != hsize - 4:
+        raise bad("class table does not fill the header exactly")
+    if ntiles != meta.tile_rows * meta.tile_cols:
+        raise bad(f"header declares {ntiles} tiles, the extent needs {meta.tile_rows * meta.tile_cols}")
+    index_end = hsize + ntiles * _ENTRY.size + 4
+    if index_end > size:
+        raise bad(f"truncated: tile index needs {index_end} bytes, file has {size}")
+    f.seek(hsize)
+    raw = f.read(ntiles * _ENTRY.size + 4)
+    if len(raw) != ntiles * _ENTRY.size + 4:
+        raise bad("truncated while reading the tile index")
+    (icrc,) = struct.unpack_from("<I", raw, ntiles * _ENTRY.size)
+    if zlib.crc32(raw[:-4]) != icrc:
+        raise bad("tile index checksum mismatch (the file is damaged)")
+    index = np.frombuffer(raw[:-4], dtype=np.dtype([("off", "<u8"), ("len", "<u4"), ("crc", "<u4")]))
+    index = np.stack([index["off"].astype(np.int64), index["len"].astype(np.int64), index["crc"].astype(np.int64)],
+                     axis=1)
+    used = index[:, 1] > 0
+    max_blob = meta.n_channels * tile * tile + (meta.n_channels * tile * tile >> 8) + 64  # > zlib's worst case
+    if np.any(index[used, 1] > max_blob):
+        raise bad(f"tile index declares a tile larger than any valid tile ({max_blob} bytes)")
+    if np.any(index[used, 0] < index_end):
+        raise bad("tile index points into the header")
+    ends = index[used, 0] + index[used, 1]
+    if ends.size and int(ends.max()) > size:
+        raise bad(f"truncated: tile data needs {int(ends.max())} bytes, file has {size}")
+    return meta, index
