@@ -1,0 +1,829 @@
+"""Grid (histogram) Bayes filter over heading x north x east in a window that follows the robot.
+
+The belief is a float32 array ``bel[A, H, W]`` of probabilities: A heading layers
+covering the full circle, and an H x W window of map cells (same resolution and
+raster convention as the packed map: global cell (row, col) has its centre at
+``x = x_min + (col + 0.5) res``, ``y = y_max - (row + 0.5) res``). Window cell (i, j)
+is global cell (row0 + i, col0 + j).
+
+Shifted lattice. Each heading layer a carries a sub-cell offset (dr[a], dc[a]) in
+[-0.5, 0.5] cells, and all layers share a sub-bin heading offset ``hoff``: cell
+(a, i, j) stands for the pose at continuous global cell coordinates
+``(row0 + i + 0.5 + dr[a], col0 + j + 0.5 + dc[a])`` with yaw ``(a + hoff) * dyaw``.
+Prediction adds the odometry displacement to the offsets and moves the content by
+whole cells only, so driving does not smear the belief by interpolation (a plain
+bilinear shift adds f (1 - f) cells^2 of spurious variance every frame). The motion
+noise is then added on purpose as a 3-tap diffusion whose variance is exactly the
+model's (see :class:`TrackParams`).
+
+Steps (Thrun, Burgard and Fox, Probabilistic Robotics, 2005, ch. 2 and 4, the
+discrete Bayes filter and the histogram filter):
+
+- predict: shift each heading layer along its own heading by the odometry increment,
+  rotate along the heading axis, diffuse;
+- update: multiply by the tempered likelihood sampled from the correlator's volume,
+  normalise; the normaliser is the predictive likelihood, a measure of surprise;
+- floor: mix a small uniform share back in so a wrong belief can recover.
+
+The pose reported is the refined top mode (not the mean, which can sit between two
+modes); the covariance is the posterior's second moment about that pose, so a
+second mode d metres away with weight w adds about w d^2 to it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+import math
+
+import numpy as np
+
+from ..errors import InputError
+from ..frames import wrap_angle
+from . import _kernels as K
+from .gnss_prior import GnssParams
+
+QUALITIES = ("no-fix", "searching", "tracking", "degraded")
+
+
+@dataclass(frozen=True)
+class MapGeometry:
+    """Where the map raster sits in the world (ENU metres)."""
+
+    x_min: float
+    y_max: float
+    res_m: float
+
+    def cell_of(self, x_m: float, y_m: float) -> tuple[float, float]:
+        """Continuous (row, col) of a world point; a cell centre is at +0.5."""
+        return (self.y_max - y_m) / self.res_m, (x_m - self.x_min) / self.res_m
+
+    def xy_of(self, row: float, col: float) -> tuple[float, float]:
+        """World (x, y) of continuous cell coordinates."""
+        return self.x_min + col * self.res_m, self.y_max - row * self.res_m
+
+
+@dataclass
+class LikelihoodVolume:
+    """A correlator output as the filter reads it.
+
+    ``loglik[a, i, j]``: log-likelihood (up to a constant) of the robot origin at the centre of
+    global map cell (row0 + i, col0 + j) with yaw ``yaw0_rad + a * dyaw_rad``.
+    """
+
+    loglik: np.ndarray
+    row0: int
+    col0: int
+    yaw0_rad: float = 0.0
+    dyaw_rad: float = 2.0 * math.pi / 256
+
+    @property
+    def full_circle(self) -> bool:
+        """True when the headings wrap around the whole circle."""
+        return abs(self.loglik.shape[0] * self.dyaw_rad - 2.0 * math.pi) < 1e-6
+
+
+@dataclass(frozen=True)
+class TrackParams:
+    """Parameters of the grid filter and its lost/recovered logic (defaults in brackets).
+
+    Parameters
+    ----------
+    window_cells : int
+        Side of the square belief window, cells [64; 32 m at 0.5 m].
+    headings : int
+        Heading layers over the full circle [256, 1.4 deg each].
+    floor : float
+        Share of probability mixed back in uniformly after each update [1e-4].
+    likelihood_weight : float
+        Extra tempering exponent on each frame's log-likelihood [1.0]; lower it when frames are
+        strongly correlated (high frame rate, slow robot).
+    loglik_clip : float
+        Dynamic range kept below the frame's best log-likelihood [40].
+    q_xy_m2, q_xy_per_m : float
+        Position diffusion variance per frame (m^2) and per metre driven (m^2/m) [1e-4, 4e-3].
+    q_yaw_rad2, q_yaw_per_m, q_yaw_per_rad : float
+        Heading diffusion variance per frame (rad^2), per metre (rad^2/m) and per radian turned
+        (rad^2/rad) [1e-6, 3e-5, 2.5e-3].
+    q_no_odometry_m2, q_no_odometry_rad2 : float
+        Diffusion added when a frame comes without usable odometry [1.0, 0.01].
+    max_step_m, max_turn_rad : float
+        An odometry increment larger than this is a jump: it is not applied, the belief is
+        diffused as for missing odometry and the status says so [3.0, 1.0].
+    recentre_cells : int
+        Re-centre the window when the estimate is this far from its centre [6].
+    mode_radius_cells, mode_radius_layers : int
+        Box around the top cell used to refine the pose [2, 3].
+    top_modes : int
+        Number of modes reported [3].
+    track_sigma_m, track_sigma_deg : float
+        Tracking needs the position (largest axis) and heading 1-sigma below these [1.0, 4.0].
+    lost_sigma_m, lost_sigma_deg : float
+        Beyond these the filter is lost and searches again [6.0, 30.0].
+    converge_frames : int
+        Consecutive confident updates before searching becomes tracking [3].
+    degraded_frames : int
+        Consecutive frames without a usable likelihood before tracking becomes degraded [5].
+    lost_frames : int
+        Consecutive updates with surprise beyond ``surprise_lost`` before the filter is lost [8].
+    surprise_lost : float
+        Log predictive likelihood below which an update is surprising [-8.0].
+    verify_every : int
+        While tracking, a global check runs every this many frames [15].
+    switch_margin : float
+        A global check votes "elsewhere" when the best pose 5 m or more away scores this much
+        better (log units) than the best near the estimate [4.0].
+    switch_votes : int
+        Consecutive "elsewhere" votes that declare the filter lost [2].
+    gnss : GnssParams
+        Robust satellite-fix prior.
+    """
+
+    window_cells: int = 64
+    headings: int = 256
+    floor: float = 1e-4
+    likelihood_weight: float = 1.0
+    loglik_clip: float = 40.0
+    q_xy_m2: float = 1e-4
+    q_xy_per_m: float = 4e-3
+    q_yaw_rad2: float = 1e-6
+    q_yaw_per_m: float = 3e-5
+    q_yaw_per_rad: float = 2.5e-3
+    q_no_odometry_m2: float = 1.0
+    q_no_odometry_rad2: float = 0.01
+    max_step_m: float = 3.0
+    max_turn_rad: float = 1.0
+    recentre_cells: int = 6
+    mode_radius_cells: int = 2
+    mode_radius_layers: int = 3
+    top_modes: int = 3
+    track_sigma_m: float = 1.0
+    track_sigma_deg: float = 4.0
+    lost_sigma_m: float = 6.0
+    lost_sigma_deg: float = 30.0
+    converge_frames: int = 3
+    degraded_frames: int = 5
+    lost_frames: int = 8
+    surprise_lost: float = -8.0
+    verify_every: int = 15
+    switch_margin: float = 4.0
+    switch_votes: int = 2
+    gnss: GnssParams = field(default_factory=GnssParams)
+
+    def __post_init__(self):
+        if not 8 <= self.window_cells <= 1024:
+            raise InputError(f"track.window_cells = {self.window_cells}: must be in 8..1024")
+        if not 4 <= self.headings <= 4096:
+            raise InputError(f"track.headings = {self.headings}: must be in 4..4096")
+        if not 0.0 <= self.floor < 0.5:
+            raise InputError(f"track.floor = {self.floor}: must be in [0, 0.5)")
+        if not 0.0 < self.likelihood_weight <= 10.0:
+            raise InputError(f"track.likelihood_weight = {self.likelihood_weight}: must be in (0, 10]")
+        for k in ("q_xy_m2", "q_xy_per_m", "q_yaw_rad2", "q_yaw_per_m", "q_yaw_per_rad",
+                  "q_no_odometry_m2", "q_no_odometry_rad2"):
+            v = getattr(self, k)
+            if not (math.isfinite(v) and v >= 0.0):
+                raise InputError(f"track.{k} = {v}: must be a finite number >= 0")
+
+
+@dataclass
+class FilterEstimate:
+    """What the posterior says (world frame; covariance over x, y, yaw)."""
+
+    x: float
+    y: float
+    yaw: float
+    cov: np.ndarray
+    modes: list
+    peak_mass: float
+    sigma_xy_m: float
+    sigma_yaw_rad: float
+
+
+class GridFilter:
+    """The belief and its three operations (predict, update, floor). Buffers are allocated once.
+
+    Parameters
+    ----------
+    geom : MapGeometry
+        Map raster placement (the filter's cells are map cells).
+    params : TrackParams
+        Filter parameters.
+    """
+
+    def __init__(self, geom: MapGeometry, params: TrackParams = TrackParams()):
+        self.geom = geom
+        self.p = params
+        A, n = params.headings, params.window_cells
+        self.A, self.H, self.W = A, n, n
+        self.dyaw = 2.0 * math.pi / A
+        self.bel = np.zeros((A, n, n), np.float32)
+        self._scr = np.zeros_like(self.bel)
+        self._tmp2 = np.zeros((n, n), np.float32)
+        self._m2 = np.zeros((n, n), np.float32)
+        self._m2w = np.zeros((n, n), np.float32)
+        self._best = np.zeros((n, n), np.int64)
+        self.dr = np.zeros(A, np.float64)
+        self.dc = np.zeros(A, np.float64)
+        self._tmp_a = np.zeros(A, np.float64)
+        self._kr = np.zeros(A, np.int64)
+        self._kc = np.zeros(A, np.int64)
+        self._yaw = np.zeros(A, np.float64)
+        self._cos = np.zeros(A, np.float64)
+        self._sin = np.zeros(A, np.float64)
+        self._acc = np.zeros(10, np.float64)
+        self.active = np.ones(A, np.uint8)
+        self._act_b = np.zeros(A, np.bool_)
+        self._act_t = np.zeros(A, np.bool_)
+        self.lsum = np.zeros(A, np.float64)
+        self._bestv = np.zeros((n, n), np.float32)
+        self._acc4 = np.zeros(4, np.float64)
+        self.hoff = 0.0
+        self.row0 = 0
+        self.col0 = 0
+        self._qxy = 0.0  # pending diffusion variance, cells^2
+        self._qh = 0.0  # pending heading diffusion variance, layers^2
+        self.n_cells = A * n * n
+        self.reset(0.0, 0.0)
+
+    # ---- window placement -------------------------------------------------------------------
+    @property
+    def fill(self) -> float:
+        """Probability per cell of the uniform floor."""
+        return self.p.floor / self.n_cells
+
+    def window_centre_xy(self) -> tuple[float, float]:
+        """World position (m) of the window centre."""
+        return self.geom.xy_of(self.row0 + self.H / 2.0, self.col0 + self.W / 2.0)
+
+    def _origin_for(self, x_m: float, y_m: float) -> tuple[int, int]:
+        r, c = self.geom.cell_of(x_m, y_m)
+        return int(math.floor(r - self.H / 2.0 + 0.5)), int(math.floor(c - self.W / 2.0 + 0.5))
+
+    def reset(self, x_m: float, y_m: float, *, yaw_rad: float | None = None, sigma_yaw_rad: float = 0.0) -> None:
+        """Uniform belief over the window centred at (x, y); optionally concentrated around a yaw."""
+        self.row0, self.col0 = self._origin_for(x_m, y_m)
+        self.dr[:] = 0.0
+        self.dc[:] = 0.0
+        self.hoff = 0.0
+        self._qxy = self._qh = 0.0
+        self.active.fill(1)
+        self.lsum.fill(1.0 / self.A)
+        if yaw_rad is None or not math.isfinite(yaw_rad):
+            self.bel.fill(1.0 / self.n_cells)
+            return
+        a = np.arange(self.A) * self.dyaw
+        d = wrap_angle(a - yaw_rad)
+        s = max(sigma_yaw_rad, self.dyaw)
+        w = np.exp(-0.5 * (d / s) ** 2)
+        w /= w.sum()
+        self.bel[:] = (w / (self.H * self.W)).astype(np.float32)[:, None, None]
+        self.lsum[:] = w
+
+    def recentre(self, x_m: float, y_m: float) -> None:
+        """Move the window (by whole cells) so that (x, y) is near its centre; keeps the overlap."""
+        r0, c0 = self._origin_for(x_m, y_m)
+        kr, kc = self.row0 - r0, self.col0 - c0
+        if kr == 0 and kc == 0:
+            return
+        self._kr.fill(kr)
+        self._kc.fill(kc)
+        K.shift_roll(self.bel, self._scr, self._kr, self._kc, 0, np.float32(self.fill), self.active)
+        self.bel, self._scr = self._scr, self.bel
+        self.row0, self.col0 = r0, c0
+        self.normalise()
+
+    def normalise(self) -> float:
+        """Scale the belief to sum 1; returns the sum before (a zero or non-finite sum resets to uniform)."""
+        s = float(K.scale_add(self.bel, self.active, self.lsum, 1.0, 0.0))
+        if not (math.isfinite(s) and s > 0.0):
+            self.bel.fill(1.0 / self.n_cells)
+            self.active.fill(1)
+            self.lsum.fill(1.0 / self.A)
+            return s
+        K.scale_add(self.bel, self.active, self.lsum, 1.0 / s, 0.0)
+        return s
+
+    # ---- predict ------------------------------------------------------------------------------
+    def predict(self, d_fwd_m: float, d_left_m: float, d_yaw_rad: float) -> None:
+        """Apply a body-frame odometry increment (forward m, left m, CCW rad) plus its motion noise."""
+        p = self.p
+        res = self.geom.res_m
+        yaw = self._yaw
+        np.add(self._layer_index(), self.hoff, out=yaw)
+        yaw *= self.dyaw
+        yaw += 0.5 * d_yaw_rad  # mid-point heading of the increment
+        np.cos(yaw, out=self._cos)
+        np.sin(yaw, out=self._sin)
+        # displacement in cells (col grows east, row grows south): dx = c f - s l, dy = s f + c l
+        t = self._tmp_a
+        np.multiply(self._cos, d_fwd_m / res, out=t)
+        self.dc += t
+        np.multiply(self._sin, -d_left_m / res, out=t)
+        self.dc += t
+        np.multiply(self._sin, -d_fwd_m / res, out=t)
+        self.dr += t
+        np.multiply(self._cos, -d_left_m / res, out=t)
+        self.dr += t
+        np.rint(self.dr, out=self._tmp_a)
+        self._kr[:] = self._tmp_a
+        self.dr -= self._tmp_a
+        np.rint(self.dc, out=self._tmp_a)
+        self._kc[:] = self._tmp_a
+        self.dc -= self._tmp_a
+        self.hoff += d_yaw_rad / self.dyaw
+        kh = int(round(self.hoff))
+        self.hoff -= kh
+        if kh or self._kr.any() or self._kc.any():
+            K.shift_roll(self.bel, self._scr, self._kr, self._kc, kh, np.float32(self.fill), self.active)
+            self.bel, self._scr = self._scr, self.bel
+            if kh:
+                self._roll_offsets(kh)
+        dist = math.hypot(d_fwd_m, d_left_m)
+        self.add_noise(p.q_xy_m2 + p.q_xy_per_m * dist,
+                       p.q_yaw_rad2 + p.q_yaw_per_m * dist + p.q_yaw_per_rad * abs(d_yaw_rad))
+
+    def _layer_index(self) -> np.ndarray:
+        li = getattr(self, "_li", None)
+        if li is None:
+            li = self._li = np.arange(self.A, dtype=np.float64)
+        return li
+
+    def _roll_offsets(self, kh: int) -> None:
+        k = kh % self.A
+        for arr in (self.dr, self.dc, self.lsum):
+            self._tmp_a[:] = arr
+            arr[k:] = self._tmp_a[:self.A - k]
+            arr[:k] = self._tmp_a[self.A - k:]
+        t = self._act_t
+        t[:] = self.active
+        self.active[k:] = t[:self.A - k]
+        self.active[:k] = t[self.A - k:]
+
+    def activate_all(self) -> None:
+        """Evaluate every heading layer on the next update (before a global search)."""
+        if not self.active.all():
+            K.flatten_layers(self.bel, self.active, self.lsum)
+            self.active.fill(1)
+
+    def _refresh_active(self, tau: float = 1e-6, margin: int = 3) -> None:
+        """Layers holding more than ``tau`` of the mass, and ``margin`` layers on each side, stay active.
+
+        The others become a uniform level holding their (tiny) mass in ``lsum``: they are carried but
+        not evaluated until a global search reactivates them.
+        """
+        b = self._act_b
+        np.greater(self.lsum, tau, out=b)
+        t = self._act_t
+        t[:] = b
+        for k in range(1, margin + 1):
+            t[k:] |= b[:-k]
+            t[:k] |= b[-k:]
+            t[:-k] |= b[k:]
+            t[-k:] |= b[:k]
+        self.active[:] = t
+
+    def add_noise(self, var_xy_m2: float, var_yaw_rad2: float, *, now: bool = False) -> None:
+        """Add diffusion (variance in m^2 and rad^2); small amounts wait until they are worth a pass."""
+        self._qxy += var_xy_m2 / self.geom.res_m ** 2
+        self._qh += var_yaw_rad2 / self.dyaw ** 2
+        if self._qxy >= 0.05 or (now and self._qxy > 0):
+            n = int(math.ceil(self._qxy / 0.5))
+            w = self._qxy / (2.0 * n)
+            for _ in range(n):
+                K.blur3_space(self.bel, self._scr, self._tmp2, w, w, np.float32(self.fill), self.active)
+                self.bel, self._scr = self._scr, self.bel
+            self._qxy = 0.0
+        if self._qh >= 0.05 or (now and self._qh > 0):
+            n = int(math.ceil(self._qh / 0.5))
+            w = self._qh / (2.0 * n)
+            for _ in range(min(n, 4 * self.A)):
+                K.blur3_heading(self.bel, self._scr, w, self.active, self.lsum)
+                self.bel, self._scr = self._scr, self.bel
+            self._qh = 0.0
+
+    # ---- update -------------------------------------------------------------------------------
+    def update(self, vol: LikelihoodVolume, *, weight: float | None = None) -> float:
+        """Multiply by the tempered likelihood and normalise.
+
+        Returns the log predictive likelihood ``log sum(prior * exp(w (L - max L)))``: 0 when the
+        belief sits on the frame's best poses (or the frame is flat), very negative when the frame
+        says the robot is somewhere the belief does not expect it.
+        """
+        L = vol.loglik
+        lmax = float(L.max())
+        lout = float(L.min())
+        w = self.p.likelihood_weight if weight is None else weight
+        s = K.sample_update(self.bel, self.dr, self.dc, self.hoff, self.dyaw, L,
+                            float(self.row0 - vol.row0), float(self.col0 - vol.col0),
+                            float(vol.yaw0_rad), float(vol.dyaw_rad), vol.full_circle,
+                            lmax, lout, float(w), float(self.p.loglik_clip), self.active, self.lsum)
+        before = self.normalise()
+        if not (before > 0 and math.isfinite(before)):
+            self.active.fill(1)
+            return -self.p.loglik_clip
+        self._refresh_active()
+        return max(math.log(before), -self.p.loglik_clip)
+
+    def update_xy(self, x_m: float, y_m: float, sigma_m: float, *, nu: float, weight: float) -> None:
+        """Multiply by a robust (Student-t) position likelihood centred at (x, y)."""
+        fr, fc = self.geom.cell_of(x_m, y_m)
+        K.xy_robust_update(self.bel, self.dr, self.dc, float(self.row0), float(self.col0), fr, fc,
+                           sigma_m / self.geom.res_m, float(nu), float(weight), self.active)
+        self.normalise()
+
+    def add_floor(self) -> None:
+        """Mix the uniform floor in (keeps the belief able to recover)."""
+        if self.p.floor > 0:
+            K.scale_add(self.bel, self.active, self.lsum, 1.0 - self.p.floor, self.fill)
+
+    # ---- read out -----------------------------------------------------------------------------
+    def estimate(self) -> FilterEstimate:
+        """Refined top mode, covariance about it, and the top modes (world frame)."""
+        p = self.p
+        res = self.geom.res_m
+        k = int(K.argmax3(self.bel, self.active))
+        a0, rem = divmod(k, self.H * self.W)
+        i0, j0 = divmod(rem, self.W)
+        ref = self._refine_peak(a0, i0, j0)
+        if ref is None:
+            K.local_mean(self.bel, self.dr, self.dc, self.hoff, self.dyaw, a0, i0, j0,
+                         p.mode_radius_cells, p.mode_radius_layers, self._acc4)
+            m = self._acc4[0]
+            if m > 0:
+                row_w, col_w, dyaw = self._acc4[1] / m, self._acc4[2] / m, self._acc4[3] / m
+            else:
+                row_w, col_w, dyaw = i0 + 0.5 + self.dr[a0], j0 + 0.5 + self.dc[a0], 0.0
+        else:
+            row_w, col_w, dyaw = ref
+        yaw = wrap_angle((a0 + self.hoff) * self.dyaw + dyaw)
+        K.moments_about(self.bel, self.dr, self.dc, self.hoff, self.dyaw, row_w, col_w, yaw,
+                        2.0 * self.fill, self._acc, self.active)
+        acc = self._acc
+        mass = acc[0] if acc[0] > 0 else 1.0
+        e_rr, e_cc, e_aa = acc[4] / mass, acc[5] / mass, acc[6] / mass
+        e_rc, e_ra, e_ca = acc[7] / mass, acc[8] / mass, acc[9] / mass
+        cov = np.empty((3, 3))
+        cov[0, 0] = res * res * (e_cc + 1.0 / 12.0)
+        cov[1, 1] = res * res * (e_rr + 1.0 / 12.0)
+        cov[0, 1] = cov[1, 0] = -res * res * e_rc
+        cov[2, 2] = e_aa + self.dyaw ** 2 / 12.0
+        cov[0, 2] = cov[2, 0] = res * e_ca
+        cov[1, 2] = cov[2, 1] = -res * e_ra
+        x, y = self.geom.xy_of(self.row0 + row_w, self.col0 + col_w)
+        tr = 0.5 * (cov[0, 0] + cov[1, 1])
+        det = cov[0, 0] * cov[1, 1] - cov[0, 1] ** 2
+        lam = tr + math.sqrt(max(tr * tr - det, 0.0))
+        modes = self._modes()
+        peak = modes[0][3] if modes else 0.0
+        return FilterEstimate(x, y, yaw, cov, modes, peak, math.sqrt(max(lam, 0.0)), math.sqrt(max(cov[2, 2], 0.0)))
+
+    def _refine_peak(self, a0: int, i0: int, j0: int):
+        """Sub-cell peak from a quadratic fit of the log-posterior around cell (a0, i0, j0).
+
+        Sampled on a lattice, a posterior sharper than a cell puts nearly all its mass in one cell,
+        so a weighted mean snaps to the lattice; the Newton step on the log values (central
+        differences on the 3 x 3 neighbourhood, and a 3-point parabola across heading layers) is
+        exact for a Gaussian. Returns (row, col, dyaw) in window coordinates, or None when the
+        neighbourhood is not usable (window edge, inactive layer, not concave).
+        """
+        H, W, A = self.H, self.W, self.A
+        if not (0 < i0 < H - 1 and 0 < j0 < W - 1):
+            return None
+        am, ap = (a0 - 1) % A, (a0 + 1) % A
+        if not (self.active[am] and self.active[ap]):
+            return None
+        blk = self.bel[a0, i0 - 1:i0 + 2, j0 - 1:j0 + 2]
+        if float(blk.min()) <= 0.0:
+            return None
+        f = np.log(blk.astype(np.float64))
+        gx = 0.5 * (f[1, 2] - f[1, 0])
+        gy = 0.5 * (f[2, 1] - f[0, 1])
+        hxx = f[1, 2] - 2.0 * f[1, 1] + f[1, 0]
+        hyy = f[2, 1] - 2.0 * f[1, 1] + f[0, 1]
+        hxy = 0.25 * (f[2, 2] - f[2, 0] - f[0, 2] + f[0, 0])
+        det = hxx * hyy - hxy * hxy
+        if not (hxx < 0.0 and hyy < 0.0 and det > 0.0):
+            return None
+        oc = -(hyy * gx - hxy * gy) / det
+        orow = -(hxx * gy - hxy * gx) / det
+        oc = min(max(oc, -1.0), 1.0)
+        orow = min(max(orow, -1.0), 1.0)
+        vm, v0, vp = float(self.bel[am, i0, j0]), float(blk[1, 1]), float(self.bel[ap, i0, j0])
+        oa = 0.0
+        if vm > 0.0 and vp > 0.0:
+            lm, l0, lp = math.log(vm), math.log(v0), math.log(vp)
+            den = lm - 2.0 * l0 + lp
+            if den < 0.0:
+                oa = min(max(0.5 * (lm - lp) / den, -1.0), 1.0)
+        return i0 + 0.5 + self.dr[a0] + orow, j0 + 0.5 + self.dc[a0] + oc, oa * self.dyaw
+
+    def _modes(self) -> list:
+        """Top modes after non-maximum suppression in x, y: (x, y, yaw, weight)."""
+        p = self.p
+        K.marginal_xy(self.bel, self.active, self._m2, self._best, self._bestv)
+        self._m2w[:] = self._m2
+        out = []
+        r = p.mode_radius_cells
+        for _ in range(p.top_modes):
+            k = int(np.argmax(self._m2w))
+            i, j = divmod(k, self.W)
+            if self._m2w[i, j] <= 2.0 * self.fill * self.A:
+                break
+            wgt = float(K.box_mass(self._m2, i, j, r))
+            a = int(self._best[i, j])
+            x, y = self.geom.xy_of(self.row0 + i + 0.5 + self.dr[a], self.col0 + j + 0.5 + self.dc[a])
+            out.append((x, y, wrap_angle((a + self.hoff) * self.dyaw), wgt))
+            K.suppress_box(self._m2w, i, j, 3 * r)
+        return out
+
+
+@dataclass
+class TrackOutput:
+    """One tracker step's result (world frame)."""
+
+    t: float
+    x: float
+    y: float
+    yaw: float
+    cov: np.ndarray
+    quality: str
+    modes: list
+    status: str
+    surprise: float = 0.0
+    global_search: bool = False
+
+
+class Tracker:
+    """The filter plus the lost/recovered logic and the GNSS prior: the tracker the loop calls.
+
+    One call per frame: :meth:`wants_global` says whether the correlator should search the whole
+    window around :meth:`search_centre` (at start, while searching, for periodic checks), then
+    :meth:`step` takes the odometry increment, the likelihood volume (or ``None`` for an unusable
+    frame) and the latest GNSS fix.
+    """
+
+    def __init__(self, geom: MapGeometry, params: TrackParams = TrackParams()):
+        self.p = params
+        self.filter = GridFilter(geom, params)
+        self.geom = geom
+        from .gnss_prior import DisagreementClock
+
+        self._clock = DisagreementClock(params.gnss)
+        self.reset_state()
+
+    def reset_state(self) -> None:
+        """Forget everything: no fix, searching on the next frame."""
+        self.state = "no-fix"
+        self.started = False
+        self.frames = 0
+        self._converge = 0
+        self._no_update = 0
+        self._surprised = 0
+        self._votes = 0
+        self._since_verify = 0
+        self._gnss_disagree_s = 0.0
+        self._gnss_xy = None  # last usable fix (x, y, sigma, t)
+        self.last = None
+        self._clock.reset()
+        self.counters = {"global_searches": 0, "lost": 0, "recovered": 0, "odometry_jumps": 0,
+                         "no_odometry": 0, "frames_without_likelihood": 0}
+
+    # ---- what the loop asks before correlating --------------------------------------------------
+    def wants_global(self) -> bool:
+        """True when this frame should be matched over the whole search window."""
+        if self.state in ("no-fix", "searching"):
+            return True
+        if self._gnss_disagree_s >= self.p.gnss.disagree_s:
+            return True
+        return self._since_verify >= self.p.verify_every
+
+    def search_centre(self) -> tuple[float, float] | None:
+        """Centre (x, y) of the global search: the fix when searching or disagreeing, else the estimate."""
+        g = self._gnss_xy
+        if g is not None and (self.state in ("no-fix", "searching") or self._gnss_disagree_s > 0):
+            return g[0], g[1]
+        if self.last is not None:
+            return self.last.x, self.last.y
+        if g is not None:
+            return g[0], g[1]
+        return None
+
+    def track_centre(self) -> tuple[float, float, float]:
+        """Estimate (x, y, yaw) around which a tracking-mode correlation should look."""
+        if self.last is None:
+            x, y = self.filter.window_centre_xy()
+            return x, y, 0.0
+        return self.last.x, self.last.y, self.last.yaw
+
+    # ---- one frame ------------------------------------------------------------------------------
+    def step(self, t: float, odo: tuple[float, float, float] | None, vol: LikelihoodVolume | None, *,
+             is_global: bool = False, gnss: tuple[float, float, float, float] | None = None,
+             frame_status: str = "ok") -> TrackOutput:
+        """Advance the filter by one frame.
+
+        Parameters
+        ----------
+        t : float
+            Sensor time of the frame (s).
+        odo : (d_forward_m, d_left_m, d_yaw_rad) or None
+            Body-frame odometry increment since the previous frame; None when it is missing.
+        vol : LikelihoodVolume or None
+            The frame's likelihood (None when the frame was unusable).
+        is_global : bool
+            ``vol`` is a global search (may re-centre the window or declare the filter lost).
+        gnss : (x_m, y_m, acc_m, t_fix) or None
+            Latest satellite fix in the world frame with its reported 1-sigma accuracy.
+        frame_status : str
+            Why the frame is unusable when ``vol`` is None (carried into the status text).
+        """
+        p = self.p
+        f = self.filter
+        notes = []
+        self.frames += 1
+        g = self._usable_fix(t, gnss)
+        if not self.started:
+            if g is None and vol is None:
+                return self._output(t, "no-fix", notes + ["waiting for a fix or a frame"] + [frame_status]
+                                    if frame_status != "ok" else notes + ["waiting for a fix or a frame"])
+            cx, cy = (g[0], g[1]) if g is not None else self._vol_centre(vol)
+            f.reset(cx, cy)
+            self.started = True
+            self.state = "searching"
+        else:
+            self._predict(odo, notes)
+        if g is not None:
+            w = p.gnss.weight_search if self.state == "searching" else p.gnss.weight_track
+            if self.state == "searching":
+                f.recentre(g[0], g[1]) if self._far_from_window(g[0], g[1]) else None
+            f.update_xy(g[0], g[1], g[2], nu=p.gnss.nu, weight=w)
+        surprise = 0.0
+        if vol is not None:
+            if is_global:
+                self.counters["global_searches"] += 1
+                self._since_verify = 0
+                self._global_decision(vol, g, notes)
+            surprise = f.update(vol)
+            self._no_update = 0
+            self._surprised = self._surprised + 1 if surprise < p.surprise_lost else 0
+        else:
+            self._no_update += 1
+            self.counters["frames_without_likelihood"] += 1
+            if frame_status != "ok":
+                notes.append(frame_status)
+        self._since_verify += 1
+        est = f.estimate()
+        if g is not None:
+            self._gnss_disagree_s = self._clock.observe(t, math.hypot(est.x - g[0], est.y - g[1]), g[2])
+        self._decide(est, notes)
+        if self.state == "tracking" or self.state == "degraded":
+            r, c = self.geom.cell_of(est.x, est.y)
+            if (abs(r - (f.row0 + f.H / 2)) > p.recentre_cells or abs(c - (f.col0 + f.W / 2)) > p.recentre_cells):
+                f.recentre(est.x, est.y)
+        f.add_floor()
+        self.last = est
+        return self._output(t, self.state, notes, est, surprise, is_global and vol is not None)
+
+    # ---- internals ------------------------------------------------------------------------------
+    def _usable_fix(self, t, gnss):
+        from .gnss_prior import effective_sigma_m, fix_usable
+
+        if gnss is None:
+            return None
+        x, y, acc, tf = gnss
+        if not fix_usable(acc, t - tf, x, y, self.p.gnss):
+            return None
+        g = (x, y, effective_sigma_m(acc, self.p.gnss), tf)
+        self._gnss_xy = g
+        return g
+
+    def _vol_centre(self, vol):
+        A, H, W = vol.loglik.shape
+        return self.geom.xy_of(vol.row0 + H / 2.0, vol.col0 + W / 2.0)
+
+    def _far_from_window(self, x, y) -> bool:
+        f = self.filter
+        r, c = self.geom.cell_of(x, y)
+        return abs(r - (f.row0 + f.H / 2)) > f.H / 4 or abs(c - (f.col0 + f.W / 2)) > f.W / 4
+
+    def _predict(self, odo, notes) -> None:
+        p = self.p
+        f = self.filter
+        if odo is None or not all(math.isfinite(v) for v in odo):
+            self.counters["no_odometry"] += 1
+            notes.append("no odometry")
+            f.add_noise(p.q_no_odometry_m2, p.q_no_odometry_rad2)
+            return
+        d_fwd, d_left, d_yaw = odo
+        if math.hypot(d_fwd, d_left) > p.max_step_m or abs(d_yaw) > p.max_turn_rad:
+            self.counters["odometry_jumps"] += 1
+            notes.append("odometry jump ignored")
+            f.add_noise(p.q_no_odometry_m2 + (p.q_xy_per_m * math.hypot(d_fwd, d_left)),
+                        p.q_no_odometry_rad2)
+            return
+        f.predict(d_fwd, d_left, d_yaw)
+
+    def _global_decision(self, vol: LikelihoodVolume, g, notes) -> None:
+        """Compare the best pose of a global search with the best near the belief; move or vote."""
+        p = self.p
+        f = self.filter
+        L = vol.loglik
+        A, H, W = L.shape
+        m2 = self._m2_for(H, W)
+        K.max_over_heading(L, m2)
+        score = m2
+        if g is not None:
+            # robust GNSS prior on the candidates (same tempering as while searching)
+            sc = self._score_for(H, W)
+            rows = vol.row0 + 0.5 + np.arange(H)
+            cols = vol.col0 + 0.5 + np.arange(W)
+            fr, fc = self.geom.cell_of(g[0], g[1])
+            s = g[2] / self.geom.res_m
+            nu = p.gnss.nu
+            d2 = ((rows - fr)[:, None] ** 2 + (cols - fc)[None, :] ** 2) / (nu * s * s)
+            np.multiply(np.log1p(d2), -0.5 * (nu + 2.0) * p.gnss.weight_search, out=sc)
+            sc += m2
+            score = sc
+        k = int(np.argmax(score))
+        bi, bj = divmod(k, W)
+        bx, by = self.geom.xy_of(vol.row0 + bi + 0.5, vol.col0 + bj + 0.5)
+        if self.state == "searching":
+            if self._far_from_window(bx, by):
+                f.recentre(bx, by)
+                notes.append("search moved")
+            return
+        est = self.last
+        if est is None:
+            return
+        er, ec = self.geom.cell_of(est.x, est.y)
+        rad = max(1, int(round(2.0 / self.geom.res_m)))
+        i0, j0 = int(er - vol.row0), int(ec - vol.col0)
+        lo_i, hi_i = max(0, i0 - rad), min(H, i0 + rad + 1)
+        lo_j, hi_j = max(0, j0 - rad), min(W, j0 + rad + 1)
+        here = float(score[lo_i:hi_i, lo_j:hi_j].max()) if lo_i < hi_i and lo_j < hi_j else -np.inf
+        far = math.hypot(bx - est.x, by - est.y) >= 5.0
+        if far and float(score[bi, bj]) - here > p.switch_margin:
+            self._votes += 1
+            notes.append(f"check: better pose {math.hypot(bx - est.x, by - est.y):.0f} m away "
+                         f"({self._votes}/{p.switch_votes})")
+            if self._votes >= p.switch_votes:
+                self._lose(notes, "global check found a better pose elsewhere")
+                f.reset(bx, by)
+        else:
+            self._votes = 0
+
+    def _m2_for(self, H, W):
+        b = getattr(self, "_gm2", None)
+        if b is None or b.shape != (H, W):
+            b = self._gm2 = np.empty((H, W), np.float32)
+        return b
+
+    def _score_for(self, H, W):
+        b = getattr(self, "_gsc", None)
+        if b is None or b.shape != (H, W):
+            b = self._gsc = np.empty((H, W), np.float64)
+        return b
+
+    def _lose(self, notes, why) -> None:
+        self.state = "searching"
+        self.counters["lost"] += 1
+        self._converge = 0
+        self._votes = 0
+        self._surprised = 0
+        notes.append(f"lost: {why}")
+
+    def _decide(self, est: FilterEstimate, notes) -> None:
+        p = self.p
+        ok_sigma = (est.sigma_xy_m <= p.track_sigma_m and math.degrees(est.sigma_yaw_rad) <= p.track_sigma_deg)
+        if self.state == "searching":
+            self._converge = self._converge + 1 if (ok_sigma and self._no_update == 0) else 0
+            if self._converge >= p.converge_frames:
+                self.state = "tracking"
+                self.counters["recovered"] += 1
+                notes.append("locked on")
+            return
+        lost_sigma = (est.sigma_xy_m > p.lost_sigma_m or math.degrees(est.sigma_yaw_rad) > p.lost_sigma_deg)
+        if lost_sigma:
+            self._lose(notes, f"uncertainty {est.sigma_xy_m:.1f} m")
+            return
+        if self._surprised >= p.lost_frames:
+            self._lose(notes, f"{self._surprised} frames disagree with the belief")
+            return
+        degraded = (not ok_sigma or self._no_update >= p.degraded_frames
+                    or self._gnss_disagree_s >= p.gnss.disagree_s)
+        if degraded:
+            if self.state != "degraded":
+                why = ("uncertainty grew" if not ok_sigma else
+                       "no usable frames" if self._no_update >= p.degraded_frames else "satellite fix disagrees")
+                notes.append(f"degraded: {why}")
+            self.state = "degraded"
+        else:
+            if self.state == "degraded":
+                notes.append("tracking again")
+            self.state = "tracking"
+
+    def _output(self, t, quality, notes, est=None, surprise=0.0, was_global=False) -> TrackOutput:
+        status = "; ".join(n for n in notes if n) or ("global search" if was_global else "ok")
+        if est is None:
+            nan = math.nan
+            return TrackOutput(t, nan, nan, nan, np.full((3, 3), np.nan), quality, [], status, surprise, was_global)
+        return TrackOutput(t, est.x, est.y, est.yaw, est.cov, quality, est.modes, status, surprise, was_global)
