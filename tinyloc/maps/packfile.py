@@ -338,6 +338,11 @@ class PackedMap:
         return len(self._damaged)
 
     @property
+    def empty_tiles(self) -> int:
+        """Number of tiles stored as empty (nothing mapped in them)."""
+        return int((self._index[:, 1] == 0).sum())
+
+    @property
     def cache_used_bytes(self) -> int:
         return self._cached
 
