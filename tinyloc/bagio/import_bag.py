@@ -1,0 +1,689 @@
+"""Convert a recorded robot log (ROS 1 bag, ROS 2 sqlite3 or MCAP bag) into a run folder.
+
+One streaming pass over the bag writes the run folder through
+:class:`tinyloc.runfolder.RunWriter`; memory stays bounded by one message plus the
+bag reader's chunk buffer, whatever the bag's size. Before it, a short look-ahead
+reads only what the run folder needs up front: the static transforms, the first
+CameraInfo, the first camera and IMU messages.
+
+Time: every sample carries its header stamp (not the record time), as run-folder
+seconds ``t = (stamp_ns - time_base_ns) / 1e9``; ``time_base_ns`` (whole seconds of
+the first frame's stamp) is stored in run.json so exported results line up with the
+original log again. Streams must be monotonic, so messages without a stamp, with a
+repeated stamp or going back in time are dropped and reported (topic, message index).
+
+Interrupted or failed imports close the folder with ``"complete": false`` and the
+reason in run.json's ``"import"`` entry; a run folder is never silently truncated.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sqlite3
+import struct
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..camera.model import CameraModel, load_camera
+from ..errors import InputError
+from ..geo import LocalFrame
+from ..runfolder import RunWriter, _fmt
+from ._rosbags import rosbags, stamp_ns, typestore
+from .decode import (COV_UNKNOWN, NAVSAT_NO_FIX, BadMessage, TransformTree, camera_from_info, check_compressed,
+                     horizontal_sigma_m, mount_from_transform, quat_to_yaw, raw_image_to_bgr)
+from .progress import Progress
+from .stamps import NS, StampParams, StampTracker
+
+IMAGE = "sensor_msgs/msg/Image"
+COMPRESSED = "sensor_msgs/msg/CompressedImage"
+CAMERA_INFO = "sensor_msgs/msg/CameraInfo"
+IMU = "sensor_msgs/msg/Imu"
+ODOMETRY = "nav_msgs/msg/Odometry"
+NAVSATFIX = "sensor_msgs/msg/NavSatFix"
+POSE = "geometry_msgs/msg/PoseStamped"
+POSE_COV = "geometry_msgs/msg/PoseWithCovarianceStamped"
+TF_MESSAGE = "tf2_msgs/msg/TFMessage"
+TF_STATIC = "/tf_static"
+
+# stream -> message types it takes (candidates for the default pick, in preference order groups)
+STREAM_TYPES: dict[str, tuple[tuple[str, ...], ...]] = {
+    "camera": ((IMAGE,), (COMPRESSED,)),
+    "camera_info": ((CAMERA_INFO,),),
+    "imu": ((IMU,),),
+    "odom": ((ODOMETRY,),),
+    "gnss": ((NAVSATFIX,),),
+    "truth": ((POSE, POSE_COV, ODOMETRY),),
+}
+STREAM_FILE = {"camera": "frames", "camera_info": "camera.toml", "imu": "imu.csv", "odom": "odometry.csv",
+               "gnss": "gnss.csv", "truth": "truth.csv"}
+# Consecutive stampless messages at the start of a topic before we stop and suggest --record-time.
+MAX_LEADING_STAMPLESS = 20
+
+
+@dataclass(frozen=True)
+class ImportOptions:
+    """What to read from the bag and how.
+
+    Parameters
+    ----------
+    camera_topic, camera_info_topic, imu_topic, odom_topic, gnss_topic, truth_topic : str or None
+        Topics to use; None picks by message type (truth is never picked by default).
+        The string ``"none"`` leaves that stream out.
+    every : int
+        Keep every N-th camera frame (other sensors are all kept).
+    start_s, end_s : float or None
+        Window in seconds from the bag's first message (record time).
+    camera_file : str or None
+        camera.toml supplying the mount when the bag has no static transform to the camera,
+        and the intrinsics when it has no usable CameraInfo.
+    base_frame : str or None
+        Robot base frame in /tf_static; None tries base_footprint, then base_link.
+    origin : (lat, lon, h) or None
+        ENU origin of run.json (and of the truth topic's x/y, which requires it).
+    record_time : bool
+        Use the bag's record time instead of header stamps (for logs without stamps).
+    gnss_acc_m : float or None
+        1-sigma horizontal accuracy (m) for fixes whose covariance is unknown (else they are dropped).
+    stamp_params : StampParams
+        Thresholds of the timestamp report.
+    progress : bool
+        Draw a progress bar on stderr.
+    """
+
+    camera_topic: str | None = None
+    camera_info_topic: str | None = None
+    imu_topic: str | None = None
+    odom_topic: str | None = None
+    gnss_topic: str | None = None
+    truth_topic: str | None = None
+    every: int = 1
+    start_s: float | None = None
+    end_s: float | None = None
+    camera_file: str | None = None
+    base_frame: str | None = None
+    origin: tuple[float, ...] | None = None
+    record_time: bool = False
+    gnss_acc_m: float | None = None
+    stamp_params: StampParams = field(default_factory=StampParams)
+    progress: bool = True
+
+
+@dataclass
+class ImportResult:
+    """What an import wrote and saw."""
+
+    path: Path
+    complete: bool
+    counts: dict
+    report: dict
+    lines: list
+
+
+class StopImport(InputError):
+    """The bag cannot be read on; the run folder so far is closed as incomplete."""
+
+
+# ----------------------------------------------------------------------------- opening and listing
+
+_READ_ERRORS: tuple = (OSError, EOFError, struct.error, sqlite3.DatabaseError, ValueError, IndexError, KeyError)
+
+
+def _reader_errors():
+    rb = rosbags()
+    return (rb.highlevel.AnyReaderError, rb.rosbag1.ReaderError, rb.rosbag2.ReaderError,
+            rb.serde.SerdeError) + _READ_ERRORS
+
+
+def open_bag(path):
+    """Open a bag (``.bag`` file, ROS 2 bag folder, ``.db3`` or ``.mcap`` file) with rosbags' AnyReader.
+
+    Raises
+    ------
+    InputError
+        Missing path, or a file rosbags cannot open (truncated, wrong format); one line naming it.
+    """
+    rb = rosbags()
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"{p}: no such bag file or folder")
+    ros1 = p.is_file() and p.suffix == ".bag"
+    try:
+        reader = rb.highlevel.AnyReader([p], default_typestore=typestore(ros1=ros1))
+        reader.open()
+    except FileNotFoundError as e:
+        raise InputError(f"{p}: not a bag ({e})") from None
+    except _reader_errors() as e:
+        raise InputError(f"{p}: cannot open as a bag: {_why(e)} (truncated or damaged file, "
+                         "or not a ROS bag)") from None
+    return reader
+
+
+def _why(e: BaseException) -> str:
+    text = " ".join(str(a) for a in e.args) if e.args else type(e).__name__
+    return text.strip().rstrip(".") or type(e).__name__
+
+
+@dataclass
+class TopicRow:
+    topic: str
+    msgtype: str
+    count: int
+
+
+def inventory(reader) -> list[TopicRow]:
+    """Topics of an open bag: name, message type, message count (sorted by name)."""
+    return [TopicRow(name, info.msgtype or "(mixed types)", int(info.msgcount))
+            for name, info in sorted(reader.topics.items())]
+
+
+def choose_topics(rows: list[TopicRow], opts: ImportOptions) -> tuple[dict[str, str | None], list[str]]:
+    """Pick a topic for every stream: the user's choice, else the only topic of a matching type.
+
+    Returns
+    -------
+    chosen : dict
+        stream -> topic (or None when left out or absent).
+    notes : list of str
+        Why a stream is absent or how it was picked.
+
+    Raises
+    ------
+    InputError
+        A named topic does not exist or has the wrong type; several topics fit a stream
+        and none was named; no camera topic at all.
+    """
+    by_name = {r.topic: r for r in rows}
+    given = {"camera": opts.camera_topic, "camera_info": opts.camera_info_topic, "imu": opts.imu_topic,
+             "odom": opts.odom_topic, "gnss": opts.gnss_topic, "truth": opts.truth_topic}
+    flag = {"camera": "--camera-topic", "camera_info": "--camera-info-topic", "imu": "--imu-topic",
+            "odom": "--odom-topic", "gnss": "--gnss-topic", "truth": "--truth-topic"}
+    chosen: dict[str, str | None] = {}
+    notes: list[str] = []
+    for stream, groups in STREAM_TYPES.items():
+        want = given[stream]
+        types = tuple(t for g in groups for t in g)
+        if want is not None and want.lower() == "none":
+            chosen[stream] = None
+            notes.append(f"{stream}: left out ({flag[stream]} none)")
+            continue
+        if want is not None:
+            if want not in by_name:
+                close = [r.topic for r in rows if r.msgtype in types]
+                raise InputError(f"{flag[stream]} {want}: no such topic in the bag"
+                                 + (f" (topics of a fitting type: {', '.join(close)})" if close else ""))
+            if by_name[want].msgtype not in types:
+                raise InputError(f"{flag[stream]} {want}: topic has type {by_name[want].msgtype}, "
+                                 f"expected {' or '.join(types)}")
+            chosen[stream] = want
+            continue
+        if stream == "truth":
+            chosen[stream] = None
+            cands = [r.topic for r in rows if r.msgtype in (POSE, POSE_COV)]
+            if cands:
+                notes.append(f"truth: not picked by default (pose topics: {', '.join(cands)}; name one with "
+                             "--truth-topic and give its ENU origin with --origin)")
+            continue
+        taken = set(v for v in chosen.values() if v) | ({opts.truth_topic} if opts.truth_topic else set())
+        pick = None
+        for g in groups:
+            cands = [r.topic for r in rows if r.msgtype in g and r.topic not in taken and r.count > 0]
+            if stream == "camera_info" and len(cands) > 1 and chosen.get("camera"):
+                # The calibration beside the image topic (image_transport names them siblings).
+                cam_ns = chosen["camera"].rsplit("/", 1)[0]
+                near = [c for c in cands if chosen["camera"].startswith(c.rsplit("/", 1)[0] + "/")
+                        or c.rsplit("/", 1)[0] == cam_ns]
+                if len(near) >= 1:
+                    cands = sorted(near, key=len, reverse=True)[:1]
+            if len(cands) == 1:
+                pick = cands[0]
+                break
+            if len(cands) > 1:
+                raise InputError(f"several {' / '.join(g)} topics ({', '.join(cands)}); choose one with {flag[stream]}")
+        chosen[stream] = pick
+        if pick is None:
+            if stream == "camera":
+                raise InputError("no image topic in the bag (sensor_msgs Image or CompressedImage); "
+                                 "a run folder needs frames")
+            notes.append(f"{stream}: no {' / '.join(types)} topic; {STREAM_FILE[stream]} not written")
+    return chosen, notes
+
+
+def describe_bag(path, opts: ImportOptions | None = None) -> str:
+    """The ``--list`` text: what the bag holds and which topic feeds which run-folder file."""
+    opts = opts or ImportOptions()
+    reader = open_bag(path)
+    try:
+        rows = inventory(reader)
+        dur = max(0, reader.end_time - reader.start_time) / NS if rows else 0.0
+        kind = "ROS 1" if not reader.is2 else "ROS 2"
+        out = [f"{path}: {kind} bag, {len(rows)} topics, {reader.message_count} messages, "
+               f"{dur:.1f} s (record time)"]
+        try:
+            chosen, notes = choose_topics(rows, opts)
+            err = None
+        except InputError as e:
+            chosen, notes, err = {}, [], str(e)
+        use = {v: k for k, v in chosen.items() if v}
+        w = max([len(r.topic) for r in rows] + [5])
+        tw = max([len(r.msgtype) for r in rows] + [4])
+        out.append(f"  {'topic':<{w}}  {'type':<{tw}}  {'count':>7}  {'mean rate':>10}  use")
+        for r in rows:
+            # Over the whole bag's record span (the import reports header-stamp rates per topic).
+            rate = f"{r.count / dur:.2f} Hz" if dur > 0 and r.count > 1 else "-"
+            target = use.get(r.topic)
+            label = STREAM_FILE[target] if target else ("camera mount" if r.topic == TF_STATIC else "")
+            out.append(f"  {r.topic:<{w}}  {r.msgtype:<{tw}}  {r.count:>7}  {rate:>10}  {label}")
+        out.extend(f"note: {n}" for n in notes)
+        if err:
+            out.append(f"cannot import with these options: {err}")
+        return "\n".join(out)
+    finally:
+        reader.close()
+
+
+# ----------------------------------------------------------------------------- writing
+
+class _BagRunWriter(RunWriter):
+    """RunWriter plus frames stored as the bag's own JPEG/PNG bytes (no re-encoding, so no loss)."""
+
+    def add_encoded_frame(self, t: float, data: bytes, ext: str) -> str:
+        """Write an already-encoded frame (``ext`` '.jpg' or '.png'); returns its file name."""
+        t = float(t)
+        if not t > self._last_frame_t:
+            raise InputError(f"frame time {t!r} s does not increase (previous {self._last_frame_t!r} s)")
+        rel = f"frames/{self._n_frames:06d}{ext}"
+        (self.path / rel).write_bytes(data)
+        self._files["frames"].write(f"{_fmt(t)},{rel}\n")
+        self._n_frames += 1
+        self._last_frame_t = t
+        return rel
+
+
+def _update_meta(path: Path, updates: dict) -> None:
+    p = path / "run.json"
+    meta = json.loads(p.read_text(encoding="utf-8"))
+    meta.update(updates)
+    tmp = p.with_name("run.json.tmp")
+    tmp.write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
+    tmp.replace(p)
+
+
+# ----------------------------------------------------------------------------- the import
+
+class _Importer:
+    def __init__(self, bag, out, opts: ImportOptions):
+        if opts.every < 1:
+            raise InputError(f"--every {opts.every}: must be a positive whole number")
+        if opts.start_s is not None and opts.start_s < 0:
+            raise InputError(f"--start {opts.start_s}: must be >= 0 s")
+        if opts.start_s is not None and opts.end_s is not None and opts.end_s <= opts.start_s:
+            raise InputError(f"--end {opts.end_s} must be after --start {opts.start_s}")
+        if opts.gnss_acc_m is not None and not opts.gnss_acc_m > 0:
+            raise InputError(f"--gnss-acc {opts.gnss_acc_m}: must be a positive number of metres")
+        self.bag = Path(bag)
+        self.out = Path(out)
+        self.opts = opts
+        self.notes: list[str] = []
+        self.bad: dict[str, list] = {}
+        self.bad_count: dict[str, int] = {}
+
+    # -- helpers
+    def _drop(self, topic: str, index: int, why: str) -> None:
+        n = self.bad_count.get(topic, 0)
+        self.bad_count[topic] = n + 1
+        if n < self.opts.stamp_params.keep_events:
+            self.bad.setdefault(topic, []).append(f"{topic} message #{index}: {why}; dropped")
+
+    def _first(self, reader, topic: str, limit: int = 1, stamped: bool = False):
+        """Up to ``limit`` deserialised messages of ``topic`` in the window (with a nonzero stamp if asked)."""
+        conns = [c for c in reader.connections if c.topic == topic]
+        out = []
+        idx = 0
+        try:
+            for c, rec, raw in reader.messages(connections=conns, start=self.start_ns, stop=self.stop_ns):
+                try:
+                    msg = reader.deserialize(raw, c.msgtype)
+                except _reader_errors() as e:
+                    raise StopImport(f"{self.bag}: topic {topic} message #{idx} does not deserialize: {_why(e)}") \
+                        from None
+                if stamped and not self.opts.record_time and stamp_ns(msg.header) <= 0:
+                    idx += 1
+                    if idx >= MAX_LEADING_STAMPLESS:
+                        raise StopImport(
+                            f"{self.bag}: topic {topic} messages #0..#{idx - 1} carry no header stamp; "
+                            "pass --record-time to use the bag's record time instead")
+                    continue
+                out.append((idx, rec, msg))
+                idx += 1
+                if len(out) >= limit:
+                    break
+        except StopImport:
+            raise
+        except _reader_errors() as e:
+            raise StopImport(f"{self.bag}: reading topic {topic} failed after message #{idx}: {_why(e)}") from None
+        return out
+
+    def _stamp(self, msg, rec: int) -> int:
+        return rec if self.opts.record_time else stamp_ns(msg.header)
+
+    # -- camera calibration and mount
+    def _camera(self, reader, chosen) -> CameraModel:
+        opts = self.opts
+        file_cam = load_camera(opts.camera_file) if opts.camera_file else None
+        cam = None
+        info_topic = chosen.get("camera_info")
+        info_frame = ""
+        if info_topic:
+            got = self._first(reader, info_topic)
+            if not got:
+                self.notes.append(f"camera_info: {info_topic} has no message in the window")
+            else:
+                idx, _, info = got[0]
+                info_frame = str(info.header.frame_id)
+                try:
+                    cam = camera_from_info(info)
+                    self.notes.append(f"camera intrinsics from {info_topic} message #{idx} "
+                                      f"({info.distortion_model or 'no distortion'})")
+                except BadMessage as e:
+                    if file_cam is None:
+                        raise InputError(f"{self.bag}: topic {info_topic} message #{idx}: {e}") from None
+                    self.notes.append(f"{info_topic} message #{idx}: {e}; intrinsics taken from {opts.camera_file}")
+        if cam is None:
+            if file_cam is None:
+                raise InputError(f"{self.bag}: no usable CameraInfo topic; pass --camera camera.toml "
+                                 "(or --camera-info-topic)")
+            cam = file_cam
+            if not info_topic:
+                self.notes.append(f"camera intrinsics from {opts.camera_file}")
+        elif file_cam is not None:
+            diff = max(abs(a - b) for a, b in zip((cam.fx, cam.fy, cam.cx, cam.cy),
+                                                   (file_cam.fx, file_cam.fy, file_cam.cx, file_cam.cy)))
+            if diff > 1e-6 or (cam.width, cam.height) != (file_cam.width, file_cam.height):
+                self.notes.append(f"CameraInfo intrinsics differ from {opts.camera_file} (by up to "
+                                  f"{diff:.3g} px); the bag's are used, the file gives the mount only")
+        self.cam_frame = info_frame or self.first_image_frame
+        mount = None
+        if self.tree.parent and self.cam_frame:
+            base = self.base_frame
+            found = self.tree.lookup(base, self.cam_frame) if base else None
+            if found is not None:
+                mount = mount_from_transform(*found)
+                self.notes.append(f"camera mount from {TF_STATIC}: {base} -> {self.cam_frame}")
+                if "optical" not in self.cam_frame:
+                    self.notes.append(f"camera frame '{self.cam_frame}' is not named as an optical frame; "
+                                      "the mount assumes it is one (REP 103: z forward, x right, y down)")
+                if base != "base_footprint":
+                    self.notes.append(f"mount height is measured from '{base}'; tinyloc's base origin is on the "
+                                      "ground (REP 105 base_footprint): pass --base-frame if they differ")
+            else:
+                self.notes.append(f"{TF_STATIC} does not connect '{base or 'base_footprint/base_link'}' to "
+                                  f"camera frame '{self.cam_frame}'")
+        if mount is None:
+            if file_cam is None:
+                raise InputError(f"{self.bag}: no static transform from the base frame to the camera frame "
+                                 f"'{self.cam_frame}'; pass --camera camera.toml with a [mount] table")
+            mount = file_cam.mount
+            self.notes.append(f"camera mount from {opts.camera_file}")
+        try:
+            return CameraModel(width=cam.width, height=cam.height, fx=cam.fx, fy=cam.fy, cx=cam.cx, cy=cam.cy,
+                               dist=cam.dist, mount=mount)
+        except ValueError as e:
+            raise InputError(f"{self.bag}: camera mount from {TF_STATIC} is unusable: {e}; "
+                             "pass --base-frame or --camera camera.toml") from None
+
+    def run(self) -> ImportResult:
+        reader = open_bag(self.bag)
+        try:
+            return self._run(reader)
+        finally:
+            try:
+                reader.close()
+            except Exception:  # closing a damaged bag may fail again; the outcome is already decided
+                pass
+
+    def _run(self, reader) -> ImportResult:
+        opts = self.opts
+        rows = inventory(reader)
+        chosen, notes = choose_topics(rows, opts)
+        self.notes.extend(notes)
+        t0 = reader.start_time
+        self.start_ns = t0 + int(round(opts.start_s * NS)) if opts.start_s is not None else None
+        self.stop_ns = t0 + int(round(opts.end_s * NS)) if opts.end_s is not None else None
+        win0 = self.start_ns if self.start_ns is not None else t0
+        win1 = self.stop_ns if self.stop_ns is not None else reader.end_time
+
+        # Look-ahead: static transforms, first frame (frame id, time base), first IMU (its frame).
+        self.tree = TransformTree()
+        if any(r.topic == TF_STATIC and r.msgtype == TF_MESSAGE for r in rows):
+            conns = [c for c in reader.connections if c.topic == TF_STATIC]
+            try:
+                for c, _, raw in reader.messages(connections=conns):
+                    self.tree.add(reader.deserialize(raw, c.msgtype))
+            except _reader_errors() as e:
+                self.notes.append(f"{TF_STATIC} could not be read completely: {_why(e)}")
+        frames_known = self.tree.frames()
+        self.base_frame = opts.base_frame or next((f for f in ("base_footprint", "base_link") if f in frames_known),
+                                                  None)
+        first = self._first(reader, chosen["camera"], stamped=True)
+        if not first:
+            raise InputError(f"{self.bag}: camera topic {chosen['camera']} has no message in the window")
+        _, rec0, msg0 = first[0]
+        self.first_image_frame = str(msg0.header.frame_id)
+        base_ns = (self._stamp(msg0, rec0) // NS) * NS
+        camera = self._camera(reader, chosen)
+        r_base_imu = np.eye(3)
+        if chosen["imu"]:
+            got = self._first(reader, chosen["imu"])
+            imu_frame = str(got[0][2].header.frame_id).lstrip("/") if got else ""
+            if imu_frame and self.base_frame and imu_frame != self.base_frame:
+                found = self.tree.lookup(self.base_frame, imu_frame)
+                if found is not None:
+                    r_base_imu = found[0]
+                    self.notes.append(f"IMU rotated into '{self.base_frame}' by {TF_STATIC} ({imu_frame})")
+                else:
+                    self.notes.append(f"IMU frame '{imu_frame}' is not connected to '{self.base_frame}' in "
+                                      f"{TF_STATIC}; samples written as measured (assumes an FLU-aligned IMU)")
+            elif imu_frame and not self.base_frame:
+                self.notes.append(f"no base frame in {TF_STATIC}; IMU samples written as measured in "
+                                  f"'{imu_frame}' (assumes it is aligned with the FLU base frame, REP 103)")
+        frame = None
+        origin = opts.origin
+        origin_note = "--origin"
+        if origin is None and chosen["gnss"]:
+            for _, _, fix in self._first(reader, chosen["gnss"], limit=50):
+                if int(fix.status.status) > NAVSAT_NO_FIX and math.isfinite(fix.latitude) and \
+                        math.isfinite(fix.longitude) and abs(fix.latitude) <= 90 and abs(fix.longitude) <= 180:
+                    origin = (float(fix.latitude), float(fix.longitude),
+                              float(fix.altitude) if math.isfinite(fix.altitude) else 0.0)
+                    origin_note = "first GNSS fix"
+                    break
+        if origin is not None:
+            frame = LocalFrame(*(list(origin) + [0.0])[:3])
+        if chosen["truth"] and opts.origin is None:
+            raise InputError(f"--truth-topic {chosen['truth']}: truth poses are x/y metres in an ENU frame; "
+                             "give that frame's origin with --origin LAT,LON[,H]")
+
+        streams = {chosen[k]: k for k in ("camera", "imu", "odom", "gnss", "truth") if chosen[k]}
+        trackers = {t: StampTracker(t, opts.stamp_params) for t in streams}
+        conns = [c for c in reader.connections if c.topic in streams]
+        info = {"bag": str(self.bag), "topics": {k: v for k, v in chosen.items() if v},
+                "time_base_ns": int(base_ns), "time_source": "record" if opts.record_time else "header",
+                "every": opts.every, "window_s": [opts.start_s, opts.end_s], "state": "running"}
+        extra = {"import": info, "time_base_ns": int(base_ns)}
+        if origin is not None:
+            extra["origin_source"] = origin_note
+        writer = _BagRunWriter(self.out, camera=camera, origin=origin, name=self.out.name,
+                               source=f"bag {self.bag.name}", extra=extra)
+        counts = {"frames": 0, "imu": 0, "odometry": 0, "gnss": 0, "truth": 0}
+        index = {t: 0 for t in streams}
+        kept_frames = 0
+        gnss_skip = {"no fix": 0, "unknown covariance": 0}
+        progress = Progress(win1 - win0, "import", enabled=opts.progress)
+        stop_reason = None
+        last = ("", -1)
+        it = reader.messages(connections=conns, start=self.start_ns, stop=self.stop_ns)
+        errors = _reader_errors()
+        complete = False
+        try:
+            while True:
+                try:
+                    item = next(it)
+                except StopIteration:
+                    break
+                except errors as e:
+                    where = f"after topic {last[0]} message #{last[1]}" if last[1] >= 0 else "before the first message"
+                    stop_reason = f"{self.bag}: bag unreadable {where}: {_why(e)}"
+                    break
+                conn, rec, raw = item
+                topic = conn.topic
+                i = index[topic]
+                index[topic] = i + 1
+                last = (topic, i)
+                progress.update(rec - win0, len(raw))
+                try:
+                    msg = reader.deserialize(raw, conn.msgtype)
+                except errors as e:
+                    self._drop(topic, i, f"does not deserialize ({_why(e)})")
+                    continue
+                kind = streams[topic]
+                tr = trackers[topic]
+                stamp = self._stamp(msg, rec)
+                if not tr.check(stamp, rec, i):
+                    if tr.accepted == 0 and tr.stampless >= MAX_LEADING_STAMPLESS:
+                        stop_reason = (f"{self.bag}: topic {topic} messages #0..#{i} carry no header stamp; "
+                                       "pass --record-time to use the bag's record time instead")
+                        break
+                    continue
+                t = (stamp - base_ns) / NS
+                try:
+                    if kind == "camera":
+                        kept_frames += 1
+                        if (kept_frames - 1) % opts.every:
+                            continue
+                        if conn.msgtype == COMPRESSED:
+                            data = msg.data.tobytes() if hasattr(msg.data, "tobytes") else bytes(msg.data)
+                            ext, _, _ = check_compressed(data, camera.width, camera.height)
+                            writer.add_encoded_frame(t, data, ext)
+                        else:
+                            img = raw_image_to_bgr(msg.height, msg.width, msg.encoding, msg.step, msg.data)
+                            if img.shape[0] != camera.height or img.shape[1] != camera.width:
+                                raise BadMessage(f"image is {img.shape[1]}x{img.shape[0]}, the camera "
+                                                 f"calibration says {camera.width}x{camera.height}")
+                            writer.add_frame(t, img)
+                        counts["frames"] += 1
+                    elif kind == "imu":
+                        if float(msg.linear_acceleration_covariance[0]) == -1.0:
+                            raise BadMessage("no linear acceleration (covariance[0] = -1 marks it absent)")
+                        a = msg.linear_acceleration
+                        f = r_base_imu @ np.array([a.x, a.y, a.z], dtype=np.float64)
+                        if not np.all(np.isfinite(f)):
+                            raise BadMessage("non-finite linear acceleration")
+                        writer.add_imu(t, f[0], f[1], f[2])
+                        counts["imu"] += 1
+                    elif kind == "odom":
+                        p, q = msg.pose.pose.position, msg.pose.pose.orientation
+                        yaw = quat_to_yaw(q.x, q.y, q.z, q.w)
+                        if not all(math.isfinite(v) for v in (p.x, p.y, yaw)):
+                            raise BadMessage("non-finite odometry pose")
+                        writer.add_odometry(t, p.x, p.y, yaw)
+                        counts["odometry"] += 1
+                    elif kind == "gnss":
+                        if int(msg.status.status) <= NAVSAT_NO_FIX:
+                            gnss_skip["no fix"] += 1
+                            continue
+                        if int(msg.position_covariance_type) == COV_UNKNOWN:
+                            if opts.gnss_acc_m is None:
+                                gnss_skip["unknown covariance"] += 1
+                                continue
+                            acc = float(opts.gnss_acc_m)
+                        else:
+                            acc = horizontal_sigma_m(msg.position_covariance)
+                        if not (math.isfinite(acc) and acc > 0):
+                            raise BadMessage("position covariance gives no positive horizontal accuracy")
+                        lat, lon, h = float(msg.latitude), float(msg.longitude), float(msg.altitude)
+                        if not (math.isfinite(lat) and math.isfinite(lon) and abs(lat) <= 90 and abs(lon) <= 180):
+                            raise BadMessage(f"latitude/longitude ({lat}, {lon}) not valid")
+                        writer.add_gnss(t, lat, lon, h if math.isfinite(h) else 0.0, acc)
+                        counts["gnss"] += 1
+                    else:  # truth
+                        pose = msg.pose if conn.msgtype == POSE else msg.pose.pose
+                        p, q = pose.position, pose.orientation
+                        yaw = quat_to_yaw(q.x, q.y, q.z, q.w)
+                        lat, lon = frame.to_latlon(p.x, p.y)
+                        writer.add_truth(t, lat, lon, yaw, p.x, p.y)
+                        counts["truth"] += 1
+                except (BadMessage, AttributeError, TypeError, ValueError) as e:
+                    self._drop(topic, i, str(e))
+            complete = stop_reason is None
+        finally:
+            progress.done()
+            writer.close(complete=complete)
+            if not complete and stop_reason is None:
+                stop_reason = f"interrupted after topic {last[0]} message #{last[1]}"
+            report = self._report(trackers, counts, gnss_skip, stop_reason)
+            info.update(state="complete" if complete else "stopped", report=report)
+            if stop_reason:
+                info["stopped"] = stop_reason
+            try:
+                _update_meta(self.out, {"import": info})
+            except OSError:
+                pass
+        lines = self._lines(trackers, counts, gnss_skip, stop_reason)
+        if stop_reason:
+            raise StopImport(f"{stop_reason}; {self.out} holds what came before and is marked incomplete")
+        return ImportResult(self.out, complete, counts, report, lines)
+
+    def _report(self, trackers, counts, gnss_skip, stop_reason) -> dict:
+        return {"written": dict(counts), "topics": {t: tr.summary() for t, tr in trackers.items()},
+                "dropped": {t: {"count": self.bad_count[t], "first": self.bad.get(t, [])} for t in self.bad_count},
+                "gnss_skipped": dict(gnss_skip), "notes": list(self.notes), "stopped": stop_reason}
+
+    def _lines(self, trackers, counts, gnss_skip, stop_reason) -> list[str]:
+        out = [f"wrote {self.out}: " + ", ".join(f"{v} {k}" for k, v in counts.items())]
+        out += [f"  {tr.line()}" for tr in trackers.values()]
+        for tr in trackers.values():
+            out += [f"    {e}" for e in tr.events[:5]]
+            if len(tr.events) > 5:
+                out.append(f"    ... {len(tr.events) - 5} more in run.json")
+        for t, n in self.bad_count.items():
+            out.append(f"  {t}: {n} messages dropped")
+            out += [f"    {e}" for e in self.bad.get(t, [])[:5]]
+        for k, v in gnss_skip.items():
+            if v:
+                out.append(f"  gnss: {v} fixes skipped ({k})" +
+                           ("; pass --gnss-acc M to keep them" if k == "unknown covariance" else ""))
+        out += [f"  note: {n}" for n in self.notes]
+        if stop_reason:
+            out.append(f"  STOPPED: {stop_reason}")
+        return out
+
+
+def import_bag(bag, out, opts: ImportOptions | None = None) -> ImportResult:
+    """Convert ``bag`` into the run folder ``out`` (which must not exist or be empty).
+
+    Parameters
+    ----------
+    bag : str or Path
+        ROS 1 ``.bag`` file, ROS 2 bag folder, or a single ``.db3`` / ``.mcap`` file.
+    out : str or Path
+        Run folder to write.
+    opts : ImportOptions
+        Topic choices and options (defaults pick topics by message type).
+
+    Returns
+    -------
+    ImportResult
+        Counts, the per-topic timestamp report and the report as text lines.
+
+    Raises
+    ------
+    InputError
+        Unreadable bag, missing or ambiguous topics, unusable calibration (nothing written).
+    StopImport
+        The bag broke off part-way: the run folder holds what came before, with
+        ``"complete": false`` and the reason in run.json.
+    """
+    return _Importer(bag, out, opts or ImportOptions()).run()
