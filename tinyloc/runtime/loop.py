@@ -1,0 +1,299 @@
+"""The localizer loop: one object that owns every buffer, created once, stepped once per frame.
+
+Per frame: sensors in (odometry increment, gravity, latest satellite fix), the image
+segmented and projected into a bird's-eye grid, matched against the map (a small
+tracking window around the estimate, or the whole search window when the tracker
+asks for a global search), the grid filter updated, one :class:`PoseEstimate` out.
+Failures inside the loop are data: a bad frame, a missing sensor, a damaged map tile
+each give a pose whose ``quality`` and ``status`` say what happened; nothing raises.
+
+The same object runs live (:mod:`tinyloc.runtime.runner`) and offline (replay drives
+:meth:`Localizer.step` with the rows of a run folder).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+import math
+import time
+
+import numpy as np
+
+from ..errors import InputError
+from ..frames import relative2, wrap_angle
+from ..track.gridfilter import LikelihoodVolume, MapGeometry, Tracker
+from .config import LoopConfig
+
+
+@dataclass
+class PoseEstimate:
+    """One pose out of the loop (docs/interfaces.md, "Pose output").
+
+    Attributes
+    ----------
+    t : float
+        Sensor time of the frame (s).
+    x, y : float
+        ENU metres at the map's origin (NaN when ``quality`` is "no-fix").
+    yaw : float
+        rad, counter-clockwise from east, (-pi, pi].
+    lat, lon : float
+        WGS84 degrees.
+    cov : ndarray (3, 3)
+        Covariance over (x, y, yaw): m^2, m rad, rad^2.
+    quality : str
+        "no-fix", "searching", "tracking" or "degraded".
+    modes : list of (x, y, yaw, weight)
+        Top posterior modes (weight = share of the probability near the mode).
+    frame_ms : float
+        Processing time of this frame (ms).
+    status : str
+        What happened on this frame, in a few words ("ok" when nothing worth saying).
+    """
+
+    t: float
+    x: float
+    y: float
+    yaw: float
+    lat: float
+    lon: float
+    cov: np.ndarray
+    quality: str
+    modes: list = field(default_factory=list)
+    frame_ms: float = 0.0
+    status: str = "ok"
+
+    def as_dict(self) -> dict:
+        """Plain-JSON form (NaN becomes None)."""
+        def f(v):
+            v = float(v)
+            return v if math.isfinite(v) else None
+        return {"t": f(self.t), "x": f(self.x), "y": f(self.y), "yaw": f(self.yaw), "lat": f(self.lat),
+                "lon": f(self.lon), "cov": [[f(v) for v in row] for row in np.asarray(self.cov)],
+                "quality": self.quality, "modes": [[f(v) for v in m] for m in self.modes],
+                "frame_ms": f(self.frame_ms), "status": self.status}
+
+
+@dataclass
+class Frame:
+    """What the loop takes per frame (replay's ``ReplayFrame`` has the same fields).
+
+    ``imu`` (k, 4) rows t,fx,fy,fz; ``odometry`` (k, 4) rows t,x,y,yaw (odom frame); ``gnss`` (k, 5)
+    rows t,lat,lon,h,acc_m: the sensor rows with time in (previous frame time, this frame's time].
+    ``image`` is BGR (or gray) uint8, or None when it could not be read (``image_fault`` says why).
+    """
+
+    index: int
+    t: float
+    image: np.ndarray | None
+    image_fault: str = ""
+    imu: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
+    odometry: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
+    gnss: np.ndarray = field(default_factory=lambda: np.zeros((0, 5)))
+
+
+class SensorState:
+    """Latest odometry pose, gravity and satellite fix, with their times (fixed size)."""
+
+    def __init__(self, frame, geom_to_xy):
+        self.frame = frame  # LocalFrame of the map
+        self.to_xy = geom_to_xy
+        self.odo_prev = None  # odometry pose used at the previous frame (x, y, yaw)
+        self.odo_last = None
+        self.odo_t = -math.inf
+        self.gravity = np.full(3, np.nan)
+        self.gravity_t = -math.inf
+        self.fix = None  # (x, y, acc, t)
+        self.counters = {"imu_bad_rows": 0, "odometry_bad_rows": 0, "gnss_bad_rows": 0}
+
+    def take(self, fr, p) -> tuple:
+        """Digest one frame's sensor rows; returns (odometry increment or None, gravity or None, fix or None)."""
+        t = float(fr.t)
+        odo = np.asarray(fr.odometry, dtype=np.float64).reshape(-1, 4) if fr.odometry is not None else None
+        if odo is not None and len(odo):
+            good = np.isfinite(odo).all(axis=1)
+            self.counters["odometry_bad_rows"] += int((~good).sum())
+            if good.any():
+                r = odo[np.flatnonzero(good)[-1]]
+                self.odo_last = (float(r[1]), float(r[2]), float(r[3]))
+                self.odo_t = float(r[0])
+        inc = None
+        if self.odo_last is not None and t - self.odo_t <= p.odometry_timeout_s:
+            if self.odo_prev is None:
+                inc = (0.0, 0.0, 0.0)
+            else:
+                inc = relative2(self.odo_prev, self.odo_last)
+            self.odo_prev = self.odo_last
+        elif self.odo_last is not None:
+            # stale odometry: the motion since the previous frame is unknown
+            self.odo_prev = None
+        imu = np.asarray(fr.imu, dtype=np.float64).reshape(-1, 4) if fr.imu is not None else None
+        if imu is not None and len(imu):
+            good = np.isfinite(imu).all(axis=1) & (np.abs(imu[:, 1:]).max(axis=1) < 1e3)
+            self.counters["imu_bad_rows"] += int((~good).sum())
+            if good.any():
+                self.gravity[:] = imu[good, 1:4].mean(axis=0)
+                self.gravity_t = float(imu[good, 0][-1])
+        grav = self.gravity if (t - self.gravity_t) <= p.imu_timeout_s else None
+        gn = np.asarray(fr.gnss, dtype=np.float64).reshape(-1, 5) if fr.gnss is not None else None
+        if gn is not None and len(gn) and self.frame is not None:
+            good = np.isfinite(gn[:, :3]).all(axis=1) & (np.abs(gn[:, 1]) <= 90) & (np.abs(gn[:, 2]) <= 180)
+            self.counters["gnss_bad_rows"] += int((~good).sum())
+            if good.any():
+                r = gn[np.flatnonzero(good)[-1]]
+                x, y = self.frame.to_enu_xy(float(r[1]), float(r[2]))
+                self.fix = (float(x), float(y), float(r[4]), float(r[0]))
+        return inc, grav, self.fix
+
+
+class Localizer:
+    """The loop object: perception, matcher and tracker, with every buffer allocated at creation.
+
+    Parameters
+    ----------
+    packed_map : PackedMap
+        The site map (``tinyloc.maps.packfile.PackedMap``), already open.
+    camera : CameraModel
+        Calibration and mount of the camera.
+    config : LoopConfig
+        Settings (defaults: :class:`LoopConfig`).
+    perceiver, matcher : objects, optional
+        Replace the default segment+project stage or the map matcher (for tests and for users who
+        bring their own segmenter). A perceiver has ``perceive(image, gravity) -> BevGrid``; a
+        matcher has ``global_search(bev, x, y) -> LikelihoodVolume`` and
+        ``track(bev, x, y, yaw) -> LikelihoodVolume`` (see :mod:`tinyloc.runtime.match`).
+    """
+
+    def __init__(self, packed_map, camera, config: LoopConfig | None = None, *, perceiver=None, matcher=None):
+        self.cfg = config or LoopConfig()
+        self.map = packed_map
+        self.camera = camera
+        m = packed_map.meta
+        self.geom = MapGeometry(float(m.x_min), float(m.y_max), float(m.res_m))
+        self.frame_enu = packed_map.frame
+        from .match import default_matcher, default_perceiver
+
+        self.perceiver = perceiver if perceiver is not None else default_perceiver(camera, self.cfg, self.geom)
+        self.matcher = matcher if matcher is not None else default_matcher(packed_map, self.cfg, self.geom)
+        self.tracker = Tracker(self.geom, self.cfg.track)
+        self.sensors = SensorState(self.frame_enu, None)
+        self.frames = 0
+        self.health_counters = {"frames": 0, "unusable_frames": 0, "global_searches": 0, "overruns": 0,
+                                "map_damaged_tiles": 0}
+        self.last_pose: PoseEstimate | None = None
+        if self.cfg.loop.warmup:
+            self.warmup()
+
+    @classmethod
+    def from_files(cls, map_path, camera, config: LoopConfig | None = None, **kw) -> "Localizer":
+        """Open the packed map (path) and the camera (path to camera.toml, or a CameraModel)."""
+        from ..camera.model import CameraModel, load_camera
+        from ..maps.packfile import PackedMap
+
+        cam = camera if isinstance(camera, CameraModel) else load_camera(camera)
+        pm = PackedMap.open(map_path)
+        return cls(pm, cam, config, **kw)
+
+    # ---- start-up -----------------------------------------------------------------------------
+    def warmup(self) -> None:
+        """Run every stage once on dummy data so kernels are compiled/loaded before the first frame."""
+        for obj in (self.perceiver, self.matcher):
+            w = getattr(obj, "warmup", None)
+            if w is not None:
+                w()
+        tr = Tracker(self.geom, self.cfg.track)
+        x, y = self.geom.xy_of(self.map.meta.rows / 2.0, self.map.meta.cols / 2.0)
+        A, n = self.cfg.track.headings, self.cfg.track.window_cells
+        vol = LikelihoodVolume(np.zeros((8, n, n), np.float32), 0, 0, 0.0, 2 * math.pi / A)
+        tr.step(0.0, None, None, gnss=(x, y, 3.0, 0.0))
+        r0, c0 = tr.filter.row0, tr.filter.col0
+        vol.row0, vol.col0 = r0, c0
+        tr.step(0.1, (0.1, 0.0, 0.01), vol, is_global=True, gnss=(x, y, 3.0, 0.1))
+        tr.step(0.2, (0.1, 0.0, 0.01), vol, gnss=None)
+
+    # ---- one frame ----------------------------------------------------------------------------
+    def step(self, frame) -> PoseEstimate:
+        """Process one frame (any object with the :class:`Frame` fields); never raises on bad data."""
+        t0 = time.perf_counter()
+        p = self.cfg
+        self.frames += 1
+        hc = self.health_counters
+        hc["frames"] += 1
+        t = float(frame.t)
+        inc, grav, fix = self.sensors.take(frame, p.loop)
+        notes = []
+        vol = None
+        is_global = False
+        img = frame.image
+        if img is None:
+            notes.append(frame.image_fault or "no image")
+        else:
+            try:
+                bev = self.perceiver.perceive(img, grav)
+            except Exception as e:  # a stage bug must not stop the robot: report it in the status
+                bev = None
+                notes.append(f"perception failed: {type(e).__name__}: {e}"[:120])
+            if bev is not None:
+                st = getattr(bev, "status", "ok")
+                nvis = int(np.count_nonzero(np.asarray(bev.visible) > 0.5))
+                if st != "ok":
+                    notes.append(st)
+                elif nvis < p.match.min_visible_cells:
+                    notes.append(f"too little ground seen ({nvis} cells)")
+                else:
+                    vol, is_global, why = self._match(bev)
+                    if why:
+                        notes.append(why)
+        if vol is None:
+            hc["unusable_frames"] += 1
+        if is_global:
+            hc["global_searches"] += 1
+        out = self.tracker.step(t, inc, vol, is_global=is_global, gnss=fix,
+                                frame_status="; ".join(notes) if notes else "ok")
+        ms = (time.perf_counter() - t0) * 1e3
+        status = out.status
+        if notes and vol is not None:
+            status = "; ".join(notes + ([status] if status != "ok" else []))
+        if ms > p.loop.watchdog_ms:
+            hc["overruns"] += 1
+            status = f"{status}; slow frame {ms:.0f} ms" if status != "ok" else f"slow frame {ms:.0f} ms"
+        if math.isfinite(out.x):
+            lat, lon = self.frame_enu.to_latlon(out.x, out.y)
+        else:
+            lat = lon = math.nan
+        pose = PoseEstimate(t, out.x, out.y, out.yaw, lat, lon, out.cov, out.quality, out.modes, ms, status)
+        self.last_pose = pose
+        return pose
+
+    def _match(self, bev):
+        """Correlate the bird's-eye grid: globally when the tracker asks, else around the estimate."""
+        tr = self.tracker
+        try:
+            if tr.wants_global():
+                c = tr.search_centre()
+                if c is None:
+                    c = self.geom.xy_of(self.map.meta.rows / 2.0, self.map.meta.cols / 2.0)
+                vol = self.matcher.global_search(bev, c[0], c[1])
+                return vol, True, ""
+            x, y, yaw = tr.track_centre()
+            return self.matcher.track(bev, x, y, yaw), False, ""
+        except Exception as e:  # see above: failure is data inside the loop
+            return None, False, f"matching failed: {type(e).__name__}: {e}"[:120]
+
+    # ---- health -------------------------------------------------------------------------------
+    def health(self) -> dict:
+        """Counters of the loop, the tracker and the sensors (plain ints), and the current quality."""
+        h = dict(self.health_counters)
+        h.update({f"track_{k}": v for k, v in self.tracker.counters.items()})
+        h.update(self.sensors.counters)
+        h["quality"] = self.tracker.state
+        dt = getattr(self.map, "tiles_damaged", None)
+        if dt is not None:
+            h["map_damaged_tiles"] = int(dt() if callable(dt) else dt)
+        return h
+
+    def close(self) -> None:
+        """Release the map file."""
+        c = getattr(self.map, "close", None)
+        if c is not None:
+            c()
