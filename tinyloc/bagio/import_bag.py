@@ -364,6 +364,9 @@ class _Importer:
             raise
         except _reader_errors() as e:
             raise StopImport(f"{self.bag}: reading topic {topic} failed after message #{idx}: {_why(e)}") from None
+        if stamped and not out and idx > 0:
+            raise StopImport(f"{self.bag}: topic {topic} messages #0..#{idx - 1} carry no header stamp; "
+                             "pass --record-time to use the bag's record time instead")
         return out
 
     def _stamp(self, msg, rec: int) -> int:
