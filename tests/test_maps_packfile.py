@@ -1,0 +1,387 @@
+"""The packed map format: round trip, window reads, cache bound, and a hostile-input decoder.
+
+References: the CRC-32/ISO-HDLC catalogue check value (CRC of ASCII "123456789" is
+0xCBF43926, CRC RevEng catalogue; from memory) and the independent `crcmod`
+implementation (predefined "crc-32"); zlib (RFC 1950) for the stream format.
+"""
+
+import logging
+import struct
+import tracemalloc
+import zlib
+
+import crcmod.predefined
+import numpy as np
+import pytest
+
+from tinyloc.errors import InputError, MapFormatError
+from tinyloc.maps import packfile
+from tinyloc.maps.packfile import MapMeta, PackedMap, write_packed
+
+NAMES = ("building", "road", "sidewalk", "grass", "tree", "pole", "fence", "parking", "water")
+
+
+def meta(rows=150, cols=210, tile=32, names=NAMES):
+    return MapMeta(44.4321, -101.2345, 312.5, 0.5, -40.0, 60.0, rows, cols, tile, tuple(names),
+                   tuple(range(len(names))))
+
+
+def sample_coverage(rng, m):
+    cov = np.zeros((m.n_channels, m.rows, m.cols), dtype=np.float32)
+    for c in range(m.n_channels):
+        for _ in range(6):
+            r0, c0 = rng.integers(0, m.rows), rng.integers(0, m.cols)
+            cov[c, r0:r0 + rng.integers(3, 40), c0:c0 + rng.integers(3, 40)] = rng.random()
+    cov[:, 96:128, 160:192] = 0.0  # at least one empty tile
+    cov[:, :, :] *= rng.random(cov.shape) > 0.05
+    return cov
+
+
+@pytest.fixture
+def packed(tmp_path):
+    rng = np.random.default_rng(2024)
+    m = meta()
+    cov = sample_coverage(rng, m)
+    p = tmp_path / "site.tlm"
+    write_packed(p, m, cov)
+    # What the reader must return: the 8-bit code times 1/255 in float32.
+    return p, m, np.rint(np.clip(cov, 0, 1) * 255).astype(np.uint8) * np.float32(1.0 / 255.0)
+
+
+def test_crc32_is_iso_hdlc():
+    assert zlib.crc32(b"123456789") == 0xCBF43926  # catalogue check value
+    ref = crcmod.predefined.mkCrcFun("crc-32")
+    rng = np.random.default_rng(5)
+    for n in (0, 1, 7, 4096):
+        data = rng.integers(0, 256, n, dtype=np.uint8).tobytes()
+        assert zlib.crc32(data) == ref(data)
+
+
+def test_stored_tile_checksums_agree_with_crcmod(packed):
+    p, m, _ = packed
+    ref = crcmod.predefined.mkCrcFun("crc-32")
+    raw = p.read_bytes()
+    with PackedMap.open(p) as pm:
+        for off, length, crc in pm._index:
+            if length:
+                assert ref(raw[off:off + length]) == crc
+    (hsize,) = struct.unpack_from("<I", raw, 12)
+    assert ref(raw[:hsize - 4]) == struct.unpack_from("<I", raw, hsize - 4)[0]
+
+
+def test_round_trip_and_metadata(packed):
+    p, m, want = packed
+    with PackedMap.open(p) as pm:
+        assert pm.meta == m
+        assert pm.frame.lat0_deg == m.lat0_deg and pm.frame.h0_m == m.h0_m
+        known = np.zeros((m.rows, m.cols), dtype=np.uint8)
+        got = pm.read_all(known_out=known)
+        assert np.max(np.abs(got - want)) < 1e-7
+        assert known.all()
+        assert pm.empty_tiles > 0
+
+
+def test_random_windows_partly_or_wholly_outside(packed):
+    p, m, want = packed
+    rng = np.random.default_rng(9)
+    pad = 300
+    ref = np.zeros((m.n_channels, m.rows + 2 * pad, m.cols + 2 * pad), dtype=np.float32)
+    ref[:, pad:pad + m.rows, pad:pad + m.cols] = want
+    kref = np.zeros(ref.shape[1:], dtype=np.uint8)
+    kref[pad:pad + m.rows, pad:pad + m.cols] = 1
+    with PackedMap.open(p, cache_bytes=40_000) as pm:
+        for _ in range(60):
+            h, w = rng.integers(1, 90, 2)
+            r0, c0 = rng.integers(-pad + 1, m.rows + pad - 100), rng.integers(-pad + 1, m.cols + pad - 100)
+            out = np.full((m.n_channels, h, w), 7.0, dtype=np.float32)
+            known = np.full((h, w), 9, dtype=np.uint8)
+            assert pm.read_window(r0, c0, out, known_out=known) == 0
+            assert np.array_equal(out, ref[:, r0 + pad:r0 + pad + h, c0 + pad:c0 + pad + w])
+            assert np.array_equal(known, kref[r0 + pad:r0 + pad + h, c0 + pad:c0 + pad + w])
+            assert pm.cache_used_bytes <= 40_000
+
+
+def test_cell_of_follows_the_raster_convention(packed):
+    p, m, _ = packed
+    with PackedMap.open(p) as pm:
+        # Cell (i, j) centre: x = x_min + (j + 0.5) res, y = y_max - (i + 0.5) res.
+        i, j = 17, 23
+        x, y = m.x_min + (j + 0.5) * m.res_m, m.y_max - (i + 0.5) * m.res_m
+        assert pm.cell_of(x, y) == pytest.approx((i + 0.5, j + 0.5))
+        assert pm.xy_of(i + 0.5, j + 0.5) == pytest.approx((x, y))
+
+
+def test_cache_disabled_still_reads(packed):
+    p, m, want = packed
+    with PackedMap.open(p, cache_bytes=0) as pm:
+        out = np.zeros((m.n_channels, 40, 50), dtype=np.float32)
+        pm.read_window(10, 20, out)
+        assert np.array_equal(out, want[:, 10:50, 20:70])
+        assert pm.cache_used_bytes == 0
+
+
+def test_bad_buffers_are_rejected(packed):
+    p, m, _ = packed
+    with PackedMap.open(p) as pm:
+        with pytest.raises(InputError, match="out must be float32"):
+            pm.read_window(0, 0, np.zeros((m.n_channels, 4, 4), dtype=np.float64))
+        with pytest.raises(InputError, match="out must be float32"):
+            pm.read_window(0, 0, np.zeros((3, 4, 4), dtype=np.float32))
+        with pytest.raises(InputError, match="known_out must be uint8"):
+            pm.read_window(0, 0, np.zeros((m.n_channels, 4, 4), dtype=np.float32),
+                           known_out=np.zeros((4, 5), dtype=np.uint8))
+
+
+# ---------------------------------------------------------------- hostile input
+
+def header_end(raw):
+    (hsize,) = struct.unpack_from("<I", raw, 12)
+    (ntiles,) = struct.unpack_from("<I", raw, 76)
+    return hsize, hsize + ntiles * 16 + 4
+
+
+def test_truncated_at_every_byte_of_header_and_index(packed, tmp_path):
+    p, m, _ = packed
+    raw = p.read_bytes()
+    _, index_end = header_end(raw)
+    q = tmp_path / "cut.tlm"
+    for n in range(index_end + 1):
+        q.write_bytes(raw[:n])
+        with pytest.raises(MapFormatError) as e:
+            PackedMap.open(q)
+        msg = str(e.value)
+        assert msg.startswith(f"{q}: truncated"), msg
+        assert "\n" not in msg
+
+
+def test_truncated_at_random_points_in_tile_data(packed, tmp_path):
+    p, m, _ = packed
+    raw = p.read_bytes()
+    _, index_end = header_end(raw)
+    rng = np.random.default_rng(77)
+    q = tmp_path / "cut.tlm"
+    for n in rng.integers(index_end + 1, len(raw), 40):
+        q.write_bytes(raw[:n])
+        with pytest.raises(MapFormatError, match=r"truncated: tile data needs \d+ bytes, file has \d+"):
+            PackedMap.open(q)
+
+
+def test_wrong_magic(packed, tmp_path):
+    p, _, _ = packed
+    raw = bytearray(p.read_bytes())
+    raw[0:5] = b"GIF89"
+    q = tmp_path / "x.tlm"
+    q.write_bytes(bytes(raw))
+    with pytest.raises(MapFormatError, match=r"x.tlm: not a tinyloc packed map \(wrong magic bytes\)$"):
+        PackedMap.open(q)
+    q.write_text('{"type": "FeatureCollection"}')
+    with pytest.raises(MapFormatError, match="wrong magic bytes"):
+        PackedMap.open(q)
+
+
+def patch_header(raw, fmt, offset, value, fix_crc=True):
+    b = bytearray(raw)
+    struct.pack_into(fmt, b, offset, value)
+    if fix_crc:
+        (hsize,) = struct.unpack_from("<I", b, 12)
+        if 84 <= hsize <= len(b):
+            struct.pack_into("<I", b, hsize - 4, zlib.crc32(bytes(b[:hsize - 4])))
+    return bytes(b)
+
+
+def test_newer_version(packed, tmp_path):
+    p, _, _ = packed
+    q = tmp_path / "v2.tlm"
+    q.write_bytes(patch_header(p.read_bytes(), "<H", 8, 2))
+    with pytest.raises(MapFormatError,
+                       match=r"v2.tlm: format version 2 is newer than this tinyloc reads \(1\); update tinyloc$"):
+        PackedMap.open(q)
+
+
+ABSURD = [
+    ("<I", 12, 0xFFFFFFF0, r"header declares its size as 4294967280 bytes \(limit 84\.\.65536\)"),
+    ("<I", 64, 1 << 31, r"header declares 2147483648 x 210 cells \(limit 1\.\.262144 per side\)"),
+    ("<I", 68, 0, r"header declares 150 x 0 cells"),
+    ("<H", 72, 1, r"header declares tile size 1 \(limit 8\.\.1024\)"),
+    ("<H", 74, 60000, r"header declares 60000 channels \(limit 1\.\.64\)"),
+    ("<I", 76, 123456, r"header declares 123456 tiles, the extent needs 35"),
+    ("<d", 40, float("nan"), r"header resolution nan m is not in \(0, 1000\]"),
+    ("<d", 16, 95.0, r"header origin latitude/longitude out of range"),
+]
+
+
+@pytest.mark.parametrize("fmt,offset,value,msg", ABSURD)
+def test_absurd_declared_sizes(packed, tmp_path, fmt, offset, value, msg):
+    p, _, _ = packed
+    raw = p.read_bytes()
+    q = tmp_path / "absurd.tlm"
+    q.write_bytes(patch_header(raw, fmt, offset, value))
+    tracemalloc.start()
+    try:
+        with pytest.raises(MapFormatError, match=msg):
+            PackedMap.open(q)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 4 * len(raw) + (1 << 20)  # never more than the file justifies
+
+
+def patch_index(raw, tile_k, off=None, length=None):
+    b = bytearray(raw)
+    hsize, index_end = header_end(raw)
+    o = hsize + 16 * tile_k
+    old_off, old_len, crc = struct.unpack_from("<QII", b, o)
+    struct.pack_into("<QII", b, o, old_off if off is None else off, old_len if length is None else length, crc)
+    struct.pack_into("<I", b, index_end - 4, zlib.crc32(bytes(b[hsize:index_end - 4])))
+    return bytes(b)
+
+
+def first_stored_tile(p):
+    with PackedMap.open(p) as pm:
+        return int(np.flatnonzero(pm._index[:, 1] > 0)[0]), pm._index.copy()
+
+
+def test_absurd_tile_index_entries(packed, tmp_path):
+    p, _, _ = packed
+    raw = p.read_bytes()
+    k, _ = first_stored_tile(p)
+    q = tmp_path / "idx.tlm"
+    q.write_bytes(patch_index(raw, k, length=0xFFFFFFFF))
+    with pytest.raises(MapFormatError, match=r"tile index declares a tile larger than any valid tile"):
+        PackedMap.open(q)
+    q.write_bytes(patch_index(raw, k, off=1 << 60))
+    with pytest.raises(MapFormatError, match=r"truncated: tile data needs"):
+        PackedMap.open(q)
+    q.write_bytes(patch_index(raw, k, off=10))
+    with pytest.raises(MapFormatError, match=r"tile index points into the header"):
+        PackedMap.open(q)
+
+
+def test_header_and_index_damage_is_detected(packed, tmp_path):
+    p, _, _ = packed
+    raw = bytearray(p.read_bytes())
+    hsize, index_end = header_end(raw)
+    q = tmp_path / "d.tlm"
+    b = bytearray(raw)
+    b[44] ^= 0x10  # inside res_m, CRC left stale
+    q.write_bytes(bytes(b))
+    with pytest.raises(MapFormatError, match=r"header checksum mismatch \(the file is damaged\)$"):
+        PackedMap.open(q)
+    b = bytearray(raw)
+    b[hsize + 3] ^= 0x01
+    q.write_bytes(bytes(b))
+    with pytest.raises(MapFormatError, match=r"tile index checksum mismatch \(the file is damaged\)$"):
+        PackedMap.open(q)
+
+
+def test_byte_flips_in_tiles_read_as_unknown_with_one_warning(packed, tmp_path, caplog):
+    p, m, want = packed
+    raw = bytearray(p.read_bytes())
+    _, index = first_stored_tile(p)
+    stored = np.flatnonzero(index[:, 1] > 0)
+    rng = np.random.default_rng(31)
+    hit = sorted(rng.choice(stored, 3, replace=False))
+    for k in hit:
+        off, length, _ = index[k]
+        raw[off + int(rng.integers(0, length))] ^= 1 << int(rng.integers(0, 8))
+    q = tmp_path / "flip.tlm"
+    q.write_bytes(bytes(raw))
+    t = m.tile
+    with caplog.at_level(logging.WARNING, logger="tinyloc.maps"):
+        with PackedMap.open(q) as pm:
+            known = np.zeros((m.rows, m.cols), dtype=np.uint8)
+            out = np.zeros((m.n_channels, m.rows, m.cols), dtype=np.float32)
+            assert pm.read_window(0, 0, out, known_out=known) == 3
+            assert pm.read_window(0, 0, out, known_out=known) == 3
+            assert pm.tiles_damaged == 3
+    warnings = [r for r in caplog.records if "damaged tile" in r.getMessage()]
+    assert len(warnings) == 3  # once per tile, not once per read
+    assert all("CRC-32 mismatch" in r.getMessage() for r in warnings)
+    bad = np.zeros((m.rows, m.cols), dtype=bool)
+    for k in hit:
+        tr, tc = divmod(int(k), m.tile_cols)
+        bad[tr * t:(tr + 1) * t, tc * t:(tc + 1) * t] = True
+    assert np.all(known[bad] == 0) and np.all(out[:, bad] == 0)
+    assert np.all(known[~bad] == 1)
+    assert np.array_equal(out[:, ~bad], want[:, ~bad])
+
+
+def test_stream_that_inflates_past_the_tile_size_is_damaged(packed, tmp_path, caplog):
+    p, m, _ = packed
+    raw = p.read_bytes()
+    k, index = first_stored_tile(p)
+    bomb = zlib.compress(bytes(m.n_channels * m.tile * m.tile * 50), 9)  # 50x the tile, all zeros
+    b = bytearray(patch_index(raw, k, off=len(raw), length=len(bomb))) + bomb
+    hsize, index_end = header_end(raw)
+    struct.pack_into("<QII", b, hsize + 16 * k, len(raw), len(bomb), zlib.crc32(bomb))
+    struct.pack_into("<I", b, index_end - 4, zlib.crc32(bytes(b[hsize:index_end - 4])))
+    q = tmp_path / "bomb.tlm"
+    q.write_bytes(bytes(b))
+    tr, tc = divmod(k, m.tile_cols)
+    with caplog.at_level(logging.WARNING, logger="tinyloc.maps"), PackedMap.open(q) as pm:
+        out = np.zeros((m.n_channels, m.tile, m.tile), dtype=np.float32)
+        known = np.ones((m.tile, m.tile), dtype=np.uint8)
+        assert pm.read_window(tr * m.tile, tc * m.tile, out, known_out=known) == 1
+        assert not known.any()
+    assert any("does not inflate to the declared tile size" in r.getMessage() for r in caplog.records)
+
+
+def test_random_damage_anywhere_never_crashes(packed, tmp_path):
+    p, m, _ = packed
+    raw = p.read_bytes()
+    rng = np.random.default_rng(4242)
+    q = tmp_path / "fuzz.tlm"
+    out = np.zeros((m.n_channels, m.rows, m.cols), dtype=np.float32)
+    opened = 0
+    for _ in range(150):
+        b = bytearray(raw)
+        for _ in range(int(rng.integers(1, 6))):
+            b[int(rng.integers(0, len(b)))] = int(rng.integers(0, 256))
+        q.write_bytes(bytes(b))
+        try:
+            pm = PackedMap.open(q)
+        except MapFormatError:
+            continue
+        with pm:
+            opened += 1
+            pm.read_window(-5, -5, out)
+    assert opened > 50  # most flips land in tile data, which must stay readable
+
+
+@pytest.mark.parametrize("tile,ok", [(packfile.MIN_TILE, True), (packfile.MIN_TILE - 1, False),
+                                     (packfile.MAX_TILE, True), (packfile.MAX_TILE + 1, False)])
+def test_tile_size_limits(tmp_path, tile, ok):
+    m = meta(rows=20, cols=20, tile=tile, names=("grass",))
+    cov = np.zeros((1, 20, 20), dtype=np.float32)
+    cov[0, 3:9, 4:12] = 0.5
+    q = tmp_path / "t.tlm"
+    if ok:
+        write_packed(q, m, cov)
+        with PackedMap.open(q) as pm:
+            assert pm.read_all()[0, 5, 5] == pytest.approx(128 / 255)
+    else:
+        with pytest.raises(MapFormatError, match=r"tile size"):
+            write_packed(q, m, cov)
+        assert not q.exists()
+
+
+@pytest.mark.parametrize("n,ok", [(packfile.MAX_CHANNELS, True), (packfile.MAX_CHANNELS + 1, False)])
+def test_channel_count_limits(tmp_path, n, ok):
+    names = tuple(f"c{i}" for i in range(n))
+    m = meta(rows=8, cols=8, tile=8, names=names)
+    cov = np.zeros((n, 8, 8), dtype=np.float32)
+    q = tmp_path / "c.tlm"
+    if ok:
+        write_packed(q, m, cov)
+        with PackedMap.open(q) as pm:
+            assert pm.meta.class_names == names
+    else:
+        with pytest.raises(MapFormatError, match=rf"header declares {n} channels \(limit 1\.\.64\)"):
+            write_packed(q, m, cov)
+
+
+def test_missing_file_and_directory(tmp_path):
+    with pytest.raises(MapFormatError, match="nope.tlm: no such file"):
+        PackedMap.open(tmp_path / "nope.tlm")
+    with pytest.raises(MapFormatError, match="is a directory"):
+        PackedMap.open(tmp_path)
