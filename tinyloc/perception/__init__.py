@@ -1,0 +1,1 @@
+"""Perception: classical segmentation of camera frames and their projection to bird's-eye evidence."""

@@ -1,0 +1,449 @@
+"""Numba kernels of the perception stage: features, scores, flood fill, projection, scatter.
+
+Kernels take prepared contiguous arrays and write into caller-owned buffers; they do
+not validate, allocate or log (the wrappers in segment.py and overhead.py do that).
+Their plain-NumPy references live in the tests (tests/_perception_reference.py).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+from .._numba import JIT
+
+# Feature planes written by seg_features (indices into feat[NF, h, w]).
+F_V, F_S, F_EXGR, F_BSTAR, F_GRAY, F_GX, F_GY, F_U, F_BRIGHT, F_G2 = range(10)
+NF = 10
+
+# Parameter vector layout for seg_scores (filled by segment.SegmentParams.vector()).
+(P_SKY_TEX, P_SKY_V, P_SKY_S, P_SKY_BLUE, P_SKY_V2, P_SKY_BELOW, P_GREEN0, P_GREEN_W, P_G_U0, P_G_W,
+ P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
+ P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD) = range(27)
+NP = 27
+
+# Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
+BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
+
+
+# Logistic function tabulated on [-SIG_SPAN, SIG_SPAN] (linear interpolation, error < 2e-6): the
+# scores call it six times per pixel and the table is ~5x faster than math.exp.
+SIG_SPAN = 16.0
+SIG_STEPS = 64.0  # table entries per unit
+SIG_LUT = 1.0 / (1.0 + np.exp(-np.linspace(-SIG_SPAN, SIG_SPAN, int(2 * SIG_SPAN * SIG_STEPS) + 1)))
+
+
+@njit(**JIT)
+def _sig(x):
+    if x <= -SIG_SPAN:
+        return 0.0
+    if x >= SIG_SPAN:
+        return 1.0
+    f = (x + SIG_SPAN) * SIG_STEPS
+    i = int(f)
+    t = f - i
+    return SIG_LUT[i] + t * (SIG_LUT[i + 1] - SIG_LUT[i])
+
+
+@njit(**JIT)
+def sig_exact(x):
+    """The logistic function 1 / (1 + exp(-x)) (reference for the table)."""
+    return 1.0 / (1.0 + math.exp(-x))
+
+
+@njit(**JIT)
+def seg_features(bgr, lab, hrow, feat):
+    """Per-pixel colour features and central-difference gradients of a small BGR image.
+
+    bgr, lab : (h, w, 3) uint8; hrow : (w,) float64 horizon row per column (pixel centres at integers);
+    feat : (NF, h, w) float32 output (planes F_*; F_BRIGHT and F_G2 are filled by seg_scores' caller).
+    """
+    h, w = bgr.shape[0], bgr.shape[1]
+    for i in range(h):
+        for j in range(w):
+            b = float(bgr[i, j, 0])
+            g = float(bgr[i, j, 1])
+            r = float(bgr[i, j, 2])
+            tot = r + g + b
+            mx = max(r, max(g, b))
+            mn = min(r, min(g, b))
+            feat[F_V, i, j] = mx / 255.0
+            feat[F_S, i, j] = (mx - mn) / mx if mx > 0.0 else 0.0
+            if tot > 0.0:
+                rc, gc, bc = r / tot, g / tot, b / tot
+            else:
+                rc, gc, bc = 0.0, 0.0, 0.0
+            exg = 2.0 * gc - rc - bc  # Woebbecke et al. 1995
+            exr = 1.4 * rc - gc  # Meyer and Neto 2008
+            feat[F_EXGR, i, j] = exg - exr
+            feat[F_BSTAR, i, j] = float(lab[i, j, 2]) - 128.0
+            gray = tot / 765.0
+            feat[F_GRAY, i, j] = gray
+            feat[F_G2, i, j] = gray * gray
+            feat[F_U, i, j] = (hrow[j] - i) / h
+    for i in range(h):
+        for j in range(w):
+            if 0 < j < w - 1:
+                feat[F_GX, i, j] = abs(feat[F_GRAY, i, j + 1] - feat[F_GRAY, i, j - 1]) * 0.5
+            else:
+                feat[F_GX, i, j] = 0.0
+            if 0 < i < h - 1:
+                feat[F_GY, i, j] = abs(feat[F_GRAY, i + 1, j] - feat[F_GRAY, i - 1, j]) * 0.5
+            else:
+                feat[F_GY, i, j] = 0.0
+
+
+@njit(**JIT)
+def box_mean(src, r, tmp, dst):
+    """Mean over a (2r+1)^2 window with edge pixels repeated (BORDER_REPLICATE); src, tmp, dst (h, w) float32."""
+    h, w = src.shape
+    k = 2 * r + 1
+    for i in range(h):
+        s = 0.0
+        for d in range(-r, r + 1):
+            s += src[i, min(max(d, 0), w - 1)]
+        tmp[i, 0] = s
+        for j in range(1, w):
+            s += src[i, min(j + r, w - 1)] - src[i, max(j - r - 1, 0)]
+            tmp[i, j] = s
+    for j in range(w):
+        s = 0.0
+        for d in range(-r, r + 1):
+            s += tmp[min(max(d, 0), h - 1), j]
+        dst[0, j] = s / (k * k)
+        for i in range(1, h):
+            s += tmp[min(i + r, h - 1), j] - tmp[max(i - r - 1, 0), j]
+            dst[i, j] = s / (k * k)
+
+
+@njit(**JIT)
+def flood_from_top(mask, out, queue):
+    """4-connected flood fill of ``mask`` (uint8) seeded at every mask pixel of row 0; out uint8 0/1.
+
+    queue : (h*w,) int32 scratch. Returns the number of pixels filled.
+    """
+    h, w = mask.shape
+    for i in range(h):
+        for j in range(w):
+            out[i, j] = 0
+    head = 0
+    tail = 0
+    for j in range(w):
+        if mask[0, j]:
+            out[0, j] = 1
+            queue[tail] = j
+            tail += 1
+    while head < tail:
+        p = queue[head]
+        head += 1
+        i = p // w
+        j = p - i * w
+        for di, dj in ((1, 0), (-1, 0), (0, 1), (0, -1)):
+            ni = i + di
+            nj = j + dj
+            if 0 <= ni < h and 0 <= nj < w and mask[ni, nj] and not out[ni, nj]:
+                out[ni, nj] = 1
+                queue[tail] = ni * w + nj
+                tail += 1
+    return tail
+
+
+@njit(**JIT)
+def patch_median_lab(lab, r0, r1, c0, c1, hist, ref):
+    """Lower median of each Lab channel over rows [r0, r1) x cols [c0, c1); hist (3, 256) int64 scratch."""
+    for c in range(3):
+        for v in range(256):
+            hist[c, v] = 0
+    n = 0
+    for i in range(r0, r1):
+        for j in range(c0, c1):
+            n += 1
+            for c in range(3):
+                hist[c, lab[i, j, c]] += 1
+    half = (n + 1) // 2
+    for c in range(3):
+        acc = 0
+        for v in range(256):
+            acc += hist[c, v]
+            if acc >= half:
+                ref[c] = v
+                break
+
+
+@njit(**JIT)
+def sky_candidates(feat, tex, prm, bright, cand):
+    """Bright-or-blue pixels (bright) and, of those, smooth ones near or above the horizon (cand); uint8 0/1."""
+    h, w = tex.shape
+    for i in range(h):
+        for j in range(w):
+            v = feat[F_V, i, j]
+            b = (v > prm[P_SKY_V] and feat[F_S, i, j] < prm[P_SKY_S]) or \
+                (feat[F_BSTAR, i, j] < -prm[P_SKY_BLUE] and v > prm[P_SKY_V2])
+            bright[i, j] = 1 if b else 0
+            cand[i, j] = 1 if (b and tex[i, j] < prm[P_SKY_TEX] and feat[F_U, i, j] > -prm[P_SKY_BELOW]) else 0
+
+
+@njit(**JIT)
+def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, labels):
+    """Per-class scores, normalised to probabilities (sum 1 per pixel), and the arg-max label.
+
+    feat (NF, h, w) f32; lab (h, w, 3) u8; tex, brightmix, gmean, g2mean (h, w) f32; sky (h, w) u8;
+    ref (3,) Lab of the surface under the robot; prm (NP,) f64; scores (C, h, w) f32; labels (h, w) u8.
+    Only the scored classes' planes (building, road, sidewalk, grass, tree, sky) are written; the
+    caller keeps the other planes at zero. Ties go to the lower class index.
+    """
+    nc, h, w = scores.shape
+    on_road = prm[P_ON_ROAD] > 0.5
+    for i in range(h):
+        for j in range(w):
+            u = feat[F_U, i, j]
+            t = tex[i, j]
+            green = _sig((feat[F_EXGR, i, j] - prm[P_GREEN0]) / prm[P_GREEN_W])
+            below = _sig((-u - prm[P_G_U0]) / prm[P_G_W])
+            s_here = 0.0
+            s_other = 0.0
+            if below > 0.0:
+                smooth = _sig((prm[P_T_SMOOTH] - t) / prm[P_T_W])
+                dist = abs(float(lab[i, j, 0]) - ref[0]) * prm[P_REF_L] + abs(float(lab[i, j, 1]) - ref[1]) + \
+                    abs(float(lab[i, j, 2]) - ref[2])
+                on = _sig((prm[P_REF_D] - dist) / prm[P_REF_W])
+                s_here = below * (1.0 - green) * (prm[P_ROAD_W] * on * (0.5 + 0.5 * smooth) + prm[P_GROUND_FLOOR])
+                s_other = below * (1.0 - green) * (1.0 - on) * smooth * prm[P_SIDE_W]
+            crown = 0.0
+            if below < 1.0:
+                var = g2mean[i, j] - gmean[i, j] * gmean[i, j]
+                if var < 0.0:
+                    var = 0.0
+                crown = _sig((brightmix[i, j] - prm[P_MIX0]) / 0.05) * _sig((var - prm[P_VAR0]) / prm[P_VAR_W])
+            if on_road:
+                s_road, s_side = s_here, s_other
+            else:
+                s_road, s_side = s_other, s_here
+            s_sky = 2.0 if sky[i, j] else 0.0
+            s_grass = below * green * prm[P_GRASS_W]
+            s_bld = (1.0 - below) * (1.0 - green) * prm[P_BLD_W] * (1.0 - crown)
+            s_tree = green * prm[P_TREE_W] * (1.0 - below * prm[P_TREE_LOW]) + (1.0 - below) * crown * prm[P_MIX_W]
+            best = BUILDING
+            bv = s_bld
+            if s_road > bv:
+                best, bv = ROAD, s_road
+            if s_side > bv:
+                best, bv = SIDEWALK, s_side
+            if s_grass > bv:
+                best, bv = GRASS, s_grass
+            if s_tree > bv:
+                best, bv = TREE, s_tree
+            if s_sky > bv:
+                best, bv = SKY, s_sky
+            labels[i, j] = best
+            tot = s_bld + s_road + s_side + s_grass + s_tree + s_sky
+            k = 1.0 / tot if tot > 0.0 else 0.0
+            scores[BUILDING, i, j] = s_bld * k
+            scores[ROAD, i, j] = s_road * k
+            scores[SIDEWALK, i, j] = s_side * k
+            scores[GRASS, i, j] = s_grass * k
+            scores[TREE, i, j] = s_tree * k
+            scores[SKY, i, j] = s_sky * k
+
+
+@njit(**JIT)
+def horizon_rows(rays, level, out):
+    """Horizon row per column from base-frame pixel rays (h, w, 3) and level_from_base (3, 3); out (w,) f64.
+
+    Pixel centres at integer rows. -1: whole column below the horizon; h: whole column above it.
+    """
+    h, w = rays.shape[0], rays.shape[1]
+    for j in range(w):
+        prev = 0.0
+        out[j] = float(h)
+        for i in range(h):
+            z = level[2, 0] * rays[i, j, 0] + level[2, 1] * rays[i, j, 1] + level[2, 2] * rays[i, j, 2]
+            if z <= 0.0:
+                if i == 0:
+                    out[j] = -1.0
+                else:
+                    out[j] = (i - 1) + prev / (prev - z)
+                break
+            prev = z
+
+
+@njit(**JIT)
+def cells_to_pixels(cells, m, off, fx, fy, cx, cy, dist, xlim, ylim, u_out, v_out):
+    """Project level-frame ground points (N, 3) to pixels: optical = m @ p + off, then OpenCV distortion.
+
+    Points behind the camera or outside the undistorted field of view (|x/z| > xlim, |y/z| > ylim,
+    where the distortion polynomial stops being monotonic) give NaN.
+    """
+    k1, k2, p1, p2, k3 = dist[0], dist[1], dist[2], dist[3], dist[4]
+    for n in range(cells.shape[0]):
+        px, py, pz = cells[n, 0], cells[n, 1], cells[n, 2]
+        x = m[0, 0] * px + m[0, 1] * py + m[0, 2] * pz + off[0]
+        y = m[1, 0] * px + m[1, 1] * py + m[1, 2] * pz + off[1]
+        z = m[2, 0] * px + m[2, 1] * py + m[2, 2] * pz + off[2]
+        if z <= 1e-6:
+            u_out[n] = np.nan
+            v_out[n] = np.nan
+            continue
+        xn = x / z
+        yn = y / z
+        if abs(xn) > xlim or abs(yn) > ylim:
+            u_out[n] = np.nan
+            v_out[n] = np.nan
+            continue
+        r2 = xn * xn + yn * yn
+        rad = 1.0 + r2 * (k1 + r2 * (k2 + r2 * k3))
+        xd = xn * rad + 2.0 * p1 * xn * yn + p2 * (r2 + 2.0 * xn * xn)
+        yd = yn * rad + p1 * (r2 + 2.0 * yn * yn) + 2.0 * p2 * xn * yn
+        u_out[n] = fx * xd + cx
+        v_out[n] = fy * yd + cy
+
+
+@njit(**JIT)
+def ground_gather(probs, labels, pu, pv, cell_range, max_range, is_ground, to_map, hrow, evidence, free, visible):
+    """Fill ground-class evidence, free space and visibility of each BEV cell from the pixel it maps to.
+
+    probs (C, h, w) f32; labels (h, w) u8; pu, pv (H*W,) f64 pixel of each cell centre (NaN: not in view);
+    cell_range (H*W,) f64 metres; is_ground (C,) u8; to_map (C,) int64 map channel or -1;
+    hrow (w,) f64 horizon rows; evidence (M, H, W), free, visible (H, W) f32 (cleared by the caller).
+    Bilinear sampling of the probabilities; the nearest pixel's label decides whether ground is seen.
+    """
+    nc, h, w = probs.shape
+    gh, gw = free.shape
+    for n in range(gh * gw):
+        u = pu[n]
+        v = pv[n]
+        if not (u >= 0.0 and v >= 0.0 and u <= w - 1.0 and v <= h - 1.0):
+            continue
+        if cell_range[n] > max_range:
+            continue
+        iu = int(u + 0.5)
+        iv = int(v + 0.5)
+        if iv <= hrow[iu]:
+            continue
+        if not is_ground[labels[iv, iu]]:
+            continue
+        r = n // gw
+        c = n - r * gw
+        j0 = min(int(u), w - 2)
+        i0 = min(int(v), h - 2)
+        fu = u - j0
+        fv = v - i0
+        w00 = (1.0 - fu) * (1.0 - fv)
+        w01 = fu * (1.0 - fv)
+        w10 = (1.0 - fu) * fv
+        w11 = fu * fv
+        fr = 0.0
+        for k in range(nc):
+            p = w00 * probs[k, i0, j0] + w01 * probs[k, i0, j0 + 1] + w10 * probs[k, i0 + 1, j0] + \
+                w11 * probs[k, i0 + 1, j0 + 1]
+            if is_ground[k]:
+                fr += p
+                m = to_map[k]
+                if m >= 0:
+                    evidence[m, r, c] = p
+        free[r, c] = min(fr, 1.0)
+        visible[r, c] = 1.0
+
+
+@njit(**JIT)
+def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, to_map, min_run, max_range, depth_m,
+                      res_m, origin_row, origin_col, evidence, free, visible):
+    """Deposit vertical classes at the ground contact of each column's lowest run of a vertical class.
+
+    For each image column, scanning up from the bottom row to the horizon, the first pixel of a
+    vertical class that starts a run of at least ``min_run`` pixels of that class is the object's
+    foot. The contact row is refined to where that class's probability crosses 0.5 between it and
+    the pixel below; the ray through it (levelled) meets the ground at the object's range. The class
+    evidence (the run's mean probability) is written there and ``depth_m`` further along the ray.
+    Returns the number of contacts deposited.
+    """
+    nc, h, w = probs.shape
+    gh, gw = visible.shape
+    cz = cam[2]
+    count = 0
+    for j in range(w):
+        top = int(math.floor(hrow[j])) + 1
+        if top < 0:
+            top = 0
+        i = h - 1
+        found = -1
+        while i >= top:
+            k = labels[i, j]
+            if is_vertical[k]:
+                run = 0
+                psum = 0.0
+                ii = i
+                while ii >= 0 and labels[ii, j] == k and run < min_run:
+                    psum += probs[k, ii, j]
+                    run += 1
+                    ii -= 1
+                if run >= min_run:
+                    found = i
+                    break
+                i = ii
+            else:
+                i -= 1
+        if found < 0 or found >= h - 1:
+            continue  # no obstacle, or its foot is below the image: its range is unknown
+        k = labels[found, j]
+        m = to_map[k]
+        pa = probs[k, found, j]
+        pb = probs[k, found + 1, j]
+        t = 0.5
+        if pa > pb:
+            t = (pa - 0.5) / (pa - pb)
+            t = min(max(t, 0.0), 1.0)
+        ra = rays[found, j]
+        rb = rays[found + 1, j]
+        dx = ra[0] + t * (rb[0] - ra[0])
+        dy = ra[1] + t * (rb[1] - ra[1])
+        dz = ra[2] + t * (rb[2] - ra[2])
+        lx = level[0, 0] * dx + level[0, 1] * dy + level[0, 2] * dz
+        ly = level[1, 0] * dx + level[1, 1] * dy + level[1, 2] * dz
+        lz = level[2, 0] * dx + level[2, 1] * dy + level[2, 2] * dz
+        if lz >= -1e-9:
+            continue
+        s = -cz / lz
+        gx = cam[0] + s * lx
+        gy = cam[1] + s * ly
+        rng = math.sqrt(gx * gx + gy * gy)
+        if rng > max_range:
+            continue
+        count += 1
+        val = psum / min_run
+        hn = math.sqrt(lx * lx + ly * ly)
+        ux = lx / hn
+        uy = ly / hn
+        nstep = int(depth_m / (0.5 * res_m)) + 1
+        for q in range(nstep):
+            d = q * 0.5 * res_m
+            px = gx + ux * d
+            py = gy + uy * d
+            cc = int(math.floor(origin_col + px / res_m))
+            rr = int(math.floor(origin_row - py / res_m))
+            if 0 <= rr < gh and 0 <= cc < gw:
+                visible[rr, cc] = 1.0
+                free[rr, cc] = 0.0
+                if m >= 0 and evidence[m, rr, cc] < val:
+                    evidence[m, rr, cc] = val
+    return count
+
+
+@njit(**JIT)
+def frame_stats(small):
+    """(mean HSV value 0..1, share of pixels at >= 250 in every channel) of a small BGR uint8 image."""
+    h, w = small.shape[0], small.shape[1]
+    acc = 0.0
+    sat = 0
+    for i in range(h):
+        for j in range(w):
+            b = small[i, j, 0]
+            g = small[i, j, 1]
+            r = small[i, j, 2]
+            acc += max(r, max(g, b))
+            if min(r, min(g, b)) >= 250:
+                sat += 1
+    n = h * w
+    return acc / (255.0 * n), sat / n

@@ -1,0 +1,245 @@
+"""Classical, hand-crafted segmentation of a camera frame into tinyloc's classes (per-class scores).
+
+No learned network: a handful of colour and texture features (features.py) and the
+position of each pixel relative to the horizon are combined by fixed rules whose
+thresholds sit in :class:`SegmentParams`:
+
+- **sky**: bright low-saturation or bluish (Lab b* < 0) pixels with little gradient energy, near or
+  above the horizon, and 4-connected to the top row of the image (flood fill);
+- **ground** (below the horizon): the surface under the robot is recognised by its colour distance
+  to a patch at the bottom centre of the image (the robot stands on it), with smooth texture helping;
+  other smooth ground is the other paved class (road vs sidewalk, chosen by the preset);
+- **vegetation**: ExG - ExR above a threshold (Meyer and Neto 2008) gives grass below the horizon and
+  trees above it; above the horizon, textured regions mixed with bright sky pixels (bare crowns
+  against the sky: high local variance and a high share of bright pixels) also score as tree;
+- **building**: what remains above the horizon (not sky, not vegetation).
+
+Work happens at reduced resolution (``width`` pixels wide, default 160): the frame is area-averaged
+down first, which also removes sensor noise. Scores are normalised per pixel to sum to 1.
+
+Known limits (measured, see docs/perception.md): bare trees and buildings are often confused; road
+and sidewalk are told apart only by colour contrast to the robot's own surface; poles, fences,
+vehicles and people are not detected (their classes get no score).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields
+
+import cv2
+import numpy as np
+
+from ..classes import NUM_CLASSES
+from ..errors import InputError
+from . import _kernels as K
+
+
+@dataclass(frozen=True)
+class SegmentParams:
+    """Thresholds of the classical segmenter (dimensionless unless stated).
+
+    Features are on 0..1 scales: V and S (HSV), gradient energy ``tex`` (grey-level change per pixel,
+    0..1, summed over x and y), ``u`` = height above the horizon in image heights (negative below).
+    Soft steps are logistic functions ``sig((x - x0) / w)``.
+    """
+
+    width: int = 160  # segmentation width (px); height keeps the frame's aspect
+    horizon_frac: float = 0.56  # horizon row / image height when no camera model is given
+    tex_window: int = 5  # window of the gradient-energy mean (px at segmentation size)
+    mix_window: int = 3  # window of the bright-share and variance statistics (px)
+    sky_tex: float = 0.0676  # sky is smoother than this
+    sky_v: float = 0.4165  # ... and brighter than this (HSV value) with saturation below sky_s
+    sky_s: float = 0.25
+    sky_blue: float = 5.6  # ... or bluer than b* < -sky_blue (Lab units) with value above sky_v2
+    sky_v2: float = 0.845
+    sky_below: float = 0.02  # sky may reach this far (image heights) below the horizon
+    green0: float = 0.06  # ExG - ExR vegetation threshold
+    green_w: float = 0.0355
+    ground_u0: float = 0.02  # ground starts this far (image heights) below the horizon
+    ground_w: float = 0.03
+    smooth_tex: float = 0.11  # paved ground is smoother than this
+    smooth_w: float = 0.013
+    here_weight: float = 1.3  # weight of the surface under the robot
+    other_weight: float = 0.6  # weight of the other paved surface
+    grass_weight: float = 0.49
+    building_weight: float = 0.845
+    tree_weight: float = 0.49
+    crown_weight: float = 0.91
+    ground_floor: float = 0.098  # score any ground pixel keeps for "surface under the robot"
+    ref_l_weight: float = 0.5  # weight of lightness in the colour distance to the robot's surface
+    ref_dist: float = 15.0  # colour distance (Lab units) still counted as the same surface
+    ref_w: float = 2.8
+    crown_bright: float = 0.33  # share of bright pixels that makes a textured patch a crown
+    crown_var: float = 0.00343  # local grey-level variance of a crown (0..1 units)
+    crown_var_w: float = 0.00845
+    tree_low: float = 0.5  # how much green below the horizon counts less as tree
+    robot_on: str = "road"  # surface under the robot: "road" or "sidewalk"
+
+    def __post_init__(self):
+        if not 32 <= int(self.width) <= 1024:
+            raise InputError(f"segmentation width {self.width} px is out of range (32 .. 1024)")
+        if self.robot_on not in ("road", "sidewalk"):
+            raise InputError(f"robot_on must be 'road' or 'sidewalk', got {self.robot_on!r}")
+        for f in fields(self):
+            v = getattr(self, f.name)
+            if isinstance(v, float) and not np.isfinite(v):
+                raise InputError(f"segmentation parameter {f.name} must be finite")
+        if self.tex_window % 2 == 0 or self.mix_window % 2 == 0:
+            raise InputError("tex_window and mix_window must be odd")
+
+    def vector(self) -> np.ndarray:
+        """The kernel's parameter vector (layout in _kernels.P_*)."""
+        v = np.zeros(K.NP, np.float64)
+        v[K.P_SKY_TEX], v[K.P_SKY_V], v[K.P_SKY_S] = self.sky_tex, self.sky_v, self.sky_s
+        v[K.P_SKY_BLUE], v[K.P_SKY_V2], v[K.P_SKY_BELOW] = self.sky_blue, self.sky_v2, self.sky_below
+        v[K.P_GREEN0], v[K.P_GREEN_W], v[K.P_G_U0], v[K.P_G_W] = self.green0, self.green_w, self.ground_u0, \
+            self.ground_w
+        v[K.P_T_SMOOTH], v[K.P_T_W] = self.smooth_tex, self.smooth_w
+        v[K.P_ROAD_W], v[K.P_SIDE_W], v[K.P_GRASS_W] = self.here_weight, self.other_weight, self.grass_weight
+        v[K.P_BLD_W], v[K.P_TREE_W], v[K.P_MIX_W] = self.building_weight, self.tree_weight, self.crown_weight
+        v[K.P_GROUND_FLOOR], v[K.P_REF_L], v[K.P_REF_D], v[K.P_REF_W] = self.ground_floor, self.ref_l_weight, \
+            self.ref_dist, self.ref_w
+        v[K.P_MIX0], v[K.P_VAR0], v[K.P_VAR_W] = self.crown_bright, self.crown_var, self.crown_var_w
+        v[K.P_TREE_LOW] = self.tree_low
+        v[K.P_ON_ROAD] = 1.0 if self.robot_on == "road" else 0.0
+        return v
+
+
+#: Named parameter sets. "street" was tuned on the labelled street-image set (a car on city roads);
+#: "sidewalk" is the same with the robot on the footway; "park" expects more vegetation.
+PRESETS: dict[str, SegmentParams] = {
+    "street": SegmentParams(),
+    "sidewalk": SegmentParams(robot_on="sidewalk"),
+    "park": SegmentParams(robot_on="sidewalk", green0=0.02, grass_weight=0.8, tree_weight=0.8),
+}
+
+
+def preset(name: str) -> SegmentParams:
+    """The named parameter set; raises InputError naming the known ones."""
+    try:
+        return PRESETS[name]
+    except KeyError:
+        raise InputError(f"unknown segmentation preset {name!r}; known: {', '.join(PRESETS)}") from None
+
+
+def seg_size(width: int, height: int, params: SegmentParams) -> tuple[int, int]:
+    """(w, h) of the segmentation raster for a ``width`` x ``height`` frame."""
+    w = min(int(params.width), int(width))
+    return w, max(8, int(round(height * w / width)))
+
+
+class Segmenter:
+    """Workspace for segmenting frames of one size; every buffer is allocated once here.
+
+    Parameters
+    ----------
+    frame_size : (width, height)
+        Input frame size in pixels.
+    params : SegmentParams
+    """
+
+    def __init__(self, frame_size: tuple[int, int], params: SegmentParams = SegmentParams()):
+        self.params = params
+        self.frame_size = (int(frame_size[0]), int(frame_size[1]))
+        w, h = seg_size(*self.frame_size, params)
+        self.size = (w, h)
+        self._prm = params.vector()
+        f32 = np.float32
+        self.small = np.zeros((h, w, 3), np.uint8)
+        self.lab = np.zeros((h, w, 3), np.uint8)
+        self.feat = np.zeros((K.NF, h, w), f32)
+        self.tx = np.zeros((h, w), f32)
+        self.ty = np.zeros((h, w), f32)
+        self.tex = np.zeros((h, w), f32)
+        self.tmp = np.zeros((h, w), f32)
+        self.bright = np.zeros((h, w), np.uint8)
+        self.cand = np.zeros((h, w), np.uint8)
+        self.sky = np.zeros((h, w), np.uint8)
+        self.brightf = np.zeros((h, w), f32)
+        self.brightmix = np.zeros((h, w), f32)
+        self.gmean = np.zeros((h, w), f32)
+        self.g2mean = np.zeros((h, w), f32)
+        self.queue = np.zeros(h * w, np.int32)
+        self.hist = np.zeros((3, 256), np.int64)
+        self.ref = np.zeros(3, np.float64)
+        self.probs = np.zeros((NUM_CLASSES, h, w), f32)
+        self.labels = np.zeros((h, w), np.uint8)
+        self.hrow = np.full(w, params.horizon_frac * h - 0.5)
+        self._patch = (int(h * 0.85), h, int(w * 0.35), max(int(w * 0.65), int(w * 0.35) + 1))
+
+    def default_horizon(self) -> np.ndarray:
+        """Horizon rows (segmentation pixels) used without a camera model: ``horizon_frac`` of the height."""
+        h = self.size[1]
+        self.hrow[:] = self.params.horizon_frac * h - 0.5
+        return self.hrow
+
+    def run(self, bgr: np.ndarray, hrow: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Segment one BGR uint8 frame of ``frame_size``.
+
+        Parameters
+        ----------
+        bgr : ndarray (H, W, 3) uint8
+        hrow : ndarray (w,) float64, optional
+            Horizon row of each segmentation column (pixel centres at integers); default
+            :meth:`default_horizon`.
+
+        Returns
+        -------
+        probs : ndarray (NUM_CLASSES, h, w) float32
+            Per-class scores normalised to sum 1 per pixel (views of the workspace, overwritten next call).
+        labels : ndarray (h, w) uint8
+            Arg-max class index.
+        """
+        p = self.params
+        if hrow is None:
+            hrow = self.default_horizon()
+        w, h = self.size
+        if (w, h) == self.frame_size:
+            self.small[...] = bgr
+        else:
+            cv2.resize(bgr, (w, h), dst=self.small, interpolation=cv2.INTER_AREA)
+        cv2.cvtColor(self.small, cv2.COLOR_BGR2Lab, dst=self.lab)
+        K.seg_features(self.small, self.lab, hrow, self.feat)
+        rt = p.tex_window // 2
+        K.box_mean(self.feat[K.F_GX], rt, self.tmp, self.tx)
+        K.box_mean(self.feat[K.F_GY], rt, self.tmp, self.ty)
+        np.add(self.tx, self.ty, out=self.tex)
+        K.sky_candidates(self.feat, self.tex, self._prm, self.bright, self.cand)
+        K.flood_from_top(self.cand, self.sky, self.queue)
+        np.greater(self.bright, self.sky, out=self.cand)  # bright but not sky (reuses the buffer)
+        self.brightf[...] = self.cand
+        rm = p.mix_window // 2
+        K.box_mean(self.brightf, rm, self.tmp, self.brightmix)
+        K.box_mean(self.feat[K.F_GRAY], rm, self.tmp, self.gmean)
+        K.box_mean(self.feat[K.F_G2], rm, self.tmp, self.g2mean)
+        r0, r1, c0, c1 = self._patch
+        K.patch_median_lab(self.lab, r0, r1, c0, c1, self.hist, self.ref)
+        K.seg_scores(self.feat, self.lab, self.tex, self.sky, self.brightmix, self.gmean, self.g2mean, self.ref,
+                     self._prm, self.probs, self.labels)
+        return self.probs, self.labels
+
+
+def labels_at(probs: np.ndarray, size: tuple[int, int]) -> np.ndarray:
+    """Class index per pixel at ``size`` (w, h): probabilities upsampled bilinearly, then arg-max.
+
+    For debug output and evaluation, not for the per-frame path (it allocates).
+    """
+    w, h = size
+    up = np.stack([cv2.resize(p, (w, h), interpolation=cv2.INTER_LINEAR) for p in probs])
+    return up.argmax(axis=0).astype(np.uint8)
+
+
+def segment_image(bgr: np.ndarray, params: SegmentParams = SegmentParams(), *, hrow=None):
+    """One-shot segmentation of a BGR frame (allocates a workspace; use :class:`Segmenter` in loops).
+
+    Returns (probs, labels_small, labels_full) where labels_full is at the input size.
+    """
+    img = np.ascontiguousarray(bgr)
+    if img.ndim != 3 or img.shape[2] != 3 or img.dtype != np.uint8:
+        raise InputError(f"segment: expected an (H, W, 3) uint8 BGR image, got {img.shape} {img.dtype}")
+    seg = Segmenter((img.shape[1], img.shape[0]), params)
+    probs, labels = seg.run(img, hrow)
+    return probs.copy(), labels.copy(), labels_at(probs, (img.shape[1], img.shape[0]))
+
+
+__all__ = ["SegmentParams", "PRESETS", "preset", "Segmenter", "segment_image", "labels_at", "seg_size"]
