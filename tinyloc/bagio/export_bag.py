@@ -53,8 +53,13 @@ def find_result_csv(path) -> Path:
         for name in ("poses.csv", "estimates.csv", "frames.csv"):
             f = p / name
             if f.is_file():
+                head = ""
                 with open(f, encoding="utf-8", errors="replace") as fh:
-                    head = fh.readline(65536)
+                    for _ in range(100):  # the header is the first line that is not a comment
+                        line = fh.readline(65536)
+                        if not line or (line.strip() and not line.lstrip().startswith("#")):
+                            head = line
+                            break
                 if all(c in [h.strip() for h in head.split(",")] for c in ("t", "x", "y", "yaw", "quality")):
                     return f
         if (p / "run.json").is_file():
