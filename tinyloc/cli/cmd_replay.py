@@ -58,6 +58,10 @@ def register(p):
     p.add_argument("--localizer", default="loop", metavar="MODULE:FUNCTION",
                    help="score another localizer on the same drives: a factory f(run_folder, map) returning an "
                         "object with step(frame) (default: the live loop)")
+    p.add_argument("--config", metavar="LOOP.toml", help="the live loop's settings file (as for tinyloc run)")
+    p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE", dest="overrides",
+                   help="override one loop setting, e.g. --set track.floor=1e-3 (repeatable): how a drive is "
+                        "re-scored while tuning")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 
@@ -103,6 +107,12 @@ def run(args) -> int:
     runs = expand_runs(args.runs)
     params = _params(args)
     resolve_factory(args.localizer)  # bad spec: fail before starting any worker
+    if args.localizer == "loop":
+        from ..runtime.config import load_config
+
+        load_config(args.config, tuple(args.overrides))  # a bad setting fails here, once
+    elif args.config or args.overrides:
+        raise InputError("--config and --set apply to the live loop only (not with --localizer)")
     if args.map is not None and not Path(args.map).is_file():
         raise InputError(f"{args.map}: map file not found")
     single = len(runs) == 1
@@ -111,7 +121,8 @@ def run(args) -> int:
     dup = {n for n in names if names.count(n) > 1}
     names = [f"{n}-{i}" if n in dup else n for i, n in enumerate(names)]
     jobs = [Job(run=r, out_dir=str(out if single else out / n), map_path=args.map, localizer=args.localizer,
-                params=params, report=not args.no_report) for r, n in zip(runs, names)]
+                params=params, report=not args.no_report, config=args.config, overrides=tuple(args.overrides))
+            for r, n in zip(runs, names)]
     rows = run_batch(jobs, workers=args.jobs or None, show_progress=not args.quiet)
     failed = [r for r in rows if r.get("error")]
     if single and failed:

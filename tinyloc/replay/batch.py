@@ -44,6 +44,10 @@ class Job:
     params : ReplayParams
     report : bool
         Write report.html.
+    config : str or None
+        The live loop's TOML config file (``localizer="loop"`` only).
+    overrides : tuple of str
+        ``SECTION.KEY=VALUE`` settings applied on top of the config.
     """
 
     run: str
@@ -52,6 +56,8 @@ class Job:
     localizer: str = "loop"
     params: ReplayParams = field(default_factory=ReplayParams)
     report: bool = True
+    config: str | None = None
+    overrides: tuple = ()
 
 
 def resolve_factory(spec: str):
@@ -126,6 +132,9 @@ def _run_job(job: Job, index: int, row: dict) -> dict:
     map_path, map_from = map_for_run(job.run, job.map_path)
     packed = open_map(map_path)
     factory = resolve_factory(job.localizer)
+    if job.localizer == "loop":
+        base = factory
+        factory = lambda rf, pk: base(rf, pk, config_path=job.config, overrides=job.overrides)  # noqa: E731
     world = packed.frame if packed is not None else None
 
     last = [0.0]
@@ -143,6 +152,12 @@ def _run_job(job: Job, index: int, row: dict) -> dict:
     m["run"]["map"] = map_path
     m["run"]["map_from"] = map_from or "none"
     m["run"]["localizer"] = job.localizer
+    health = getattr(res.localizer, "health", None)
+    if health is not None:
+        try:
+            m["loop_health"] = {k: v for k, v in health().items() if isinstance(v, (int, float, str, bool))}
+        except Exception:  # noqa: BLE001 - health is informative only
+            pass
     write_csv(res.records, out / "frames.csv")
     (out / "metrics.json").write_text(json.dumps(m, indent=1, allow_nan=False) + "\n", encoding="utf-8")
     if job.report:

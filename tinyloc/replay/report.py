@@ -594,7 +594,10 @@ def worst_frame_panels(res, *, notes: list[str]) -> list[dict]:
                 imgs["labels (truth)"] = _thumb(colour_labels(lab))
         if debug is not None and image is not None:
             try:
-                for name, im in (debug(i, image) or {}).items():
+                p = (float(rec.x[i]), float(rec.y[i]), float(rec.yaw[i]))
+                if not all(math.isfinite(v) for v in p):
+                    p = (float(rec.truth_x[i]), float(rec.truth_y[i]), float(rec.truth_yaw[i]))
+                for name, im in (debug(i, image, pose=p) or {}).items():
                     imgs[name] = _thumb(np.asarray(im))
             except Exception as e:  # noqa: BLE001 - debug views are optional
                 notes.append(f"frame {i}: debug views failed ({type(e).__name__}: {e})")
