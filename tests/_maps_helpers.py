@@ -139,7 +139,7 @@ def brute_self_intersects(xy) -> bool:
 
     def orient(a, b, c):
         v = (b[0] - a[0]) * (c[1] - a[1]) - (b[1] - a[1]) * (c[0] - a[0])
-        return (v > 0) - (v < 0)
+        return int(v > 0) - int(v < 0)
 
     def on(a, b, p):
         return min(a[0], b[0]) <= p[0] <= max(a[0], b[0]) and min(a[1], b[1]) <= p[1] <= max(a[1], b[1])

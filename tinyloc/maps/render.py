@@ -103,10 +103,8 @@ def _decorate(img: np.ndarray, px_per_m: float, class_names, *, title: str) -> n
         cv2.putText(canvas, name, (x0 + 26, y), font, 0.45, (30, 30, 30), 1, cv2.LINE_AA)
         y += 22
     # Scale bar: a round length near a quarter of the image width.
-    L = _nice_length(0.25 * w / px_per_m)
+    L = _nice_length(min(0.25 * w, LEGEND_W - 30) / px_per_m)
     bar = max(1, int(round(L * px_per_m)))
-    bar = min(bar, LEGEND_W - 30)
-    L = bar / px_per_m
     y += 14
     cv2.rectangle(canvas, (x0, y), (x0 + bar, y + 6), (30, 30, 30), -1)
     cv2.putText(canvas, f"{L:.3g} m", (x0, y + 24), font, 0.45, (30, 30, 30), 1, cv2.LINE_AA)
