@@ -215,7 +215,7 @@ class Bar:
                 if self.done == self.n:
                     self.stream.write("\n")
                 self.stream.flush()
-        elif f + 1e-9 >= self._next or (force and self.done == self.n):
+        elif (force and self.done == self.n) or (f + 1e-9 >= self._next and f < 1.0):
             while self._next <= f + 1e-9:
                 self._next += 0.1
             self.stream.write(text + "\n")

@@ -196,12 +196,21 @@ def drive(rf: RunFolder, localizer: Localizer, rec: FrameRecords, *,
 
 
 def worst_frames(rec: FrameRecords, k: int) -> list[int]:
-    """Indices of the ``k`` frames with the largest position error (misses first), in time order."""
+    """Indices of the ``k`` frames with the largest position error (heading breaks ties), in time order.
+
+    Frames with a wrong estimate come first (they show why the loop was wrong); frames without
+    an estimate fill the remaining places.
+    """
     err, yerr, *_ = rec.errors()
-    score = np.where(np.isnan(err), -1.0, np.where(np.isinf(err), 1e12, err + 0.1 * np.nan_to_num(yerr, posinf=1e3)))
-    order = np.argsort(-score, kind="stable")
-    pick = [int(i) for i in order[:k] if score[i] >= 0]
-    return sorted(pick)
+    fin = np.isfinite(err)
+    score = np.where(fin, err + 0.01 * np.nan_to_num(yerr, nan=0.0, posinf=0.0), -1.0)
+    order = [int(i) for i in np.argsort(-score, kind="stable") if fin[i]][:k]
+    misses = [int(i) for i in np.flatnonzero(np.isinf(err))]
+    if len(order) < k and misses:
+        # Spread the misses over the run rather than taking the first few in a row.
+        take = np.linspace(0, len(misses) - 1, min(k - len(order), len(misses))).round().astype(int)
+        order += [misses[j] for j in take]
+    return sorted(set(order))
 
 
 def replay_run(run, localizer_factory: Callable[[RunFolder], Localizer], *, world: LocalFrame | None = None,
