@@ -1,0 +1,87 @@
+"""Smaller parts of replay: gap finding, worst-frame choice, the map backdrop's geometry, the progress bar."""
+
+import io
+import math
+
+import numpy as np
+
+from _replay_helpers import make_map
+from tinyloc.classes import TREE
+from tinyloc.replay.batch import Bar, format_table
+from tinyloc.replay.gaps import GapParams, frame_gaps, gnss_outages, stream_gaps
+from tinyloc.replay.records import FrameRecords
+from tinyloc.replay.replay import worst_frames
+
+
+def test_stream_gaps_hand_worked():
+    t = [0.0, 0.1, 0.2, 0.3, 1.5, 1.6, 1.7]  # median interval 0.1 s -> limit max(0.25, 0.25) = 0.25 s
+    g = stream_gaps(t, "imu.csv", GapParams(), t_first=-1.0, t_last=2.0)
+    assert g == ["imu.csv: no samples for 1.20 s (t 0.30 .. 1.50 s)",
+                 "imu.csv: starts 1.00 s after the first frame",
+                 "imu.csv: stops 0.30 s before the last frame"]
+    assert stream_gaps([], "gnss.csv", GapParams()) == ["gnss.csv: no samples at all"]
+
+
+def test_frame_gaps_see_one_dropped_frame():
+    t = np.array([0.0, 0.2, 0.4, 0.8, 1.0, 1.6])  # one frame missing after 0.4 s, two after 1.0 s
+    assert frame_gaps(t, GapParams()) == ["frames: 0.40 s pause after t 0.40 s (about 1 frames missing)",
+                                         "frames: 0.60 s pause after t 1.00 s (about 2 frames missing)"]
+
+
+def test_gnss_outages_hand_worked():
+    # Fixes at 0, 1, 2 and 6 s; frames every 0.5 s; a fix is stale when older than 1.5 s.
+    spans = gnss_outages([0.0, 1.0, 2.0, 6.0], np.arange(0.0, 7.01, 0.5), 1.5)
+    assert spans == [(4.0, 5.5)]  # at 3.5 s the 2 s fix is exactly 1.5 s old: still usable
+    assert gnss_outages([], [0.0, 1.0], 2.0) == [(0.0, 1.0)]
+
+
+def test_worst_frames_prefer_wrong_estimates():
+    rec = FrameRecords(6)
+    rec.truth_x[:] = rec.truth_y[:] = rec.truth_yaw[:] = 0.0
+    rec.x[:] = [0.1, 5.0, math.nan, 0.2, 3.0, math.nan]
+    rec.y[:] = rec.yaw[:] = 0.0
+    assert worst_frames(rec, 2) == [1, 4]
+    # Four frames have an estimate; the fifth place goes to the first miss (frame 2).
+    assert worst_frames(rec, 5) == [0, 1, 2, 3, 4]
+    assert set(worst_frames(rec, 6)) == set(range(6))
+
+
+def test_map_backdrop_puts_cells_where_the_raster_convention_says(tmp_path):
+    from tinyloc.maps.packfile import PackedMap
+    from tinyloc.replay.report import colour_classes, map_backdrop
+
+    pm = PackedMap.open(make_map(tmp_path / "m.tlm"))
+    bd, note = map_backdrop(pm, [[0.0, 0.0], [10.0, 5.0]], margin_m=5.0)
+    assert bd is not None and note == ""
+    # The helper map has a tree disc of radius 1 m at (5, 2); its centre cell must carry the tree colour.
+    r = int((bd.y_max - 2.0) / bd.res_m)
+    c = int((5.0 - bd.x_min) / bd.res_m)
+    one = np.zeros((9, 1, 1), np.float32)
+    one[TREE] = 1.0
+    np.testing.assert_array_equal(bd.image_bgr[r, c], colour_classes(one)[0, 0])
+    far = bd.image_bgr[int((bd.y_max - 4.5) / bd.res_m), int((1.0 - bd.x_min) / bd.res_m)]
+    assert not np.array_equal(far, bd.image_bgr[r, c])
+    # Too large an area is refused with a reason, not drawn.
+    bd2, note2 = map_backdrop(pm, [[0.0, 0.0], [5000.0, 0.0]])
+    assert bd2 is None and "more than the report draws" in note2
+
+
+def test_progress_bar_lines_without_terminal():
+    s = io.StringIO()
+    b = Bar(2, stream=s)
+    for k in range(1, 11):
+        b.update(0, k, 10)
+    b.finish_run(0)
+    b.update(1, 5, 10)
+    b.finish_run(1)
+    lines = s.getvalue().splitlines()
+    assert lines[-1].startswith("replay 100.0%") and "runs 2/2" in lines[-1]
+    assert sum("100.0%" in ln for ln in lines) == 1
+    assert 4 <= len(lines) <= 11
+
+
+def test_summary_table_marks_failures():
+    rows = [{"run": "/x/a", "frames": 3, "recall_1m_3deg": 0.5, "error": None},
+            {"run": "/x/b", "error": "/x/b/run.json: missing"}]
+    text = format_table(rows)
+    assert "FAILED" in text and "failed: /x/b/run.json: missing" in text and "0.500" in text
