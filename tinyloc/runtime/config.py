@@ -120,20 +120,21 @@ def _coerce(value, default, where: str):
     raise InputError(f"{where}: cannot set this value")
 
 
-def _apply(obj, table: dict, where: str):
+def _apply(obj, table: dict, where: str, prefix: str = ""):
     """A copy of dataclass ``obj`` with the (possibly nested) values of ``table`` applied."""
     names = {f.name: f for f in fields(obj)}
     changes = {}
     for k, v in table.items():
         if k not in names:
-            raise InputError(f"{where}: unknown key {k!r} (known: {', '.join(sorted(names))})")
+            raise InputError(f"{where}: unknown key '{prefix}{k}' (known in {prefix.rstrip('.') or 'the top level'}: "
+                             f"{', '.join(sorted(names))})")
         cur = getattr(obj, k)
         if is_dataclass(cur):
             if not isinstance(v, dict):
-                raise InputError(f"{where}.{k}: expected a table")
-            changes[k] = _apply(cur, v, f"{where}.{k}")
+                raise InputError(f"{where}: '{prefix}{k}' must be a table")
+            changes[k] = _apply(cur, v, where, f"{prefix}{k}.")
         else:
-            changes[k] = _coerce(v, cur, f"{where}.{k}")
+            changes[k] = _coerce(v, cur, f"{where}: '{prefix}{k}'")
     try:
         return replace(obj, **changes)
     except InputError as e:
@@ -172,7 +173,7 @@ def apply_override(cfg: LoopConfig, item: str) -> LoopConfig:
         cur[p] = {}
         cur = cur[p]
     cur[parts[-1]] = value
-    return _apply(cfg, table, f"--set {key}")
+    return _apply(cfg, table, "--set")
 
 
 def config_to_dict(cfg) -> dict:

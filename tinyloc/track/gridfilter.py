@@ -134,6 +134,10 @@ class TrackParams:
         better (log units) than the best near the estimate [4.0].
     switch_votes : int
         Consecutive "elsewhere" votes that declare the filter lost [2].
+    ambiguity_margin : float
+        A pose elsewhere scoring within this (log units) of the best near the estimate makes the
+        output ambiguous: quality "degraded", the competing pose among the modes and in the
+        covariance, until a later check clears it [2.0].
     gnss : GnssParams
         Robust satellite-fix prior.
     """
@@ -167,6 +171,7 @@ class TrackParams:
     verify_every: int = 15
     switch_margin: float = 4.0
     switch_votes: int = 2
+    ambiguity_margin: float = 2.0
     gnss: GnssParams = field(default_factory=GnssParams)
 
     def __post_init__(self):
@@ -460,13 +465,15 @@ class GridFilter:
                         2.0 * self.fill, self._acc, self.active)
         acc = self._acc
         mass = acc[0] if acc[0] > 0 else 1.0
-        e_rr, e_cc, e_aa = acc[4] / mass, acc[5] / mass, acc[6] / mass
-        e_rc, e_ra, e_ca = acc[7] / mass, acc[8] / mass, acc[9] / mass
+        # second moments in cells / radians about the pose: rr, cc, aa, rc, ra, ca
+        m = [acc[4] / mass, acc[5] / mass, acc[6] / mass, acc[7] / mass, acc[8] / mass, acc[9] / mass]
+        self._sharpen(m, ref, a0, i0, j0, row_w, col_w, yaw, mass)
+        e_rr, e_cc, e_aa, e_rc, e_ra, e_ca = m
         cov = np.empty((3, 3))
-        cov[0, 0] = res * res * (e_cc + 1.0 / 12.0)
-        cov[1, 1] = res * res * (e_rr + 1.0 / 12.0)
+        cov[0, 0] = res * res * e_cc
+        cov[1, 1] = res * res * e_rr
         cov[0, 1] = cov[1, 0] = -res * res * e_rc
-        cov[2, 2] = e_aa + self.dyaw ** 2 / 12.0
+        cov[2, 2] = e_aa
         cov[0, 2] = cov[2, 0] = res * e_ca
         cov[1, 2] = cov[2, 1] = -res * e_ra
         x, y = self.geom.xy_of(self.row0 + row_w, self.col0 + col_w)
@@ -476,6 +483,57 @@ class GridFilter:
         modes = self._modes()
         peak = modes[0][3] if modes else 0.0
         return FilterEstimate(x, y, yaw, cov, modes, peak, math.sqrt(max(lam, 0.0)), math.sqrt(max(cov[2, 2], 0.0)))
+
+    def _sharpen(self, m, ref, a0, i0, j0, row_w, col_w, yaw, mass) -> None:
+        """Replace the lattice moments of the peak's own mass by its Laplace covariance when the peak
+        is sharper than a cell (or a heading layer).
+
+        A lattice second moment is only right for a peak wider than about 0.7 cells; for a sharper
+        one it measures where the peak sits between lattice points. The negative inverse Hessian of
+        the log-posterior (the Laplace approximation, exact for a Gaussian) is used for the mass in
+        the 3 x 3 x 3 neighbourhood of the peak; everything else (tails, other modes) keeps its
+        lattice moments. Without a usable fit, the quantisation variance (1/12 cell^2, 1/12 layer^2)
+        is added instead. ``m`` = [rr, cc, aa, rc, ra, ca] is updated in place.
+        """
+        if ref is None:
+            m[0] += 1.0 / 12.0
+            m[1] += 1.0 / 12.0
+            m[2] += self.dyaw ** 2 / 12.0
+            return
+        hrr, hcc, hrc, haa = self._hess
+        A = self.A
+        lays = ((a0 - 1) % A, a0, (a0 + 1) % A)
+        blk = np.empty((3, 3, 3))
+        for k, a in enumerate(lays):
+            blk[k] = self.bel[a, i0 - 1:i0 + 2, j0 - 1:j0 + 2]
+        wb = blk / mass
+        mb = float(wb.sum())
+        rr = np.array([[i0 - 1 + 0.5 + self.dr[a] + t - (row_w) for t in range(3)] for a in lays])  # (3 layers, 3)
+        cc = np.array([[j0 - 1 + 0.5 + self.dc[a] + t - (col_w) for t in range(3)] for a in lays])
+        aa = np.array([wrap_angle((a0 + d + self.hoff) * self.dyaw - yaw) for d in (-1, 0, 1)])
+        R = rr[:, :, None]
+        C = cc[:, None, :]
+        Aa = aa[:, None, None]
+        box = [float((wb * R * R).sum()), float((wb * C * C).sum()), float((wb * Aa * Aa).sum()),
+               float((wb * R * C).sum()), float((wb * R * Aa).sum()), float((wb * C * Aa).sum())]
+        det = hrr * hcc - hrc * hrc
+        if det > 0 and hrr < 0:
+            lrr, lcc, lrc = -hcc / det, -hrr / det, hrc / det  # -inverse of the 2x2 Hessian (cells^2)
+            if max(lrr, lcc) < 0.5:
+                m[0] += mb * lrr - box[0]
+                m[1] += mb * lcc - box[1]
+                m[3] += mb * lrc - box[3]
+        else:
+            m[0] += 1.0 / 12.0
+            m[1] += 1.0 / 12.0
+        if haa < 0:
+            laa = -1.0 / haa  # layers^2
+            if laa < 0.5:
+                m[2] += mb * laa * self.dyaw ** 2 - box[2]
+                m[4] -= box[4]
+                m[5] -= box[5]
+        else:
+            m[2] += self.dyaw ** 2 / 12.0
 
     def _refine_peak(self, a0: int, i0: int, j0: int):
         """Sub-cell peak from a quadratic fit of the log-posterior around cell (a0, i0, j0).
@@ -510,11 +568,14 @@ class GridFilter:
         orow = min(max(orow, -1.0), 1.0)
         vm, v0, vp = float(self.bel[am, i0, j0]), float(blk[1, 1]), float(self.bel[ap, i0, j0])
         oa = 0.0
+        haa = 0.0
         if vm > 0.0 and vp > 0.0:
             lm, l0, lp = math.log(vm), math.log(v0), math.log(vp)
             den = lm - 2.0 * l0 + lp
             if den < 0.0:
                 oa = min(max(0.5 * (lm - lp) / den, -1.0), 1.0)
+                haa = den
+        self._hess = (hyy, hxx, hxy, haa)  # d2/drow2, d2/dcol2, d2/drow dcol, d2/dlayer2 of log bel
         return i0 + 0.5 + self.dr[a0] + orow, j0 + 0.5 + self.dc[a0] + oc, oa * self.dyaw
 
     def _modes(self) -> list:
@@ -583,6 +644,7 @@ class Tracker:
         self._since_verify = 0
         self._gnss_disagree_s = 0.0
         self._gnss_xy = None  # last usable fix (x, y, sigma, t)
+        self._ambig = None  # (x, y, yaw, weight) of a competing pose found by the last global check
         self.last = None
         self._clock.reset()
         self.counters = {"global_searches": 0, "lost": 0, "recovered": 0, "odometry_jumps": 0,
@@ -681,6 +743,8 @@ class Tracker:
                 f.recentre(est.x, est.y)
         f.add_floor()
         self.last = est
+        if self._ambig is not None and self.state != "searching":
+            est = self._with_alternative(est)
         return self._output(t, self.state, notes, est, surprise, is_global and vol is not None)
 
     # ---- internals ------------------------------------------------------------------------------
@@ -743,33 +807,59 @@ class Tracker:
             np.multiply(np.log1p(d2), -0.5 * (nu + 2.0) * p.gnss.weight_search, out=sc)
             sc += m2
             score = sc
-        k = int(np.argmax(score))
-        bi, bj = divmod(k, W)
-        bx, by = self.geom.xy_of(vol.row0 + bi + 0.5, vol.col0 + bj + 0.5)
-        if self.state == "searching":
-            if self._far_from_window(bx, by):
+        if self.state == "searching" or self.last is None:
+            k = int(np.argmax(score))
+            bi, bj = divmod(k, W)
+            bx, by = self.geom.xy_of(vol.row0 + bi + 0.5, vol.col0 + bj + 0.5)
+            if self.state == "searching" and self._far_from_window(bx, by):
                 f.recentre(bx, by)
                 notes.append("search moved")
             return
         est = self.last
-        if est is None:
-            return
         er, ec = self.geom.cell_of(est.x, est.y)
-        rad = max(1, int(round(2.0 / self.geom.res_m)))
         i0, j0 = int(er - vol.row0), int(ec - vol.col0)
-        lo_i, hi_i = max(0, i0 - rad), min(H, i0 + rad + 1)
-        lo_j, hi_j = max(0, j0 - rad), min(W, j0 + rad + 1)
-        here = float(score[lo_i:hi_i, lo_j:hi_j].max()) if lo_i < hi_i and lo_j < hi_j else -np.inf
-        far = math.hypot(bx - est.x, by - est.y) >= 5.0
-        if far and float(score[bi, bj]) - here > p.switch_margin:
+        here = -np.inf
+        rad = max(1, int(round(2.0 / self.geom.res_m)))
+        lo_i, hi_i, lo_j, hi_j = max(0, i0 - rad), min(H, i0 + rad + 1), max(0, j0 - rad), min(W, j0 + rad + 1)
+        if lo_i < hi_i and lo_j < hi_j:
+            here = float(score[lo_i:hi_i, lo_j:hi_j].max())
+        rad = int(round(5.0 / self.geom.res_m))  # "elsewhere" is 5 m or more away
+        lo_i, hi_i, lo_j, hi_j = max(0, i0 - rad), min(H, i0 + rad + 1), max(0, j0 - rad), min(W, j0 + rad + 1)
+        if lo_i < hi_i and lo_j < hi_j:
+            score[lo_i:hi_i, lo_j:hi_j] = -np.inf
+        k = int(np.argmax(score))
+        bi, bj = divmod(k, W)
+        alt = float(score[bi, bj])
+        bx, by = self.geom.xy_of(vol.row0 + bi + 0.5, vol.col0 + bj + 0.5)
+        d = math.hypot(bx - est.x, by - est.y)
+        gap = alt - here
+        if gap > p.switch_margin:
             self._votes += 1
-            notes.append(f"check: better pose {math.hypot(bx - est.x, by - est.y):.0f} m away "
-                         f"({self._votes}/{p.switch_votes})")
+            self._ambig = None
+            notes.append(f"check: better pose {d:.0f} m away ({self._votes}/{p.switch_votes})")
             if self._votes >= p.switch_votes:
                 self._lose(notes, "global check found a better pose elsewhere")
                 f.reset(bx, by)
+            return
+        self._votes = 0
+        if gap > -p.ambiguity_margin:
+            # a pose elsewhere explains the frame about as well: report it, do not pretend to know
+            w = 1.0 / (1.0 + math.exp(-gap))
+            yaw = float(vol.yaw0_rad + int(np.argmax(vol.loglik[:, bi, bj])) * vol.dyaw_rad)
+            self._ambig = (bx, by, wrap_angle(yaw), w)
+            notes.append(f"ambiguous: a similar pose {d:.0f} m away")
         else:
-            self._votes = 0
+            self._ambig = None
+
+    def _with_alternative(self, est: FilterEstimate) -> FilterEstimate:
+        """The estimate with the competing pose of the last global check folded into modes and covariance."""
+        ax, ay, ayaw, w = self._ambig
+        d = np.array([ax - est.x, ay - est.y, float(wrap_angle(ayaw - est.yaw))])
+        cov = est.cov + w * np.outer(d, d)  # second moment about the reported pose of the two-pose mixture
+        modes = [(m[0], m[1], m[2], m[3] * (1.0 - w)) for m in est.modes] + [(ax, ay, ayaw, w)]
+        modes.sort(key=lambda m: -m[3])
+        return FilterEstimate(est.x, est.y, est.yaw, cov, modes[:max(self.p.top_modes, 2)], est.peak_mass,
+                              est.sigma_xy_m, est.sigma_yaw_rad)
 
     def _m2_for(self, H, W):
         b = getattr(self, "_gm2", None)
@@ -789,6 +879,7 @@ class Tracker:
         self._converge = 0
         self._votes = 0
         self._surprised = 0
+        self._ambig = None
         notes.append(f"lost: {why}")
 
     def _decide(self, est: FilterEstimate, notes) -> None:
@@ -809,11 +900,12 @@ class Tracker:
             self._lose(notes, f"{self._surprised} frames disagree with the belief")
             return
         degraded = (not ok_sigma or self._no_update >= p.degraded_frames
-                    or self._gnss_disagree_s >= p.gnss.disagree_s)
+                    or self._gnss_disagree_s >= p.gnss.disagree_s or self._ambig is not None)
         if degraded:
             if self.state != "degraded":
                 why = ("uncertainty grew" if not ok_sigma else
-                       "no usable frames" if self._no_update >= p.degraded_frames else "satellite fix disagrees")
+                       "no usable frames" if self._no_update >= p.degraded_frames else
+                       "ambiguous" if self._ambig is not None else "satellite fix disagrees")
                 notes.append(f"degraded: {why}")
             self.state = "degraded"
         else:

@@ -1,0 +1,220 @@
+"""Tracker behaviour over time on planted likelihoods: lock-on, honest covariance, ambiguity, kidnapping, gaps.
+
+The likelihood volumes here are planted (a Gaussian around a noisy measurement of the true pose, with
+a floor and noise away from it, like a correlation surface), so these tests check the filter and its
+lost/recovered logic on their own; the end-to-end figures with real frames live in the demo and the
+benchmarks.
+"""
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from tinyloc.frames import relative2, wrap_angle
+from tinyloc.track import LikelihoodVolume, MapGeometry, TrackParams, Tracker
+
+GEOM = MapGeometry(0.0, 400.0, 0.5)
+CHI2_95_3DOF = stats.chi2.ppf(0.95, 2)  # 5.991 for the position ellipse (2 degrees of freedom)
+
+
+class PlantedMatcher:
+    """Correlation-like volumes: a peak at a noisy measurement of the truth, noise and a floor elsewhere."""
+
+    def __init__(self, rng, *, sigma_m=0.6, sigma_yaw=0.03, headings=64, floor=-9.0, noise=0.3,
+                 global_cells=160, track_cells=48, second_mode=None):
+        self.rng = rng
+        self.sx, self.syaw, self.A = sigma_m, sigma_yaw, headings
+        self.floor, self.noise = floor, noise
+        self.gc, self.tc = global_cells, track_cells
+        self.truth = (0.0, 0.0, 0.0)
+        self.second_mode = second_mode  # offset (dx, dy) of an equally good ghost pose
+
+    def _vol(self, cx, cy, n):
+        r, c = GEOM.cell_of(cx, cy)
+        row0, col0 = int(r) - n // 2, int(c) - n // 2
+        tx, ty, tyaw = self.truth
+        mx, my = tx + self.rng.normal(0, self.sx), ty + self.rng.normal(0, self.sx)
+        myaw = tyaw + self.rng.normal(0, self.syaw)
+        a = np.arange(self.A) * 2 * math.pi / self.A
+        da = np.angle(np.exp(1j * (a - myaw)))
+        ii, jj = np.mgrid[0:n, 0:n]
+        xs, ys = GEOM.xy_of(row0 + ii + 0.5, col0 + jj + 0.5)
+        d2 = (xs - mx) ** 2 + (ys - my) ** 2
+        L = -0.5 * d2[None] / self.sx ** 2 - 0.5 * (da[:, None, None] / self.syaw) ** 2
+        if self.second_mode is not None:
+            gx, gy = mx + self.second_mode[0], my + self.second_mode[1]
+            d2g = (xs - gx) ** 2 + (ys - gy) ** 2
+            L = np.logaddexp(L, -0.5 * d2g[None] / self.sx ** 2 - 0.5 * (da[:, None, None] / self.syaw) ** 2)
+        L = np.maximum(L, self.floor) + self.rng.normal(0, self.noise, L.shape)
+        return LikelihoodVolume(L.astype(np.float32), row0, col0, 0.0, 2 * math.pi / self.A)
+
+    def global_search(self, x, y):
+        return self._vol(x, y, self.gc)
+
+    def track(self, x, y, yaw):
+        return self._vol(x, y, self.tc)
+
+
+def _params(**kw):
+    return TrackParams(window_cells=48, headings=64, **kw)
+
+
+def drive(rng, n, *, speed=1.0, dt=0.1, turn=0.05, matcher=None, kidnap_at=None, kidnap_m=50.0,
+          bad_frames=(), gnss_off=(), odo_jump_at=None, params=None, gnss_sigma=3.0, odo_noise=False):
+    """Drive a curvy path; returns per-frame (truth, output) pairs.
+
+    With ``odo_noise`` the odometry increments get random errors with exactly the variance the
+    filter's motion model assumes (so its covariance can be checked for honesty).
+    """
+    m = matcher or PlantedMatcher(rng)
+    p = params or _params()
+    tr = Tracker(GEOM, p)
+    x, y, yaw = 200.0, 200.0, 0.3
+    ox, oy, oyaw = 0.0, 0.0, 0.0  # odometry (its own frame), 1 % scale error
+    prev_odo = None
+    out = []
+    for k in range(n):
+        t = k * dt
+        w = turn * math.sin(0.05 * k)
+        x += speed * dt * math.cos(yaw)
+        y += speed * dt * math.sin(yaw)
+        yaw = wrap_angle(yaw + w * dt)
+        ox += 1.01 * speed * dt * math.cos(oyaw)
+        oy += 1.01 * speed * dt * math.sin(oyaw)
+        oyaw = wrap_angle(oyaw + w * dt)
+        if kidnap_at is not None and k == kidnap_at:
+            x += kidnap_m  # carried away: the odometry does not see it
+        cur = (ox, oy, oyaw)
+        inc = relative2(prev_odo, cur) if prev_odo is not None else None
+        if odo_noise and inc is not None:
+            d = math.hypot(inc[0], inc[1])
+            sxy = math.sqrt(p.q_xy_m2 + p.q_xy_per_m * d)
+            syaw = math.sqrt(p.q_yaw_rad2 + p.q_yaw_per_m * d + p.q_yaw_per_rad * abs(inc[2]))
+            inc = (inc[0] + rng.normal(0, sxy), inc[1] + rng.normal(0, sxy), inc[2] + rng.normal(0, syaw))
+        if odo_jump_at is not None and k == odo_jump_at:
+            inc = (25.0, 0.0, 0.0)
+        prev_odo = cur
+        m.truth = (x, y, yaw)
+        gnss = None
+        if k not in gnss_off:
+            gnss = (x + rng.normal(0, gnss_sigma), y + rng.normal(0, gnss_sigma), 1.0, t)
+        vol = None
+        glob = False
+        if k not in bad_frames:
+            if tr.wants_global():
+                c = tr.search_centre() or (x, y)
+                vol, glob = m.global_search(*c), True
+            else:
+                cx, cy, cyaw = tr.track_centre()
+                vol = m.track(cx, cy, cyaw)
+        o = tr.step(t, inc, vol, is_global=glob, gnss=gnss, frame_status="planted bad frame" if vol is None else "ok")
+        out.append(((x, y, yaw), o))
+    return tr, out
+
+
+def _err(truth, o):
+    return math.hypot(o.x - truth[0], o.y - truth[1]), abs(wrap_angle(o.yaw - truth[2]))
+
+
+def test_no_fix_until_something_arrives():
+    tr = Tracker(GEOM, _params())
+    o = tr.step(0.0, None, None, gnss=None)
+    assert o.quality == "no-fix" and math.isnan(o.x) and np.isnan(o.cov).all()
+
+
+def test_locks_on_and_tracks_accurately(rng):
+    tr, out = drive(rng, 200)
+    q = [o.quality for _, o in out]
+    first = q.index("tracking")
+    assert first < 15
+    errs = np.array([_err(t, o) for t, o in out[first + 10:]])
+    assert np.median(errs[:, 0]) < 0.3
+    assert np.median(np.degrees(errs[:, 1])) < 1.0
+    assert q[first:].count("tracking") >= 0.95 * len(q[first:])
+
+
+def test_covariance_is_honest(rng):
+    # share of frames whose position error lies inside the reported 95 % ellipse (chi-square, 2 dof: 5.991)
+    tr, out = drive(rng, 400, matcher=PlantedMatcher(rng, sigma_m=0.8, noise=0.1), odo_noise=True)
+    inside = []
+    for truth, o in out[30:]:
+        if o.quality != "tracking":
+            continue
+        d = np.array([truth[0] - o.x, truth[1] - o.y])
+        inside.append(float(d @ np.linalg.solve(o.cov[:2, :2], d)) <= CHI2_95_3DOF)
+    share = float(np.mean(inside))
+    assert len(inside) > 300
+    assert 0.85 <= share <= 0.99, share
+
+
+def test_ambiguous_frames_do_not_give_a_confident_pose(rng):
+    # every frame equally supports the truth and a ghost 12 m ahead along the street
+    m = PlantedMatcher(rng, second_mode=(12.0 * math.cos(0.3), 12.0 * math.sin(0.3)))
+    tr, out = drive(rng, 120, matcher=m, turn=0.0, gnss_off=set(range(120)))
+    last = out[-1][1]
+    assert last.quality != "tracking"
+    assert math.sqrt(last.cov[0, 0] + last.cov[1, 1]) > 4.0
+    assert len(last.modes) >= 2
+
+
+def test_kidnapped_robot_drops_quality_and_recovers_within_15_s(rng):
+    dt = 0.1
+    tr, out = drive(rng, 500, dt=dt, kidnap_at=200)
+    q = [o.quality for _, o in out]
+    assert q[199] == "tracking"
+    after = q[200:]
+    assert any(s in ("searching", "degraded") for s in after[:150]), "quality never dropped"
+    # back within 1 m within 15 s (150 frames at 10 Hz) and staying there
+    errs = [_err(t, o)[0] for t, o in out[200:]]
+    k = next(i for i in range(len(errs)) if all(e < 1.0 for e in errs[i:i + 20]))
+    assert k * dt <= 15.0, k * dt
+    assert out[-1][1].quality == "tracking"
+    assert tr.counters["lost"] >= 1
+
+
+def test_unusable_frames_degrade_then_recover(rng):
+    bad = set(range(100, 112))
+    tr, out = drive(rng, 160, bad_frames=bad)
+    q = [o.quality for _, o in out]
+    assert q[99] == "tracking"
+    assert "degraded" in q[100:112]
+    assert "planted bad frame" in out[101][1].status
+    assert q[-1] == "tracking"
+    errs = [_err(t, o)[0] for t, o in out[130:]]
+    assert max(errs) < 1.0
+
+
+def test_odometry_jump_is_ignored_and_said(rng):
+    tr, out = drive(rng, 120, odo_jump_at=80)
+    assert "odometry jump ignored" in out[80][1].status
+    assert tr.counters["odometry_jumps"] == 1
+    assert _err(*out[81])[0] < 1.0
+    assert out[-1][1].quality == "tracking"
+
+
+def test_gnss_outage_keeps_tracking(rng):
+    tr, out = drive(rng, 200, gnss_off=set(range(60, 200)))
+    q = [o.quality for _, o in out[60:]]
+    assert q.count("tracking") >= 0.95 * len(q)
+    assert max(_err(t, o)[0] for t, o in out[80:]) < 1.0
+
+
+def test_wild_gnss_does_not_drag_a_confident_belief(rng):
+    # the fixes jump 25 m sideways for 3 s (multipath); the tracked pose must not follow
+    m = PlantedMatcher(rng)
+    tr = Tracker(GEOM, _params())
+    x, y, yaw = 200.0, 200.0, 0.0
+    worst = 0.0
+    for k in range(150):
+        t = 0.1 * k
+        x += 0.1
+        m.truth = (x, y, yaw)
+        g = (x, y + (25.0 if 80 <= k < 110 else 0.0) + rng.normal(0, 1), 1.0, t)
+        glob = tr.wants_global()
+        vol = m.global_search(*(tr.search_centre() or (x, y))) if glob else m.track(*tr.track_centre())
+        o = tr.step(t, (0.1, 0.0, 0.0) if k else None, vol, is_global=glob, gnss=g)
+        if k >= 80:
+            worst = max(worst, math.hypot(o.x - x, o.y - y))
+    assert worst < 1.0
