@@ -1,0 +1,205 @@
+"""Overhead projection: geometry against OpenCV's homography tools, kernels against NumPy references.
+
+References: for an undistorted pinhole camera, ground plane -> image is a homography; we build it with
+cv2.getPerspectiveTransform from four ground points projected by cv2.projectPoints, and compare our
+pixel -> ground mapping (cv2.perspectiveTransform) and our per-cell bilinear gather (cv2.warpPerspective
+with WARP_INVERSE_MAP) with it. With distortion, cv2.projectPoints itself is the reference.
+"""
+
+import math
+
+import cv2
+import numpy as np
+import pytest
+
+from tinyloc.camera.model import CameraModel, Mount
+from tinyloc.classes import BUILDING, NUM_CLASSES, ROAD, SIDEWALK, TREE
+from tinyloc.frames import rot_x, rot_y
+from tinyloc.perception import _kernels as K
+from tinyloc.perception.gravity import horizon_rows_reference, level_from_base
+from tinyloc.perception.overhead import IS_GROUND, TO_MAP, OverheadParams, OverheadProjector
+
+
+def _cam(dist=(0.0,) * 5, mount=Mount(0.8, 10.0, 0.0, 0.0, 0.0, 0.0)):
+    return CameraModel(160, 120, 125.0, 124.0, 79.5, 60.2, tuple(dist), mount)
+
+
+def _project_cv(cam, pts_base):
+    r_bc, t_bc = cam.mount.base_from_camera()
+    rvec, _ = cv2.Rodrigues(r_bc.T)
+    uv, _ = cv2.projectPoints(np.asarray(pts_base, float), rvec, -r_bc.T @ t_bc, cam.K, cam.dist_array)
+    return uv.reshape(-1, 2)
+
+
+@pytest.mark.parametrize("mount", [Mount(0.8, 10.0), Mount(0.5, 4.0, 1.0, 3.0, 0.2, -0.1), Mount(1.4, 22.0)])
+def test_pixel_to_ground_matches_homography(mount):
+    cam = _cam(mount=mount)
+    proj = OverheadProjector(cam)
+    ground = np.array([[3.0, -2.0, 0], [3.0, 2.0, 0], [12.0, -4.0, 0], [12.0, 4.0, 0]])
+    uv = _project_cv(cam, ground)
+    h = cv2.getPerspectiveTransform(uv.astype(np.float32), ground[:, :2].astype(np.float32))
+    rng = np.random.default_rng(3)
+    pts = np.stack([rng.uniform(2.0, 10.0, 200), rng.uniform(-3.0, 3.0, 200), np.zeros(200)], 1)
+    pix = _project_cv(cam, pts)
+    ok = (pix[:, 0] > 0) & (pix[:, 0] < cam.width - 1) & (pix[:, 1] > 0) & (pix[:, 1] < cam.height - 1)
+    ours = proj.pixel_to_ground(pix[ok])
+    ref = cv2.perspectiveTransform(pix[ok].reshape(-1, 1, 2), h).reshape(-1, 2)
+    # float32 homography: its own rounding is ~1e-4 m at 10 m; the goal is 1 cm.
+    assert ok.sum() > 100
+    assert np.max(np.hypot(*(ours - ref).T)) < 0.01
+    assert np.max(np.hypot(*(ours - pts[ok, :2]).T)) < 1e-6  # and the exact truth
+
+
+def test_cell_lookup_matches_projectpoints_with_distortion():
+    cam = _cam(dist=(-0.2, 0.05, 0.001, -0.0005, 0.0))
+    proj = OverheadProjector(cam)
+    ref = _project_cv(cam, proj.cells)
+    ok = np.isfinite(proj.lut_u)
+    assert ok.sum() > 500
+    err = np.hypot(proj.lut_u[ok] - ref[ok, 0], proj.lut_v[ok] - ref[ok, 1])
+    assert np.max(err) < 1e-6
+    # every cell that is in view for OpenCV and within the undistorted field is in our lookup
+    inside = (ref[:, 0] >= 0) & (ref[:, 0] <= cam.width - 1) & (ref[:, 1] >= 0) & (ref[:, 1] <= cam.height - 1)
+    assert np.all(ok[inside & (proj.cells[:, 0] > 1.0)])
+
+
+def test_ground_gather_matches_warpperspective():
+    cam = _cam()
+    p = OverheadParams(max_range_m=50.0)
+    proj = OverheadProjector(cam, p)
+    grid = p.new_grid()
+    h_img, w_img = cam.height, cam.width
+    yy, xx = np.mgrid[0:h_img, 0:w_img]
+    smooth = (0.5 + 0.25 * np.sin(xx / 9.0) + 0.2 * np.cos(yy / 7.0)).astype(np.float32)
+    probs = np.zeros((NUM_CLASSES, h_img, w_img), np.float32)
+    probs[ROAD] = smooth
+    labels = np.full((h_img, w_img), ROAD, np.uint8)
+    hrow = proj.horizon(np.eye(3))
+    proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    # Homography BEV cell (col, row) -> pixel, from four cell centres projected by OpenCV.
+    cells = np.array([[6.5, 20.5], [6.5, 44.5], [40.5, 10.5], [40.5, 54.5]])  # (col, row)
+    body = np.stack([(cells[:, 0] - p.origin_col) * p.res_m, (p.origin_row - cells[:, 1]) * p.res_m,
+                     np.zeros(4)], 1)
+    uv = _project_cv(cam, body)
+    hm = cv2.getPerspectiveTransform((cells - 0.5).astype(np.float32), uv.astype(np.float32))
+    warped = cv2.warpPerspective(smooth, hm, (p.cols, p.rows), flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP,
+                                 borderMode=cv2.BORDER_CONSTANT, borderValue=-1.0)
+    seen = grid.visible > 0
+    both = seen & (warped >= 0)
+    assert both.sum() > 800
+    assert np.max(np.abs(grid.evidence[ROAD][both] - warped[both])) < 0.01  # OpenCV's 5-bit bilinear weights
+    assert np.max(np.abs(grid.free[seen] - np.minimum(grid.evidence[ROAD][seen], 1.0))) < 1e-6
+
+
+def _gather_reference(probs, labels, pu, pv, rng_m, max_range, hrow, grid_shape):
+    """Plain-loop reference of the ground gather."""
+    C, h, w = probs.shape
+    ev = np.zeros((9,) + grid_shape, np.float32)
+    free = np.zeros(grid_shape, np.float32)
+    vis = np.zeros(grid_shape, np.float32)
+    for n in range(grid_shape[0] * grid_shape[1]):
+        u, v = pu[n], pv[n]
+        if not (np.isfinite(u) and 0 <= u <= w - 1 and 0 <= v <= h - 1) or rng_m[n] > max_range:
+            continue
+        iu, iv = int(u + 0.5), int(v + 0.5)
+        if iv <= hrow[iu] or not IS_GROUND[labels[iv, iu]]:
+            continue
+        r, c = divmod(n, grid_shape[1])
+        j0, i0 = min(int(u), w - 2), min(int(v), h - 2)
+        fu, fv = u - j0, v - i0
+        samp = ((1 - fu) * (1 - fv) * probs[:, i0, j0] + fu * (1 - fv) * probs[:, i0, j0 + 1]
+                + (1 - fu) * fv * probs[:, i0 + 1, j0] + fu * fv * probs[:, i0 + 1, j0 + 1])
+        for k in range(C):
+            if IS_GROUND[k] and TO_MAP[k] >= 0:
+                ev[TO_MAP[k], r, c] = samp[k]
+        free[r, c] = min(sum(samp[k] for k in range(C) if IS_GROUND[k]), 1.0)
+        vis[r, c] = 1
+    return ev, free, vis
+
+
+def test_ground_gather_kernel_vs_reference(rng):
+    cam = _cam(dist=(-0.1, 0.01, 0, 0, 0))
+    p = OverheadParams(rows=32, cols=32, res_m=0.5, origin_row=16.0)
+    proj = OverheadProjector(cam, p)
+    probs = rng.random((NUM_CLASSES, cam.height, cam.width)).astype(np.float32)
+    probs /= probs.sum(axis=0, keepdims=True)
+    labels = probs.argmax(axis=0).astype(np.uint8)
+    hrow = proj.horizon(np.eye(3))
+    grid = p.new_grid()
+    K.ground_gather(probs, labels, proj.lut_u, proj.lut_v, proj.cell_range, p.max_range_m, IS_GROUND, TO_MAP,
+                    hrow, grid.evidence, grid.free, grid.visible)
+    ev, free, vis = _gather_reference(probs, labels, proj.lut_u, proj.lut_v, proj.cell_range, p.max_range_m,
+                                      hrow, (32, 32))
+    assert vis.sum() > 50
+    assert np.max(np.abs(grid.evidence - ev)) < 1e-5
+    assert np.max(np.abs(grid.free - free)) < 1e-5
+    assert np.array_equal(grid.visible, vis)
+
+
+def test_vertical_contact_range():
+    """A wall whose foot is at row 80 in every column lands where the ray through the row edge meets the ground."""
+    cam = _cam()
+    p = OverheadParams(vertical_depth_m=0.0)
+    proj = OverheadProjector(cam, p)
+    h, w = cam.height, cam.width
+    labels = np.full((h, w), ROAD, np.uint8)
+    labels[40:81] = BUILDING
+    probs = np.zeros((NUM_CLASSES, h, w), np.float32)
+    probs[BUILDING][labels == BUILDING] = 1.0
+    probs[ROAD][labels == ROAD] = 1.0
+    grid = p.new_grid()
+    hrow = proj.horizon(np.eye(3))
+    feet = proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert feet == w  # every column finds the wall's foot within range
+    # The foot: halfway between pixel centres 80 and 81 (one-hot probabilities cross 0.5 there).
+    gp = proj.pixel_to_ground(np.stack([np.arange(w), np.full(w, 80.5)], 1))
+    rows, cols = grid.cell_of(gp[:, 0], gp[:, 1])
+    expect = np.zeros((p.rows, p.cols), bool)
+    for r, c in zip(np.floor(rows).astype(int), np.floor(cols).astype(int)):
+        if 0 <= r < p.rows and 0 <= c < p.cols:
+            expect[r, c] = True
+    got = grid.evidence[BUILDING] > 0
+    assert np.array_equal(got, expect)
+    assert np.all(grid.free[got] == 0) and np.all(grid.visible[got] == 1)
+    # Nothing is seen behind the wall.
+    assert grid.evidence[TREE].sum() == 0 and grid.evidence[SIDEWALK].sum() == 0
+
+
+def test_horizon_kernel_vs_reference():
+    cam = _cam(dist=(-0.15, 0.02, 0, 0, 0), mount=Mount(0.8, 6.0, 2.0))
+    proj = OverheadProjector(cam)
+    for f in [(0.0, 0.0, 9.81), (-1.0, 0.5, 9.7), (0.8, -0.3, 9.75)]:
+        lv, st = level_from_base(f)
+        assert st == "ok"
+        got = proj.horizon(lv).copy()
+        ref = horizon_rows_reference(cam, lv)
+        assert np.max(np.abs(got - ref)) < 1e-9
+
+
+def test_level_from_base_recovers_tilt():
+    g = 9.81
+    pitch, roll = math.radians(7.0), math.radians(-4.0)
+    r_true = rot_y(pitch) @ rot_x(roll)
+    f_base = r_true.T @ np.array([0.0, 0.0, g])  # what the accelerometer reads on the tilted base
+    lv, st = level_from_base(f_base)
+    assert st == "ok" and np.max(np.abs(lv - r_true)) < 1e-12
+    assert np.allclose(lv @ f_base, [0, 0, g])
+    for bad, why in [((np.nan, 0, 9.8), "not finite"), ((0, 0, 0.1), "not near 1 g"),
+                     ((9.81 * math.sin(math.radians(50)), 0, 9.81 * math.cos(math.radians(50))), "tilted")]:
+        lv, st = level_from_base(bad)
+        assert st.startswith("bad-gravity") and why in st and np.array_equal(lv, np.eye(3))
+    assert level_from_base(None)[1] == "no-imu"
+
+
+def test_tilted_lookup_equals_remounted_camera():
+    """A base pitched up by 5 deg under a 12 deg-down mount sees the ground as a level base with a 7 deg mount
+    (and the camera centre rotated with the base about the base origin)."""
+    cam = _cam(mount=Mount(0.8, 12.0))
+    proj = OverheadProjector(cam)
+    lv = rot_y(math.radians(-5.0))  # level_from_base of a base pitched 5 deg up (nose up)
+    pu, pv = proj.lookup(lv, tilted=True)
+    c = lv @ np.array([0.0, 0.0, 0.8])
+    ref = OverheadProjector(cam.with_mount(pitch_deg=7.0, x_m=c[0], height_m=c[2]))
+    ok = np.isfinite(ref.lut_u)
+    assert ok.sum() > 300
+    assert np.nanmax(np.abs(pu[ok] - ref.lut_u[ok])) < 1e-6 and np.nanmax(np.abs(pv[ok] - ref.lut_v[ok])) < 1e-6
