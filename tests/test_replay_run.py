@@ -169,6 +169,8 @@ def test_batch_goes_on_after_a_failing_run(site, tmp_path, capsys):
     assert [s["error"] is None for s in summary] == [True, False, True]
     assert (out / "loop-a" / "report.html").is_file() and (out / "loop-gaps" / "metrics.json").is_file()
     assert summary[0]["frames"] == 40 and summary[2]["frames"] == 39
+    index = (out / "index.html").read_text()
+    assert "href='loop-a/report.html'" in index and "failed:" in index
 
 
 def test_folder_of_runs_and_map_named_by_run_json(site, tmp_path, capsys):

@@ -25,8 +25,8 @@ For each run the output folder gets:
                  recall curves, uncertainty calibration, the worst frames, the gaps found
 
 Several runs (or a folder of run folders) are replayed in parallel, one process per
-core, each into OUT/<run name>/, with a summary table (OUT/summary.json too). A run
-that fails is reported and the others go on.
+core, each into OUT/<run name>/, with a summary table (OUT/summary.json, and
+OUT/index.html linking every report). A run that fails is reported and the others go on.
 
 Without --map, a run's own map is used if its run.json names one ("map": path,
 relative to the run folder); otherwise the run is replayed without a map, which only
@@ -131,6 +131,9 @@ def run(args) -> int:
         out.mkdir(parents=True, exist_ok=True)
         summary = [{k: v for k, v in r.items() if k != "metrics"} for r in rows]
         (out / "summary.json").write_text(json.dumps(summary, indent=1, allow_nan=False) + "\n", encoding="utf-8")
+        from ..replay.report import write_index
+
+        write_index(out / "index.html", rows)
     if args.json:
         if single:
             print(json.dumps(rows[0]["metrics"], allow_nan=False))

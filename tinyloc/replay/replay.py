@@ -15,6 +15,8 @@ differs from the map's), otherwise the run's own origin.
 
 from __future__ import annotations
 
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 import math
 import time
@@ -43,6 +45,8 @@ class ReplayParams:
         When a pause in a stream is reported as a gap.
     worst_frames : int
         How many of the worst frames the report shows.
+    prefetch : int
+        Frames decoded ahead on a helper thread (0: decode in line).
     max_frames : int or None
         Stop after this many frames (None: the whole run).
     """
@@ -51,6 +55,7 @@ class ReplayParams:
     gaps: GapParams = field(default_factory=GapParams)
     worst_frames: int = 4
     max_frames: int | None = None
+    prefetch: int = 2
 
 
 @dataclass
@@ -159,40 +164,70 @@ def prepare_records(rf: RunFolder, world: LocalFrame | None, params: ReplayParam
     return rec
 
 
+def _load(rf: RunFolder, i: int):
+    try:
+        return rf.load_frame(i), ""
+    except (RunFolderError, OSError) as e:
+        return None, str(e)
+
+
 def drive(rf: RunFolder, localizer: Localizer, rec: FrameRecords, *,
-          progress: Callable[[int, int], None] | None = None) -> None:
-    """Step ``localizer`` through every frame of ``rec`` and fill its estimate columns in place."""
+          progress: Callable[[int, int], None] | None = None, prefetch: int = 2) -> None:
+    """Step ``localizer`` through every frame of ``rec`` and fill its estimate columns in place.
+
+    Parameters
+    ----------
+    prefetch : int
+        Frames decoded ahead on a helper thread while the loop works (image decoding releases
+        the GIL, so it overlaps with the loop); 0 decodes in line. Memory: ``prefetch + 1`` images.
+    """
     imu, odo, gnss = _Slicer(rf.imu), _Slicer(rf.odometry), _Slicer(rf.gnss)
     n = rec.n
-    for i in range(n):
-        t = float(rec.t[i])
-        fault = ""
-        try:
-            image = rf.load_frame(i)
-        except (RunFolderError, OSError) as e:
-            image, fault = None, str(e)
-        frame = ReplayFrame(i, t, image, fault, imu.upto(t), odo.upto(t), gnss.upto(t))
-        t0 = time.perf_counter()
-        pose = localizer.step(frame)
-        wall_ms = (time.perf_counter() - t0) * 1e3
-        rec.x[i], rec.y[i], rec.yaw[i] = _pose_f(pose, "x"), _pose_f(pose, "y"), _pose_f(pose, "yaw")
-        rec.lat[i], rec.lon[i] = _pose_f(pose, "lat"), _pose_f(pose, "lon")
-        cov = getattr(pose, "cov", None)
-        if cov is not None:
-            c = np.asarray(cov, dtype=np.float64)
-            if c.shape == (3, 3):
-                rec.cov[i] = c
-        q = str(getattr(pose, "quality", "no-fix"))
-        rec.quality[i] = q if q in M.QUALITIES else "no-fix"
-        if rec.quality[i] == "no-fix":
-            # A no-fix pose is not an estimate, whatever numbers it carries.
-            rec.x[i] = rec.y[i] = rec.yaw[i] = math.nan
-        fms = _pose_f(pose, "frame_ms")
-        rec.frame_ms[i] = fms if math.isfinite(fms) else wall_ms
-        status = str(getattr(pose, "status", "") or "")
-        rec.status[i] = (f"image unreadable; {status}" if fault else status)[:200]
-        if progress is not None:
-            progress(i + 1, n)
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="replay-decode") if prefetch > 0 else None
+    ahead: deque = deque()
+    nxt = 0
+    try:
+        for i in range(n):
+            if pool is None:
+                image, fault = _load(rf, i)
+            else:
+                while nxt < n and nxt <= i + prefetch:
+                    ahead.append(pool.submit(_load, rf, nxt))
+                    nxt += 1
+                image, fault = ahead.popleft().result()
+            _step(localizer, rf, rec, i, image, fault, imu, odo, gnss)
+            if progress is not None:
+                progress(i + 1, n)
+    finally:
+        if pool is not None:
+            for f in ahead:
+                f.cancel()
+            pool.shutdown(wait=True)
+
+
+def _step(localizer, rf, rec, i, image, fault, imu, odo, gnss) -> None:
+    """One frame: hand it to the localizer, put its pose into the records."""
+    t = float(rec.t[i])
+    frame = ReplayFrame(i, t, image, fault, imu.upto(t), odo.upto(t), gnss.upto(t))
+    t0 = time.perf_counter()
+    pose = localizer.step(frame)
+    wall_ms = (time.perf_counter() - t0) * 1e3
+    rec.x[i], rec.y[i], rec.yaw[i] = _pose_f(pose, "x"), _pose_f(pose, "y"), _pose_f(pose, "yaw")
+    rec.lat[i], rec.lon[i] = _pose_f(pose, "lat"), _pose_f(pose, "lon")
+    cov = getattr(pose, "cov", None)
+    if cov is not None:
+        c = np.asarray(cov, dtype=np.float64)
+        if c.shape == (3, 3):
+            rec.cov[i] = c
+    q = str(getattr(pose, "quality", "no-fix"))
+    rec.quality[i] = q if q in M.QUALITIES else "no-fix"
+    if rec.quality[i] == "no-fix":
+        # A no-fix pose is not an estimate, whatever numbers it carries.
+        rec.x[i] = rec.y[i] = rec.yaw[i] = math.nan
+    fms = _pose_f(pose, "frame_ms")
+    rec.frame_ms[i] = fms if math.isfinite(fms) else wall_ms
+    status = str(getattr(pose, "status", "") or "")
+    rec.status[i] = (f"image unreadable; {status}" if fault else status)[:200]
 
 
 def worst_frames(rec: FrameRecords, k: int) -> list[int]:
@@ -241,7 +276,7 @@ def replay_run(run, localizer_factory: Callable[[RunFolder], Localizer], *, worl
     rec = prepare_records(rf, world, params)
     loc = localizer_factory(rf)
     t0 = time.perf_counter()
-    drive(rf, loc, rec, progress=progress)
+    drive(rf, loc, rec, progress=progress, prefetch=params.prefetch)
     wall = time.perf_counter() - t0
     unreadable = [f"frame {i} ({rec.file[i]}): image unreadable" for i in range(rec.n)
                   if str(rec.status[i]).startswith("image unreadable")]

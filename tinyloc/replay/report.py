@@ -624,3 +624,35 @@ def write_run_report(path, res, *, packed=None, use_matplotlib: bool = True) -> 
     return write_report(path, res.metrics, res.records, title=f"tinyloc replay: {res.name}", backdrop=backdrop,
                         backdrop_note=why, worst_frames=worst, gaps=res.gaps, notes=notes,
                         use_matplotlib=use_matplotlib)
+
+
+def write_index(path, rows: list[dict], *, title: str = "tinyloc replay: summary") -> Path:
+    """A summary page for a batch: one row per run, linking to each run's report (relative links)."""
+    path = Path(path)
+    cols = [("frames", "frames", "{}"), ("recall_1m_3deg", "recall 1 m / 3 deg", "{:.3f}"),
+            ("median_error_m", "median error (m)", "{:.3f}"), ("p90_error_m", "p90 error (m)", "{:.3f}"),
+            ("median_heading_error_deg", "median heading error (deg)", "{:.2f}"),
+            ("gnss_median_error_m", "GNSS median error (m)", "{:.3f}"),
+            ("dr_median_error_m", "dead reckoning median error (m)", "{:.3f}"),
+            ("inside_95_ellipse", "inside 95 % ellipse", "{:.3f}"), ("first_good_fix_s", "first good fix (s)", "{:.2f}"),
+            ("lost_spells", "lost spells", "{}"), ("gaps", "gaps", "{}"), ("frame_ms_median", "frame ms (median)",
+                                                                          "{:.2f}")]
+    out = [f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
+           f"<style>{CSS}</style></head><body><h1>{html.escape(title)}</h1><table><tr><th>run</th>" +
+           "".join(f"<th>{html.escape(h)}</th>" for _, h, _ in cols) + "</tr>"]
+    for r in rows:
+        name = html.escape(Path(r["run"]).name or r["run"])
+        if r.get("error"):
+            out.append(f"<tr><th>{name}</th><td colspan='{len(cols)}' class='verdict-bad'>failed: "
+                       f"{html.escape(r['error'])}</td></tr>")
+            continue
+        link = name
+        if r.get("out_dir") and (Path(r["out_dir"]) / "report.html").is_file():
+            rel = Path(r["out_dir"]).resolve().relative_to(path.parent.resolve()) / "report.html"
+            link = f"<a href='{html.escape(rel.as_posix())}'>{name}</a>"
+        cells = "".join(f"<td class='num'>{'n/a' if r.get(k) is None else html.escape(f.format(r[k]))}</td>"
+                        for k, _, f in cols)
+        out.append(f"<tr><th>{link}</th>{cells}</tr>")
+    out.append("</table><p style='font-size:12px'>Definitions: docs/replay.md.</p></body></html>")
+    path.write_text("\n".join(out), encoding="utf-8")
+    return path
