@@ -1,0 +1,168 @@
+"""Pose extraction: modes by non-maximum suppression, and sub-cell / sub-heading refinement.
+
+A :class:`Mode` is in window terms: ``row``, ``col`` are continuous window cell
+indices of the robot origin's cell (the robot sits at the centre of cell
+(round(row), round(col)) when the fractional part is 0; add 0.5 for continuous
+cell coordinates), ``heading`` a continuous heading index (yaw = heading * 2 pi / A).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import _kernels as K
+
+
+@dataclass(frozen=True)
+class Mode:
+    """One likelihood mode.
+
+    Attributes
+    ----------
+    row, col : float
+        Refined window cell (sub-cell).
+    heading : float
+        Refined heading index (sub-step), in [0, A).
+    loglik : float
+        Log-likelihood at the refined pose (parabolic peak value; tempered, up to a constant).
+    cell : (int, int, int)
+        The integer (heading, row, col) the refinement started from.
+    """
+
+    row: float
+    col: float
+    heading: float
+    loglik: float
+    cell: tuple[int, int, int]
+
+
+class PeakWork:
+    """Preallocated buffers for non-maximum suppression."""
+
+    def __init__(self, shape, kmax: int = 64):
+        self.work = np.zeros(shape, np.float32)
+        self.i = np.zeros(kmax, np.int64)
+        self.j = np.zeros(kmax, np.int64)
+        self.a = np.zeros(kmax, np.int64)
+        self.v = np.zeros(kmax, np.float64)
+
+    @property
+    def nbytes(self) -> int:
+        return self.work.nbytes + 4 * self.i.nbytes
+
+
+def find_modes(best, best_a, pw: PeakWork, scale: int, k: int, radius_cells: int, radius_headings: int,
+               n_headings_level: int) -> list[Mode]:
+    """Top-k modes of a heading-max profile (non-maximum suppression in x, y and heading).
+
+    Returned modes carry integer cells of the profile's level (``scale`` 1 or 2).
+    """
+    k = min(k, pw.i.shape[0])
+    n = K.nms_profile(best, best_a, n_headings_level, k, radius_cells, radius_headings, pw.work, pw.i, pw.j, pw.a,
+                      pw.v)
+    return [Mode(float(pw.i[m]), float(pw.j[m]), float(pw.a[m]), float(pw.v[m]),
+                 (int(pw.a[m]), int(pw.i[m]), int(pw.j[m]))) for m in range(n)]
+
+
+def _parabola(sm, s0, sp):
+    """Vertex offset (in steps, clipped to +-0.5) and value of the parabola through three samples."""
+    den = sm - 2.0 * s0 + sp
+    if not np.isfinite(den) or den >= 0.0:
+        return 0.0, s0
+    off = 0.5 * (sm - sp) / den
+    off = max(-0.5, min(0.5, off))
+    return off, s0 - 0.25 * (sm - sp) * off
+
+
+def refine_mode(refiner, feat, G, m: Mode, inv_temp, p, *, hill_climb: bool) -> Mode:
+    """Exact full-resolution refinement of a mode.
+
+    With ``hill_climb`` the mode comes from the 2x-coarse level: its four full cells
+    and three full headings are scored, then the pose climbs the 3 x 3 x 3
+    neighbourhood (exact scores) to a local maximum. Finally a parabola through the
+    neighbours in row, col and heading gives the sub-cell, sub-step pose.
+    """
+    A = p.n_headings
+    H, W = p.window_shape
+    cache = {}
+
+    def score(a, i, j):
+        a %= A
+        key = (a, i, j)
+        if key not in cache:
+            if 0 <= i < H and 0 <= j < W:
+                cache[key] = refiner.scores(feat, G, a, [(i, j)], inv_temp)[0]
+            else:
+                cache[key] = -np.inf
+        return cache[key]
+
+    def score_block(a, cells):
+        a %= A
+        todo = [(i, j) for i, j in cells if (a, i, j) not in cache and 0 <= i < H and 0 <= j < W]
+        if todo:
+            vals = refiner.scores(feat, G, a, todo, inv_temp)
+            for (i, j), v in zip(todo, vals):
+                cache[(a, i, j)] = v
+
+    a0, i0, j0 = m.cell
+    if hill_climb:
+        a0, i0, j0 = 2 * a0, 2 * i0, 2 * j0
+        start = [(i0 + di, j0 + dj) for di in (0, 1) for dj in (0, 1)]
+        for da in (-1, 0, 1):
+            score_block(a0 + da, start)
+        best_key, best_v = None, -np.inf
+        for da in (-1, 0, 1):
+            for i, j in start:
+                v = score(a0 + da, i, j)
+                if v > best_v:
+                    best_key, best_v = ((a0 + da) % A, i, j), v
+        cur = best_key
+        for _ in range(12):
+            a, i, j = cur
+            nb = [(i + di, j + dj) for di in (-1, 0, 1) for dj in (-1, 0, 1)]
+            for da in (-1, 0, 1):
+                score_block(a + da, nb)
+            nxt, nv = cur, best_v
+            for da in (-1, 0, 1):
+                for ii, jj in nb:
+                    v = score(a + da, ii, jj)
+                    if v > nv:
+                        nxt, nv = ((a + da) % A, ii, jj), v
+            if nxt == cur:
+                break
+            cur, best_v = nxt, nv
+        a0, i0, j0 = cur
+    else:
+        score_block(a0, [(i0 - 1, j0), (i0 + 1, j0), (i0, j0 - 1), (i0, j0 + 1), (i0, j0)])
+    s0 = score(a0, i0, j0)
+    dr, vr = _parabola(score(a0, i0 - 1, j0), s0, score(a0, i0 + 1, j0))
+    dc, vc = _parabola(score(a0, i0, j0 - 1), s0, score(a0, i0, j0 + 1))
+    dh, vh = _parabola(score(a0 - 1, i0, j0), s0, score(a0 + 1, i0, j0))
+    peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
+    return Mode(i0 + dr, j0 + dc, float((a0 + dh) % A), float(peak), (int(a0), int(i0), int(j0)))
+
+
+def modes_of_volume(vol, row0, col0, a0, A, pw: PeakWork, k, radius_cells, radius_headings) -> list[Mode]:
+    """Top-k modes of a small volume (tracking), refined by parabolas through its own neighbours."""
+    T, Ho, Wo = vol.shape
+    k = min(k, pw.i.shape[0])
+    n = K.nms_volume(vol, k, radius_cells, radius_headings, pw.work, pw.a, pw.i, pw.j, pw.v)
+    out = []
+    for m in range(n):
+        t, i, j = int(pw.a[m]), int(pw.i[m]), int(pw.j[m])
+        s0 = float(vol[t, i, j])
+
+        def nb(tt, ii, jj):
+            if 0 <= tt < T and 0 <= ii < Ho and 0 <= jj < Wo:
+                return float(vol[tt, ii, jj])
+            return -np.inf
+
+        dr, vr = _parabola(nb(t, i - 1, j), s0, nb(t, i + 1, j))
+        dc, vc = _parabola(nb(t, i, j - 1), s0, nb(t, i, j + 1))
+        dh, vh = _parabola(nb(t - 1, i, j), s0, nb(t + 1, i, j))
+        peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
+        out.append(Mode(row0 + i + dr, col0 + j + dc, float((a0 + t + dh) % A), peak,
+                        (int((a0 + t) % A), row0 + i, col0 + j)))
+    return out

@@ -1,0 +1,247 @@
+"""The linear scoring model: which bird's-eye channels meet which map channels, and how strongly.
+
+A pose score is a sum of ``F`` correlations, one per *feature* f:
+
+    score(pose) = sum_f  sum_cells  E_f(cell rotated into the map) * G_f(map cell)
+
+    E_f = sum_k  bev_weights[f, k] * bev_k      k over the C evidence classes, then free, then visible
+    G_f = blur_{sigma_f}( sum_c  map_weights[f, c] * map_c )
+
+Both sides are linear in their channels and the blur is linear, so the whole
+score stays one FFT correlation per feature, and the per-feature products can be
+summed in the frequency domain before one inverse transform per heading.
+The blur (Gaussian, ``sigma_cells``) widens the basin against small map errors
+and against vertical things being seen only by their ground contact.
+
+The log-likelihood is ``score / temperature``. The weights are designed (see
+docs/correlator.md); the temperature is fitted on generated frames by
+:func:`calibrate_temperature` and stored with its provenance in
+``scoring_default.json`` beside this module.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import cv2
+import numpy as np
+
+from ..classes import NUM_MAP_CLASSES, MAP_CLASSES
+from ..errors import InputError, fault
+
+DEFAULT_PATH = Path(__file__).with_name("scoring_default.json")
+FORMAT = "tinyloc-scoring"
+
+
+@dataclass(frozen=True)
+class ScoringModel:
+    """Weights of the linear score and the temperature that turns it into a log-likelihood.
+
+    Attributes
+    ----------
+    names : tuple of str
+        One name per feature (F).
+    bev_weights : ndarray (F, C + 2) float32
+        Weights on the bird's-eye channels: the C evidence classes (``MAP_CLASSES`` order),
+        then free space, then visibility.
+    map_weights : ndarray (F, C) float32
+        Weights on the map channels (``MAP_CLASSES`` order).
+    sigma_cells : tuple of float
+        Gaussian blur of each feature's map side (cells; 0 = raw coverage).
+    temperature : float
+        Divisor turning a score into a log-likelihood (score units).
+    provenance : dict
+        Where the numbers came from (generator, seed, trials, fitted values).
+    """
+
+    names: tuple[str, ...]
+    bev_weights: np.ndarray
+    map_weights: np.ndarray
+    sigma_cells: tuple[float, ...]
+    temperature: float
+    provenance: dict = field(default_factory=dict, compare=False)
+
+    def __post_init__(self):
+        F = len(self.names)
+        bw = np.ascontiguousarray(self.bev_weights, dtype=np.float32)
+        mw = np.ascontiguousarray(self.map_weights, dtype=np.float32)
+        if bw.shape != (F, NUM_MAP_CLASSES + 2) or mw.shape != (F, NUM_MAP_CLASSES) or len(self.sigma_cells) != F:
+            raise InputError(f"scoring model: expected {F} features with bev_weights ({F}, {NUM_MAP_CLASSES + 2}) "
+                             f"and map_weights ({F}, {NUM_MAP_CLASSES}); got {bw.shape}, {mw.shape}, "
+                             f"{len(self.sigma_cells)} sigmas")
+        if not (math.isfinite(self.temperature) and self.temperature > 0):
+            raise InputError(f"scoring model: temperature must be > 0, got {self.temperature}")
+        if not (np.all(np.isfinite(bw)) and np.all(np.isfinite(mw))):
+            raise InputError("scoring model: weights must be finite")
+        bw.setflags(write=False)
+        mw.setflags(write=False)
+        object.__setattr__(self, "bev_weights", bw)
+        object.__setattr__(self, "map_weights", mw)
+        object.__setattr__(self, "sigma_cells", tuple(float(s) for s in self.sigma_cells))
+
+    @property
+    def n_features(self) -> int:
+        return len(self.names)
+
+    # -- the map side (once per map window) ------------------------------------------------
+    def map_features(self, window: np.ndarray, out: np.ndarray | None = None,
+                     scratch: np.ndarray | None = None) -> np.ndarray:
+        """Map-side feature rasters ``G_f`` of a map window.
+
+        Parameters
+        ----------
+        window : ndarray (C, H, W) float32
+            Map channels (coverage 0..1, ``MAP_CLASSES`` order).
+        out : ndarray (F, H, W) float32, optional
+            Destination.
+        scratch : ndarray (H, W) float32, optional
+            Work raster for the blend (avoids an allocation).
+        """
+        C, H, W = window.shape
+        if out is None:
+            out = np.empty((self.n_features, H, W), np.float32)
+        if scratch is None:
+            scratch = np.empty((H, W), np.float32)
+        for f in range(self.n_features):
+            scratch.fill(0.0)
+            for c in range(C):
+                wgt = float(self.map_weights[f, c])
+                if wgt != 0.0:
+                    cv2.scaleAdd(window[c], wgt, scratch, dst=scratch)
+            s = self.sigma_cells[f]
+            if s > 0:
+                k = 2 * int(math.ceil(3.0 * s)) + 1
+                # Constant 0 border: beyond the window the map is unknown, as in the correlation.
+                cv2.GaussianBlur(scratch, (k, k), s, dst=out[f], sigmaY=s, borderType=cv2.BORDER_CONSTANT)
+            else:
+                out[f] = scratch
+        return out
+
+    # -- persistence ---------------------------------------------------------------------
+    def to_dict(self) -> dict:
+        return {"format": FORMAT, "version": 1, "names": list(self.names),
+                "bev_channels": [c.name for c in MAP_CLASSES] + ["free", "visible"],
+                "map_channels": [c.name for c in MAP_CLASSES],
+                "bev_weights": self.bev_weights.tolist(), "map_weights": self.map_weights.tolist(),
+                "sigma_cells": list(self.sigma_cells), "temperature": self.temperature,
+                "provenance": self.provenance}
+
+    def save(self, path) -> None:
+        Path(path).write_text(json.dumps(self.to_dict(), indent=1) + "\n")
+
+    @classmethod
+    def from_dict(cls, d: dict, source: object = "<scoring>") -> "ScoringModel":
+        if d.get("format") != FORMAT or d.get("version") != 1:
+            raise fault(source, f"not a {FORMAT} version 1 file")
+        want = [c.name for c in MAP_CLASSES]
+        if d.get("map_channels") != want or d.get("bev_channels") != want + ["free", "visible"]:
+            raise fault(source, "channel lists do not match this build's class table")
+        try:
+            return cls(tuple(d["names"]), np.array(d["bev_weights"], np.float32),
+                       np.array(d["map_weights"], np.float32), tuple(d["sigma_cells"]),
+                       float(d["temperature"]), dict(d.get("provenance", {})))
+        except (KeyError, TypeError, ValueError) as e:
+            raise fault(source, f"bad scoring model: {e}") from None
+
+    @classmethod
+    def load(cls, path) -> "ScoringModel":
+        try:
+            d = json.loads(Path(path).read_text())
+        except json.JSONDecodeError as e:
+            raise fault(path, f"not valid JSON (line {e.lineno})") from None
+        return cls.from_dict(d, path)
+
+    @classmethod
+    def default(cls) -> "ScoringModel":
+        """The shipped model (``scoring_default.json``)."""
+        return cls.load(DEFAULT_PATH)
+
+    def with_temperature(self, temperature: float, provenance: dict | None = None) -> "ScoringModel":
+        return ScoringModel(self.names, self.bev_weights, self.map_weights, self.sigma_cells, float(temperature),
+                            dict(provenance if provenance is not None else self.provenance))
+
+
+def designed_model() -> ScoringModel:
+    """The hand-designed weights (temperature 1), before calibration.
+
+    Ground classes are scored discriminatively (own class +1, the other ground
+    classes -0.5), with the visible area as a small negative bias so that a
+    surface seen does not score on every map cell alike. Vertical things are seen
+    by their ground contact: their evidence meets a blurred footprint, and observed
+    free ground meets the blurred vertical footprints with a negative weight.
+    """
+    from ..classes import BUILDING, FENCE, GRASS, PARKING, POLE, ROAD, SIDEWALK, TREE, WATER
+
+    C = NUM_MAP_CLASSES
+    FREE, VIS = C, C + 1
+    rows = []
+
+    def feat(name, bev, mp, sigma):
+        b = np.zeros(C + 2, np.float32)
+        m = np.zeros(C, np.float32)
+        for k, v in bev.items():
+            b[k] = v
+        for k, v in mp.items():
+            m[k] = v
+        rows.append((name, b, m, sigma))
+
+    feat("building", {BUILDING: 1.0}, {BUILDING: 1.0}, 1.0)
+    feat("road", {ROAD: 1.0, VIS: -0.2}, {ROAD: 1.0, SIDEWALK: -0.5, GRASS: -0.5, PARKING: -0.3}, 0.5)
+    feat("sidewalk", {SIDEWALK: 1.0, PARKING: 1.0, VIS: -0.2}, {SIDEWALK: 1.0, PARKING: 1.0, ROAD: -0.5, GRASS: -0.5},
+         0.5)
+    feat("grass", {GRASS: 1.0, WATER: 1.0, VIS: -0.2}, {GRASS: 1.0, WATER: 1.0, ROAD: -0.5, SIDEWALK: -0.5}, 0.5)
+    feat("small-vertical", {TREE: 1.0, POLE: 1.0, FENCE: 1.0}, {TREE: 1.0, POLE: 1.0, FENCE: 1.0}, 1.5)
+    feat("free", {FREE: 1.0}, {BUILDING: -1.0, TREE: -1.0, POLE: -1.0, FENCE: -1.0}, 1.0)
+    return ScoringModel(tuple(r[0] for r in rows), np.stack([r[1] for r in rows]), np.stack([r[2] for r in rows]),
+                        tuple(r[3] for r in rows), 1.0, {"weights": "hand-designed (scoring.designed_model)"})
+
+
+def bev_channels(bev) -> list[np.ndarray]:
+    """The C + 2 bird's-eye channels of a grid in scoring order (evidence classes, free, visible)."""
+    return [bev.evidence[k] for k in range(bev.evidence.shape[0])] + [bev.free, bev.visible]
+
+
+def calibrate_temperature(volumes_and_truth, grid=None) -> tuple[float, dict]:
+    """Fit the temperature by maximum likelihood of the true pose under the tempered volume.
+
+    Parameters
+    ----------
+    volumes_and_truth : list of (scores (A, H, W) float, (a, i, j) true cell)
+        Raw score volumes (temperature 1) of generated frames and the grid cell of the planted pose.
+    grid : sequence of float, optional
+        Candidate temperatures; default 40 log-spaced values spanning the score spread.
+
+    Returns
+    -------
+    temperature : float
+    info : dict
+        Mean negative log posterior at the truth for the chosen value, and the grid.
+
+    Notes
+    -----
+    For each temperature T the posterior of a frame is ``softmax(scores / T)`` over
+    the whole volume; the chosen T minimises the mean of ``-log p(true cell)``.
+    This is the usual temperature scaling of a classifier's logits, applied to the
+    pose grid: too small a T makes the filter over-confident, too large a T wastes
+    the evidence.
+    """
+    spreads = [float(np.max(v) - np.median(v)) for v, _ in volumes_and_truth]
+    if grid is None:
+        s = max(float(np.median(spreads)), 1e-6)
+        grid = np.geomspace(s / 300.0, s * 3.0, 40)
+    best_t, best_nll, table = None, math.inf, []
+    for t in grid:
+        nll = 0.0
+        for v, (a, i, j) in volumes_and_truth:
+            x = v.astype(np.float64) / t
+            m = x.max()
+            lse = m + math.log(float(np.exp(x - m).sum()))
+            nll += lse - x[a, i, j]
+        nll /= len(volumes_and_truth)
+        table.append((float(t), nll))
+        if nll < best_nll:
+            best_t, best_nll = float(t), nll
+    return best_t, {"mean_nll_at_truth": best_nll, "grid": table}
