@@ -20,8 +20,10 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import sqlite3
 import struct
+from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -91,6 +93,8 @@ class ImportOptions:
         Thresholds of the timestamp report.
     progress : bool
         Draw a progress bar on stderr.
+    workers : int
+        Threads encoding/checking frames (0: up to 4, one per CPU; 1: inline, no thread).
     """
 
     camera_topic: str | None = None
@@ -109,6 +113,7 @@ class ImportOptions:
     gnss_acc_m: float | None = None
     stamp_params: StampParams = field(default_factory=StampParams)
     progress: bool = True
+    workers: int = 0
 
 
 @dataclass
@@ -309,6 +314,65 @@ def _update_meta(path: Path, updates: dict) -> None:
     tmp = p.with_name("run.json.tmp")
     tmp.write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
     tmp.replace(p)
+
+
+def _png_bytes(img: np.ndarray) -> tuple[bytes, str]:
+    import cv2
+
+    # The same encoder settings as RunWriter.add_frame (lossless PNG, zlib level 3).
+    ok, buf = cv2.imencode(".png", img, [cv2.IMWRITE_PNG_COMPRESSION, 3])
+    if not ok:
+        raise BadMessage("PNG encoder failed")
+    return buf.tobytes(), ".png"
+
+
+class _FrameQueue:
+    """Encode or check frames on worker threads (OpenCV releases the GIL), write them in order.
+
+    At most ``2 * workers`` frames wait at any time, so memory stays bounded. A job returns
+    (bytes, extension) or raises :class:`BadMessage`; the frame is then dropped and reported.
+    """
+
+    def __init__(self, writer: "_BagRunWriter", workers: int, on_drop):
+        from concurrent.futures import ThreadPoolExecutor
+
+        self.writer = writer
+        self.pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="frames") if workers > 1 else None
+        self.limit = 2 * max(workers, 1)
+        self.pending: deque = deque()
+        self.on_drop = on_drop
+        self.written = 0
+
+    def put(self, t: float, topic: str, index: int, job) -> None:
+        if self.pool is None:
+            self._write(t, topic, index, job)
+            return
+        self.pending.append((t, topic, index, self.pool.submit(job)))
+        while len(self.pending) > self.limit:
+            self._pop()
+
+    def _pop(self) -> None:
+        t, topic, index, fut = self.pending.popleft()
+        self._write(t, topic, index, fut.result)
+
+    def _write(self, t, topic, index, get) -> None:
+        try:
+            data, ext = get()
+        except BadMessage as e:
+            self.on_drop(topic, index, str(e))
+            return
+        self.writer.add_encoded_frame(t, data, ext)
+        self.written += 1
+
+    def close(self, *, flush: bool) -> None:
+        """Write the frames still waiting (``flush``) or forget them; stop the workers."""
+        try:
+            while flush and self.pending:
+                self._pop()
+        finally:
+            self.pending.clear()
+            if self.pool is not None:
+                self.pool.shutdown(wait=True, cancel_futures=True)
 
 
 # ----------------------------------------------------------------------------- the import
@@ -525,6 +589,8 @@ class _Importer:
         kept_frames = 0
         gnss_skip = {"no fix": 0, "unknown covariance": 0}
         progress = Progress(win1 - win0, "import", enabled=opts.progress)
+        workers = opts.workers if opts.workers > 0 else min(4, os.cpu_count() or 1)
+        frames = _FrameQueue(writer, workers, self._drop)
         stop_reason = None
         last = ("", -1)
         it = reader.messages(connections=conns, start=self.start_ns, stop=self.stop_ns)
@@ -568,15 +634,14 @@ class _Importer:
                             continue
                         if conn.msgtype == COMPRESSED:
                             data = msg.data.tobytes() if hasattr(msg.data, "tobytes") else bytes(msg.data)
-                            ext, _, _ = check_compressed(data, camera.width, camera.height)
-                            writer.add_encoded_frame(t, data, ext)
+                            frames.put(t, topic, i, lambda d=data: (d, check_compressed(d, camera.width,
+                                                                                        camera.height)[0]))
                         else:
                             img = raw_image_to_bgr(msg.height, msg.width, msg.encoding, msg.step, msg.data)
                             if img.shape[0] != camera.height or img.shape[1] != camera.width:
                                 raise BadMessage(f"image is {img.shape[1]}x{img.shape[0]}, the camera "
                                                  f"calibration says {camera.width}x{camera.height}")
-                            writer.add_frame(t, img)
-                        counts["frames"] += 1
+                            frames.put(t, topic, i, lambda im=img: _png_bytes(im))
                     elif kind == "imu":
                         if float(msg.linear_acceleration_covariance[0]) == -1.0:
                             raise BadMessage("no linear acceleration (covariance[0] = -1 marks it absent)")
@@ -622,8 +687,12 @@ class _Importer:
                     self._drop(topic, i, str(e))
             complete = stop_reason is None
         finally:
-            progress.done()
-            writer.close(complete=complete)
+            try:
+                frames.close(flush=True)
+            finally:
+                counts["frames"] = frames.written
+                progress.done()
+                writer.close(complete=complete)
             if not complete and stop_reason is None:
                 stop_reason = f"interrupted after topic {last[0]} message #{last[1]}"
             report = self._report(trackers, counts, gnss_skip, stop_reason)
