@@ -11,6 +11,7 @@ from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 import importlib
 import json
+import math
 import multiprocessing as mp
 import os
 import queue
@@ -155,7 +156,9 @@ def _run_job(job: Job, index: int, row: dict) -> dict:
     health = getattr(res.localizer, "health", None)
     if health is not None:
         try:
-            m["loop_health"] = {k: v for k, v in health().items() if isinstance(v, (int, float, str, bool))}
+            h = {k: (v.item() if hasattr(v, "item") else v) for k, v in health().items()}
+            m["loop_health"] = {k: v for k, v in h.items()
+                                if isinstance(v, (int, str, bool)) or (isinstance(v, float) and math.isfinite(v))}
         except Exception:  # noqa: BLE001 - health is informative only
             pass
     write_csv(res.records, out / "frames.csv")

@@ -336,6 +336,8 @@ def _get(d: dict, key: str):
 
 def _cell(metrics: dict, key: str, fmt: str = "{:.3f}") -> str:
     v = _get(metrics, key)
+    if isinstance(v, np.generic):
+        v = v.item()
     if v is None:
         shown, raw = "n/a", ""
     elif isinstance(v, bool) or isinstance(v, str):
