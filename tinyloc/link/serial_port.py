@@ -15,6 +15,7 @@ the outage is logged and kept in ``counters.last_gap_s`` / ``down_s``.
 
 from __future__ import annotations
 
+import os
 import time
 
 import serial
@@ -227,5 +228,8 @@ class SerialEndpoint(Endpoint):
 
 
 def _reason(e) -> str:
+    code = getattr(e, "errno", None)
+    if isinstance(code, int) and code > 0:
+        return os.strerror(code)
     text = str(e).strip() or type(e).__name__
     return text.splitlines()[0]
