@@ -9,7 +9,7 @@ import shutil
 import numpy as np
 import pytest
 
-from _bag_helpers import CAMERA, NS, _Msgs, bag_from_run, bag_name, make_run, run_messages, write_bag
+from _bag_helpers import CAMERA, NS, STAMP_BASE_NS, _Msgs, bag_from_run, bag_name, make_run, run_messages, write_bag
 from tinyloc.bagio import import_bag as ib
 from tinyloc.bagio.import_bag import ImportOptions, StopImport, import_bag
 from tinyloc.errors import InputError
@@ -28,7 +28,7 @@ def _bag(run, tmp_path, storage="mcap", **kw):
     return write_bag(bag_name(tmp_path, storage), run_messages(run, m, **kw), m, storage)
 
 
-@pytest.mark.parametrize("storage", ["ros1", "sqlite3", "mcap"])
+@pytest.mark.parametrize("storage", ["ros1", "sqlite3"])
 def test_truncated_file_stops_cleanly_before_writing(run, tmp_path, storage):
     bag = bag_from_run(run, bag_name(tmp_path, storage), storage)
     f = bag if storage == "ros1" else next(p for p in bag.iterdir() if p.suffix in (".db3", ".mcap"))
@@ -39,6 +39,29 @@ def test_truncated_file_stops_cleanly_before_writing(run, tmp_path, storage):
     msg = str(e.value)
     assert "\n" not in msg and str(bag) in msg and "cannot open as a bag" in msg
     assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("keep_metadata", [True, False])
+def test_truncated_mcap_is_salvaged_up_to_the_cut(run, tmp_path, keep_metadata):
+    # A recorder killed mid-write: the MCAP file has no summary or footer (and often no metadata.yaml).
+    bag = bag_from_run(run, bag_name(tmp_path, "mcap"), "mcap")
+    f = next(bag.glob("*.mcap"))
+    data = f.read_bytes()
+    f.write_bytes(data[: len(data) * 6 // 10])
+    if not keep_metadata:
+        (bag / "metadata.yaml").unlink()
+    res = import_bag(bag, tmp_path / "out", ImportOptions(**Q))
+    assert res.complete and any("recording cut short" in n and "salvaged" in n for n in res.report["notes"])
+    out = RunFolder.open(tmp_path / "out")
+    assert "salvaged" in out.meta["import"]
+    n = len(out)
+    assert 2 <= n < len(run)
+    for i in range(n):  # what survived is the original, untouched
+        assert np.array_equal(out.load_frame(i), run.load_frame(i))
+    d = (out.meta["time_base_ns"] - STAMP_BASE_NS) / NS
+    k = len(out.imu)
+    assert 0 < k < len(run.imu) and np.max(np.abs(out.imu[:, 1:] - run.imu[:k, 1:])) < 1e-9
+    assert np.max(np.abs(out.imu[:, 0] + d - run.imu[:k, 0])) < 1e-9
 
 
 def test_missing_topics(run, tmp_path):

@@ -158,12 +158,32 @@ def open_bag(path):
     try:
         reader = rb.highlevel.AnyReader([p], default_typestore=typestore(ros1=ros1))
         reader.open()
-    except FileNotFoundError as e:
-        raise InputError(f"{p}: not a bag ({e})") from None
-    except _reader_errors() as e:
-        raise InputError(f"{p}: cannot open as a bag: {_why(e)} (truncated or damaged file, "
-                         "or not a ROS bag)") from None
+    except (FileNotFoundError, *_reader_errors()) as e:
+        why = _why(e)
+        salvaged = _salvage(p)
+        if salvaged is not None:
+            return salvaged
+        if isinstance(e, FileNotFoundError):
+            raise InputError(f"{p}: not a bag ({why})") from None
+        raise InputError(f"{p}: cannot open as a bag: {why} (truncated or damaged file, or not a ROS bag)") from None
     return reader
+
+
+def _salvage(p: Path):
+    """A reader over the whole records of a cut-short MCAP recording, or None."""
+    from .salvage import SalvagedMcap, salvage_candidate
+
+    f = salvage_candidate(p)
+    if f is None:
+        return None
+    try:
+        r = SalvagedMcap(f)
+    except (InputError, OSError, ValueError, *_reader_errors()):
+        return None
+    if r.message_count == 0:
+        r.close()
+        return None
+    return r
 
 
 def _why(e: BaseException) -> str:
@@ -281,6 +301,8 @@ def describe_bag(path, opts: ImportOptions | None = None) -> str:
             target = use.get(r.topic)
             label = STREAM_FILE[target] if target else ("camera mount" if r.topic == TF_STATIC else "")
             out.append(f"  {r.topic:<{w}}  {r.msgtype:<{tw}}  {r.count:>7}  {rate:>10}  {label}")
+        if getattr(reader, "note", None):
+            out.append(f"note: {reader.note}")
         out.extend(f"note: {n}" for n in notes)
         if err:
             out.append(f"cannot import with these options: {err}")
@@ -515,6 +537,8 @@ class _Importer:
         opts = self.opts
         rows = inventory(reader)
         chosen, notes = choose_topics(rows, opts)
+        if getattr(reader, "note", None):
+            self.notes.append(reader.note)
         self.notes.extend(notes)
         t0 = reader.start_time
         self.start_ns = t0 + int(round(opts.start_s * NS)) if opts.start_s is not None else None
@@ -579,6 +603,8 @@ class _Importer:
         info = {"bag": str(self.bag), "topics": {k: v for k, v in chosen.items() if v},
                 "time_base_ns": int(base_ns), "time_source": "record" if opts.record_time else "header",
                 "every": opts.every, "window_s": [opts.start_s, opts.end_s], "state": "running"}
+        if getattr(reader, "note", None):
+            info["salvaged"] = reader.note
         extra = {"import": info, "time_base_ns": int(base_ns)}
         if origin is not None:
             extra["origin_source"] = origin_note
