@@ -162,7 +162,13 @@ class SalvagedMcap:
                 except (_Cut, struct.error):
                     self.cut_at = pos
                     return
-                inner = _decompress(kind, data, usize)
+                try:
+                    inner = _decompress(kind, data, usize)
+                except InputError:
+                    raise
+                except Exception:  # each codec has its own error types; a damaged chunk ends the readable part
+                    self.cut_at = pos
+                    return
                 pos += 9 + length
                 q = 0
                 while q + 9 <= len(inner):
