@@ -13,48 +13,64 @@ import pytest
 from scipy import stats
 
 from tinyloc.frames import relative2, wrap_angle
-from tinyloc.track import LikelihoodVolume, MapGeometry, TrackParams, Tracker
+from tinyloc.track import GlobalEvidence, LikelihoodVolume, MapGeometry, TrackParams, Tracker
 
 GEOM = MapGeometry(0.0, 400.0, 0.5)
 CHI2_95_3DOF = stats.chi2.ppf(0.95, 2)  # 5.991 for the position ellipse (2 degrees of freedom)
 
 
 class PlantedMatcher:
-    """Correlation-like volumes: a peak at a noisy measurement of the truth, noise and a floor elsewhere."""
+    """Correlation-like evidence: a peak at a noisy measurement of the truth, noise and a floor elsewhere.
+
+    Like the real correlator it gives a reduced global search (best log-likelihood per cell over
+    heading) and a tracking volume over a few headings around a prior.
+    """
 
     def __init__(self, rng, *, sigma_m=0.6, sigma_yaw=0.03, headings=64, floor=-9.0, noise=0.3,
-                 global_cells=160, track_cells=48, second_mode=None):
+                 global_cells=120, track_cells=41, track_half_headings=5, second_mode=None):
         self.rng = rng
         self.sx, self.syaw, self.A = sigma_m, sigma_yaw, headings
         self.floor, self.noise = floor, noise
-        self.gc, self.tc = global_cells, track_cells
+        self.gc, self.tc, self.th = global_cells, track_cells, track_half_headings
         self.truth = (0.0, 0.0, 0.0)
         self.second_mode = second_mode  # offset (dx, dy) of an equally good ghost pose
 
-    def _vol(self, cx, cy, n):
-        r, c = GEOM.cell_of(cx, cy)
-        row0, col0 = int(r) - n // 2, int(c) - n // 2
+    def _measure(self):
         tx, ty, tyaw = self.truth
-        mx, my = tx + self.rng.normal(0, self.sx), ty + self.rng.normal(0, self.sx)
-        myaw = tyaw + self.rng.normal(0, self.syaw)
-        a = np.arange(self.A) * 2 * math.pi / self.A
-        da = np.angle(np.exp(1j * (a - myaw)))
+        return (tx + self.rng.normal(0, self.sx), ty + self.rng.normal(0, self.sx),
+                tyaw + self.rng.normal(0, self.syaw))
+
+    def _xy_term(self, row0, col0, n, mx, my):
         ii, jj = np.mgrid[0:n, 0:n]
         xs, ys = GEOM.xy_of(row0 + ii + 0.5, col0 + jj + 0.5)
-        d2 = (xs - mx) ** 2 + (ys - my) ** 2
-        L = -0.5 * d2[None] / self.sx ** 2 - 0.5 * (da[:, None, None] / self.syaw) ** 2
+        L = -0.5 * ((xs - mx) ** 2 + (ys - my) ** 2) / self.sx ** 2
         if self.second_mode is not None:
             gx, gy = mx + self.second_mode[0], my + self.second_mode[1]
-            d2g = (xs - gx) ** 2 + (ys - gy) ** 2
-            L = np.logaddexp(L, -0.5 * d2g[None] / self.sx ** 2 - 0.5 * (da[:, None, None] / self.syaw) ** 2)
-        L = np.maximum(L, self.floor) + self.rng.normal(0, self.noise, L.shape)
-        return LikelihoodVolume(L.astype(np.float32), row0, col0, 0.0, 2 * math.pi / self.A)
+            L = np.logaddexp(L, -0.5 * ((xs - gx) ** 2 + (ys - gy) ** 2) / self.sx ** 2)
+        return L
+
+    def _corner(self, x, y, n):
+        r, c = GEOM.cell_of(x, y)
+        return int(r) - n // 2, int(c) - n // 2
 
     def global_search(self, x, y):
-        return self._vol(x, y, self.gc)
+        n = self.gc
+        row0, col0 = self._corner(x, y, n)
+        mx, my, myaw = self._measure()
+        best = np.maximum(self._xy_term(row0, col0, n, mx, my), self.floor) + self.rng.normal(0, self.noise, (n, n))
+        return GlobalEvidence(best.astype(np.float32), row0, col0, 1, np.full((n, n), myaw))
 
     def track(self, x, y, yaw):
-        return self._vol(x, y, self.tc)
+        n = self.tc
+        row0, col0 = self._corner(x, y, n)
+        mx, my, myaw = self._measure()
+        dyaw = 2 * math.pi / self.A
+        a0 = int(round(yaw / dyaw)) - self.th
+        a = (a0 + np.arange(2 * self.th + 1)) * dyaw
+        da = np.angle(np.exp(1j * (a - myaw)))
+        L = self._xy_term(row0, col0, n, mx, my)[None] - 0.5 * (da[:, None, None] / self.syaw) ** 2
+        L = np.maximum(L, self.floor) + self.rng.normal(0, self.noise, L.shape)
+        return LikelihoodVolume(L.astype(np.float32), row0, col0, a0 * dyaw, dyaw)
 
 
 def _params(**kw):
@@ -100,18 +116,24 @@ def drive(rng, n, *, speed=1.0, dt=0.1, turn=0.05, matcher=None, kidnap_at=None,
         gnss = None
         if k not in gnss_off:
             gnss = (x + rng.normal(0, gnss_sigma), y + rng.normal(0, gnss_sigma), 1.0, t)
-        vol = None
-        glob = False
-        if k not in bad_frames:
-            if tr.wants_global():
-                c = tr.search_centre() or (x, y)
-                vol, glob = m.global_search(*c), True
-            else:
-                cx, cy, cyaw = tr.track_centre()
-                vol = m.track(cx, cy, cyaw)
-        o = tr.step(t, inc, vol, is_global=glob, gnss=gnss, frame_status="planted bad frame" if vol is None else "ok")
+        o = _frame(tr, m, t, inc, gnss, usable=k not in bad_frames)
         out.append(((x, y, yaw), o))
     return tr, out
+
+
+def _frame(tr, m, t, inc, gnss, *, usable=True):
+    """One frame the way the live loop runs it: begin, global search when asked, track, finish."""
+    tr.begin(t, inc, gnss, have_frame=usable)
+    if not usable:
+        return tr.finish(None, frame_status="planted bad frame")
+    if tr.wants_global():
+        c = tr.search_centre() or m.truth[:2]
+        x, y, yaw = tr.consider_global(m.global_search(*c))
+        if not math.isfinite(yaw):
+            yaw = m.truth[2]
+    else:
+        x, y, yaw = tr.track_centre()
+    return tr.finish(m.track(x, y, yaw))
 
 
 def _err(truth, o):
@@ -212,9 +234,7 @@ def test_wild_gnss_does_not_drag_a_confident_belief(rng):
         x += 0.1
         m.truth = (x, y, yaw)
         g = (x, y + (25.0 if 80 <= k < 110 else 0.0) + rng.normal(0, 1), 1.0, t)
-        glob = tr.wants_global()
-        vol = m.global_search(*(tr.search_centre() or (x, y))) if glob else m.track(*tr.track_centre())
-        o = tr.step(t, (0.1, 0.0, 0.0) if k else None, vol, is_global=glob, gnss=g)
+        o = _frame(tr, m, t, (0.1, 0.0, 0.0) if k else None, g)
         if k >= 80:
             worst = max(worst, math.hypot(o.x - x, o.y - y))
     assert worst < 1.0

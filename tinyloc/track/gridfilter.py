@@ -82,6 +82,32 @@ class LikelihoodVolume:
         return abs(self.loglik.shape[0] * self.dyaw_rad - 2.0 * math.pi) < 1e-6
 
 
+@dataclass
+class GlobalEvidence:
+    """A global search as the tracker weighs it: the best log-likelihood per cell over all headings.
+
+    ``best[i, j]`` covers the global map cells ``row0 + scale*i .. row0 + scale*i + scale - 1`` (and
+    likewise for columns): ``scale`` is 1 at full resolution, 2 for a coarse search. ``best_yaw``
+    (rad), optional, is the heading of that maximum.
+    """
+
+    best: np.ndarray
+    row0: int
+    col0: int
+    scale: int = 1
+    best_yaw: np.ndarray | None = None
+
+    @classmethod
+    def from_volume(cls, vol: "LikelihoodVolume", out: np.ndarray | None = None) -> "GlobalEvidence":
+        """Reduce a full volume (max over heading); ``out`` is an optional (H, W) float32 buffer."""
+        A, H, W = vol.loglik.shape
+        if out is None:
+            out = np.empty((H, W), np.float32)
+        K.max_over_heading(vol.loglik, out)
+        yaw = vol.yaw0_rad + np.argmax(vol.loglik, axis=0) * vol.dyaw_rad
+        return cls(out, vol.row0, vol.col0, 1, wrap_angle(yaw))
+
+
 @dataclass(frozen=True)
 class TrackParams:
     """Parameters of the grid filter and its lost/recovered logic (defaults in brackets).
@@ -645,6 +671,11 @@ class Tracker:
         self._gnss_disagree_s = 0.0
         self._gnss_xy = None  # last usable fix (x, y, sigma, t)
         self._ambig = None  # (x, y, yaw, weight) of a competing pose found by the last global check
+        self._fix_used_t = -math.inf
+        self._t = 0.0
+        self._notes = []
+        self._g = None
+        self._was_global = False
         self.last = None
         self._clock.reset()
         self.counters = {"global_searches": 0, "lost": 0, "recovered": 0, "odometry_jumps": 0,
@@ -681,7 +712,7 @@ class Tracker:
     def step(self, t: float, odo: tuple[float, float, float] | None, vol: LikelihoodVolume | None, *,
              is_global: bool = False, gnss: tuple[float, float, float, float] | None = None,
              frame_status: str = "ok") -> TrackOutput:
-        """Advance the filter by one frame.
+        """Advance the filter by one frame (one call: :meth:`begin`, :meth:`consider_global`, :meth:`finish`).
 
         Parameters
         ----------
@@ -692,38 +723,73 @@ class Tracker:
         vol : LikelihoodVolume or None
             The frame's likelihood (None when the frame was unusable).
         is_global : bool
-            ``vol`` is a global search (may re-centre the window or declare the filter lost).
+            ``vol`` comes from a global search: it also serves as the global evidence (its
+            per-cell maximum over heading) and may re-centre the window or declare the filter lost.
         gnss : (x_m, y_m, acc_m, t_fix) or None
             Latest satellite fix in the world frame with its reported 1-sigma accuracy.
         frame_status : str
             Why the frame is unusable when ``vol`` is None (carried into the status text).
         """
+        self.begin(t, odo, gnss, have_frame=vol is not None)
+        if vol is not None and is_global:
+            self.consider_global(GlobalEvidence.from_volume(vol, self._gm2_for(vol)))
+        return self.finish(vol, frame_status=frame_status)
+
+    def begin(self, t: float, odo, gnss, *, have_frame: bool = True) -> None:
+        """Phase 1 of a frame: predict with odometry and apply a new satellite fix."""
         p = self.p
         f = self.filter
-        notes = []
+        self._t = t
+        self._notes = notes = []
+        self._was_global = False
         self.frames += 1
         g = self._usable_fix(t, gnss)
+        self._g = g
         if not self.started:
-            if g is None and vol is None:
-                return self._output(t, "no-fix", notes + ["waiting for a fix or a frame"] + [frame_status]
-                                    if frame_status != "ok" else notes + ["waiting for a fix or a frame"])
-            cx, cy = (g[0], g[1]) if g is not None else self._vol_centre(vol)
-            f.reset(cx, cy)
+            if g is None and not have_frame:
+                return
+            if g is not None:
+                f.reset(g[0], g[1])
+                self.started = True
+                self.state = "searching"
+            return
+        self._predict(odo, notes)
+        if g is not None and g[3] > self._fix_used_t:
+            self._fix_used_t = g[3]
+            w = p.gnss.weight_search if self.state == "searching" else p.gnss.weight_track
+            if self.state == "searching" and self._far_from_window(g[0], g[1]):
+                f.recentre(g[0], g[1])
+            f.update_xy(g[0], g[1], g[2], nu=p.gnss.nu, weight=w)
+
+    def consider_global(self, ev: "GlobalEvidence") -> tuple[float, float, float]:
+        """Phase 2 (only when :meth:`wants_global`): weigh a global search.
+
+        Returns the pose (x, y, yaw) around which the frame's likelihood should be computed for
+        :meth:`finish`: the best candidate while searching or after being declared lost, else the
+        estimate.
+        """
+        if not self.started:
+            A, H, W = 1, ev.best.shape[0], ev.best.shape[1]
+            x, y = self.geom.xy_of(ev.row0 + ev.scale * H / 2.0, ev.col0 + ev.scale * W / 2.0)
+            self.filter.reset(x, y)
             self.started = True
             self.state = "searching"
-        else:
-            self._predict(odo, notes)
-        if g is not None:
-            w = p.gnss.weight_search if self.state == "searching" else p.gnss.weight_track
-            if self.state == "searching":
-                f.recentre(g[0], g[1]) if self._far_from_window(g[0], g[1]) else None
-            f.update_xy(g[0], g[1], g[2], nu=p.gnss.nu, weight=w)
+        self.counters["global_searches"] += 1
+        self._since_verify = 0
+        self._was_global = True
+        self.filter.activate_all()
+        return self._global_decision(ev, self._g, self._notes)
+
+    def finish(self, vol: LikelihoodVolume | None, *, frame_status: str = "ok") -> TrackOutput:
+        """Phase 3: update with the frame's likelihood (None: unusable frame), estimate, decide quality."""
+        p = self.p
+        f = self.filter
+        t, notes, g = self._t, self._notes, self._g
+        if not self.started:
+            msg = ["waiting for a fix or a frame"] + ([frame_status] if frame_status != "ok" else [])
+            return self._output(t, "no-fix", msg)
         surprise = 0.0
         if vol is not None:
-            if is_global:
-                self.counters["global_searches"] += 1
-                self._since_verify = 0
-                self._global_decision(vol, g, notes)
             surprise = f.update(vol)
             self._no_update = 0
             self._surprised = self._surprised + 1 if surprise < p.surprise_lost else 0
@@ -745,7 +811,7 @@ class Tracker:
         self.last = est
         if self._ambig is not None and self.state != "searching":
             est = self._with_alternative(est)
-        return self._output(t, self.state, notes, est, surprise, is_global and vol is not None)
+        return self._output(t, self.state, notes, est, surprise, self._was_global)
 
     # ---- internals ------------------------------------------------------------------------------
     def _usable_fix(self, t, gnss):
@@ -786,51 +852,52 @@ class Tracker:
             return
         f.predict(d_fwd, d_left, d_yaw)
 
-    def _global_decision(self, vol: LikelihoodVolume, g, notes) -> None:
-        """Compare the best pose of a global search with the best near the belief; move or vote."""
+    def _global_decision(self, ev: "GlobalEvidence", g, notes) -> tuple[float, float, float]:
+        """Compare the best pose of a global search with the best near the belief; move, vote or flag."""
         p = self.p
         f = self.filter
-        L = vol.loglik
-        A, H, W = L.shape
-        m2 = self._m2_for(H, W)
-        K.max_over_heading(L, m2)
-        score = m2
+        H, W = ev.best.shape
+        sc = self._score_for(H, W)
+        sc[:] = ev.best
         if g is not None:
             # robust GNSS prior on the candidates (same tempering as while searching)
-            sc = self._score_for(H, W)
-            rows = vol.row0 + 0.5 + np.arange(H)
-            cols = vol.col0 + 0.5 + np.arange(W)
+            rows = ev.row0 + ev.scale * (np.arange(H) + 0.5)
+            cols = ev.col0 + ev.scale * (np.arange(W) + 0.5)
             fr, fc = self.geom.cell_of(g[0], g[1])
             s = g[2] / self.geom.res_m
             nu = p.gnss.nu
             d2 = ((rows - fr)[:, None] ** 2 + (cols - fc)[None, :] ** 2) / (nu * s * s)
-            np.multiply(np.log1p(d2), -0.5 * (nu + 2.0) * p.gnss.weight_search, out=sc)
-            sc += m2
-            score = sc
+            sc += np.log1p(d2) * (-0.5 * (nu + 2.0) * p.gnss.weight_search)
+        score = sc
+
+        def pose_at(i, j):
+            x, y = self.geom.xy_of(ev.row0 + ev.scale * (i + 0.5), ev.col0 + ev.scale * (j + 0.5))
+            yaw = float(ev.best_yaw[i, j]) if ev.best_yaw is not None else math.nan
+            return x, y, yaw
+
         if self.state == "searching" or self.last is None:
             k = int(np.argmax(score))
-            bi, bj = divmod(k, W)
-            bx, by = self.geom.xy_of(vol.row0 + bi + 0.5, vol.col0 + bj + 0.5)
-            if self.state == "searching" and self._far_from_window(bx, by):
+            bx, by, byaw = pose_at(*divmod(k, W))
+            if self._far_from_window(bx, by):
                 f.recentre(bx, by)
                 notes.append("search moved")
-            return
+            return bx, by, byaw
         est = self.last
         er, ec = self.geom.cell_of(est.x, est.y)
-        i0, j0 = int(er - vol.row0), int(ec - vol.col0)
+        i0, j0 = int((er - ev.row0) // ev.scale), int((ec - ev.col0) // ev.scale)
         here = -np.inf
-        rad = max(1, int(round(2.0 / self.geom.res_m)))
+        rad = max(1, int(round(2.0 / (self.geom.res_m * ev.scale))))
         lo_i, hi_i, lo_j, hi_j = max(0, i0 - rad), min(H, i0 + rad + 1), max(0, j0 - rad), min(W, j0 + rad + 1)
         if lo_i < hi_i and lo_j < hi_j:
             here = float(score[lo_i:hi_i, lo_j:hi_j].max())
-        rad = int(round(5.0 / self.geom.res_m))  # "elsewhere" is 5 m or more away
+        rad = int(round(5.0 / (self.geom.res_m * ev.scale)))  # "elsewhere" is 5 m or more away
         lo_i, hi_i, lo_j, hi_j = max(0, i0 - rad), min(H, i0 + rad + 1), max(0, j0 - rad), min(W, j0 + rad + 1)
         if lo_i < hi_i and lo_j < hi_j:
             score[lo_i:hi_i, lo_j:hi_j] = -np.inf
         k = int(np.argmax(score))
         bi, bj = divmod(k, W)
         alt = float(score[bi, bj])
-        bx, by = self.geom.xy_of(vol.row0 + bi + 0.5, vol.col0 + bj + 0.5)
+        bx, by, byaw = pose_at(bi, bj)
         d = math.hypot(bx - est.x, by - est.y)
         gap = alt - here
         if gap > p.switch_margin:
@@ -840,16 +907,17 @@ class Tracker:
             if self._votes >= p.switch_votes:
                 self._lose(notes, "global check found a better pose elsewhere")
                 f.reset(bx, by)
-            return
+                return bx, by, byaw
+            return est.x, est.y, est.yaw
         self._votes = 0
-        if gap > -p.ambiguity_margin:
+        if gap > -p.ambiguity_margin and math.isfinite(gap):
             # a pose elsewhere explains the frame about as well: report it, do not pretend to know
             w = 1.0 / (1.0 + math.exp(-gap))
-            yaw = float(vol.yaw0_rad + int(np.argmax(vol.loglik[:, bi, bj])) * vol.dyaw_rad)
-            self._ambig = (bx, by, wrap_angle(yaw), w)
+            self._ambig = (bx, by, byaw if math.isfinite(byaw) else est.yaw, w)
             notes.append(f"ambiguous: a similar pose {d:.0f} m away")
         else:
             self._ambig = None
+        return est.x, est.y, est.yaw
 
     def _with_alternative(self, est: FilterEstimate) -> FilterEstimate:
         """The estimate with the competing pose of the last global check folded into modes and covariance."""
@@ -860,6 +928,10 @@ class Tracker:
         modes.sort(key=lambda m: -m[3])
         return FilterEstimate(est.x, est.y, est.yaw, cov, modes[:max(self.p.top_modes, 2)], est.peak_mass,
                               est.sigma_xy_m, est.sigma_yaw_rad)
+
+    def _gm2_for(self, vol):
+        A, H, W = vol.loglik.shape
+        return self._m2_for(H, W)
 
     def _m2_for(self, H, W):
         b = getattr(self, "_gm2", None)
