@@ -196,35 +196,43 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, 
     """
     nc, h, w = scores.shape
     on_road = prm[P_ON_ROAD] > 0.5
+    green0, igreen = prm[P_GREEN0], 1.0 / prm[P_GREEN_W]
+    gu0, igw = prm[P_G_U0], 1.0 / prm[P_G_W]
+    tsm, itw = prm[P_T_SMOOTH], 1.0 / prm[P_T_W]
+    refl, refd, irefw = prm[P_REF_L], prm[P_REF_D], 1.0 / prm[P_REF_W]
+    road_w, side_w, floor = prm[P_ROAD_W], prm[P_SIDE_W], prm[P_GROUND_FLOOR]
+    mix0, var0, ivarw = prm[P_MIX0], prm[P_VAR0], 1.0 / prm[P_VAR_W]
+    grass_w, bld_w, tree_w, mix_w, tree_low = prm[P_GRASS_W], prm[P_BLD_W], prm[P_TREE_W], prm[P_MIX_W], \
+        prm[P_TREE_LOW]
+    r0, r1, r2 = ref[0], ref[1], ref[2]
     for i in range(h):
         for j in range(w):
             u = feat[F_U, i, j]
-            t = tex[i, j]
-            green = _sig((feat[F_EXGR, i, j] - prm[P_GREEN0]) / prm[P_GREEN_W])
-            below = _sig((-u - prm[P_G_U0]) / prm[P_G_W])
+            green = _sig((feat[F_EXGR, i, j] - green0) * igreen)
+            below = _sig((-u - gu0) * igw)
             s_here = 0.0
             s_other = 0.0
             if below > 0.0:
-                smooth = _sig((prm[P_T_SMOOTH] - t) / prm[P_T_W])
-                dist = abs(float(lab[i, j, 0]) - ref[0]) * prm[P_REF_L] + abs(float(lab[i, j, 1]) - ref[1]) + \
-                    abs(float(lab[i, j, 2]) - ref[2])
-                on = _sig((prm[P_REF_D] - dist) / prm[P_REF_W])
-                s_here = below * (1.0 - green) * (prm[P_ROAD_W] * on * (0.5 + 0.5 * smooth) + prm[P_GROUND_FLOOR])
-                s_other = below * (1.0 - green) * (1.0 - on) * smooth * prm[P_SIDE_W]
+                smooth = _sig((tsm - tex[i, j]) * itw)
+                dist = abs(float(lab[i, j, 0]) - r0) * refl + abs(float(lab[i, j, 1]) - r1) + \
+                    abs(float(lab[i, j, 2]) - r2)
+                on = _sig((refd - dist) * irefw)
+                s_here = below * (1.0 - green) * (road_w * on * (0.5 + 0.5 * smooth) + floor)
+                s_other = below * (1.0 - green) * (1.0 - on) * smooth * side_w
             crown = 0.0
             if below < 1.0:
                 var = g2mean[i, j] - gmean[i, j] * gmean[i, j]
                 if var < 0.0:
                     var = 0.0
-                crown = _sig((brightmix[i, j] - prm[P_MIX0]) / 0.05) * _sig((var - prm[P_VAR0]) / prm[P_VAR_W])
+                crown = _sig((brightmix[i, j] - mix0) * 20.0) * _sig((var - var0) * ivarw)
             if on_road:
                 s_road, s_side = s_here, s_other
             else:
                 s_road, s_side = s_other, s_here
             s_sky = 2.0 if sky[i, j] else 0.0
-            s_grass = below * green * prm[P_GRASS_W]
-            s_bld = (1.0 - below) * (1.0 - green) * prm[P_BLD_W] * (1.0 - crown)
-            s_tree = green * prm[P_TREE_W] * (1.0 - below * prm[P_TREE_LOW]) + (1.0 - below) * crown * prm[P_MIX_W]
+            s_grass = below * green * grass_w
+            s_bld = (1.0 - below) * (1.0 - green) * bld_w * (1.0 - crown)
+            s_tree = green * tree_w * (1.0 - below * tree_low) + (1.0 - below) * crown * mix_w
             best = BUILDING
             bv = s_bld
             if s_road > bv:

@@ -1,0 +1,194 @@
+"""``tinyloc calibrate``: camera intrinsics from checkerboard photos; camera height and pitch on the robot."""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+NAME = "calibrate"
+HELP = "calibrate the camera (intrinsics from a checkerboard) and its mount (height, pitch)"
+DESCRIPTION = """\
+Camera calibration in two steps, both writing the same camera.toml (docs/camera.md).
+
+1. Intrinsics and lens distortion, from 10-30 photos of a printed checkerboard held at
+   varied angles and distances, filling the corners of the picture too:
+     tinyloc calibrate intrinsics shots/*.png --board 9x6 --square 0.025 -o camera.toml
+   --board counts INNER corners (a board of 10 x 7 squares has 9 x 6). Photos with a
+   blurred, partial or missing board are listed with the reason and left out.
+
+2. The mount: with the camera on the robot, lay the board (or mark a rectangle) flat on
+   the ground in view and take one photo:
+     tinyloc calibrate mount --camera camera.toml ground.png --board 9x6 --square 0.025
+     tinyloc calibrate mount --camera camera.toml ground.png --rect 1.2x2.0 \\
+         --corners 212,388,431,390,402,250,240,249
+   or set it by hand (metres, degrees; pitch positive looks down):
+     tinyloc calibrate mount --camera camera.toml --height 0.62 --pitch 12
+   Height, pitch and roll come from the photo; yaw and the camera's x/y offset on the
+   base keep their values unless given by hand."""
+
+_INTR_HELP = """\
+Detect the checkerboard's inner corners in every photo (OpenCV), refine them to
+sub-pixel accuracy, reject blurred, partial or unfound boards with the reason,
+and solve intrinsics and distortion (k1, k2, p1, p2, k3). Prints the RMS
+reprojection error and each photo's own; photos far worse than the rest are
+dropped and the solve repeated. A good calibration has RMS below 0.5 px."""
+
+_MOUNT_HELP = """\
+Estimate the camera's height above the ground, pitch and roll from one photo of a
+flat target on the ground (a checkerboard with --board/--square, or a marked
+rectangle with --rect and its four pixel corners), or set mount values by hand.
+The result is written back into the calibration file (or to -o)."""
+
+
+def register(parser):
+    from .main import group
+
+    sub = group(parser, "calibrate_command")
+    p = sub.add_parser("intrinsics", help="intrinsics and distortion from checkerboard photos",
+                       description=_INTR_HELP)
+    p.add_argument("images", nargs="+", metavar="IMAGE", help="checkerboard photos (PNG/JPEG), all the same size")
+    p.add_argument("--board", required=True, metavar="COLSxROWS", help="inner corners of the board, e.g. 9x6")
+    p.add_argument("--square", required=True, type=float, metavar="M", help="side of one square in metres")
+    p.add_argument("-o", "--out", required=True, metavar="camera.toml", help="calibration file to write")
+    p.add_argument("--max-edge", type=float, default=None, metavar="PX",
+                   help="reject photos whose board edges are wider than this (blur; default 4.5 px)")
+    p.add_argument("--json", action="store_true", help="print the report as one JSON object")
+    p.add_argument("-q", "--quiet", action="store_true", help="no per-photo progress on stderr")
+    p.set_defaults(func=_intrinsics)
+
+    p = sub.add_parser("mount", help="camera height/pitch/roll from a ground target, or set by hand",
+                       description=_MOUNT_HELP, formatter_class=parser.formatter_class)
+    p.add_argument("image", nargs="?", metavar="IMAGE", help="photo of the target lying flat on the ground")
+    p.add_argument("--camera", required=True, metavar="camera.toml", help="calibration with the intrinsics")
+    p.add_argument("-o", "--out", metavar="camera.toml", help="file to write (default: update --camera in place)")
+    p.add_argument("--board", metavar="COLSxROWS", help="checkerboard inner corners (with --square)")
+    p.add_argument("--square", type=float, metavar="M", help="checkerboard square side (m)")
+    p.add_argument("--rect", metavar="WxL", help="marked rectangle: side across x side away from the camera (m)")
+    p.add_argument("--corners", metavar="X,Y,...",
+                   help="rectangle corners in pixels: near-left, near-right, far-right, far-left (8 numbers)")
+    for name, what in (("height", "camera height above the ground (m)"), ("pitch", "pitch (deg, + looks down)"),
+                       ("roll", "roll (deg)"), ("yaw", "yaw on the base (deg, + looks left)"),
+                       ("x", "camera x on the base (m, forward)"), ("y", "camera y on the base (m, left)")):
+        p.add_argument(f"--{name}", type=float, metavar="V", help=f"set {what} by hand")
+    p.add_argument("--json", action="store_true", help="print the result as one JSON object")
+    p.set_defaults(func=_mount)
+
+
+def _read_image(path):
+    import cv2
+
+    from ..errors import CalibrationError
+
+    p = Path(path)
+    if not p.is_file():
+        raise CalibrationError(f"{p}: no such file")
+    img = cv2.imread(str(p), cv2.IMREAD_COLOR)
+    if img is None:
+        raise CalibrationError(f"{p}: not a readable image (corrupted or unsupported format)")
+    return img
+
+
+def _intrinsics(args) -> int:
+    from ..camera.calibrate import CalibrateParams, calibrate_intrinsics, parse_board
+    from ..camera.model import save_camera
+    from ..errors import CalibrationError
+
+    board = parse_board(args.board, args.square)
+    params = CalibrateParams() if args.max_edge is None else CalibrateParams(max_edge_px=args.max_edge)
+    images, names, unreadable = [], [], []
+    for path in args.images:
+        try:
+            images.append(_read_image(path))
+            names.append(str(path))
+        except CalibrationError as e:
+            unreadable.append((str(path), str(e).split(": ", 1)[-1]))
+            if not args.quiet:
+                print(f"{path}: rejected: {unreadable[-1][1]}", file=sys.stderr)
+    progress = None if args.quiet else (lambda line: print(line, file=sys.stderr))
+    res = calibrate_intrinsics(images, board, names=names, params=params, progress=progress)
+    from datetime import datetime, timezone
+
+    save_camera(args.out, res.camera, rms_px=res.rms_px, images_used=len(res.used),
+                images_given=len(args.images), board=f"{board.cols}x{board.rows}", square_m=board.square_m,
+                date=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"))
+    c = res.camera
+    report = {"out": args.out, "width": c.width, "height": c.height, "fx": c.fx, "fy": c.fy, "cx": c.cx,
+              "cy": c.cy, "dist": list(c.dist), "rms_px": res.rms_px,
+              "used": [{"image": v.name, "rms_px": v.rms_px} for v in res.used],
+              "rejected": [{"image": v.name, "reason": v.reason} for v in res.rejected]
+              + [{"image": n, "reason": r} for n, r in unreadable]}
+    if args.json:
+        print(json.dumps(report))
+        return 0
+    print(f"calibrated {c.width}x{c.height} from {len(res.used)} of {len(args.images)} photos: "
+          f"RMS {res.rms_px:.3f} px")
+    print(f"  fx {c.fx:.2f}  fy {c.fy:.2f}  cx {c.cx:.2f}  cy {c.cy:.2f}  (px)")
+    print("  dist k1 k2 p1 p2 k3: " + " ".join(f"{d:.5f}" for d in c.dist))
+    for v in res.used:
+        print(f"  {v.name}: {v.rms_px:.3f} px")
+    for r in report["rejected"]:
+        print(f"  {r['image']}: rejected: {r['reason']}")
+    if res.rms_px > 0.5:
+        print("  warning: RMS above 0.5 px; check the board is flat and the photos sharp", file=sys.stderr)
+    print(f"wrote {args.out}")
+    return 0
+
+
+def _mount(args) -> int:
+    from ..camera.calibrate import parse_board
+    from ..camera.model import load_camera, save_camera
+    from ..camera.mount_fit import fit_mount_from_board, fit_mount_from_rectangle, set_mount
+    from ..errors import CalibrationError
+    from ..tomlio import read_toml
+
+    cam = load_camera(args.camera)
+    fit = None
+    if args.image:
+        img = _read_image(args.image)
+        if args.board:
+            if args.square is None:
+                raise CalibrationError("--board needs --square (square side in metres)")
+            fit = fit_mount_from_board(cam, img, parse_board(args.board, args.square), name=args.image)
+        elif args.rect:
+            try:
+                wm, lm = (float(v) for v in args.rect.lower().split("x"))
+            except ValueError:
+                raise CalibrationError(f"--rect: expected WxL in metres such as 1.2x2.0, got {args.rect!r}") from None
+            try:
+                vals = [float(v) for v in (args.corners or "").split(",")]
+            except ValueError:
+                vals = []
+            if len(vals) != 8:
+                raise CalibrationError("--rect needs --corners with 8 numbers: x,y of near-left, near-right, "
+                                       "far-right, far-left")
+            fit = fit_mount_from_rectangle(cam, [vals[0:2], vals[2:4], vals[4:6], vals[6:8]], wm, lm)
+        else:
+            raise CalibrationError("a ground photo needs --board/--square or --rect/--corners")
+        if (img.shape[1], img.shape[0]) != (cam.width, cam.height):
+            raise CalibrationError(f"{args.image}: photo is {img.shape[1]}x{img.shape[0]}, the calibration is "
+                                   f"for {cam.width}x{cam.height}")
+        cam = cam.with_mount(height_m=fit.mount.height_m, pitch_deg=fit.mount.pitch_deg,
+                             roll_deg=fit.mount.roll_deg)
+    by_hand = dict(height_m=args.height, pitch_deg=args.pitch, roll_deg=args.roll, yaw_deg=args.yaw,
+                   x_m=args.x, y_m=args.y)
+    if fit is None and all(v is None for v in by_hand.values()):
+        raise CalibrationError("nothing to do: give a ground photo, or mount values by hand (--height, --pitch, ...)")
+    cam = set_mount(cam, **by_hand)
+    out = args.out or args.camera
+    old = read_toml(args.camera, cls=CalibrationError).get("calibration", {})
+    extra = {k: v for k, v in old.items() if not isinstance(v, dict)}
+    if fit is not None:
+        extra.update(mount_rms_px=fit.rms_px, mount_points=fit.points, mount_photo=str(args.image))
+    save_camera(out, cam, **extra)
+    m = cam.mount
+    res = {"out": out, "height_m": m.height_m, "pitch_deg": m.pitch_deg, "roll_deg": m.roll_deg,
+           "yaw_deg": m.yaw_deg, "x_m": m.x_m, "y_m": m.y_m, "fit_rms_px": fit.rms_px if fit else None}
+    if args.json:
+        print(json.dumps(res))
+        return 0
+    src = f"from {args.image} (RMS {fit.rms_px:.2f} px over {fit.points} points)" if fit else "set by hand"
+    print(f"mount {src}: height {m.height_m:.3f} m, pitch {m.pitch_deg:.2f} deg, roll {m.roll_deg:.2f} deg, "
+          f"yaw {m.yaw_deg:.2f} deg, x {m.x_m:.3f} m, y {m.y_m:.3f} m")
+    print(f"wrote {out}")
+    return 0
