@@ -18,30 +18,43 @@ def max_encoded_len(n: int) -> int:
     return n + n // 254 + 1
 
 
+_BYTE = [bytes((i,)) for i in range(256)]
+
+
 def encode(data) -> bytes:
     """COBS-encode ``data`` (bytes-like). The result holds no zero byte and no delimiter."""
     data = bytes(data)
-    out = bytearray()
-    # Split on zeros: every zero becomes the end of a block; a block longer than
-    # 254 bytes is cut into 254-byte blocks with code 0xFF (no implied zero).
-    for chunk in data.split(b"\x00"):
+    n = len(data)
+    if n < 254:
+        # No block can reach 254 bytes: the output is the data behind one code byte, with
+        # each zero replaced by the distance to the next zero (or to the end).
+        out = bytearray(n + 1)
+        out[1:] = data
+        prev = 0
+        z = data.find(0)
+        while z >= 0:
+            out[prev] = z + 1 - prev
+            prev = z + 1
+            z = data.find(0, prev)
+        out[prev] = n + 1 - prev
+        return bytes(out)
+    chunks = data.split(b"\x00")
+    out = []
+    # Every zero ends a block; a chunk of 254 bytes or more is cut into 254-byte blocks
+    # with code 0xFF (no implied zero after them).
+    for chunk in chunks:
         while len(chunk) >= 254:
-            out.append(0xFF)
-            out += chunk[:254]
+            out.append(b"\xff")
+            out.append(chunk[:254])
             chunk = chunk[254:]
-        out.append(len(chunk) + 1)
-        out += chunk
-    # The split leaves a trailing empty block after a 0xFF block of exactly 254 bytes
-    # that ended the data; the standard encoding ends there without a 0x01.
-    if len(data) and data[-1] != 0 and _ends_with_full_block(data):
-        del out[-1]
-    return bytes(out)
-
-
-def _ends_with_full_block(data: bytes) -> bool:
-    last = data.rfind(b"\x00")
-    tail = len(data) - last - 1
-    return tail > 0 and tail % 254 == 0
+        out.append(_BYTE[len(chunk) + 1])
+        out.append(chunk)
+    # A data end of exactly 254k non-zero bytes ends on a 0xFF block; the standard
+    # encoding stops there, without the empty final block the loop above appends.
+    if data[-1] != 0 and (len(chunks[-1]) % 254) == 0:
+        out.pop()
+        out.pop()
+    return b"".join(out)
 
 
 def decode(data) -> bytes:
@@ -53,21 +66,34 @@ def decode(data) -> bytes:
         If the frame holds a zero byte or a block runs past its end.
     """
     data = bytes(data)
+    if 0 in data:
+        raise ProtocolError(f"COBS: zero byte at offset {data.index(0)}")
     n = len(data)
-    out = bytearray()
+    if n <= 254:
+        # Short frames: every code byte (but the first) marks a zero of the output, unless a
+        # 0xFF block precedes it (then fall through to the general loop).
+        out = bytearray(data)
+        i = 0
+        while i < n:
+            code = data[i]
+            if code == 0xFF:
+                break
+            if i:
+                out[i] = 0
+            i += code
+        else:
+            if i > n:
+                raise ProtocolError(f"COBS: last block runs past the end of the {n}-byte frame")
+            return bytes(out[1:])
+    out = []
     i = 0
     while i < n:
         code = data[i]
-        if code == 0:
-            raise ProtocolError(f"COBS: zero byte at offset {i}")
         end = i + code
         if end > n:
             raise ProtocolError(f"COBS: block at offset {i} runs past the end ({code - 1} bytes, {n - i - 1} left)")
-        block = data[i + 1:end]
-        if 0 in block:
-            raise ProtocolError(f"COBS: zero byte inside the block at offset {i}")
-        out += block
+        out.append(data[i + 1:end])
         i = end
         if code != 0xFF and i < n:
-            out.append(0)
-    return bytes(out)
+            out.append(b"\x00")
+    return b"".join(out)

@@ -252,28 +252,42 @@ def _quality_code(q) -> int:
         raise ProtocolError(f"quality must be one of {', '.join(QUALITIES)}; got {q!r}") from None
 
 
-def _cov_upper(cov):
-    try:
-        c = [[float(cov[i][j]) for j in range(3)] for i in range(3)]
-    except (TypeError, IndexError, ValueError):
-        raise ProtocolError("cov must be a 3x3 matrix") from None
-    # The wire carries one triangle; average so a slightly asymmetric input keeps its meaning.
-    return (c[0][0], 0.5 * (c[0][1] + c[1][0]), 0.5 * (c[0][2] + c[2][0]),
-            c[1][1], 0.5 * (c[1][2] + c[2][1]), c[2][2])
-
-
 def _cov_full(u):
     xx, xy, xt, yy, yt, tt = u
     return ((xx, xy, xt), (xy, yy, yt), (xt, yt, tt))
+
+
+def _pose_payload(msg) -> bytes:
+    try:
+        c = msg.cov
+        r0, r1, r2 = c[0], c[1], c[2]
+        cov = (float(r0[0]), 0.5 * (float(r0[1]) + float(r1[0])), 0.5 * (float(r0[2]) + float(r2[0])),
+               float(r1[1]), 0.5 * (float(r1[2]) + float(r2[1])), float(r2[2]))
+    except (TypeError, IndexError, ValueError, KeyError):
+        raise ProtocolError("cov must be a 3x3 matrix") from None
+    q = _quality_code(msg.quality)
+    lat, lon, st = _latlon(msg.lat), _latlon(msg.lon), _text(msg.status)
+    try:
+        return _POSE.pack(msg.x, msg.y, msg.yaw, lat, lon, *cov, msg.frame_ms, q, 0, st)
+    except OverflowError:  # a finite value beyond binary32: saturate (slow path, rare)
+        return _POSE.pack(_f32(msg.x), _f32(msg.y), _f32(msg.yaw), lat, lon, *(_f32(v) for v in cov),
+                          _f32(msg.frame_ms), q, 0, st)
+    except struct.error:
+        raise ProtocolError("pose: a field is not a number") from None
 
 
 def encode_payload(msg) -> tuple[int, bytes]:
     """(type code, payload bytes) of a message."""
     k = type(msg)
     if k is Pose:
-        return Pose.TYPE, _POSE.pack(_f32(msg.x), _f32(msg.y), _f32(msg.yaw), _latlon(msg.lat), _latlon(msg.lon),
-                                     *(_f32(v) for v in _cov_upper(msg.cov)), _f32(msg.frame_ms),
-                                     _quality_code(msg.quality), 0, _text(msg.status))
+        return Pose.TYPE, _pose_payload(msg)
+    try:
+        return _encode_other(k, msg)
+    except struct.error:
+        raise ProtocolError(f"{k.NAME}: a field is not a number") from None
+
+
+def _encode_other(k, msg) -> tuple[int, bytes]:
     if k is Odometry:
         return Odometry.TYPE, _ODOM.pack(_f32(msg.x), _f32(msg.y), _f32(msg.yaw), _f32(msg.speed), _f32(msg.yaw_rate),
                                          _i32(msg.left_ticks), _i32(msg.right_ticks), _u(msg.flags, 8))
