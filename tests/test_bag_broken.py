@@ -28,7 +28,7 @@ def _bag(run, tmp_path, storage="mcap", **kw):
     return write_bag(bag_name(tmp_path, storage), run_messages(run, m, **kw), m, storage)
 
 
-@pytest.mark.parametrize("storage", ["ros1", "sqlite3"])
+@pytest.mark.parametrize("storage", ["sqlite3"])
 def test_truncated_file_stops_cleanly_before_writing(run, tmp_path, storage):
     bag = bag_from_run(run, bag_name(tmp_path, storage), storage)
     f = bag if storage == "ros1" else next(p for p in bag.iterdir() if p.suffix in (".db3", ".mcap"))
@@ -41,15 +41,19 @@ def test_truncated_file_stops_cleanly_before_writing(run, tmp_path, storage):
     assert not (tmp_path / "out").exists()
 
 
-@pytest.mark.parametrize("keep_metadata", [True, False])
-def test_truncated_mcap_is_salvaged_up_to_the_cut(run, tmp_path, keep_metadata):
-    # A recorder killed mid-write: the MCAP file has no summary or footer (and often no metadata.yaml).
-    bag = bag_from_run(run, bag_name(tmp_path, "mcap"), "mcap")
-    f = next(bag.glob("*.mcap"))
+@pytest.mark.parametrize("storage,variant", [("mcap", "metadata"), ("mcap", "no metadata"), ("ros1", ".bag"),
+                                             ("ros1", ".bag.active")])
+def test_truncated_recording_is_salvaged_up_to_the_cut(run, tmp_path, storage, variant):
+    # A recorder killed mid-write: an MCAP file without summary or footer (and often no metadata.yaml
+    # beside it), or a ROS 1 bag whose index was never written (left as NAME.bag.active).
+    bag = bag_from_run(run, bag_name(tmp_path, storage), storage)
+    f = bag if storage == "ros1" else next(bag.glob("*.mcap"))
     data = f.read_bytes()
     f.write_bytes(data[: len(data) * 6 // 10])
-    if not keep_metadata:
+    if variant == "no metadata":
         (bag / "metadata.yaml").unlink()
+    if variant == ".bag.active":
+        bag = bag.rename(bag.with_name(bag.name + ".active"))
     res = import_bag(bag, tmp_path / "out", ImportOptions(**Q))
     assert res.complete and any("recording cut short" in n and "salvaged" in n for n in res.report["notes"])
     out = RunFolder.open(tmp_path / "out")

@@ -155,6 +155,13 @@ def open_bag(path):
     if not p.exists():
         raise InputError(f"{p}: no such bag file or folder")
     ros1 = p.is_file() and p.suffix == ".bag"
+    if p.is_file() and p.suffix != ".bag":
+        with open(p, "rb") as fh:
+            if fh.read(13) == b"#ROSBAG V2.0\n":  # a ROS 1 bag under another name (e.g. .bag.active)
+                salvaged = _salvage(p)
+                if salvaged is None:
+                    raise InputError(f"{p}: ROS 1 bag with nothing readable in it")
+                return salvaged
     try:
         reader = rb.highlevel.AnyReader([p], default_typestore=typestore(ros1=ros1))
         reader.open()
@@ -171,14 +178,13 @@ def open_bag(path):
 
 def _salvage(p: Path):
     """A reader over the whole records of a cut-short MCAP recording, or None."""
-    from .salvage import SalvagedMcap, salvage_candidate
+    from .salvage import open_salvage
 
-    f = salvage_candidate(p)
-    if f is None:
-        return None
     try:
-        r = SalvagedMcap(f)
+        r = open_salvage(p)
     except (InputError, OSError, ValueError, *_reader_errors()):
+        return None
+    if r is None:
         return None
     if r.message_count == 0:
         r.close()
