@@ -61,6 +61,24 @@ def test_send_accepts_pose_estimate_like_objects_and_counts_bad_ones():
         assert len(got) == 1 and got[0].quality == "searching" and got[0].status == "lost"
 
 
+def test_time_sync_on_loop_answers_itself():
+    # loop:// echoes: our request comes back as a request, is answered, and the reply comes back.
+    # Same clock on both "ends", so the offset must be within half the round trip of 0.
+    with open_endpoint("loop://", timesync_s=0.02) as ep:
+        got = []
+        t0 = time.monotonic()
+        while time.monotonic() - t0 < 0.2:
+            got += ep.poll()
+            time.sleep(0.002)
+        assert got == []                               # time-sync traffic is handled, not returned
+        cs = ep.clock
+        assert cs.replies >= 3 and abs(cs.offset_s) <= cs.delay_s / 2 + 2e-6
+        assert ep.to_host_time(10.0) == pytest.approx(10.0 - cs.offset_s)
+    no_sync = open_endpoint("loop://")
+    assert no_sync.to_host_time(5.0) == 5.0 and no_sync.clock is None
+    no_sync.close()
+
+
 def test_rate_limit_per_type():
     clock = [0.0]
     rl = RateLimiter({"pose": 10.0}, clock=lambda: clock[0])

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import math
 import time
 from urllib.parse import parse_qsl
 
@@ -117,3 +118,55 @@ class RateLimiter:
             return True
         self._state[name] = (tokens, now)
         return False
+
+
+class ClockSync:
+    """Offset between a peer's clock and ours from two-way time transfers (``TimeSync`` messages).
+
+    Keeps the exchanges of the last ``window`` replies and uses the one with the
+    smallest round trip (its offset has the smallest error bound, +-delay/2: common
+    practice in NTP-style clock filters).
+
+    Attributes
+    ----------
+    offset_s : float
+        Peer clock minus host clock (s); NaN until the first reply.
+    delay_s : float
+        Round trip of the exchange the offset comes from (s); NaN until the first reply.
+    """
+
+    def __init__(self, period_s: float, *, window: int = 8):
+        if not period_s > 0:
+            raise LinkError(f"time-sync period must be positive, got {period_s}")
+        self.period_s = float(period_s)
+        self._window = int(window)
+        self._samples = []
+        self._next = -math.inf
+        self.offset_s = math.nan
+        self.delay_s = math.nan
+        self.replies = 0
+
+    @property
+    def synced(self) -> bool:
+        return self.replies > 0
+
+    def due(self, now: float) -> bool:
+        if now >= self._next:
+            self._next = now + self.period_s
+            return True
+        return False
+
+    def on_reply(self, msg, now: float) -> None:
+        from .messages import clock_offset
+
+        off, delay = clock_offset(msg.t_origin, msg.t_receive, msg.t_transmit, now)
+        if not (math.isfinite(off) and 0.0 <= delay < 10.0):
+            return  # a reply to a request from before a reconnect, or garbage: ignore
+        self.replies += 1
+        self._samples.append((delay, off))
+        del self._samples[:-self._window]
+        self.delay_s, self.offset_s = min(self._samples)
+
+    def to_host(self, t_peer: float) -> float:
+        """A peer timestamp (s) on the host clock; unchanged until the first reply."""
+        return t_peer - self.offset_s if self.replies else t_peer

@@ -22,7 +22,7 @@ import serial
 
 from ..errors import LinkError
 from . import messages as m
-from .endpoint import Endpoint, RateLimiter, log
+from .endpoint import ClockSync, Endpoint, RateLimiter, log
 from .framer import Framer
 
 
@@ -50,11 +50,19 @@ class SerialEndpoint(Endpoint):
         Return :class:`messages.Unknown` for frames of unknown type (always counted).
     on_event : callable or None
         Called with a one-line text on disconnect/reconnect; default logs a warning.
+    timesync_s : float or None
+        Send a time-sync request this often (s) and keep ``clock`` (a :class:`ClockSync`)
+        up to date from the replies; ``to_host_time(t)`` then maps the peer's timestamps
+        to the host clock (``clock`` argument, ``time.monotonic`` by default). None: off.
+    answer_timesync : bool
+        Answer the peer's time-sync requests with the host clock (default True).
+        Time-sync messages handled here are not returned by :meth:`poll`.
     """
 
     def __init__(self, url: str, *, baud: int = 115200, rate_hz=None, wait: bool = False,
                  backoff_s=(0.05, 2.0), tx_queue_bytes: int = 8192, max_read: int = 65536,
-                 keep_unknown: bool = False, on_event=None, clock=time.monotonic):
+                 keep_unknown: bool = False, on_event=None, timesync_s=None, answer_timesync: bool = True,
+                 clock=time.monotonic):
         super().__init__()
         self.url = url
         self.baud = int(baud)
@@ -74,6 +82,8 @@ class SerialEndpoint(Endpoint):
         self._down_since = None
         self._next_try = 0.0
         self._attempts = 0
+        self.clock = ClockSync(timesync_s) if timesync_s is not None else None
+        self._answer = bool(answer_timesync)
         try:
             self._port = self._open()
         except LinkError:
@@ -152,7 +162,33 @@ class SerialEndpoint(Endpoint):
             return []
         if self._tx:
             self._flush()
-        return self.framer.feed(data) if data else []
+        now = self._clock()
+        if self.clock is not None and self.clock.due(now):
+            self.send(m.TimeSync(now, "request", t_origin=now))
+        if not data:
+            return []
+        out = self.framer.feed(data)
+        if (self.clock is not None or self._answer) and any(type(x) is m.TimeSync for x in out):
+            out = self._timesync(out, now)
+        return out
+
+    def _timesync(self, msgs, now):
+        keep = []
+        for x in msgs:
+            if type(x) is not m.TimeSync:
+                keep.append(x)
+            elif x.phase == "reply" and self.clock is not None:
+                self.clock.on_reply(x, now)
+            elif x.phase == "request" and self._answer:
+                t = self._clock()
+                self.send(m.TimeSync(t, "reply", t_origin=x.t_origin, t_receive=now, t_transmit=t))
+            else:
+                keep.append(x)
+        return keep
+
+    def to_host_time(self, t_peer: float) -> float:
+        """Peer timestamp (s) -> host clock, once time sync has a reply (else unchanged)."""
+        return self.clock.to_host(t_peer) if self.clock is not None else t_peer
 
     def send(self, msg) -> bool:
         """Queue one message as a frame; False if it was dropped (and counted why)."""
