@@ -1,0 +1,155 @@
+"""Whole simulated runs: drive a rover through a site, render its camera, model its sensors, write a run folder.
+
+:func:`make_run` is what ``tinyloc sim run`` calls. It is deterministic for a
+(world, seed, parameters) triple: the same inputs write byte-identical files.
+Random streams are split per purpose (route, IMU, odometry, GNSS, appearance)
+with ``numpy.random.SeedSequence``, so changing, say, the frame count does not
+change the route.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..camera.model import CameraModel, Mount
+from ..errors import InputError
+from ..runfolder import RunWriter
+from .render import Renderer, RenderParams
+from .rover import DriveParams, drive
+from .sensors import G0, GnssParams, ImuParams, OdometryParams, gnss_samples, imu_samples, odometry_samples
+from .world import World
+
+# The simulator's default camera: VGA, about 70 degrees across, mild barrel distortion, 0.8 m up, 8 deg down.
+DEFAULT_CAMERA = CameraModel(width=640, height=480, fx=450.0, fy=450.0, cx=319.5, cy=239.5,
+                             dist=(-0.08, 0.015, 0.0, 0.0, 0.0), mount=Mount(height_m=0.8, pitch_deg=8.0))
+
+
+@dataclass(frozen=True)
+class RunParams:
+    """Everything that shapes a simulated run, besides the world and the seed."""
+
+    frames: int = 100
+    frame_rate_hz: float = 5.0
+    image_ext: str = ".png"
+    jpeg_quality: int = 90
+    write_labels: bool = True
+    exposure_drift: float = 0.12       # 1-sigma of the log exposure drift
+    wb_drift: float = 0.04             # 1-sigma of the white-balance channel gains
+    sun_el_deg: tuple = (25.0, 60.0)   # range drawn per run
+    drive: DriveParams = field(default_factory=DriveParams)
+    imu: ImuParams = field(default_factory=ImuParams)
+    odometry: OdometryParams = field(default_factory=OdometryParams)
+    gnss: GnssParams = field(default_factory=GnssParams)
+    render: RenderParams = field(default_factory=RenderParams)
+
+
+def _ou(rng, n, sigma, corr_steps):
+    a = math.exp(-1.0 / max(corr_steps, 1e-9))
+    q = sigma * math.sqrt(1 - a * a)
+    x = rng.normal(0, sigma)
+    out = np.empty(n)
+    for k in range(n):
+        out[k] = x
+        x = a * x + rng.normal(0, q)
+    return out
+
+
+def make_run(world: World, out_dir, *, seed: int, params: RunParams = RunParams(),
+             camera: CameraModel | None = None, progress=None, name: str = "") -> dict:
+    """Simulate one drive and write it as a run folder.
+
+    Parameters
+    ----------
+    world : World
+    out_dir : path
+        The run folder to create (must be new or empty).
+    seed : int
+    params : RunParams
+    camera : CameraModel, optional
+        Defaults to :data:`DEFAULT_CAMERA`.
+    progress : callable(done, total), optional
+        Called after each frame.
+    name : str
+        run.json name (default: the folder name).
+
+    Returns
+    -------
+    dict
+        Summary figures (distance, duration, frames, mean render time, odometry drift, GNSS error).
+    """
+    import time
+
+    if params.frames < 1:
+        raise InputError("--frames must be at least 1")
+    if not 0.1 <= params.frame_rate_hz <= 60.0:
+        raise InputError(f"frame rate {params.frame_rate_hz} Hz is out of range (0.1 .. 60)")
+    cam = camera or DEFAULT_CAMERA
+    ss = np.random.SeedSequence([int(seed), 0x52554E])
+    r_route, r_imu, r_odo, r_gnss, r_look = (np.random.default_rng(s) for s in ss.spawn(5))
+    t0 = 1.5
+    duration = t0 + (params.frames - 1) / params.frame_rate_hz + 1.0
+    traj = drive(world, r_route, duration, params.drive)
+    t_imu, f_imu = imu_samples(traj, r_imu, params.imu)
+    t_odo, odo = odometry_samples(traj, r_odo, params.odometry)
+    gn = gnss_samples(traj, world, r_gnss, params.gnss)
+    frame = world.frame
+    sun_az = float(r_look.uniform(0.0, 360.0))
+    sun_el = float(r_look.uniform(*params.sun_el_deg))
+    t_frames = t0 + np.arange(params.frames) / params.frame_rate_hz
+    st = traj.at(t_frames)
+    n = params.frames
+    expo = np.exp(_ou(r_look, n, params.exposure_drift, 3.0 * params.frame_rate_hz))
+    wb = 1.0 + np.stack([_ou(r_look, n, params.wb_drift, 5.0 * params.frame_rate_hz) for _ in range(3)], axis=1)
+    wb[:, 1] = 1.0  # white balance drifts red and blue against green
+    renderer = Renderer(world, cam, params.render, sun_az_deg=sun_az, sun_el_deg=sun_el, seed=int(seed))
+    meta = {"simulated": {"seed": int(seed), "site": world.meta.get("name"), "site_seed": world.meta.get("seed"),
+                          "sun_az_deg": sun_az, "sun_el_deg": sun_el, "frame_rate_hz": params.frame_rate_hz,
+                          "odometry": asdict(params.odometry), "gnss": asdict(params.gnss), "imu": asdict(params.imu)}}
+    lat_f, lon_f = frame.to_latlon(st["x"], st["y"])
+    lat_g, lon_g = frame.to_latlon(gn["x"], gn["y"])
+    render_ms = []
+    with RunWriter(out_dir, camera=cam, origin=world.origin, name=name, source="tinyloc sim run",
+                   extra=meta, image_ext=params.image_ext, jpeg_quality=params.jpeg_quality) as w:
+        for k in range(n):
+            pose = (st["x"][k], st["y"][k], st["roll"][k], st["pitch"][k], st["yaw"][k])
+            a = time.perf_counter()
+            bgr, lab = renderer.render(pose, t_s=float(t_frames[k]), frame_index=k, exposure=float(expo[k]),
+                                       white_balance=tuple(wb[k]), rates=(st["yaw_rate"][k], 0.0, st["speed"][k]))
+            render_ms.append((time.perf_counter() - a) * 1e3)
+            w.add_frame(float(t_frames[k]), bgr, label=lab if params.write_labels else None)
+            w.add_truth(float(t_frames[k]), float(lat_f[k]), float(lon_f[k]), float(st["yaw"][k]),
+                        float(st["x"][k]), float(st["y"][k]))
+            if progress is not None:
+                progress(k + 1, n)
+        for k in range(len(t_imu)):
+            w.add_imu(round(float(t_imu[k]), 6), *(float(v) for v in f_imu[k]))
+        for k in range(len(t_odo)):
+            w.add_odometry(round(float(t_odo[k]), 6), *(float(v) for v in odo[k]))
+        for k in range(len(gn["t"])):
+            w.add_gnss(float(gn["t"][k]), float(lat_g[k]), float(lon_g[k]), float(world.origin[2] + gn["h"][k]),
+                       float(gn["acc_m"][k]))
+    dist = float(traj.s[-1])
+    d_odo = float(np.sum(np.hypot(*np.diff(odo[:, :2], axis=0).T)))
+    return {"frames": n, "duration_s": float(traj.t[-1]), "distance_m": dist,
+            "render_ms_median": float(np.median(render_ms)), "odometry_length_ratio": d_odo / max(dist, 1e-9),
+            "gnss_rms_m": float(np.sqrt(np.mean(gn["err_x"] ** 2 + gn["err_y"] ** 2))),
+            "gnss_blocked_mean": float(np.mean(gn["blocked"])), "gravity": G0}
+
+
+def stderr_progress(label: str):
+    """A progress callback printing ``label k/n`` on one rewritten stderr line."""
+    def cb(done, total):
+        end = "\n" if done == total else ""
+        print(f"\r{label} {done}/{total}", end=end, file=sys.stderr, flush=True)
+    return cb
+
+
+def site_world_path(site_dir) -> Path:
+    """world.json inside a site folder (or the file itself)."""
+    p = Path(site_dir)
+    return p / "world.json" if p.is_dir() else p

@@ -1,0 +1,198 @@
+"""Sensor models of the simulated rover: accelerometer, wheel odometry and a consumer GNSS receiver.
+
+Each model is a frozen parameter dataclass and a pure function of the true
+:class:`~tinyloc.sim.rover.Trajectory` and a seeded generator.
+
+- IMU (:func:`imu_samples`): specific force in the FLU base frame,
+  ``f = R^T (a + g_up)`` with ``R`` = world_from_base; level and at rest it
+  reads (0, 0, +g). Constant per-axis bias, a slow bias random walk, white
+  noise and vibration that grows with speed.
+- Wheel odometry (:func:`odometry_samples`): integrates the true distance
+  and rotation of each step with a distance scale error, random slip, a
+  rotation scale error and a heading drift per metre. Common practice: wheel
+  odometry drifts by 1-5 % of the distance travelled.
+- GNSS (:func:`gnss_samples`): a slowly wandering bias (first-order
+  Gauss-Markov process per axis), white noise, and multipath near tall
+  buildings: the share of the sky blocked above ``mask_deg`` scales an extra
+  wandering error and the rate of jumps. The reported accuracy follows the
+  open-sky figure and the blockage, but in multipath it is sometimes
+  optimistic (the receiver does not know).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..classes import BUILDING
+from ..frames import rpy_to_matrix
+from .rover import Trajectory
+from .world import B_CLS, B_CX, B_CY, B_HX, B_HY, B_YAW, B_Z1, World
+
+G0 = 9.80665  # standard gravity, m/s^2 (CGPM 1901 conventional value)
+
+
+@dataclass(frozen=True)
+class ImuParams:
+    """Accelerometer model (m/s^2, seconds)."""
+
+    rate_hz: float = 100.0
+    noise_std: float = 0.03        # white noise per sample
+    bias_std: float = 0.04         # constant bias per axis, drawn per run
+    bias_walk: float = 0.002       # bias random walk, m/s^2 per sqrt(s)
+    vibration_std: float = 0.15    # extra noise at 1 m/s, scales with speed
+
+
+@dataclass(frozen=True)
+class OdometryParams:
+    """Wheel-odometry model. ``scale_error`` is the distance error as a fraction of distance travelled."""
+
+    rate_hz: float = 50.0
+    scale_error: float = 0.02          # +2 %: wheels a little smaller than configured
+    slip_std: float = 0.01             # relative distance noise, correlated over ~1 s
+    yaw_scale_error: float = 0.01      # rotation scale error (track width error)
+    yaw_drift_deg_per_m: float = 0.05  # heading drift per metre travelled
+    yaw_noise_deg: float = 0.02        # white heading noise per step
+
+
+@dataclass(frozen=True)
+class GnssParams:
+    """Consumer GNSS receiver model (metres, seconds, degrees)."""
+
+    rate_hz: float = 1.0
+    bias_sigma_m: float = 1.5          # stationary std of the wandering bias, per axis (east, north)
+    bias_tau_s: float = 60.0           # its correlation time
+    white_sigma_m: float = 0.4         # per-fix white noise, per axis
+    height_factor: float = 1.8         # vertical errors are this much larger
+    mask_deg: float = 25.0             # buildings above this elevation block the sky
+    multipath_sigma_m: float = 4.0     # extra wandering error at a fully blocked sky, per axis
+    jump_rate_per_s: float = 0.08      # jump rate at a fully blocked sky
+    jump_sigma_m: float = 6.0          # size of a jump, per axis
+    jump_s: tuple = (2.0, 8.0)         # how long a jump lasts
+    optimistic_prob: float = 0.4       # in multipath: chance an epoch reports the open-sky accuracy
+    antenna_height_m: float = 0.9
+
+
+def _gauss_markov(rng, n, dt, sigma, tau):
+    """First-order Gauss-Markov sequence: stationary std ``sigma``, correlation time ``tau``."""
+    a = math.exp(-dt / tau)
+    q = sigma * math.sqrt(1.0 - a * a)
+    out = np.empty(n)
+    x = rng.normal(0.0, sigma)
+    for k in range(n):
+        out[k] = x
+        x = a * x + rng.normal(0.0, q)
+    return out
+
+
+def imu_samples(traj: Trajectory, rng: np.random.Generator, p: ImuParams = ImuParams()):
+    """(t, f (N,3)) accelerometer specific force in the FLU base frame (m/s^2)."""
+    t = np.arange(traj.t[0], traj.t[-1], 1.0 / p.rate_hz)
+    st = traj.at(t)
+    n = len(t)
+    bias = rng.normal(0.0, p.bias_std, 3)
+    walk = np.cumsum(rng.normal(0.0, p.bias_walk * math.sqrt(1.0 / p.rate_hz), (n, 3)), axis=0)
+    f = np.empty((n, 3))
+    for k in range(n):
+        r = rpy_to_matrix(st["roll"][k], st["pitch"][k], st["yaw"][k])
+        c, s = math.cos(st["yaw"][k]), math.sin(st["yaw"][k])
+        a_w = np.array([c * st["a_long"][k] - s * st["a_lat"][k], s * st["a_long"][k] + c * st["a_lat"][k], G0])
+        f[k] = r.T @ a_w
+    vib = rng.normal(0.0, 1.0, (n, 3)) * (p.vibration_std * np.abs(st["speed"]))[:, None]
+    f += bias + walk + vib + rng.normal(0.0, p.noise_std, (n, 3))
+    return t, f
+
+
+def odometry_samples(traj: Trajectory, rng: np.random.Generator, p: OdometryParams = OdometryParams()):
+    """(t, pose (N,3)) wheel-odometry pose (x, y, yaw) in its own frame, starting at (0, 0, 0)."""
+    t = np.arange(traj.t[0], traj.t[-1], 1.0 / p.rate_hz)
+    st = traj.at(t)
+    ds = np.diff(st["s"], prepend=st["s"][0])
+    yaw_true = np.unwrap(st["yaw"])
+    dyaw = np.diff(yaw_true, prepend=yaw_true[0])
+    n = len(t)
+    corr = max(1, int(p.rate_hz))
+    slip = np.convolve(rng.normal(0, 1, n + corr), np.ones(corr) / math.sqrt(corr), mode="same")[:n] * p.slip_std
+    ds_o = ds * (1.0 + p.scale_error) * (1.0 + slip)
+    dyaw_o = dyaw * (1.0 + p.yaw_scale_error) + math.radians(p.yaw_drift_deg_per_m) * ds \
+        + rng.normal(0, math.radians(p.yaw_noise_deg), n) * (ds > 1e-6)
+    yaw_o = np.cumsum(dyaw_o)
+    # midpoint heading over each step
+    yaw_mid = yaw_o - 0.5 * dyaw_o
+    x = np.cumsum(ds_o * np.cos(yaw_mid))
+    y = np.cumsum(ds_o * np.sin(yaw_mid))
+    return t, np.stack([x, y, np.arctan2(np.sin(yaw_o), np.cos(yaw_o))], axis=1)
+
+
+def sky_blockage(world: World, x: float, y: float, *, mask_deg: float = 25.0, antenna_h: float = 0.9,
+                 n_az: int = 36, max_range_m: float = 80.0) -> float:
+    """Fraction of azimuths (0..1) where a building rises above ``mask_deg`` seen from (x, y)."""
+    b = world.boxes[world.boxes[:, B_CLS] == BUILDING] if len(world.boxes) else world.boxes
+    if len(b) == 0:
+        return 0.0
+    d = np.hypot(b[:, B_CX] - x, b[:, B_CY] - y)
+    b = b[d - np.hypot(b[:, B_HX], b[:, B_HY]) < max_range_m]
+    if len(b) == 0:
+        return 0.0
+    az = np.arange(n_az) * (2 * math.pi / n_az)
+    dx, dy = np.cos(az)[:, None], np.sin(az)[:, None]
+    c, s = np.cos(b[:, B_YAW])[None], np.sin(b[:, B_YAW])[None]
+    px, py = x - b[:, B_CX][None], y - b[:, B_CY][None]
+    lx, ly = c * px + s * py, -s * px + c * py
+    ldx, ldy = c * dx + s * dy, -s * dx + c * dy
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t1 = (-b[:, B_HX][None] - lx) / ldx
+        t2 = (b[:, B_HX][None] - lx) / ldx
+        t3 = (-b[:, B_HY][None] - ly) / ldy
+        t4 = (b[:, B_HY][None] - ly) / ldy
+    tmin = np.maximum(np.minimum(t1, t2), np.minimum(t3, t4))
+    tmax = np.minimum(np.maximum(t1, t2), np.maximum(t3, t4))
+    hit = (tmax >= np.maximum(tmin, 0.0)) & np.isfinite(tmin)
+    dist = np.where(hit, np.maximum(tmin, 0.1), np.inf)
+    elev = np.degrees(np.arctan2(b[:, B_Z1][None] - antenna_h, dist))
+    blocked = np.any(hit & (elev > mask_deg), axis=1)
+    return float(np.mean(blocked))
+
+
+def gnss_samples(traj: Trajectory, world: World, rng: np.random.Generator, p: GnssParams = GnssParams()):
+    """GNSS fixes at ``rate_hz``.
+
+    Returns
+    -------
+    dict with arrays ``t``, ``x``, ``y`` (ENU fix, m), ``h`` (height above the origin's, m),
+    ``acc_m`` (reported 1-sigma horizontal accuracy), ``err_x``, ``err_y`` (true errors), ``blocked``
+    (sky blockage 0..1 at each fix).
+    """
+    dt = 1.0 / p.rate_hz
+    t = np.arange(math.ceil(traj.t[0]), traj.t[-1], dt)
+    st = traj.at(t)
+    n = len(t)
+    blocked = np.array([sky_blockage(world, st["x"][k], st["y"][k], mask_deg=p.mask_deg,
+                                     antenna_h=p.antenna_height_m) for k in range(n)])
+    bx = _gauss_markov(rng, n, dt, p.bias_sigma_m, p.bias_tau_s)
+    by = _gauss_markov(rng, n, dt, p.bias_sigma_m, p.bias_tau_s)
+    bz = _gauss_markov(rng, n, dt, p.bias_sigma_m * p.height_factor, p.bias_tau_s)
+    mx = _gauss_markov(rng, n, dt, 1.0, 20.0)
+    my = _gauss_markov(rng, n, dt, 1.0, 20.0)
+    wx, wy = rng.normal(0, p.white_sigma_m, n), rng.normal(0, p.white_sigma_m, n)
+    wz = rng.normal(0, p.white_sigma_m * p.height_factor, n)
+    jx, jy = np.zeros(n), np.zeros(n)
+    k = 0
+    while k < n:
+        if rng.random() < p.jump_rate_per_s * blocked[k] * dt:
+            length = int(rng.uniform(*p.jump_s) / dt)
+            jx[k:k + length] += rng.normal(0, p.jump_sigma_m)
+            jy[k:k + length] += rng.normal(0, p.jump_sigma_m)
+            k += length
+        k += 1
+    mp = p.multipath_sigma_m * blocked
+    ex = bx + wx + mp * mx + jx
+    ey = by + wy + mp * my + jy
+    open_sky = math.sqrt(p.bias_sigma_m ** 2 + p.white_sigma_m ** 2)
+    honest = np.sqrt(open_sky ** 2 + mp ** 2)
+    optimistic = (blocked > 0) & (rng.random(n) < p.optimistic_prob)
+    acc = np.where(optimistic, open_sky, honest) * np.exp(rng.normal(0, 0.1, n))
+    return {"t": t, "x": st["x"] + ex, "y": st["y"] + ey, "h": bz + wz, "acc_m": acc,
+            "err_x": ex, "err_y": ey, "blocked": blocked}
