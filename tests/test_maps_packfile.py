@@ -310,7 +310,8 @@ def test_stream_that_inflates_past_the_tile_size_is_damaged(packed, tmp_path, ca
     p, m, _ = packed
     raw = p.read_bytes()
     k, index = first_stored_tile(p)
-    bomb = zlib.compress(bytes(m.n_channels * m.tile * m.tile * 50), 9)  # 50x the tile, all zeros
+    masks = struct.pack("<QQ", (1 << m.n_channels) - 1, 0)  # every channel stored
+    bomb = masks + zlib.compress(bytes(m.n_channels * m.tile * m.tile * 50), 9)  # 50x the tile, all zeros
     b = bytearray(patch_index(raw, k, off=len(raw), length=len(bomb))) + bomb
     hsize, index_end = header_end(raw)
     struct.pack_into("<QII", b, hsize + 16 * k, len(raw), len(bomb), zlib.crc32(bomb))
@@ -324,6 +325,47 @@ def test_stream_that_inflates_past_the_tile_size_is_damaged(packed, tmp_path, ca
         assert pm.read_window(tr * m.tile, tc * m.tile, out, known_out=known) == 1
         assert not known.any()
     assert any("does not inflate to the declared tile size" in r.getMessage() for r in caplog.records)
+
+
+@pytest.mark.parametrize("payload,reason", [
+    (struct.pack("<QQ", 1 << 20, 0), "channel masks name channels the map does not have"),
+    (struct.pack("<QQ", 0b1, 0b11), "channel masks name channels the map does not have"),
+    (struct.pack("<QQ", 0, 0), "channel masks name channels the map does not have"),
+    (struct.pack("<Q", 1), "shorter than its channel masks"),
+    (struct.pack("<QQ", 0b1, 0b1) + b"junk", "data after a tile with no stored channels"),
+    (struct.pack("<QQ", 0b1, 0) + b"not a zlib stream", "bad zlib stream"),
+    (struct.pack("<QQ", 0b11, 0) + zlib.compress(bytes(32 * 32)), "stream does not inflate to the declared tile size"),
+])
+def test_malformed_tile_payloads_read_as_unknown(packed, tmp_path, caplog, payload, reason):
+    p, m, _ = packed
+    raw = p.read_bytes()
+    k, _ = first_stored_tile(p)
+    hsize, index_end = header_end(raw)
+    b = bytearray(raw) + payload
+    struct.pack_into("<QII", b, hsize + 16 * k, len(raw), len(payload), zlib.crc32(payload))
+    struct.pack_into("<I", b, index_end - 4, zlib.crc32(bytes(b[hsize:index_end - 4])))
+    q = tmp_path / "payload.tlm"
+    q.write_bytes(bytes(b))
+    tr, tc = divmod(k, m.tile_cols)
+    with caplog.at_level(logging.WARNING, logger="tinyloc.maps"), PackedMap.open(q) as pm:
+        out = np.ones((m.n_channels, m.tile, m.tile), dtype=np.float32)
+        known = np.ones((m.tile, m.tile), dtype=np.uint8)
+        assert pm.read_window(tr * m.tile, tc * m.tile, out, known_out=known) == 1
+        assert not known.any() and not out.any()
+    assert any(reason in r.getMessage() for r in caplog.records), [r.getMessage() for r in caplog.records]
+
+
+def test_full_and_absent_channels_round_trip(tmp_path):
+    m = meta(rows=64, cols=64, tile=32, names=("a", "b", "c"))
+    cov = np.zeros((3, 64, 64), dtype=np.float32)
+    cov[0] = 1.0                     # full in every tile
+    cov[1, :32, :32] = 0.5           # stored in one tile, absent elsewhere
+    cov[2, 40:, 40:] = 1.0           # full in one tile, partly in none
+    q = tmp_path / "masks.tlm"
+    write_packed(q, m, cov)
+    with PackedMap.open(q) as pm:
+        got = pm.read_all()
+    assert np.array_equal(got, np.rint(cov * 255).astype(np.uint8) * np.float32(1 / 255))
 
 
 def test_random_damage_anywhere_never_crashes(packed, tmp_path):

@@ -45,6 +45,9 @@ class PackParams:
         Ground classes from top to bottom; each keeps only the ground the classes
         above leave uncovered (see :class:`~tinyloc.maps.raster.BandRasterizer`).
         Empty tuple: classes are independent.
+    levels : int
+        Coverage steps stored (2..256). 16 (steps of 1/15) places an edge to a
+        fifteenth of a cell and makes files far smaller than 256 steps.
     """
 
     res_m: float = 0.5
@@ -52,8 +55,11 @@ class PackParams:
     margin_m: float = 4.0
     max_side_m: float = 20000.0
     surface_order: tuple = (BUILDING, WATER, ROAD, PARKING, SIDEWALK, GRASS)
+    levels: int = 16
 
     def __post_init__(self):
+        if not 2 <= self.levels <= 256:
+            raise InputError(f"coverage levels {self.levels} outside 2..256")
         if not (math.isfinite(self.res_m) and 0.02 <= self.res_m <= 50.0):
             raise InputError(f"resolution {self.res_m!r} m is outside 0.02..50 m")
         if not 8 <= self.tile <= 1024:
@@ -239,7 +245,7 @@ def pack_geojson(src, out_path, *, res_m: float = 0.5, rules=None, progress=None
     with PackWriter(out_path, meta) as w:
         for b in range(ras.n_bands):
             ras.band(b, band)
-            q = quantize(band)
+            q = quantize(band, prm.levels)
             for tc in range(meta.tile_cols):
                 src_blk = q[:, :, tc * t:(tc + 1) * t]
                 block[...] = 0

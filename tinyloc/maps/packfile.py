@@ -8,7 +8,9 @@ Layout (all little-endian; the full specification is ``maps_packed/FORMAT.md``):
              class table (n_channels x [class index u8, name length u8, ASCII name]),
              CRC-32 of everything before it
     index    n_tiles x [offset u64, length u32, crc32 u32] (row-major tiles), CRC-32 of the index
-    tiles    zlib streams; each inflates to n_channels x tile x tile uint8 coverage (value / 255).
+    tiles    present mask u64, full mask u64, then one zlib stream that inflates to the channels
+             present and not full, in channel order, each tile x tile uint8 coverage (value / 255).
+             Channels absent from the tile read 0, full ones read 1.
              length 0 = a tile with nothing on it (all zero, but known).
 
 The reader checks every declared size against hard limits and against the file
@@ -40,6 +42,7 @@ MAGIC = b"TLMAP\r\n\x1a"
 VERSION = 1
 _FIXED = struct.Struct("<8sHHI6dIIHHI")  # 80 bytes
 _ENTRY = struct.Struct("<QII")  # 16 bytes
+_MASKS = struct.Struct("<QQ")  # tile payload prefix: present mask, full mask
 MIN_HEADER = _FIXED.size + 4
 # Hard limits (the decoder refuses anything beyond them before allocating).
 MAX_HEADER = 65536
@@ -174,11 +177,17 @@ class PackWriter:
         if data.shape != (m.n_channels, m.tile, m.tile) or data.dtype != np.uint8:
             raise InputError(f"tile data must be uint8 {(m.n_channels, m.tile, m.tile)}, got {data.dtype} {data.shape}")
         k = tile_row * m.tile_cols + tile_col
-        if not data.any():
+        present = data.reshape(m.n_channels, -1).max(axis=1) > 0
+        if not present.any():
             self._index[k] = (0, 0, 0)
             self.empty_tiles += 1
         else:
-            blob = zlib.compress(np.ascontiguousarray(data).tobytes(), self.level)
+            full = data.reshape(m.n_channels, -1).min(axis=1) == 255
+            stored = present & ~full
+            pm = sum(1 << i for i in np.flatnonzero(present))
+            fm = sum(1 << i for i in np.flatnonzero(full))
+            body = zlib.compress(np.ascontiguousarray(data[stored]).tobytes(), self.level) if stored.any() else b""
+            blob = _MASKS.pack(pm, fm) + body
             self._f.write(blob)
             self._index[k] = (self._pos, len(blob), zlib.crc32(blob))
             self._pos += len(blob)
@@ -221,7 +230,7 @@ class PackWriter:
             self.abort()
 
 
-def write_packed(path, meta: MapMeta, coverage: np.ndarray) -> int:
+def write_packed(path, meta: MapMeta, coverage: np.ndarray, *, levels: int = 256) -> int:
     """Write a whole (C, rows, cols) float coverage array (0..1) as a packed map; returns bytes written."""
     t = meta.tile
     with PackWriter(path, meta) as w:
@@ -229,14 +238,24 @@ def write_packed(path, meta: MapMeta, coverage: np.ndarray) -> int:
             for tc in range(meta.tile_cols):
                 block = np.zeros((meta.n_channels, t, t), dtype=np.uint8)
                 src = coverage[:, tr * t:(tr + 1) * t, tc * t:(tc + 1) * t]
-                block[:, :src.shape[1], :src.shape[2]] = quantize(src)
+                block[:, :src.shape[1], :src.shape[2]] = quantize(src, levels)
                 w.write_tile(tr, tc, block)
     return w.path.stat().st_size
 
 
-def quantize(cov: np.ndarray) -> np.ndarray:
-    """Coverage 0..1 -> uint8 0..255 (rounded; out-of-range values clipped)."""
-    return np.rint(np.clip(cov, 0.0, 1.0) * 255.0).astype(np.uint8)
+def quantize(cov: np.ndarray, levels: int = 256) -> np.ndarray:
+    """Coverage 0..1 -> uint8 codes 0..255 on ``levels`` evenly spaced steps (clipped, rounded).
+
+    ``levels = 16`` keeps codes k * 17: coverage in steps of 1/15, which compress
+    far better than 256 steps and still place an edge to a fifteenth of a cell.
+    """
+    if not 2 <= int(levels) <= 256:
+        raise InputError(f"coverage levels must be 2..256, got {levels}")
+    c = np.clip(cov, 0.0, 1.0)
+    if levels == 256:
+        return np.rint(c * 255.0).astype(np.uint8)
+    step = 255.0 / (levels - 1)
+    return np.rint(np.rint(c * (levels - 1)) * step).astype(np.uint8)
 
 
 _DAMAGED = object()
@@ -454,18 +473,34 @@ class PackedMap:
     def _decode(self, k: int, blob: bytes, crc: int):
         m = self.meta
         reason = None
+        tsz = m.tile * m.tile
         if len(blob) != int(self._index[k][1]):
             reason = "file shorter than its index says"
         elif zlib.crc32(blob) != crc:
             reason = "CRC-32 mismatch"
+        elif len(blob) < _MASKS.size:
+            reason = "shorter than its channel masks"
         else:
-            try:
-                d = zlib.decompressobj()
-                raw = d.decompress(blob, self._tile_nbytes)
-                if len(raw) != self._tile_nbytes or d.unconsumed_tail or not d.eof:
-                    reason = "stream does not inflate to the declared tile size"
-            except zlib.error as e:
-                reason = f"bad zlib stream ({e})"
+            pm, fm = _MASKS.unpack_from(blob)
+            allowed = (1 << m.n_channels) - 1
+            if pm & ~allowed or fm & ~pm or pm == 0:
+                reason = "channel masks name channels the map does not have"
+            else:
+                present = [(pm >> i) & 1 == 1 for i in range(m.n_channels)]
+                full = [(fm >> i) & 1 == 1 for i in range(m.n_channels)]
+                stored = [i for i in range(m.n_channels) if present[i] and not full[i]]
+                want = len(stored) * tsz
+                raw = b""
+                try:
+                    if want:
+                        d = zlib.decompressobj()
+                        raw = d.decompress(memoryview(blob)[_MASKS.size:], want)
+                        if len(raw) != want or d.unconsumed_tail or not d.eof or d.unused_data:
+                            reason = "stream does not inflate to the declared tile size"
+                    elif len(blob) != _MASKS.size:
+                        reason = "data after a tile with no stored channels"
+                except zlib.error as e:
+                    reason = f"bad zlib stream ({e})"
         if reason is not None:
             with self._lock:
                 first = k not in self._damaged
@@ -475,7 +510,13 @@ class PackedMap:
                 log.warning("%s: damaged tile (row %d, col %d): %s; its cells read as unknown",
                             self.path, tr, tc, reason)
             return _DAMAGED
-        return np.frombuffer(raw, dtype=np.uint8).reshape(m.n_channels, m.tile, m.tile)
+        tile = np.zeros((m.n_channels, m.tile, m.tile), dtype=np.uint8)
+        if stored:
+            tile[stored] = np.frombuffer(raw, dtype=np.uint8).reshape(len(stored), m.tile, m.tile)
+        for i in range(m.n_channels):
+            if full[i]:
+                tile[i] = 255
+        return tile
 
 
 def _read_head(f, size: int, where: str):
@@ -542,7 +583,8 @@ def _read_head(f, size: int, where: str):
     index = np.stack([index["off"].astype(np.int64), index["len"].astype(np.int64), index["crc"].astype(np.int64)],
                      axis=1)
     used = index[:, 1] > 0
-    max_blob = meta.n_channels * tile * tile + (meta.n_channels * tile * tile >> 8) + 64  # > zlib's worst case
+    raw_max = meta.n_channels * tile * tile
+    max_blob = _MASKS.size + raw_max + (raw_max >> 8) + 64  # > zlib's worst case
     if np.any(index[used, 1] > max_blob):
         raise bad(f"tile index declares a tile larger than any valid tile ({max_blob} bytes)")
     if np.any(index[used, 0] < index_end):
