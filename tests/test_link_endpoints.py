@@ -272,3 +272,55 @@ def test_pty_unplug_replug_reconnects_and_reports_the_gap(tmp_path):
         b.close()
     finally:
         cable.close()
+
+
+def test_socket_url_round_trip_and_reconnect():
+    # pyserial's socket:// handler against a local TCP echo server that drops the first connection.
+    import socket
+    import threading
+
+    srv = socket.socket()
+    srv.bind(("127.0.0.1", 0))
+    srv.listen(2)
+    port = srv.getsockname()[1]
+
+    def serve():
+        for k in range(2):
+            conn, _ = srv.accept()
+            if k == 0:
+                data = conn.recv(95)       # take one frame, echo it, then hang up
+                conn.sendall(data)
+                time.sleep(0.05)
+                conn.close()
+                continue
+            conn.settimeout(2.0)
+            try:
+                while True:
+                    data = conn.recv(4096)
+                    if not data:
+                        break
+                    conn.sendall(data)
+            except OSError:
+                pass
+            conn.close()
+
+    th = threading.Thread(target=serve, daemon=True)
+    th.start()
+    ep = open_endpoint(f"socket://127.0.0.1:{port}", backoff_s=(0.02, 0.1), on_event=lambda s: None)
+    got = []
+    assert ep.send(pose(0))
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < 1.0 and ep.counters.reconnects == 0:
+        got += ep.poll()
+        time.sleep(0.005)
+    assert ep.counters.disconnects == 1 and ep.counters.reconnects == 1
+    for i in range(1, 6):
+        assert ep.send(pose(i))
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < 1.0 and len(got) < 6:
+        got += ep.poll()
+        time.sleep(0.005)
+    assert [g.seq for g in got] == list(range(6))
+    ep.close()
+    srv.close()
+    th.join(timeout=3)

@@ -38,7 +38,10 @@ class LinkCounters:
         self.last_gap_s = 0.0
 
     def as_dict(self) -> dict:
-        return {k: getattr(self, k) for k in self.__slots__}
+        """All counters, plus ``dropped`` (the sum of every way a frame was lost on this end)."""
+        d = {k: getattr(self, k) for k in self.__slots__}
+        d["dropped"] = self.dropped
+        return d
 
     @property
     def dropped(self) -> int:

@@ -60,7 +60,7 @@ class SerialEndpoint(Endpoint):
     """
 
     def __init__(self, url: str, *, baud: int = 115200, rate_hz=None, wait: bool = False,
-                 backoff_s=(0.05, 2.0), tx_queue_bytes: int = 8192, max_read: int = 65536,
+                 backoff_s=(0.05, 2.0), tx_queue_bytes: int = 8192, max_read: int = 4096,
                  keep_unknown: bool = False, on_event=None, timesync_s=None, answer_timesync: bool = True,
                  clock=time.monotonic):
         super().__init__()
@@ -154,9 +154,10 @@ class SerialEndpoint(Endpoint):
             return []
         port = self._port
         try:
-            waiting = port.in_waiting
-            # Ask for at least one byte: on a vanished device the read is what reports it.
-            data = port.read(max(1, min(waiting, self._max_read)))
+            # With timeout=0 pyserial returns what is waiting, up to the size asked for (its
+            # in_waiting is not usable here: socket:// reports at most 1). The read is also
+            # what reports a vanished device.
+            data = port.read(self._max_read)
         except (serial.SerialException, OSError) as e:
             self._lost(e)
             return []
