@@ -31,7 +31,7 @@ def test_door_example_bayes_update_kernel():
     active = np.ones(1, np.uint8)
     lsum = np.zeros(1)
     z = np.zeros(1)
-    s = K.sample_update(bel, z, z, 0.0, 2 * math.pi, vol, 0.0, 0.0, 0.0, 2 * math.pi, True,
+    s = K.sample_update(bel, z, z, 0.0, 2 * math.pi, vol, 0.0, 0.0, 1.0, 0.0, 2 * math.pi, True,
                         float(vol.max()), float(vol.min()), 1.0, 40.0, active, lsum)
     bel /= s
     assert abs(bel[0, 0, 0] - 0.75) < 1e-6
@@ -41,7 +41,7 @@ def test_door_example_bayes_update_kernel():
     # the push (a discrete motion model applied by hand), then the second "open" reading
     bel2 = np.array([[[1.0 * bel[0, 0, 0] + 0.8 * bel[0, 0, 1], 0.2 * bel[0, 0, 1]]]], np.float32)
     assert abs(bel2[0, 0, 0] - 0.95) < 1e-6
-    s = K.sample_update(bel2, z, z, 0.0, 2 * math.pi, vol, 0.0, 0.0, 0.0, 2 * math.pi, True,
+    s = K.sample_update(bel2, z, z, 0.0, 2 * math.pi, vol, 0.0, 0.0, 1.0, 0.0, 2 * math.pi, True,
                         float(vol.max()), float(vol.min()), 1.0, 40.0, active, lsum)
     assert abs(bel2[0, 0, 0] / s - 0.57 / 0.58) < 1e-6  # 0.983
 
@@ -168,7 +168,7 @@ def test_added_noise_has_the_model_variance():
 # ---------------------------------------------------------------------------------------------
 # Kernels against slow, obviously right references.
 # ---------------------------------------------------------------------------------------------
-def _slow_sample(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vyaw0, vdyaw, circ, lmax, lout, w, clip):
+def _slow_sample(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vscale, vyaw0, vdyaw, circ, lmax, lout, w, clip):
     A, H, W = bel.shape
     VA, VH, VW = vol.shape
     out = bel.astype(np.float64).copy()
@@ -182,6 +182,12 @@ def _slow_sample(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vyaw0, vdyaw, circ, l
 
     for a in range(A):
         u = ((a + hoff) * dyaw - vyaw0) / vdyaw
+        if not circ:
+            span = 2 * math.pi / vdyaw
+            while u >= span - 0.5:
+                u -= span
+            while u < -0.5:
+                u += span
         for i in range(H):
             for j in range(W):
                 L = lout
@@ -194,7 +200,9 @@ def _slow_sample(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vyaw0, vdyaw, circ, l
                 else:
                     r = lin(u, VA)
                     ha = None if r is None else (r[0], r[1], r[0] + 1 if VA > 1 else r[0])
-                rr, cc = lin(vrow + dr[a] + i, VH), lin(vcol + dc[a] + j, VW)
+                # volume cell u is centred at vscale * (u + 0.5) cells from the volume's origin
+                rr = lin((vrow + i + 0.5 + dr[a]) / vscale - 0.5, VH)
+                cc = lin((vcol + j + 0.5 + dc[a]) / vscale - 0.5, VW)
                 if ha is not None and rr is not None and cc is not None:
                     a0, fa, a1 = ha
                     i0, fr = rr
@@ -210,8 +218,10 @@ def _slow_sample(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vyaw0, vdyaw, circ, l
     return out
 
 
-@pytest.mark.parametrize("circ", [True, False])
-def test_sample_update_matches_slow_reference(rng, circ):
+@pytest.mark.parametrize("circ,vyaw0,vscale", [(True, 0.1, 1.0), (False, -0.2, 1.0), (False, 5.9, 1.0),
+                                               (False, 0.3, 2.0)])
+def test_sample_update_matches_slow_reference(rng, circ, vyaw0, vscale):
+    # vyaw0 = 5.9 rad: the partial volume's headings run past 2 pi and wrap to the first layers
     A, H, W = 8, 7, 9
     bel = rng.random((A, H, W)).astype(np.float32)
     dr = rng.uniform(-0.5, 0.5, A)
@@ -219,8 +229,8 @@ def test_sample_update_matches_slow_reference(rng, circ):
     VA = 8 if circ else 5
     vol = (rng.standard_normal((VA, 6, 8)) * 2).astype(np.float32)
     dyaw = 2 * math.pi / A
-    vyaw0, vdyaw = (0.1, 2 * math.pi / VA) if circ else (-0.2, dyaw)
-    args = (0.3, dyaw, vol, -1.3, 0.7, vyaw0, vdyaw, circ, float(vol.max()), float(vol.min()), 0.8, 40.0)
+    vdyaw = 2 * math.pi / VA if circ else dyaw
+    args = (0.3, dyaw, vol, -1.3, 0.7, vscale, vyaw0, vdyaw, circ, float(vol.max()), float(vol.min()), 0.8, 40.0)
     ref = _slow_sample(bel, dr, dc, *args)
     fast = bel.copy()
     lsum = np.zeros(A)

@@ -35,6 +35,9 @@ class MatchParams:
         Half-range of headings searched in tracking mode (deg) [20.0].
     min_visible_cells : int
         A bird's-eye grid with fewer visible cells is not matched (the frame is unusable) [50].
+    track_exact : bool
+        Tracking-mode likelihood at full resolution (True) or from the correlator's half-resolution
+        coarse-to-fine pass (False, faster) [True].
     """
 
     headings: int = 256
@@ -42,6 +45,7 @@ class MatchParams:
     track_radius_m: float = 10.0
     track_heading_deg: float = 20.0
     min_visible_cells: int = 50
+    track_exact: bool = True
 
 
 @dataclass(frozen=True)

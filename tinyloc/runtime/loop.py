@@ -174,7 +174,8 @@ class Localizer:
         from .match import default_matcher, default_perceiver
 
         self.perceiver = perceiver if perceiver is not None else default_perceiver(camera, self.cfg, self.geom)
-        self.matcher = matcher if matcher is not None else default_matcher(packed_map, self.cfg, self.geom)
+        self.matcher = (matcher if matcher is not None else
+                        default_matcher(packed_map, self.cfg, self.geom, getattr(self.perceiver, "grid", None)))
         self.tracker = Tracker(self.geom, self.cfg.track)
         self.sensors = SensorState(self.frame_enu, None)
         self.frames = 0
@@ -204,10 +205,8 @@ class Localizer:
         tr = Tracker(self.geom, self.cfg.track)
         x, y = self.geom.xy_of(self.map.meta.rows / 2.0, self.map.meta.cols / 2.0)
         A, n = self.cfg.track.headings, self.cfg.track.window_cells
-        vol = LikelihoodVolume(np.zeros((8, n, n), np.float32), 0, 0, 0.0, 2 * math.pi / A)
         tr.step(0.0, None, None, gnss=(x, y, 3.0, 0.0))
-        r0, c0 = tr.filter.row0, tr.filter.col0
-        vol.row0, vol.col0 = r0, c0
+        vol = LikelihoodVolume(np.zeros((8, n, n), np.float32), tr.filter.row0, tr.filter.col0, 0.0, 2 * math.pi / A)
         tr.step(0.1, (0.1, 0.0, 0.01), vol, is_global=True, gnss=(x, y, 3.0, 0.1))
         tr.step(0.2, (0.1, 0.0, 0.01), vol, gnss=None)
 
@@ -220,36 +219,36 @@ class Localizer:
         hc = self.health_counters
         hc["frames"] += 1
         t = float(frame.t)
-        inc, grav, fix = self.sensors.take(frame, p.loop)
+        tr = self.tracker
         notes = []
-        vol = None
-        is_global = False
-        img = frame.image
+        try:
+            inc, grav, fix = self.sensors.take(frame, p.loop)
+        except Exception as e:  # malformed sensor rows: carry on without them
+            inc, grav, fix = None, None, self.sensors.fix
+            notes.append(f"sensor rows unreadable: {type(e).__name__}")
+        img = getattr(frame, "image", None)
+        bev = None
         if img is None:
-            notes.append(frame.image_fault or "no image")
+            notes.append(getattr(frame, "image_fault", "") or "no image")
         else:
             try:
                 bev = self.perceiver.perceive(img, grav)
             except Exception as e:  # a stage bug must not stop the robot: report it in the status
-                bev = None
                 notes.append(f"perception failed: {type(e).__name__}: {e}"[:120])
             if bev is not None:
                 st = getattr(bev, "status", "ok")
-                nvis = int(np.count_nonzero(np.asarray(bev.visible) > 0.5))
+                nvis = int(np.count_nonzero(bev.visible > 0.5)) if st == "ok" else 0
                 if st != "ok":
                     notes.append(st)
+                    bev = None
                 elif nvis < p.match.min_visible_cells:
                     notes.append(f"too little ground seen ({nvis} cells)")
-                else:
-                    vol, is_global, why = self._match(bev)
-                    if why:
-                        notes.append(why)
+                    bev = None
+        tr.begin(t, inc, fix, have_frame=bev is not None)
+        vol = self._match(bev, notes) if bev is not None else None
         if vol is None:
             hc["unusable_frames"] += 1
-        if is_global:
-            hc["global_searches"] += 1
-        out = self.tracker.step(t, inc, vol, is_global=is_global, gnss=fix,
-                                frame_status="; ".join(notes) if notes else "ok")
+        out = tr.finish(vol, frame_status="; ".join(notes) if notes else "ok")
         ms = (time.perf_counter() - t0) * 1e3
         status = out.status
         if notes and vol is not None:
@@ -265,20 +264,34 @@ class Localizer:
         self.last_pose = pose
         return pose
 
-    def _match(self, bev):
-        """Correlate the bird's-eye grid: globally when the tracker asks, else around the estimate."""
+    def _match(self, bev, notes):
+        """Correlate the bird's-eye grid: a global search first when the tracker asks, then the tracking box."""
         tr = self.tracker
+        m = self.matcher
         try:
             if tr.wants_global():
+                self.health_counters["global_searches"] += 1
                 c = tr.search_centre()
                 if c is None:
                     c = self.geom.xy_of(self.map.meta.rows / 2.0, self.map.meta.cols / 2.0)
-                vol = self.matcher.global_search(bev, c[0], c[1])
-                return vol, True, ""
-            x, y, yaw = tr.track_centre()
-            return self.matcher.track(bev, x, y, yaw), False, ""
+                ev = m.global_search(bev, c[0], c[1])
+                if ev is None:
+                    notes.append(f"global search failed: {getattr(m, 'status', '?')}")
+                    return None
+                if getattr(m, "status", "ok") not in ("ok", ""):
+                    notes.append(m.status)
+                x, y, yaw = tr.consider_global(ev)
+            else:
+                x, y, yaw = tr.track_centre()
+            vol = m.track(bev, x, y, yaw)
+            if vol is None:
+                notes.append(f"matching failed: {getattr(m, 'status', '?')}")
+            elif getattr(m, "status", "ok") not in ("ok", ""):
+                notes.append(m.status)
+            return vol
         except Exception as e:  # see above: failure is data inside the loop
-            return None, False, f"matching failed: {type(e).__name__}: {e}"[:120]
+            notes.append(f"matching failed: {type(e).__name__}: {e}"[:120])
+            return None
 
     # ---- health -------------------------------------------------------------------------------
     def health(self) -> dict:

@@ -1,12 +1,15 @@
 """The seam between the loop and the perception and correlator stages.
 
 A *perceiver* turns an image and a gravity vector into a bird's-eye grid
-(``perceive(image, gravity) -> BevGrid``); a *matcher* correlates a grid with the map
-and returns a :class:`~tinyloc.track.gridfilter.LikelihoodVolume`, either over the
-whole search window around a centre (``global_search(bev, x, y)``) or in tracking mode
-around the estimate (``track(bev, x, y, yaw)``). Both own their buffers and are built
-once per calibration and map. The defaults wrap tinyloc's own stages; tests and users
-may pass their own objects with the same methods.
+(``perceive(image, gravity) -> BevGrid``, whose ``status`` is "ok" or the reason). A
+*matcher* correlates a grid with the map: ``global_search(bev, x, y)`` searches the whole
+window around a centre and returns a :class:`~tinyloc.track.gridfilter.GlobalEvidence`
+(best log-likelihood per cell over heading); ``track(bev, x, y, yaw)`` returns a
+:class:`~tinyloc.track.gridfilter.LikelihoodVolume` over a small box around a pose. Either
+returns None when it cannot, with the reason in its ``status`` attribute. Both own their
+buffers and are built once per calibration and map; an optional ``warmup()`` runs at
+start-up. The defaults wrap tinyloc's own stages; tests and users may pass their own
+objects with the same methods.
 """
 
 from __future__ import annotations
@@ -27,10 +30,10 @@ def default_perceiver(camera, cfg, geom):
     return PerceptionAdapter(camera, cfg, geom)
 
 
-def default_matcher(packed_map, cfg, geom):
-    """tinyloc's FFT rotational correlator over windows of ``packed_map``."""
+def default_matcher(packed_map, cfg, geom, bev=None):
+    """tinyloc's FFT rotational correlator over windows of ``packed_map`` (sized for ``bev``'s geometry)."""
     try:
         from ._adapters import CorrelatorAdapter
     except ImportError as e:  # pragma: no cover
         raise StageMissing(f"correlator stage unavailable ({e})") from None
-    return CorrelatorAdapter(packed_map, cfg, geom)
+    return CorrelatorAdapter(packed_map, cfg, geom, bev)

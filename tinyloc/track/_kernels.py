@@ -117,13 +117,14 @@ def _lin_index(u, n):
 
 
 @njit(**JIT)
-def sample_update(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vyaw0, vdyaw, vcirc, lmax, lout, weight, clip,
+def sample_update(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vscale, vyaw0, vdyaw, vcirc, lmax, lout, weight, clip,
                   active, lsum):
     """Multiply the belief by exp(weight * (L - lmax)) where L is the volume sampled at each cell's pose.
 
     Sampling is bilinear in space and linear in heading; samples up to half a cell beyond the
-    volume's edge take the edge value. ``vrow``/``vcol`` are the volume's continuous (row, col)
-    index of belief cell (0, 0) without the layer offsets (``row0 - vol_row0``); ``vcirc`` says the
+    volume's edge take the edge value. ``vrow``/``vcol`` = ``row0 - vol_row0`` (global cells);
+    volume cell u is centred ``vscale * (u + 0.5)`` cells after the volume's origin, so belief cell
+    i samples volume index ``(vrow + i + 0.5 + dr[a]) / vscale - 0.5``. ``vcirc`` says the
     volume's headings wrap around the full circle. Outside the volume L = ``lout``.
     Inactive layers are multiplied by the outside value only (they are not evaluated; their
     mass in ``lsum`` is scaled).
@@ -150,6 +151,9 @@ def sample_update(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vyaw0, vdyaw, vcirc,
             a1 = (a0 + 1) % VA
             head_ok = True
         else:
+            # headings of a partial volume may run past 2 pi: bring u into [-0.5, span - 0.5)
+            span = 2.0 * math.pi / vdyaw
+            u = u - span * math.floor((u + 0.5) / span)
             a0, fa, head_ok = _lin_index(u, VA)
             a1 = a0 + 1 if VA > 1 else a0
         if not head_ok:
@@ -162,11 +166,12 @@ def sample_update(bel, dr, dc, hoff, dyaw, vol, vrow, vcol, vyaw0, vdyaw, vcirc,
             total += la
             continue
         ga = 1.0 - fa
+        inv = 1.0 / vscale
         for i in range(H):
-            i0, fr, rin = _lin_index(vrow + dr[a] + i, VH)
+            i0, fr, rin = _lin_index((vrow + 0.5 + dr[a] + i) * inv - 0.5, VH)
             i1 = i0 + 1 if VH > 1 else i0
             for j in range(W):
-                j0, fc, cin = _lin_index(vcol + dc[a] + j, VW)
+                j0, fc, cin = _lin_index((vcol + 0.5 + dc[a] + j) * inv - 0.5, VW)
                 if rin and cin:
                     j1 = j0 + 1 if VW > 1 else j0
                     l00 = ga * vol[a0, i0, j0] + fa * vol[a1, i0, j0]

@@ -66,8 +66,10 @@ class MapGeometry:
 class LikelihoodVolume:
     """A correlator output as the filter reads it.
 
-    ``loglik[a, i, j]``: log-likelihood (up to a constant) of the robot origin at the centre of
-    global map cell (row0 + i, col0 + j) with yaw ``yaw0_rad + a * dyaw_rad``.
+    ``loglik[a, i, j]``: log-likelihood (up to a constant) of yaw ``yaw0_rad + a * dyaw_rad`` with the
+    robot origin at continuous global cell coordinates ``(row0 + scale (i + 0.5), col0 + scale (j + 0.5))``:
+    with ``scale = 1`` the centre of global map cell (row0 + i, col0 + j); with ``scale = 2`` (a
+    half-resolution volume) the centre of the 2 x 2 block starting at (row0 + 2 i, col0 + 2 j).
     """
 
     loglik: np.ndarray
@@ -75,6 +77,7 @@ class LikelihoodVolume:
     col0: int
     yaw0_rad: float = 0.0
     dyaw_rad: float = 2.0 * math.pi / 256
+    scale: int = 1
 
     @property
     def full_circle(self) -> bool:
@@ -105,7 +108,7 @@ class GlobalEvidence:
             out = np.empty((H, W), np.float32)
         K.max_over_heading(vol.loglik, out)
         yaw = vol.yaw0_rad + np.argmax(vol.loglik, axis=0) * vol.dyaw_rad
-        return cls(out, vol.row0, vol.col0, 1, wrap_angle(yaw))
+        return cls(out, vol.row0, vol.col0, int(vol.scale), wrap_angle(yaw))
 
 
 @dataclass(frozen=True)
@@ -445,7 +448,7 @@ class GridFilter:
         lout = float(L.min())
         w = self.p.likelihood_weight if weight is None else weight
         s = K.sample_update(self.bel, self.dr, self.dc, self.hoff, self.dyaw, L,
-                            float(self.row0 - vol.row0), float(self.col0 - vol.col0),
+                            float(self.row0 - vol.row0), float(self.col0 - vol.col0), float(vol.scale),
                             float(vol.yaw0_rad), float(vol.dyaw_rad), vol.full_circle,
                             lmax, lout, float(w), float(self.p.loglik_clip), self.active, self.lsum)
         before = self.normalise()
@@ -828,7 +831,7 @@ class Tracker:
 
     def _vol_centre(self, vol):
         A, H, W = vol.loglik.shape
-        return self.geom.xy_of(vol.row0 + H / 2.0, vol.col0 + W / 2.0)
+        return self.geom.xy_of(vol.row0 + vol.scale * H / 2.0, vol.col0 + vol.scale * W / 2.0)
 
     def _far_from_window(self, x, y) -> bool:
         f = self.filter

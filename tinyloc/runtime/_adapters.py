@@ -1,0 +1,126 @@
+"""tinyloc's own perception and correlator stages behind the loop's perceiver/matcher seam.
+
+The correlator works in a square map window (``match.search_window_cells``, 128 m at the
+defaults) read from the packed map into a buffer owned here. The window is moved (read
+again and its spectra recomputed, about a tenth of a second) only when a global search
+is centred far from it or the tracked pose nears its edge, so most frames never touch it.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..classes import NUM_MAP_CLASSES
+from ..track.gridfilter import GlobalEvidence, LikelihoodVolume
+
+
+class PerceptionAdapter:
+    """Segment + project one frame into a bird's-eye grid owned here (reused every frame)."""
+
+    def __init__(self, camera, cfg, geom):
+        from ..perception.pipeline import Perception
+
+        self.perc = Perception(camera, warm_up=cfg.loop.warmup)
+        self.grid = self.perc.new_grid()
+        self.status = "ok"
+
+    def perceive(self, image, gravity):
+        self.status = self.perc.process(image, gravity, self.grid)
+        return self.grid
+
+
+class CorrelatorAdapter:
+    """Global and tracking-mode correlation against a moving map window.
+
+    Parameters
+    ----------
+    packed_map : PackedMap
+    cfg : LoopConfig
+    geom : MapGeometry
+    bev : BevGrid
+        A grid of the perceiver's geometry (shape, origin), to size the correlator.
+    """
+
+    def __init__(self, packed_map, cfg, geom, bev=None):
+        from ..correlate import Correlator, CorrelatorParams
+
+        m = cfg.match
+        self.map = packed_map
+        self.geom = geom
+        n = int(m.search_window_cells)
+        self.n = n
+        self.A = int(m.headings)
+        self.dyaw = 2.0 * math.pi / self.A
+        R = max(1, int(round(m.track_radius_m / geom.res_m)))
+        hh = max(1, int(round(m.track_heading_deg / math.degrees(self.dyaw))))
+        kw = {}
+        if bev is not None:
+            kw = dict(bev_shape=tuple(bev.visible.shape), origin_row=float(bev.origin_row),
+                      origin_col=float(bev.origin_col))
+        self.params = CorrelatorParams(n_headings=self.A, window_shape=(n, n), res_m=geom.res_m,
+                                       track_radius_cells=R, track_half_headings=hh, **kw)
+        self.corr = Correlator(self.params)
+        self.exact = bool(m.track_exact)
+        h, w = self.params.bev_shape
+        reach = int(math.ceil(math.hypot(max(self.params.origin_row, h - self.params.origin_row),
+                                         max(self.params.origin_col, w - self.params.origin_col))))
+        # keep the tracked pose this far inside the window (cells): the tracking box plus most of the view
+        self.margin = min(n // 2 - 1, R + reach * 2 // 3)
+        self.win = np.zeros((NUM_MAP_CLASSES, n, n), np.float32)
+        self.known = np.zeros((n, n), np.uint8)
+        self.wrow0 = self.wcol0 = None
+        self._yaw = np.zeros((n, n), np.float64)
+        self.status = "ok"
+        self.counters = {"window_moves": 0, "damaged_tiles": 0}
+
+    def warmup(self) -> None:
+        self.corr.warm_up(("fast", "track_exact") if self.exact else ("fast", "track"))
+
+    # ---- map window -----------------------------------------------------------------------------
+    def _move_window(self, x, y) -> None:
+        r, c = self.geom.cell_of(x, y)
+        self.wrow0 = int(math.floor(r)) - self.n // 2
+        self.wcol0 = int(math.floor(c)) - self.n // 2
+        self.counters["damaged_tiles"] += int(self.map.read_window(self.wrow0, self.wcol0, self.win,
+                                                                   known_out=self.known) or 0)
+        self.corr.set_map(self.win)
+        self.counters["window_moves"] += 1
+
+    def _ensure(self, x, y, margin_cells) -> bool:
+        """Move the window if (x, y) is closer than ``margin_cells`` to its edge; True if it moved."""
+        r, c = self.geom.cell_of(x, y)
+        if self.wrow0 is not None:
+            i, j = r - self.wrow0, c - self.wcol0
+            if margin_cells <= i <= self.n - margin_cells and margin_cells <= j <= self.n - margin_cells:
+                return False
+        self._move_window(x, y)
+        return True
+
+    # ---- the matcher interface ------------------------------------------------------------------
+    def global_search(self, bev, x, y):
+        """Coarse-to-fine full search of the window around (x, y): reduced evidence or None (see status)."""
+        moved = self._ensure(x, y, self.n // 2 - int(round(16.0 / self.geom.res_m)))
+        res = self.corr.search_fast(bev)
+        if not res.ok:
+            self.status = res.status
+            return None
+        self.status = "map window moved" if moved else "ok"
+        s = int(res.scale)
+        np.multiply(res.best_heading, self.dyaw * s, out=self._yaw[:res.best.shape[0], :res.best.shape[1]])
+        return GlobalEvidence(res.best, self.wrow0, self.wcol0, s, self._yaw[:res.best.shape[0], :res.best.shape[1]])
+
+    def track(self, bev, x, y, yaw):
+        """Full-resolution volume over the tracking box around (x, y, yaw), or None (see status)."""
+        moved = self._ensure(x, y, self.margin)
+        r, c = self.geom.cell_of(x, y)
+        a = int(round((yaw if math.isfinite(yaw) else 0.0) / self.dyaw)) % self.A
+        res = self.corr.track(bev, r - 0.5 - self.wrow0, c - 0.5 - self.wcol0, a, exact=self.exact)
+        if not res.ok:
+            self.status = res.status
+            return None
+        self.status = "map window moved" if moved else "ok"
+        s = int(getattr(res, "scale", 1))
+        return LikelihoodVolume(res.volume, self.wrow0 + s * res.row0, self.wcol0 + s * res.col0,
+                                res.a0 * s * self.dyaw, s * self.dyaw, s)
