@@ -36,7 +36,11 @@ class CountingPerceiver:
 
 
 class TruthMatcher:
-    """Stand-in matcher: log-likelihood of a Gaussian (0.4 m, 3 deg) around the true pose of the frame."""
+    """Stand-in matcher: log-likelihood of a Gaussian (0.4 m, 3 deg) around the true pose of the frame.
+
+    Follows the matcher seam of tinyloc/runtime/match.py: ``global_search`` gives the reduced evidence
+    (best per cell over heading), ``track`` a full volume.
+    """
 
     def __init__(self, rf, packed, perceiver, headings, cells=48, sigma_m=0.4, sigma_deg=3.0):
         from tinyloc.track.gridfilter import LikelihoodVolume
@@ -63,7 +67,9 @@ class TruthMatcher:
         return self.LV(ll.astype(np.float32), row0, col0, 0.0, 2 * math.pi / self.A)
 
     def global_search(self, bev, x, y):
-        return self._vol(x, y)
+        from tinyloc.track.gridfilter import GlobalEvidence
+
+        return GlobalEvidence.from_volume(self._vol(x, y))
 
     def track(self, bev, x, y, yaw):
         return self._vol(x, y)

@@ -59,39 +59,71 @@ class LoopLocalizer:
             return None
         return imu[sel, 1:4].mean(axis=0)
 
-    def debug_images(self, index: int, image: np.ndarray, *, pose=None) -> dict:
+    def debug_images(self, index: int, image: np.ndarray, *, pose=None, truth=None) -> dict:
         """Segmentation, bird's-eye view and likelihood map of frame ``index`` (BGR uint8 each).
 
         Views the stages cannot give are left out. ``pose`` (x, y, yaw), default the loop's last
-        estimate, centres the likelihood map.
+        estimate, centres the likelihood map; ``truth`` (x, y, yaw) is marked on it (white cross;
+        the estimate is the red circle).
         """
-        from .report import colour_classes, colour_labels
+        from .report import colour_labels
 
         out = {}
         per = self.loop.perceiver
         t = float(self.rf.frame_t[index])
-        grav = self._gravity_at(t)
-        seg = getattr(per, "segment", None)
-        if seg is not None:
-            scores = np.asarray(seg(image))
-            if scores.ndim == 3:
-                out["segmentation"] = colour_labels(np.argmax(scores, axis=0).astype(np.uint8))
-            elif scores.ndim == 2:
-                out["segmentation"] = colour_labels(scores.astype(np.uint8))
-        bev = per.perceive(image, grav)
-        ev = np.asarray(bev.evidence, dtype=np.float32)
-        vis = np.asarray(bev.visible, dtype=np.float32)
-        img = colour_classes(ev[: min(ev.shape[0], 9)])
-        img[vis < 0.5] = (40, 40, 40)
-        out["bird's-eye view"] = _upscale(img, 4)
+        bev = per.perceive(image, self._gravity_at(t))
+        # The default perceiver keeps its segmenter's last labels; other perceivers may offer segment().
+        perc = getattr(per, "perc", None)
+        labels = getattr(perc, "labels", None) if perc is not None else None
+        if labels is None and hasattr(per, "segment"):
+            scores = np.asarray(per.segment(image))
+            labels = np.argmax(scores, axis=0) if scores.ndim == 3 else scores
+        if labels is not None:
+            out["segmentation"] = colour_labels(np.asarray(labels).astype(np.uint8))
+        out["bird's-eye view (forward = right)"] = _upscale(bev_image(bev), 4)
         if pose is None and self.loop.last_pose is not None:
             lp = self.loop.last_pose
             pose = (lp.x, lp.y, lp.yaw)
         if pose is not None and all(math.isfinite(v) for v in pose):
             vol = self.loop.matcher.track(bev, pose[0], pose[1], pose[2])
-            ll = np.asarray(vol.loglik, dtype=np.float32).max(axis=0)
-            out["likelihood (max over heading)"] = _upscale(_heat(ll), 4)
+            if vol is not None:
+                out["likelihood (max over heading)"] = likelihood_image(vol, self.loop.geom, pose, truth)
         return out
+
+
+def bev_image(bev) -> np.ndarray:
+    """Bird's-eye evidence as colour: the strongest class per cell in the class palette, its strength as
+    opacity over dark grey; cells the camera did not see stay near black."""
+    from ..classes import CLASSES
+
+    ev = np.asarray(bev.evidence, dtype=np.float32)
+    vis = np.asarray(bev.visible, dtype=np.float32)
+    k = np.argmax(ev, axis=0)
+    strength = np.clip(np.max(ev, axis=0), 0.0, 1.0)[..., None]
+    pal = np.array([CLASSES[i].color_bgr for i in range(ev.shape[0])], dtype=np.float32)
+    img = 70.0 * (1.0 - strength) + pal[k] * strength
+    img[vis < 0.5] = 25.0
+    return np.clip(img, 0, 255).astype(np.uint8)
+
+
+def likelihood_image(vol, geom, pose, truth, *, size_px: int = 252) -> np.ndarray:
+    """Max-over-heading log-likelihood of a volume as a heat map, north up, with estimate and truth marked."""
+    import cv2
+
+    ll = np.asarray(vol.loglik, dtype=np.float32).max(axis=0)
+    h, w = ll.shape
+    k = max(1, size_px // max(h, w))
+    img = _upscale(_heat(ll), k)
+
+    def px(x, y):
+        r, c = geom.cell_of(x, y)
+        return int(round((c - vol.col0) * k)), int(round((r - vol.row0) * k))
+
+    cv2.circle(img, px(pose[0], pose[1]), max(3, k), (40, 40, 230), 2, cv2.LINE_AA)
+    if truth is not None and all(math.isfinite(v) for v in truth[:2]):
+        c, r = px(truth[0], truth[1])
+        cv2.drawMarker(img, (c, r), (255, 255, 255), cv2.MARKER_CROSS, max(8, 2 * k), 2)
+    return img
 
 
 def _heat(a: np.ndarray) -> np.ndarray:

@@ -560,9 +560,10 @@ def _thumb(img: np.ndarray, width: int = 320) -> np.ndarray:
 
     if img.ndim == 2:
         img = cv2.cvtColor(img, cv2.COLOR_GRAY2BGR)
-    if img.shape[1] > width:
+    if img.shape[1] != width:
         h = int(round(img.shape[0] * width / img.shape[1]))
-        img = cv2.resize(img, (width, h), interpolation=cv2.INTER_AREA)
+        shrink = img.shape[1] > width
+        img = cv2.resize(img, (width, h), interpolation=cv2.INTER_AREA if shrink else cv2.INTER_NEAREST)
     return img
 
 
@@ -599,7 +600,8 @@ def worst_frame_panels(res, *, notes: list[str]) -> list[dict]:
                 p = (float(rec.x[i]), float(rec.y[i]), float(rec.yaw[i]))
                 if not all(math.isfinite(v) for v in p):
                     p = (float(rec.truth_x[i]), float(rec.truth_y[i]), float(rec.truth_yaw[i]))
-                for name, im in (debug(i, image, pose=p) or {}).items():
+                tr = (float(rec.truth_x[i]), float(rec.truth_y[i]), float(rec.truth_yaw[i]))
+                for name, im in (debug(i, image, pose=p, truth=tr) or {}).items():
                     imgs[name] = _thumb(np.asarray(im))
             except Exception as e:  # noqa: BLE001 - debug views are optional
                 notes.append(f"frame {i}: debug views failed ({type(e).__name__}: {e})")
