@@ -717,10 +717,16 @@ class _Importer:
                         counts["truth"] += 1
                 except (BadMessage, AttributeError, TypeError, ValueError) as e:
                     self._drop(topic, i, str(e))
+                except OSError as e:  # the run folder cannot be written (disk full, permissions)
+                    stop_reason = f"{self.out}: cannot write ({e.strerror or e}) at topic {topic} message #{i}"
+                    break
             complete = stop_reason is None
         finally:
             try:
                 frames.close(flush=True)
+            except OSError as e:
+                complete = False
+                stop_reason = stop_reason or f"{self.out}: cannot write ({e.strerror or e})"
             finally:
                 counts["frames"] = frames.written
                 progress.done()
