@@ -7,8 +7,6 @@ both ends with pyserial through symlinks, and stream 100 Hz poses; one test unpl
 
 import io
 import json
-import math
-import os
 import sys
 import time
 

@@ -38,12 +38,6 @@ def _is_loopback(host: str) -> bool:
         return False
 
 
-def _packable(v):
-    if isinstance(v, float) and v != v:
-        return None
-    return v
-
-
 def pack_message(msg, seq: int) -> bytes:
     """Message-pack bytes of a message's map form with sequence number ``seq``."""
     d = m.to_map(msg)
