@@ -193,6 +193,24 @@ def test_cli_errors_are_one_line(packed, tmp_path, capsys):
     assert "pack" in capsys.readouterr().out
 
 
+def test_progress_reports_every_band(tmp_path):
+    calls = []
+    src = write_json(tmp_path / "s.geojson", site())
+    rep = pack_geojson(src, tmp_path / "s.tlm", progress=lambda d, t, w: calls.append((d, t, w)))
+    bands = -(-rep.rows // 64)
+    assert calls == [(b + 1, bands, "bands") for b in range(bands)]
+
+
+@pytest.mark.parametrize("argv,msg", [
+    (["--res", "0"], "resolution 0.0 m is outside 0.02..50 m"),
+    (["--origin", "95,10"], "--origin: latitude must be in [-90, 90] and longitude in [-180, 180] degrees"),
+])
+def test_bad_pack_options(tmp_path, capsys, argv, msg):
+    src = write_json(tmp_path / "s.geojson", site())
+    rc = main(["map", "pack", str(src), "-o", str(tmp_path / "o.tlm"), "-q"] + argv)
+    assert rc == 2 and capsys.readouterr().err.strip() == f"tinyloc: error: {msg}"
+
+
 def test_demo_block_is_current():
     src, tlm = DEMO / "demo_block.geojson", DEMO / "demo_block.tlm"
     if not src.exists():

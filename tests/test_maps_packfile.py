@@ -422,6 +422,19 @@ def test_channel_count_limits(tmp_path, n, ok):
             write_packed(q, m, cov)
 
 
+@pytest.mark.parametrize("rows,ok", [(packfile.MAX_SIDE, True), (packfile.MAX_SIDE + 1, False)])
+def test_side_limit(packed, tmp_path, rows, ok):
+    # At the limit the header is accepted (and the missing index is reported); one past, the header is refused.
+    p, m, _ = packed
+    raw = patch_header(p.read_bytes(), "<I", 64, rows)
+    raw = patch_header(raw, "<I", 76, -(-rows // m.tile) * m.tile_cols)
+    q = tmp_path / "side.tlm"
+    q.write_bytes(raw)
+    msg = r"truncated: tile index needs \d+ bytes" if ok else rf"header declares {rows} x 210 cells"
+    with pytest.raises(MapFormatError, match=msg):
+        PackedMap.open(q)
+
+
 def test_missing_file_and_directory(tmp_path):
     with pytest.raises(MapFormatError, match="nope.tlm: no such file"):
         PackedMap.open(tmp_path / "nope.tlm")

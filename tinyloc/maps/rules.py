@@ -75,6 +75,7 @@ class Rule:
     lanes_from: str | None
     lane_width_m: float | None
     radius_m: float | None
+    needs: tuple = ()  # keys that must be present for the rule to match (a fast pre-check)
 
 
 @dataclass(frozen=True)
@@ -111,6 +112,8 @@ class Rules:
         """
         for r in self.rules:
             if r.geometry and kind not in r.geometry:
+                continue
+            if any(k not in props for k in r.needs):
                 continue
             if not all(c.holds(props) for c in r.when):
                 continue
@@ -244,8 +247,9 @@ def parse_rules(doc: dict, source: str = "<rules>") -> Rules:
         lw = _size(where, d, "lane_width_m")
         if d.get("lanes_from") is not None and lw is None:
             raise RulesError(f"{where}: lanes_from needs lane_width_m")
+        needs = tuple(c.key for c in conds if not c.negate)
         out.append(Rule(n, conds, ci, cls_from, ignore, tuple(geom), _size(where, d, "width_m"),
-                        d.get("width_from"), d.get("lanes_from"), lw, _size(where, d, "radius_m")))
+                        d.get("width_from"), d.get("lanes_from"), lw, _size(where, d, "radius_m"), needs))
     return Rules(out, source)
 
 
