@@ -147,3 +147,30 @@ def test_bad_urls(url, fault):
 
     with pytest.raises(LinkError, match=fault):
         open_endpoint(url)
+
+
+def test_gga_options_for_picky_consumers():
+    msgs = parse_all(nmea.pose_sentences(pose(), UTC, sats=12, hdop_m=0.5, tracking_fix=4))
+    gga = msgs["GGA"]
+    assert gga.num_sats == "12" and gga.gps_qual == 4
+    # HDOP * hdop_m = horizontal RMS error = sqrt(0.25 + 0.16) m
+    assert float(gga.horizontal_dil) == pytest.approx(math.sqrt(0.41) / 0.5, abs=0.05)
+    # the options never make an invalid pose look valid
+    bad = parse_all(nmea.pose_sentences(pose("searching"), UTC, sats=12, hdop_m=0.5, tracking_fix=4))["GGA"]
+    assert bad.gps_qual == 0 and bad.horizontal_dil == ""
+    out = io.StringIO()
+    ep = open_endpoint("nmea:-?sats=9&hdop_m=1&fix=5", stream=out)
+    ep.send(pose())
+    gga = pynmea2.parse(out.getvalue().splitlines()[0], check=True)
+    assert gga.num_sats == "09" and gga.gps_qual == 5 and float(gga.horizontal_dil) == pytest.approx(0.6, abs=0.05)
+
+
+def test_bad_gga_options():
+    from tinyloc.errors import LinkError
+
+    with pytest.raises(LinkError, match="1, 2, 4 or 5"):
+        open_endpoint("nmea:-?fix=3")
+    with pytest.raises(LinkError, match="positive"):
+        open_endpoint("nmea:-?hdop_m=0")
+    with pytest.raises(LinkError, match="nmea\\+udp:// only"):
+        open_endpoint("nmea:-?bind=0.0.0.0:0")

@@ -22,9 +22,10 @@ east variances; the error ellipse semi-axes (m) are the square roots of the
 eigenvalues of the 2x2 position block and its orientation is the semi-major axis in
 degrees clockwise from true north. The RMS-of-ranges and altitude fields are left
 empty (we have no pseudoranges and do not estimate height). GGA satellites = 00 and
-HDOP empty for the same reason.
+HDOP empty for the same reason, unless the user sets ``sats`` / ``hdop_m`` for a consumer
+that insists on them.
 
-Grammar: ``nmea+udp://HOST:PORT[?rate=HZ&talker=GN&bind=ADDR:PORT]``,
+Grammar: ``nmea+udp://HOST:PORT[?rate=HZ&talker=GN&sats=N&hdop_m=M&fix=Q&bind=ADDR:PORT]``,
 ``nmea+serial:TARGET`` (TARGET a device path or pyserial URL, e.g.
 ``nmea+serial:/dev/ttyUSB1``, ``nmea+serial:loop://``), ``nmea:-`` (stdout).
 The fix time is UTC from the wall clock when the sentence is made unless
@@ -111,7 +112,8 @@ def error_ellipse(cov) -> tuple[float, float, float, float, float]:
     return math.sqrt(l1), math.sqrt(l2), orient, math.sqrt(syy), math.sqrt(sxx)
 
 
-def pose_sentences(pose, utc: _dt.datetime, *, talker: str = "GN", prev=None, alt_m=None) -> list[str]:
+def pose_sentences(pose, utc: _dt.datetime, *, talker: str = "GN", prev=None, alt_m=None, sats: int = 0,
+                   hdop_m=None, tracking_fix: int = 1) -> list[str]:
     """GGA, RMC, HDT, GST sentences (with CR LF) for one pose.
 
     Parameters
@@ -125,6 +127,16 @@ def pose_sentences(pose, utc: _dt.datetime, *, talker: str = "GN", prev=None, al
         displacement since it (empty when not meaningful).
     alt_m : float or None
         Altitude above mean sea level for GGA (empty if None).
+    sats : int
+        Satellites-in-use field of GGA (default 0: there are none). Some consumers refuse a
+        fix with fewer than a handful; setting this is the user's explicit choice.
+    hdop_m : float or None
+        If given, GGA's HDOP is the horizontal RMS error sqrt(var_x + var_y) divided by this
+        many metres (so a consumer multiplying HDOP by ``hdop_m`` gets our error back);
+        None (default) leaves HDOP empty.
+    tracking_fix : int
+        GGA fix quality reported for "tracking" (default 1; 2, 4 or 5 for consumers that
+        want a differential/RTK-grade flag before they trust sub-metre positions).
     """
     q = pose.quality if pose.quality in GGA_QUALITY else "no-fix"
     have_pos = math.isfinite(pose.lat) and math.isfinite(pose.lon)
@@ -133,8 +145,16 @@ def pose_sentences(pose, utc: _dt.datetime, *, talker: str = "GN", prev=None, al
     lat, ns = _lat(pose.lat)
     lon, ew = _lon(pose.lon)
     hms = _hms(utc)
-    fixq = GGA_QUALITY[q]
-    gga = f"{talker}GGA,{hms},{lat},{ns},{lon},{ew},{fixq},00,,{_num(alt_m, 2)},M,,M,,"
+    fixq = tracking_fix if q == "tracking" else GGA_QUALITY[q]
+    hdop = ""
+    if hdop_m is not None and q in ("tracking", "degraded"):
+        try:
+            h = math.sqrt(float(pose.cov[0][0]) + float(pose.cov[1][1])) / float(hdop_m)
+        except (TypeError, ValueError, IndexError):
+            h = math.nan
+        hdop = _num(min(h, 99.9), 1) if math.isfinite(h) else ""
+    gga = f"{talker}GGA,{hms},{lat},{ns},{lon},{ew},{fixq},{max(0, min(int(sats), 99)):02d},{hdop}," \
+          f"{_num(alt_m, 2)},M,,M,,"
     speed = course = ""
     if prev is not None and have_pos:
         dt = pose.t - prev.t
@@ -179,29 +199,42 @@ class NmeaEndpoint(Endpoint):
     baud : int
         Line rate of a serial target (default 4800, the NMEA 0183 standard rate; many
         consumers run faster).
+    sats, hdop_m, tracking_fix, alt_m :
+        As in :func:`pose_sentences`; URL options ``sats=``, ``hdop_m=``, ``fix=``.
     """
 
     def __init__(self, url: str, *, rate_hz: float = 5.0, talker: str = "GN", utc_from_t=None,
-                 alt_m=None, baud: int = 4800, stream=None, clock=time.monotonic):
+                 alt_m=None, sats: int = 0, hdop_m=None, tracking_fix: int = 1, baud: int = 4800, stream=None,
+                 clock=time.monotonic):
         super().__init__()
         self.url = url
         self._udp = self._serial = None
         self._stream = None
+        base, opts = split_options(url, {"rate": float, "talker": str, "bind": str, "sats": int, "hdop_m": float,
+                                         "fix": int})
+        rate_hz = opts.pop("rate", rate_hz)
+        talker = opts.pop("talker", talker)
+        sats = opts.pop("sats", sats)
+        hdop_m = opts.pop("hdop_m", hdop_m)
+        tracking_fix = opts.pop("fix", tracking_fix)
         if url.startswith("nmea+udp://"):
             from .udp import UdpEndpoint
 
-            base, opts = split_options(url[len("nmea+udp://"):], {"rate": float, "talker": str, "bind": str})
-            rate_hz = opts.pop("rate", rate_hz)
-            talker = opts.pop("talker", talker)
+            base = base[len("nmea+udp://"):]
             inner = "udp://" + base + (f"?bind={opts['bind']}" if "bind" in opts else "")
             self._udp = UdpEndpoint(inner)
             self.counters = self._udp.counters
         elif url.startswith("nmea+serial:"):
             from .serial_port import SerialEndpoint
 
-            self._serial = SerialEndpoint(url[len("nmea+serial:"):], baud=baud)
+            if "bind" in opts:
+                raise LinkError(f"{url}: option 'bind' is for nmea+udp:// only")
+            # NB: the serial target's own "?..." (pyserial URL options) cannot be given here.
+            self._serial = SerialEndpoint(base[len("nmea+serial:"):], baud=baud)
             self.counters = self._serial.counters
-        elif url in ("nmea:-", "nmea:"):
+        elif base in ("nmea:-", "nmea:"):
+            if "bind" in opts:
+                raise LinkError(f"{url}: option 'bind' is for nmea+udp:// only")
             self._stream = stream if stream is not None else sys.stdout
         else:
             raise LinkError(f"{url}: not an NMEA URL (nmea+udp://HOST:PORT, nmea+serial:TARGET or nmea:-)")
@@ -209,6 +242,11 @@ class NmeaEndpoint(Endpoint):
             raise LinkError(f"{url}: talker must be two upper-case letters, got {talker!r}")
         if not float(rate_hz) > 0:
             raise LinkError(f"{url}: rate must be positive, got {rate_hz}")
+        if tracking_fix not in (1, 2, 4, 5):
+            raise LinkError(f"{url}: fix quality for tracking must be 1, 2, 4 or 5, got {tracking_fix}")
+        if hdop_m is not None and not float(hdop_m) > 0:
+            raise LinkError(f"{url}: hdop_m must be positive, got {hdop_m}")
+        self._gga = dict(sats=int(sats), hdop_m=hdop_m, tracking_fix=int(tracking_fix))
         self.talker = talker
         self.period_s = 1.0 / float(rate_hz)
         self._utc = utc_from_t or _utc_now
@@ -232,7 +270,8 @@ class NmeaEndpoint(Endpoint):
             c.dropped_rate += 1
             return False
         self._last_emit = now
-        text = "".join(pose_sentences(msg, self._utc(msg.t), talker=self.talker, prev=self._prev, alt_m=self._alt))
+        text = "".join(pose_sentences(msg, self._utc(msg.t), talker=self.talker, prev=self._prev, alt_m=self._alt,
+                                      **self._gga))
         self._prev = msg
         data = text.encode("ascii")
         if self._udp is not None:
