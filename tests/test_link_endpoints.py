@@ -43,6 +43,8 @@ def test_loop_url_round_trip():
         assert [m.encode_frame(g) for g in got] == [m.encode_frame(wire_view(s), i) for i, s in enumerate(sent)]
         c = ep.counters
         assert c.frames_ok == c.frames_out == 22 and c.resyncs == 0 and c.seq_lost == 0
+        assert 0.0 <= ep.rx_age_s < 1.0
+    assert open_endpoint("loop://").rx_age_s == float("inf")
 
 
 def test_send_accepts_pose_estimate_like_objects_and_counts_bad_ones():

@@ -15,6 +15,7 @@ the outage is logged and kept in ``counters.last_gap_s`` / ``down_s``.
 
 from __future__ import annotations
 
+import math
 import os
 import time
 
@@ -83,6 +84,7 @@ class SerialEndpoint(Endpoint):
         self._next_try = 0.0
         self._attempts = 0
         self.clock = ClockSync(timesync_s) if timesync_s is not None else None
+        self._last_rx = None
         self._answer = bool(answer_timesync)
         try:
             self._port = self._open()
@@ -168,7 +170,10 @@ class SerialEndpoint(Endpoint):
             self.send(m.TimeSync(now, "request", t_origin=now))
         if not data:
             return []
+        ok0 = self.counters.frames_ok
         out = self.framer.feed(data)
+        if self.counters.frames_ok != ok0:
+            self._last_rx = now
         if (self.clock is not None or self._answer) and any(type(x) is m.TimeSync for x in out):
             out = self._timesync(out, now)
         return out
@@ -186,6 +191,11 @@ class SerialEndpoint(Endpoint):
             else:
                 keep.append(x)
         return keep
+
+    @property
+    def rx_age_s(self) -> float:
+        """Seconds since the last valid frame arrived (inf if none yet): the peer's liveness."""
+        return math.inf if self._last_rx is None else self._clock() - self._last_rx
 
     def to_host_time(self, t_peer: float) -> float:
         """Peer timestamp (s) -> host clock, once time sync has a reply (else unchanged)."""
