@@ -126,3 +126,55 @@ def test_live_loop_replays_gappy_run_to_the_end(site):
     assert any("gnss.csv: outage" in g for g in res.gaps)
     assert res.records.quality[-1] in ("tracking", "degraded")
     json.dumps(res.metrics, allow_nan=False)
+
+
+@pytest.fixture(scope="module")
+def sim_site(tmp_path_factory):
+    """A simulated site (tinyloc.sim: hidden 3D world, its open-vector-style map) and a short drive through it."""
+    from tinyloc.camera.model import CameraModel, Mount
+    from tinyloc.maps.compile import pack_geojson
+    from tinyloc.sim.runs import RunParams, make_run as sim_run
+    from tinyloc.sim.site import generate_site
+
+    d = tmp_path_factory.mktemp("sim")
+    site = generate_site(3)
+    pack_geojson(site.geojson, d / "site.tlm")
+    cam = CameraModel(width=320, height=240, fx=225.0, fy=225.0, cx=159.5, cy=119.5,
+                      dist=(-0.08, 0.015, 0.0, 0.0, 0.0), mount=Mount(height_m=0.8, pitch_deg=8.0))
+    sim_run(site.world, d / "drive", seed=5, params=RunParams(frames=12), camera=cam)
+    return d
+
+
+def test_full_loop_replay_of_a_simulated_drive(sim_site, tmp_path, capsys):
+    """The default loop (tinyloc's segmenter, projector, correlator, tracker) on a simulated drive; the
+    report's numbers equal metrics.json (the same check as the harness test, now on the real loop)."""
+    import re
+
+    from tinyloc.cli.main import main
+
+    out = tmp_path / "rep"
+    rc = main(["replay", str(sim_site / "drive"), "--map", str(sim_site / "site.tlm"), "-o", str(out), "--json",
+               "-q"])
+    assert rc == 0
+    m = json.loads(capsys.readouterr().out)
+    assert m["frames"] == 12 and m["frames_with_truth"] == 12
+    assert m["loop_health"]["frames"] == 12 and m["run"]["localizer"] == "loop"
+    assert m["frame_ms_median"] > 0 and m["replay"]["frames_per_s"] > 0
+    for k in ("0.25m_2deg", "0.5m_2deg", "1m_3deg", "2m_5deg"):
+        assert 0.0 <= m["recall"][k] <= 1.0
+    assert m["gnss_median_error_m"] is not None and m["dead_reckoning"]["median_error_m"] is not None
+    assert json.loads((out / "metrics.json").read_text()) == m
+    text = (out / "report.html").read_text()
+    cells = re.findall(r'data-key="([^"]+)" data-value="([^"]*)">([^<]*)</td>', text)
+    assert len(cells) > 30
+    for key, raw, shown in cells:
+        v = m
+        for part in key.split("/"):
+            v = v[part]
+        if v is None:
+            assert shown == "n/a"
+        elif not isinstance(v, str):
+            assert float(raw) == v, key
+    # The worst frames carry the loop's own views.
+    for view in ("segmentation", "bird&#x27;s-eye view", "likelihood (max over heading)", "labels (truth)"):
+        assert view in text, view
