@@ -103,15 +103,22 @@ def accumulate_edges(edges, row0, width, acc):
             sgn = -1.0
         # Split at the crossings of x = 0 and x = W so each piece is either inside,
         # left (becomes vertical at 0) or right (vertical at W, touches the guard only).
-        ys = [y0, y1]
+        # Pieces: [y0, sa], [sa, sb], [sb, y1] with y0 <= sa <= sb <= y1 (empty when equal).
+        sa = y1
+        sb = y1
         if (x0 < 0.0) != (x1 < 0.0) and x0 != x1:
-            ys.append(y0 + (0.0 - x0) * (y1 - y0) / (x1 - x0))
+            sa = y0 + (0.0 - x0) * (y1 - y0) / (x1 - x0)
         if (x0 > wf) != (x1 > wf) and x0 != x1:
-            ys.append(y0 + (wf - x0) * (y1 - y0) / (x1 - x0))
-        ys.sort()
-        for i in range(len(ys) - 1):
-            ya = ys[i]
-            yb = ys[i + 1]
+            sb = y0 + (wf - x0) * (y1 - y0) / (x1 - x0)
+        if sa > sb:
+            sa, sb = sb, sa
+        for i in range(3):
+            if i == 0:
+                ya, yb = y0, sa
+            elif i == 1:
+                ya, yb = sa, sb
+            else:
+                ya, yb = sb, y1
             if yb <= ya:
                 continue
             xa = x0 + (ya - y0) * (x1 - x0) / (y1 - y0)
