@@ -164,3 +164,10 @@ def test_clock_offset_worked_example():
     # requester receives at 10.3: one-way delay 0.1 s each way.
     off, delay = m.clock_offset(10.0, 12.6, 12.7, 10.3)
     assert off == pytest.approx(2.5) and delay == pytest.approx(0.2)
+
+
+def test_reserved_timesync_phase_is_skipped_not_damage():
+    _, payload = m.encode_payload(m.TimeSync(1.0, "reply", 1.0, 2.0, 3.0))
+    payload = payload[:24] + b"\x07" + payload[25:]
+    u = m.decode_raw(m.frame_bytes(0x03, 4, 0, payload))
+    assert type(u) is m.Unknown and u.type == 0x03

@@ -344,7 +344,8 @@ def decode_payload(code: int, t: float, seq: int, payload: bytes):
     if code == TimeSync.TYPE:
         a, b, c, ph = _TIMESYNC.unpack_from(payload)
         if ph >= len(SYNC_PHASES):
-            raise FrameError("bad_length", f"timesync: phase code {ph} is not defined")
+            # A phase this version does not define (reserved for later): well-formed, not understood.
+            return Unknown(t, code, bytes(payload), PROTOCOL_VERSION, seq)
         return TimeSync(t, SYNC_PHASES[ph], a / 1e6, b / 1e6, c / 1e6, seq)
     return Heartbeat(t, *_HEARTBEAT.unpack_from(payload), seq=seq)
 

@@ -229,8 +229,11 @@ class SerialEndpoint(Endpoint):
                 c.dropped_busy += 1
                 return False
         self._tx += data
-        c.frames_out += 1
         self._flush()
+        if self._port is None:  # the write found the port gone: the frame went nowhere
+            c.dropped_down += 1
+            return False
+        c.frames_out += 1
         return True
 
     def _flush(self) -> None:
