@@ -8,6 +8,7 @@ loop runs. The figure of merit is the loop's replay rate and its share of the ti
 from __future__ import annotations
 
 import math
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -32,14 +33,21 @@ def add_arguments(p):
     p.add_argument("--run", metavar="RUN", help="run folder (default: generate one with the simulator)")
     p.add_argument("--map", metavar="SITE.tlm", help="packed map (default: the generated one, or run.json's)")
     p.add_argument("--frames", type=int, default=60, metavar="N", help="frames to replay [60]")
+    p.add_argument("--seed", type=int, default=1, help="seed of the generated site and drive [1]")
 
 
-def _generated(tmp: Path, frames: int):
+def _generated(tmp: Path, frames: int, seed: int):
+    """A simulated site, its packed map and one drive (the simulator's default VGA camera)."""
     try:
-        from ..sim.runs import make_demo_run
+        from ..maps.compile import pack_geojson
+        from ..sim.runs import RunParams, make_run
+        from ..sim.site import generate_site
     except ImportError as e:
         raise InputError(f"bench replay: no --run given and the simulator is unavailable ({e})") from None
-    return make_demo_run(tmp, frames=frames)
+    site = generate_site(seed)
+    pack_geojson(site.geojson, tmp / "site.tlm")
+    make_run(site.world, tmp / "drive", seed=seed + 1, params=RunParams(frames=frames))
+    return tmp / "drive", tmp / "site.tlm"
 
 
 def run(args) -> dict:
@@ -50,7 +58,8 @@ def run(args) -> dict:
     with tempfile.TemporaryDirectory(prefix="tinyloc-bench-replay-") as tmp:
         run_path, map_path = args.run, args.map
         if run_path is None:
-            run_path, map_path = _generated(Path(tmp), args.frames)
+            print("bench replay: simulating a site and a drive ...", file=sys.stderr)
+            run_path, map_path = _generated(Path(tmp), args.frames, args.seed)
         map_path, _ = map_for_run(str(run_path), map_path)
         packed = open_map(map_path)
         if packed is None:
