@@ -53,8 +53,8 @@ class OdometryParams:
     scale_error: float = 0.02          # +2 %: wheels a little smaller than configured
     slip_std: float = 0.01             # relative distance noise, correlated over ~1 s
     yaw_scale_error: float = 0.01      # rotation scale error (track width error)
-    yaw_drift_deg_per_m: float = 0.05  # heading drift per metre travelled
-    yaw_noise_deg: float = 0.02        # white heading noise per step
+    yaw_drift_deg_per_m: float = 0.01  # heading drift per metre travelled
+    yaw_walk_deg_per_sqrt_m: float = 0.1  # heading random walk (deg per sqrt(m) travelled)
 
 
 @dataclass(frozen=True)
@@ -117,7 +117,7 @@ def odometry_samples(traj: Trajectory, rng: np.random.Generator, p: OdometryPara
     slip = np.convolve(rng.normal(0, 1, n + corr), np.ones(corr) / math.sqrt(corr), mode="same")[:n] * p.slip_std
     ds_o = ds * (1.0 + p.scale_error) * (1.0 + slip)
     dyaw_o = dyaw * (1.0 + p.yaw_scale_error) + math.radians(p.yaw_drift_deg_per_m) * ds \
-        + rng.normal(0, math.radians(p.yaw_noise_deg), n) * (ds > 1e-6)
+        + rng.normal(0, 1.0, n) * math.radians(p.yaw_walk_deg_per_sqrt_m) * np.sqrt(np.abs(ds))
     yaw_o = np.cumsum(dyaw_o)
     # midpoint heading over each step
     yaw_mid = yaw_o - 0.5 * dyaw_o
