@@ -15,7 +15,7 @@ from tinyloc.errors import GeoJSONError, RulesError
 from tinyloc.maps.geojson import load_geojson, ring_self_intersection
 from tinyloc.maps.rules import default_rules, load_rules, parse_metres
 
-from _maps_helpers import brute_self_intersects, collection, line, point, polygon, star_polygon
+from _maps_helpers import brute_self_intersects, collection, point, polygon, star_polygon
 
 SQUARE = [(0, 0), (20, 0), (20, 20), (0, 20)]
 

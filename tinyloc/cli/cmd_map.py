@@ -27,26 +27,42 @@ _PACK_HELP = """\
 Rasterize every feature the rules map to a class: polygons (with holes) by exact
 area coverage, lines with a per-class width (roads by their lanes or width
 property), points with a per-class radius. Features no rule maps are counted and
-reported, not silently dropped. Writes the file atomically."""
+reported, not silently dropped. Writes the file atomically.
+
+examples:
+  tinyloc map pack site.geojson -o site.tlm
+  tinyloc map pack site.geojson -o site.tlm --res 0.25 --rules my_rules.toml
+  tinyloc map pack site.geojson -o site.tlm --origin 44.4385,-101.2217 --json"""
 
 _INFO_HELP = """\
 Print a packed map's georeference, extent, tiles and classes. With --at LAT,LON
 also the coverage (0..1) of every class in the cell holding that point; with --json
 one JSON object (and with both, a "coverage" object: class name -> 0..1, or null
-outside the map)."""
+outside the map).
+
+examples:
+  tinyloc map info site.tlm
+  tinyloc map info site.tlm --at 44.43880,-101.22160 --json"""
 
 _RENDER_HELP = """\
 Write a colour preview (PNG) of the whole map or of a square window, with a legend,
 a scale bar and a north mark. Unknown cells (outside the map or in a damaged tile)
-are near-black."""
+are near-black.
+
+examples:
+  tinyloc map render site.tlm -o preview.png
+  tinyloc map render site.tlm -o near.png --center 44.43880,-101.22160 --size 60"""
 
 
 def register(parser):
+    import argparse
+
     from .main import group
 
     sub = group(parser, "map_command")
     p = sub.add_parser("pack", help="compile a GeoJSON FeatureCollection into a packed map",
-                       description=_PACK_HELP)
+                       description=_PACK_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("src", metavar="SRC.geojson", help="site map, GeoJSON FeatureCollection in lon/lat (RFC 7946)")
     p.add_argument("-o", "--out", metavar="SITE.tlm", required=True, help="packed map to write")
     p.add_argument("--res", metavar="M", type=float, default=0.5, help="cell size in metres (default 0.5)")
@@ -58,13 +74,15 @@ def register(parser):
     p.set_defaults(func=_pack)
 
     p = sub.add_parser("info", help="show a packed map's metadata, or the class coverage at a point",
-                       description=_INFO_HELP)
+                       description=_INFO_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("map", metavar="SITE.tlm", help="packed map")
     p.add_argument("--at", metavar="LAT,LON", help="report the coverage of every class at this point (degrees)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=_info)
 
-    p = sub.add_parser("render", help="write a colour preview PNG with a legend", description=_RENDER_HELP)
+    p = sub.add_parser("render", help="write a colour preview PNG with a legend", description=_RENDER_HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("map", metavar="SITE.tlm", help="packed map")
     p.add_argument("-o", "--out", metavar="preview.png", required=True, help="image to write (PNG)")
     p.add_argument("--center", metavar="LAT,LON", help="centre of a square window (default: the whole map)")
