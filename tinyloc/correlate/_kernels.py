@@ -344,3 +344,42 @@ def readout_tiled(buf, quarter, su, sv, inv_temp, a, best, best_a, head_max, hea
                         harg = i * W + j
     head_max[a] = hm
     head_arg[a] = harg
+
+
+@njit(**JIT)
+def compact_canvas(canvas, lo_u, lo_v, uv, vals):
+    """List the canvas cells with any nonzero feature: uv[n] = map offset (du, dv), vals[n, f]; returns n."""
+    F, SU, SV = canvas.shape
+    n = 0
+    for u in range(SU):
+        for v in range(SV):
+            nz = False
+            for f in range(F):
+                if canvas[f, u, v] != 0.0:
+                    nz = True
+                    break
+            if nz:
+                uv[n, 0] = u + lo_u
+                uv[n, 1] = v + lo_v
+                for f in range(F):
+                    vals[n, f] = canvas[f, u, v]
+                n += 1
+    return n
+
+
+@njit(**JIT)
+def sparse_scores(uv, vals, n, G, rows, cols, out):
+    """Exact scores at robot cells from a compacted rotated grid: sum_n sum_f vals[n, f] G[f, i + du, j + dv]."""
+    F = vals.shape[1]
+    H, W = G.shape[1], G.shape[2]
+    for m in range(rows.shape[0]):
+        i = rows[m]
+        j = cols[m]
+        acc = 0.0
+        for k in range(n):
+            gi = i + uv[k, 0]
+            gj = j + uv[k, 1]
+            if gi >= 0 and gi < H and gj >= 0 and gj < W:
+                for f in range(F):
+                    acc += vals[k, f] * G[f, gi, gj]
+        out[m] = acc

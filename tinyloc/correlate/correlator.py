@@ -68,6 +68,8 @@ class CorrelatorParams:
         Half size of the tracking window (cells); 20 = +-10 m at 0.5 m.
     track_half_headings : int
         Headings each side of the prior in tracking; 15 = +-21 deg at A = 256.
+    track_refine : int
+        Modes of the coarse tracking volume refined at full resolution.
     """
 
     n_headings: int = 256
@@ -79,9 +81,10 @@ class CorrelatorParams:
     n_modes: int = 8
     mode_radius_cells: int = 6
     mode_radius_headings: int = 8
-    coarse_top_k: int = 16
+    coarse_top_k: int = 32
     track_radius_cells: int = 20
     track_half_headings: int = 15
+    track_refine: int = 2
 
     def __post_init__(self):
         A = self.n_headings
@@ -95,8 +98,8 @@ class CorrelatorParams:
             raise InputError(f"res_m must be > 0, got {self.res_m}")
         if self.track_radius_cells < 1 or self.track_half_headings < 0 or self.track_half_headings * 2 + 1 > A:
             raise InputError("tracking window: radius >= 1 cell and 2 * half_headings + 1 <= n_headings")
-        if self.n_modes < 1 or self.coarse_top_k < 1:
-            raise InputError("n_modes and coarse_top_k must be >= 1")
+        if self.n_modes < 1 or self.coarse_top_k < 1 or self.track_refine < 1:
+            raise InputError("n_modes, coarse_top_k and track_refine must be >= 1")
 
     @property
     def dyaw(self) -> float:
@@ -143,10 +146,15 @@ class SearchResult:
 
 @dataclass
 class TrackResult:
-    """Result of a tracking update: the full-resolution volume over the small window around the prior.
+    """Result of a tracking update: the log-likelihood volume over the small window around the prior.
 
-    ``volume[t, u, v]`` is the log-likelihood of heading index ``(a0 + t) mod A`` at
-    window cell ``(row0 + u, col0 + v)``. Arrays are views of the workspace.
+    With ``scale = 1`` (``track(..., exact=True)``) ``volume[t, u, v]`` is the
+    log-likelihood of heading index ``(a0 + t) mod A`` at window cell
+    ``(row0 + u, col0 + v)``. With ``scale = 2`` (the default, coarse-to-fine)
+    ``row0``, ``col0``, ``a0`` and the volume are at the half-resolution level:
+    ``volume[t, u, v]`` is heading ``2 (a0 + t) mod A`` with the robot at continuous
+    window coordinates ``(2 (row0 + u) + 1, 2 (col0 + v) + 1)``. ``modes`` are always
+    exact and at full resolution. Arrays are views of the workspace.
     """
 
     volume: np.ndarray
@@ -154,6 +162,7 @@ class TrackResult:
     col0: int
     a0: int
     modes: list = field(default_factory=list)
+    scale: int = 1
     ok: bool = True
     status: str = "ok"
 
@@ -384,11 +393,13 @@ class Correlator:
         self._Gc = np.zeros((F, H // 2, W // 2), np.float32)
         self._scratch = np.zeros((H, W), np.float32)
         self._inv_temp = 1.0 / self.model.temperature
-        self._fine = self._coarse = self._track = None  # engines: allocated at first use (or warm_up)
+        self._fine = self._coarse = self._track = self._track_c = None  # allocated at first use (or warm_up)
         self._refiner = _Refiner(F, p)
         self._pw_fine = PeakWork(p.window_shape)
         self._pw_coarse = PeakWork((H // 2, W // 2))
         self._pw_track = PeakWork((2 * p.track_half_headings + 1,) + (2 * p.track_radius_cells + 1,) * 2)
+        self._pw_track_c = PeakWork((2 * ((p.track_half_headings + 1) // 2) + 1,)
+                                    + (2 * ((p.track_radius_cells + 1) // 2) + 1,) * 2)
         self._have_map = False
 
     def _fine_engine(self) -> "_CircleEngine":
@@ -418,6 +429,15 @@ class Correlator:
                                        2 * p.track_half_headings + 1, p.bev_shape, p.origin_row, p.origin_col)
         return self._track
 
+    def _track_engine_coarse(self) -> "_PatchEngine":
+        if self._track_c is None:
+            p = self.params
+            h, w = p.bev_shape
+            self._track_c = _PatchEngine(self.model.n_features, 2 * ((p.track_radius_cells + 1) // 2) + 1,
+                                         2 * ((p.track_half_headings + 1) // 2) + 1, (h // 2, w // 2),
+                                         p.origin_row / 2, p.origin_col / 2)
+        return self._track_c
+
     # -- set-up ----------------------------------------------------------------------------
     @property
     def workspace_bytes(self) -> int:
@@ -427,9 +447,11 @@ class Correlator:
     def workspace_report(self) -> dict:
         """Bytes per part of the workspace: shared buffers, and each engine allocated so far."""
         shared = sum(a.nbytes for a in (self._feat, self._feat_c, self._G, self._Gc, self._scratch))
-        shared += self._pw_fine.nbytes + self._pw_coarse.nbytes + self._pw_track.nbytes + self._refiner.nbytes
+        shared += self._pw_fine.nbytes + self._pw_coarse.nbytes + self._pw_track.nbytes + self._pw_track_c.nbytes
+        shared += self._refiner.nbytes
         out = {"shared": shared}
-        for name, e in (("exact", self._fine), ("coarse", self._coarse), ("track", self._track)):
+        for name, e in (("exact", self._fine), ("coarse", self._coarse), ("track_exact", self._track),
+                        ("track", self._track_c)):
             if e is not None:
                 out[name] = e.nbytes
         return out
@@ -456,7 +478,7 @@ class Correlator:
         self._have_map = True
 
     def warm_up(self, modes=("fast", "track")) -> None:
-        """Allocate the engines of the given modes ("exact", "fast", "track") and compile (or load from
+        """Allocate the engines of the given modes ("exact", "fast", "track", "track_exact") and compile (or load from
         the on-disk cache) their kernels, so the first frame is neither slow nor allocating."""
         p = self.params
         from .synth import SyntheticBev
@@ -471,6 +493,8 @@ class Correlator:
             self.search_fast(bev)
         if "track" in modes:
             self.track(bev, p.window_shape[0] // 2, p.window_shape[1] // 2, 0)
+        if "track_exact" in modes:
+            self.track(bev, p.window_shape[0] // 2, p.window_shape[1] // 2, 0, exact=True)
         self._have_map = had
 
     # -- per frame -------------------------------------------------------------------------
@@ -512,6 +536,7 @@ class Correlator:
         modes = find_modes(e.best, e.best_a, self._pw_fine, 1, p.n_modes, p.mode_radius_cells,
                            p.mode_radius_headings, p.n_headings)
         modes = [self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=False) for m in modes]
+        modes.sort(key=lambda m: -m.cell_loglik)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, volume=volume)
 
     def search_fast(self, bev) -> SearchResult:
@@ -532,33 +557,67 @@ class Correlator:
         cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, p.coarse_top_k, max(1, p.mode_radius_cells // 2),
                            max(1, p.mode_radius_headings // 2), p.n_headings // 2)
         fine = [self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=True) for m in cands]
-        fine.sort(key=lambda m: -m.loglik)
-        modes = []
-        for m in fine:
-            if all(not _near(m, o, p) for o in modes):
-                modes.append(m)
-            if len(modes) == p.n_modes:
-                break
+        modes = _distinct(fine, p, p.n_modes)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, scale=2)
 
-    def track(self, bev, row: float, col: float, heading_index: int) -> TrackResult:
-        """Tracking update: full-resolution volume over +-track_radius cells and +-track_half_headings
-        around a prior (window cell (row, col), heading index)."""
-        p, e = self.params, self._track_engine()
+    def track(self, bev, row: float, col: float, heading_index: int, *, exact: bool = False) -> TrackResult:
+        """Tracking update around a prior: +-track_radius_cells and +-track_half_headings.
+
+        Parameters
+        ----------
+        bev : BevGrid
+        row, col : float
+            Prior window cell of the robot (cell indices; the robot at the cell centre).
+        heading_index : int
+            Prior heading index.
+        exact : bool
+            False (default): coarse-to-fine - the window is scored exactly at half
+            resolution (1 m, 2 heading steps), and the ``track_refine`` best modes are
+            climbed to their local best at full resolution with exact scores.
+            True: the exact full-resolution volume over the window (slower).
+        """
+        p = self.params
         R, hh = p.track_radius_cells, p.track_half_headings
-        row0, col0 = int(round(row)) - R, int(round(col)) - R
-        a0 = (int(heading_index) - hh) % p.n_headings
+        if exact:
+            e = self._track_engine()
+            row0, col0 = int(round(row)) - R, int(round(col)) - R
+            a0 = (int(heading_index) - hh) % p.n_headings
+        else:
+            e = self._track_engine_coarse()
+            Rc, hc = (R + 1) // 2, (hh + 1) // 2
+            row0, col0 = int(round(row)) // 2 - Rc, int(round(col)) // 2 - Rc
+            a0 = (int(round(heading_index / 2.0)) - hc) % (p.n_headings // 2)
         status = self._prepare(bev)
         if status != "ok":
-            return TrackResult(e.vol, row0, col0, a0, ok=False, status=status)
-        e.run(self._feat, self._G, row0, col0, a0, p.n_headings, self._inv_temp)
-        modes = modes_of_volume(e.vol, row0, col0, a0, p.n_headings, self._pw_track, p.n_modes,
-                                p.mode_radius_cells, p.mode_radius_headings)
-        return TrackResult(e.vol, row0, col0, a0, modes=modes)
+            return TrackResult(e.vol, row0, col0, a0, scale=1 if exact else 2, ok=False, status=status)
+        self._refiner.reset()
+        if exact:
+            e.run(self._feat, self._G, row0, col0, a0, p.n_headings, self._inv_temp)
+            modes = modes_of_volume(e.vol, row0, col0, a0, p.n_headings, self._pw_track, p.n_modes,
+                                    p.mode_radius_cells, p.mode_radius_headings)
+            return TrackResult(e.vol, row0, col0, a0, modes=modes)
+        K.downsample2(self._feat, self._feat_c)
+        e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, self._inv_temp)
+        cands = modes_of_volume(e.vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
+                                max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // 2))
+        modes = _distinct([self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=True)
+                           for m in cands], p, p.n_modes)
+        return TrackResult(e.vol, row0, col0, a0, modes=modes, scale=2)
 
     def pose_of(self, mode: Mode) -> tuple[float, float, float]:
         """(row, col, yaw_rad) of a mode: continuous window cell of the robot origin and its yaw."""
         return mode.row + 0.5, mode.col + 0.5, float(wrap_angle(mode.heading * self.params.dyaw))
+
+
+def _distinct(modes, p, n):
+    """Best first, dropping modes within the suppression radius of a better one (climbs can converge)."""
+    out = []
+    for m in sorted(modes, key=lambda m: -m.cell_loglik):
+        if all(not _near(m, o, p) for o in out):
+            out.append(m)
+        if len(out) == n:
+            break
+    return out
 
 
 def _near(m, o, p) -> bool:
@@ -568,9 +627,14 @@ def _near(m, o, p) -> bool:
 
 
 class _Refiner:
-    """Exact scores at chosen poses by direct sums over a heading's rotated grid (cached per heading)."""
+    """Exact scores at chosen poses by direct sums over a heading's rotated grid.
 
-    SLOTS = 24
+    The rotated grid of each heading asked for is computed once per frame and kept
+    compacted (only cells with nonzero evidence: the camera's visible wedge), in a
+    small round-robin cache of slots.
+    """
+
+    SLOTS = 48
 
     def __init__(self, F, p: CorrelatorParams):
         self.p = p
@@ -578,18 +642,19 @@ class _Refiner:
         for a in range(64):
             lu, hu, lv, hv = template_bounds(p.bev_shape, p.origin_row, p.origin_col, 2 * math.pi * a / 64)
             SU, SV = max(SU, hu - lu + 2), max(SV, hv - lv + 2)
-        self.canvas = np.zeros((self.SLOTS, F, SU, SV), np.float32)
-        self.lo = np.zeros((self.SLOTS, 2), np.int64)
+        self.canvas = np.zeros((F, SU, SV), np.float32)
+        self.uv = np.zeros((self.SLOTS, SU * SV, 2), np.int16)  # offsets are within +-reach
+        self.vals = np.zeros((self.SLOTS, SU * SV, F), np.float32)
+        self.count = np.zeros(self.SLOTS, np.int64)
         self.slot_heading = np.full(self.SLOTS, -1, np.int64)
         self.next_slot = 0
         self.rows = np.zeros(64, np.int64)
         self.cols = np.zeros(64, np.int64)
         self.out = np.zeros(64, np.float64)
-        self.cache = {}
 
     @property
     def nbytes(self) -> int:
-        return self.canvas.nbytes + self.lo.nbytes + self.rows.nbytes * 2 + self.out.nbytes
+        return sum(a.nbytes for a in (self.canvas, self.uv, self.vals, self.count, self.rows, self.cols, self.out))
 
     def _slot(self, feat, a):
         p = self.p
@@ -601,21 +666,22 @@ class _Refiner:
         self.next_slot = (s + 1) % self.SLOTS
         yaw = 2.0 * math.pi * a / p.n_headings
         lu, _, lv, _ = template_bounds(p.bev_shape, p.origin_row, p.origin_col, yaw)
-        K.rotate_into(feat, math.cos(yaw), math.sin(yaw), p.origin_row, p.origin_col, lu, lv, self.canvas[s])
-        self.lo[s, 0], self.lo[s, 1] = lu, lv
+        K.rotate_into(feat, math.cos(yaw), math.sin(yaw), p.origin_row, p.origin_col, lu, lv, self.canvas)
+        self.count[s] = K.compact_canvas(self.canvas, lu, lv, self.uv[s], self.vals[s])
         self.slot_heading[s] = a
         return s
 
     def reset(self):
+        """Forget the cached grids (a new frame)."""
         self.slot_heading.fill(-1)
 
     def scores(self, feat, G, a, cells, inv_temp):
         """Exact tempered log-likelihoods of heading a at the given (row, col) window cells."""
         s = self._slot(feat, a)
-        n = len(cells)
-        for k, (i, j) in enumerate(cells):
-            self.rows[k], self.cols[k] = i, j
-        K.direct_scores(self.canvas[s], self.lo[s, 0], self.lo[s, 1], G, self.rows[:n], self.cols[:n], self.out[:n])
+        n = min(len(cells), self.rows.shape[0])
+        for k in range(n):
+            self.rows[k], self.cols[k] = cells[k]
+        K.sparse_scores(self.uv[s], self.vals[s], self.count[s], G, self.rows[:n], self.cols[:n], self.out[:n])
         return [float(self.out[k]) * inv_temp for k in range(n)]
 
     def refine(self, feat, G, m: Mode, inv_temp, *, hill_climb: bool) -> Mode:

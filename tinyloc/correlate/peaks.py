@@ -28,7 +28,10 @@ class Mode:
     loglik : float
         Log-likelihood at the refined pose (parabolic peak value; tempered, up to a constant).
     cell : (int, int, int)
-        The integer (heading, row, col) the refinement started from.
+        The integer (heading, row, col) of the mode: a local maximum of the exact scores.
+    cell_loglik : float
+        Exact log-likelihood at ``cell``. Modes are ranked by it, so the exact and the
+        coarse-to-fine searches rank alike.
     """
 
     row: float
@@ -36,6 +39,7 @@ class Mode:
     heading: float
     loglik: float
     cell: tuple[int, int, int]
+    cell_loglik: float = float("nan")
 
 
 class PeakWork:
@@ -63,7 +67,7 @@ def find_modes(best, best_a, pw: PeakWork, scale: int, k: int, radius_cells: int
     n = K.nms_profile(best, best_a, n_headings_level, k, radius_cells, radius_headings, pw.work, pw.i, pw.j, pw.a,
                       pw.v)
     return [Mode(float(pw.i[m]), float(pw.j[m]), float(pw.a[m]), float(pw.v[m]),
-                 (int(pw.a[m]), int(pw.i[m]), int(pw.j[m]))) for m in range(n)]
+                 (int(pw.a[m]), int(pw.i[m]), int(pw.j[m])), float(pw.v[m])) for m in range(n)]
 
 
 def _parabola(sm, s0, sp):
@@ -141,7 +145,7 @@ def refine_mode(refiner, feat, G, m: Mode, inv_temp, p, *, hill_climb: bool) -> 
     dc, vc = _parabola(score(a0, i0, j0 - 1), s0, score(a0, i0, j0 + 1))
     dh, vh = _parabola(score(a0 - 1, i0, j0), s0, score(a0 + 1, i0, j0))
     peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
-    return Mode(i0 + dr, j0 + dc, float((a0 + dh) % A), float(peak), (int(a0), int(i0), int(j0)))
+    return Mode(i0 + dr, j0 + dc, float((a0 + dh) % A), float(peak), (int(a0 % A), int(i0), int(j0)), float(s0))
 
 
 def modes_of_volume(vol, row0, col0, a0, A, pw: PeakWork, k, radius_cells, radius_headings) -> list[Mode]:
@@ -164,5 +168,5 @@ def modes_of_volume(vol, row0, col0, a0, A, pw: PeakWork, k, radius_cells, radiu
         dh, vh = _parabola(nb(t - 1, i, j), s0, nb(t + 1, i, j))
         peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
         out.append(Mode(row0 + i + dr, col0 + j + dc, float((a0 + t + dh) % A), peak,
-                        (int((a0 + t) % A), row0 + i, col0 + j)))
+                        (int((a0 + t) % A), row0 + i, col0 + j), s0))
     return out
