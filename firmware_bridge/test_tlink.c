@@ -373,6 +373,19 @@ static void test_limits(void)
         }
     }
     CHECK(got == 2, "frame after the over-long run recovered");
+    /* NULL pointers: refused, never dereferenced; a NULL out still counts */
+    {
+        tlink_pose_t pose;
+        uint32_t ok0 = d.counters.frames_ok;
+        memset(&pose, 0, sizeof pose);
+        for (i = 0; i < n; i++) {
+            (void)tlink_decoder_push(&d, enc[i], NULL);
+        }
+        CHECK(d.counters.frames_ok == ok0 + 1, "frame counted with out == NULL");
+        CHECK(tlink_put_pose(NULL, 0, 0, enc, sizeof enc) == 0, "put with NULL message");
+        CHECK(tlink_put_pose(&pose, 0, 0, NULL, sizeof enc) == 0, "put with NULL buffer");
+        CHECK(!tlink_get_pose(NULL, &pose) && !tlink_get_pose(&fr, NULL), "get with NULL");
+    }
 }
 
 /* ------------------------------------------------------------------ fuzz */

@@ -238,13 +238,14 @@ static bool dec_finish(tlink_decoder_t *d, tlink_frame_t *out)
 
 bool tlink_decoder_push(tlink_decoder_t *d, uint8_t byte, tlink_frame_t *out)
 {
+    tlink_frame_t scratch; /* lets a caller that only wants the counters pass out == NULL */
     bool ok;
     d->counters.bytes_in++;
     if (byte == 0x00) {
         if (d->code == 0 && d->fault == F_NONE) {
             return false; /* empty run between delimiters: idle line, not an error */
         }
-        ok = dec_finish(d, out);
+        ok = dec_finish(d, out != NULL ? out : &scratch);
         if (!ok) {
             d->counters.resyncs++;
         }
@@ -369,7 +370,7 @@ static void get_text(char *s, const uint8_t *p)
     }
 }
 
-bool tlink_get_pose(const tlink_frame_t *f, tlink_pose_t *m)
+static bool get_pose(const tlink_frame_t *f, tlink_pose_t *m)
 {
     const uint8_t *p = f->payload;
     int k;
@@ -390,7 +391,7 @@ bool tlink_get_pose(const tlink_frame_t *f, tlink_pose_t *m)
     return true;
 }
 
-size_t tlink_put_pose(const tlink_pose_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+static size_t put_pose(const tlink_pose_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
 {
     uint8_t p[TLINK_POSE_LEN];
     int k;
@@ -409,7 +410,7 @@ size_t tlink_put_pose(const tlink_pose_t *m, uint16_t seq, int64_t t_us, uint8_t
     return tlink_encode(TLINK_TYPE_POSE, seq, t_us, p, sizeof p, out, cap);
 }
 
-bool tlink_get_status(const tlink_frame_t *f, tlink_status_t *m)
+static bool get_status(const tlink_frame_t *f, tlink_status_t *m)
 {
     const uint8_t *p = f->payload;
     if (f->type != TLINK_TYPE_STATUS || f->len < TLINK_STATUS_LEN) {
@@ -425,7 +426,7 @@ bool tlink_get_status(const tlink_frame_t *f, tlink_status_t *m)
     return true;
 }
 
-size_t tlink_put_status(const tlink_status_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+static size_t put_status(const tlink_status_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
 {
     uint8_t p[TLINK_STATUS_LEN];
     p[0] = m->state;
@@ -438,7 +439,7 @@ size_t tlink_put_status(const tlink_status_t *m, uint16_t seq, int64_t t_us, uin
     return tlink_encode(TLINK_TYPE_STATUS, seq, t_us, p, sizeof p, out, cap);
 }
 
-bool tlink_get_timesync(const tlink_frame_t *f, tlink_timesync_t *m)
+static bool get_timesync(const tlink_frame_t *f, tlink_timesync_t *m)
 {
     const uint8_t *p = f->payload;
     if (f->type != TLINK_TYPE_TIMESYNC || f->len < TLINK_TIMESYNC_LEN || p[24] > 1u) {
@@ -451,7 +452,7 @@ bool tlink_get_timesync(const tlink_frame_t *f, tlink_timesync_t *m)
     return true;
 }
 
-size_t tlink_put_timesync(const tlink_timesync_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+static size_t put_timesync(const tlink_timesync_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
 {
     uint8_t p[TLINK_TIMESYNC_LEN];
     memset(p, 0, sizeof p);
@@ -462,7 +463,7 @@ size_t tlink_put_timesync(const tlink_timesync_t *m, uint16_t seq, int64_t t_us,
     return tlink_encode(TLINK_TYPE_TIMESYNC, seq, t_us, p, sizeof p, out, cap);
 }
 
-bool tlink_get_odometry(const tlink_frame_t *f, tlink_odometry_t *m)
+static bool get_odometry(const tlink_frame_t *f, tlink_odometry_t *m)
 {
     const uint8_t *p = f->payload;
     if (f->type != TLINK_TYPE_ODOMETRY || f->len < TLINK_ODOMETRY_LEN) {
@@ -479,7 +480,7 @@ bool tlink_get_odometry(const tlink_frame_t *f, tlink_odometry_t *m)
     return true;
 }
 
-size_t tlink_put_odometry(const tlink_odometry_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+static size_t put_odometry(const tlink_odometry_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
 {
     uint8_t p[TLINK_ODOMETRY_LEN];
     memset(p, 0, sizeof p);
@@ -494,7 +495,7 @@ size_t tlink_put_odometry(const tlink_odometry_t *m, uint16_t seq, int64_t t_us,
     return tlink_encode(TLINK_TYPE_ODOMETRY, seq, t_us, p, sizeof p, out, cap);
 }
 
-bool tlink_get_imu(const tlink_frame_t *f, tlink_imu_t *m)
+static bool get_imu(const tlink_frame_t *f, tlink_imu_t *m)
 {
     const uint8_t *p = f->payload;
     int k;
@@ -509,7 +510,7 @@ bool tlink_get_imu(const tlink_frame_t *f, tlink_imu_t *m)
     return true;
 }
 
-size_t tlink_put_imu(const tlink_imu_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+static size_t put_imu(const tlink_imu_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
 {
     uint8_t p[TLINK_IMU_LEN];
     int k;
@@ -522,7 +523,7 @@ size_t tlink_put_imu(const tlink_imu_t *m, uint16_t seq, int64_t t_us, uint8_t *
     return tlink_encode(TLINK_TYPE_IMU, seq, t_us, p, sizeof p, out, cap);
 }
 
-bool tlink_get_heartbeat(const tlink_frame_t *f, tlink_heartbeat_t *m)
+static bool get_heartbeat(const tlink_frame_t *f, tlink_heartbeat_t *m)
 {
     const uint8_t *p = f->payload;
     if (f->type != TLINK_TYPE_HEARTBEAT || f->len < TLINK_HEARTBEAT_LEN) {
@@ -538,7 +539,7 @@ bool tlink_get_heartbeat(const tlink_frame_t *f, tlink_heartbeat_t *m)
     return true;
 }
 
-size_t tlink_put_heartbeat(const tlink_heartbeat_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+static size_t put_heartbeat(const tlink_heartbeat_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
 {
     uint8_t p[TLINK_HEARTBEAT_LEN];
     wr_u32(p, m->uptime_ms);
@@ -549,4 +550,64 @@ size_t tlink_put_heartbeat(const tlink_heartbeat_t *m, uint16_t seq, int64_t t_u
     p[17] = m->reset_cause;
     wr_u16(p + 18, m->flags);
     return tlink_encode(TLINK_TYPE_HEARTBEAT, seq, t_us, p, sizeof p, out, cap);
+}
+
+size_t tlink_put_pose(const tlink_pose_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+{
+    return m == NULL ? 0u : put_pose(m, seq, t_us, out, cap);
+}
+
+bool tlink_get_pose(const tlink_frame_t *f, tlink_pose_t *m)
+{
+    return f != NULL && m != NULL && f->payload != NULL && get_pose(f, m);
+}
+
+size_t tlink_put_status(const tlink_status_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+{
+    return m == NULL ? 0u : put_status(m, seq, t_us, out, cap);
+}
+
+bool tlink_get_status(const tlink_frame_t *f, tlink_status_t *m)
+{
+    return f != NULL && m != NULL && f->payload != NULL && get_status(f, m);
+}
+
+size_t tlink_put_timesync(const tlink_timesync_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+{
+    return m == NULL ? 0u : put_timesync(m, seq, t_us, out, cap);
+}
+
+bool tlink_get_timesync(const tlink_frame_t *f, tlink_timesync_t *m)
+{
+    return f != NULL && m != NULL && f->payload != NULL && get_timesync(f, m);
+}
+
+size_t tlink_put_odometry(const tlink_odometry_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+{
+    return m == NULL ? 0u : put_odometry(m, seq, t_us, out, cap);
+}
+
+bool tlink_get_odometry(const tlink_frame_t *f, tlink_odometry_t *m)
+{
+    return f != NULL && m != NULL && f->payload != NULL && get_odometry(f, m);
+}
+
+size_t tlink_put_imu(const tlink_imu_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+{
+    return m == NULL ? 0u : put_imu(m, seq, t_us, out, cap);
+}
+
+bool tlink_get_imu(const tlink_frame_t *f, tlink_imu_t *m)
+{
+    return f != NULL && m != NULL && f->payload != NULL && get_imu(f, m);
+}
+
+size_t tlink_put_heartbeat(const tlink_heartbeat_t *m, uint16_t seq, int64_t t_us, uint8_t *out, size_t cap)
+{
+    return m == NULL ? 0u : put_heartbeat(m, seq, t_us, out, cap);
+}
+
+bool tlink_get_heartbeat(const tlink_frame_t *f, tlink_heartbeat_t *m)
+{
+    return f != NULL && m != NULL && f->payload != NULL && get_heartbeat(f, m);
 }

@@ -13,6 +13,8 @@
  *    correct; anything else is counted and skipped, and the next delimiter starts afresh;
  *  - the encoder never writes more than `cap` bytes; errors are sticky: once a write does
  *    not fit, the rest of the frame is not written and the call returns 0;
+ *  - NULL pointers are refused (false / 0), never dereferenced; `out` of tlink_decoder_push
+ *    may be NULL when only the counters are wanted;
  *  - multi-byte fields are read and written byte by byte (little-endian on the wire,
  *    whatever the CPU's byte order or alignment rules).
  * Requirements: uint8_t..int64_t, and float as IEEE-754 binary32 (checked at compile time).
