@@ -14,6 +14,7 @@ Usage::
     python benchmarks/bench_bag_import.py                    # 2 GB MCAP bag
     python benchmarks/bench_bag_import.py --size-gb 0.5 --storage sqlite3 --images jpeg
     python benchmarks/bench_bag_import.py --keep DIR         # keep the bag and the run folder
+    python benchmarks/bench_bag_import.py --size-gb 0.2 --workers 1,2   # encoder threads compared
 """
 
 from __future__ import annotations
@@ -177,6 +178,8 @@ def main(argv=None) -> int:
     ap.add_argument("--storage", choices=("mcap", "sqlite3", "ros1"), default="mcap")
     ap.add_argument("--images", choices=("raw", "jpeg"), default="raw", help="bgr8 Image or JPEG CompressedImage")
     ap.add_argument("--keep", metavar="DIR", help="work in DIR and keep the bag and run folder")
+    ap.add_argument("--workers", default="0", help="comma-separated frame-encoder thread counts to run, "
+                                                   "e.g. 1,2 (0: automatic, the import's default)")
     ap.add_argument("--json", action="store_true", help="print one JSON object")
     a = ap.parse_args(argv)
     work = Path(a.keep) if a.keep else Path(tempfile.mkdtemp(prefix="tinyloc-bagbench-"))
@@ -200,18 +203,21 @@ def main(argv=None) -> int:
                      "print(n)")
         _child(base_code)  # warm the page cache
         base_s, base_rss, _ = _child(base_code)
-        imp_code = ("import sys; from tinyloc.cli.main import main\n"
-                    f"rc = main(['import', 'bag', {str(bag)!r}, '-o', {str(run)!r}, '--quiet'])\n"
-                    "assert rc == 0, rc")
-        imp_s, imp_rss, out = _child(imp_code)
-        first_line = out.splitlines()[0] if out else ""
         mb = size / 1e6
         res = {"bag": str(bag), "storage": a.storage, "images": a.images, "bag_mb": round(mb, 1),
-               "import_s": round(imp_s, 2), "import_mb_per_s": round(mb / imp_s, 1),
-               "import_peak_rss_mb": round(imp_rss, 1),
                "baseline_read_s": round(base_s, 2), "baseline_read_mb_per_s": round(mb / base_s, 1),
-               "baseline_peak_rss_mb": round(base_rss, 1),
-               "import_over_read_time": round(imp_s / base_s, 2), "result": first_line}
+               "baseline_peak_rss_mb": round(base_rss, 1)}
+        for k, w in enumerate(int(v) for v in a.workers.split(",")):
+            shutil.rmtree(run, ignore_errors=True)
+            imp_code = ("from tinyloc.bagio.import_bag import ImportOptions, import_bag\n"
+                        f"r = import_bag({str(bag)!r}, {str(run)!r}, ImportOptions(progress=False, workers={w}))\n"
+                        "print(r.lines[0])")
+            imp_s, imp_rss, out = _child(imp_code)
+            tag = f"{k}_w{w}"
+            res.update({f"import_{tag}_s": round(imp_s, 2), f"import_{tag}_mb_per_s": round(mb / imp_s, 1),
+                        f"import_{tag}_peak_rss_mb": round(imp_rss, 1),
+                        f"import_{tag}_over_read_time": round(imp_s / base_s, 2),
+                        f"import_{tag}_result": out.splitlines()[0] if out else ""})
         if a.json:
             print(json.dumps(res))
         else:

@@ -14,6 +14,13 @@ from dataclasses import dataclass, field
 NS = 1_000_000_000
 
 
+def fmt_ns(t_ns: int) -> str:
+    """Integer nanoseconds as exact decimal seconds ('1700000000.093000000')."""
+    sign = "-" if t_ns < 0 else ""
+    t = abs(int(t_ns))
+    return f"{sign}{t // NS}.{t % NS:09d}"
+
+
 @dataclass(frozen=True)
 class StampParams:
     """Thresholds of the timestamp report.
@@ -95,7 +102,7 @@ class StampTracker:
             dt = stamp_ns - self.last_ns
             if dt == 0:
                 self.duplicates += 1
-                self._event("duplicate", index, f"stamp {stamp_ns / NS:.9f} s repeats the previous one; dropped")
+                self._event("duplicate", index, f"stamp {fmt_ns(stamp_ns)} s repeats the previous one; dropped")
                 return False
             if dt < 0:
                 self.backwards += 1
