@@ -51,6 +51,10 @@ BAD = [
     ("bowtie", json.dumps(collection([polygon([SQUARE], building="yes"),
                                       polygon([[(0, 0), (20, 20), (20, 0), (0, 20)]], building="yes")])),
      r"feature 1: self-intersecting polygon \(ring 0, edges 0 and 2 cross near lon -?\d+\.\d{7}, lat \d+\.\d{7}\)"),
+    ("projected", json.dumps(dict(collection([point((1, 1), natural="tree")]), crs={
+        "type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::3857"}})),
+     r"declares coordinate system 'urn:ogc:def:crs:EPSG::3857'; GeoJSON \(RFC 7946\) positions must be WGS84 "
+     r"longitude/latitude: reproject the data first"),
     ("empty", json.dumps(collection([])), r"empty map \(the FeatureCollection has no features\)"),
     ("nothing_mapped", json.dumps(collection([polygon([SQUARE], foo="bar"), point((3, 3), colour="red")])),
      r"empty map \(none of the 2 features matched a class rule: 2 unmapped, 0 ignored, 0 without geometry\)"),

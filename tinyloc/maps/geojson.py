@@ -121,6 +121,12 @@ def load_geojson(src) -> FeatureSet:
         raise GeoJSONError(f"{name}: not a FeatureCollection (top level is a JSON {type(doc).__name__})")
     if doc.get("type") != "FeatureCollection":
         raise GeoJSONError(f"{name}: not a FeatureCollection (top-level \"type\" is {doc.get('type')!r})")
+    crs = doc.get("crs")
+    if crs is not None:
+        cname = str((crs.get("properties") or {}).get("name", "")) if isinstance(crs, dict) else str(crs)
+        if not any(t in cname.upper() for t in ("CRS84", "4326")):
+            raise GeoJSONError(f"{name}: declares coordinate system {cname or crs!r}; GeoJSON (RFC 7946) positions "
+                               "must be WGS84 longitude/latitude: reproject the data first")
     feats = doc.get("features")
     if not isinstance(feats, list):
         raise GeoJSONError(f"{name}: FeatureCollection has no \"features\" array")
