@@ -25,20 +25,10 @@ def encode(data) -> bytes:
     """COBS-encode ``data`` (bytes-like). The result holds no zero byte and no delimiter."""
     data = bytes(data)
     n = len(data)
-    if n < 254:
-        # No block can reach 254 bytes: the output is the data behind one code byte, with
-        # each zero replaced by the distance to the next zero (or to the end).
-        out = bytearray(n + 1)
-        out[1:] = data
-        prev = 0
-        z = data.find(0)
-        while z >= 0:
-            out[prev] = z + 1 - prev
-            prev = z + 1
-            z = data.find(0, prev)
-        out[prev] = n + 1 - prev
-        return bytes(out)
     chunks = data.split(b"\x00")
+    if n < 254:
+        # No block can reach 254 bytes: each zero-separated chunk is one block behind its code.
+        return b"".join([_BYTE[len(c) + 1] + c for c in chunks])
     out = []
     # Every zero ends a block; a chunk of 254 bytes or more is cut into 254-byte blocks
     # with code 0xFF (no implied zero after them).
