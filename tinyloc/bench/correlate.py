@@ -230,7 +230,8 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
     corr = corr or Correlator(CorrelatorParams())
     p = corr.params
     A = p.n_headings
-    strict = tol = ex_near = fa_near = 0
+    from ..classes import BUILDING, TREE
+    strict = tol = ex_near = fa_near = n_inf = inf_near = 0
     gaps = []
     maps = {}
     t0 = time.perf_counter()
@@ -256,6 +257,9 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
         gaps.append(gap)
         strict += ok
         tol += ok or gap <= tie_nats
+        # "Informative": a building corner or a tree in view (at least 4 cells of such evidence).
+        informative = float(bev.evidence[BUILDING].sum() + bev.evidence[TREE].sum()) >= 4.0
+        n_inf += informative
         for pose, name in ((ex_pose, "ex"), (fa_pose, "fa")):
             d_m = math.hypot(pose[0] - row, pose[1] - col) * p.res_m
             d_deg = abs(math.degrees(math.remainder(pose[2] - yaw, 2 * math.pi)))
@@ -264,10 +268,12 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
                     ex_near += 1
                 else:
                     fa_near += 1
+                    inf_near += informative
         if progress and (t + 1) % 20 == 0:
             print(f"agreement: {t + 1}/{trials} trials, {strict} strict, {tol} tie-tolerant, "
                   f"{time.perf_counter() - t0:.0f} s", file=sys.stderr)
     g = np.array(gaps)
     return {"agreement_trials": trials, "agreement_rate": strict / trials, "agreement_rate_tie_tolerant": tol / trials,
             "agreement_tie_nats": tie_nats, "agreement_worst_gap_nats": float(g.max()),
-            "exact_within_1m_3deg_rate": ex_near / trials, "fast_within_1m_3deg_rate": fa_near / trials}
+            "exact_within_1m_3deg_rate": ex_near / trials, "fast_within_1m_3deg_rate": fa_near / trials,
+            "informative_frames": n_inf, "fast_within_1m_3deg_rate_informative": inf_near / max(1, n_inf)}

@@ -84,7 +84,7 @@ class CorrelatorParams:
     coarse_top_k: int = 32
     track_radius_cells: int = 20
     track_half_headings: int = 15
-    track_refine: int = 2
+    track_refine: int = 1
 
     def __post_init__(self):
         A = self.n_headings
