@@ -106,12 +106,13 @@ class _Progress:
         now = time.monotonic()
         if done < total and (now - self.t0 < 1.0 or now - self.last < 0.5):
             return
-        if done == total and not self.shown:
+        if done == total and (not self.shown or what != "bands"):
             return
         self.last = now
         self.shown = True
         end = "\n" if done == total else ""
-        print(f"\rpacking: {what} {done}/{total} ({100 * done / total:.0f}%)", end=end, file=sys.stderr, flush=True)
+        msg = f"packing: {what} {done}/{total} ({100 * done / total:.0f}%)"
+        print(f"\r{msg:<48}", end=end, file=sys.stderr, flush=True)
 
 
 def _pack(args) -> int:

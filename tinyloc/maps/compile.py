@@ -142,7 +142,8 @@ def pack_geojson(src, out_path, *, res_m: float = 0.5, rules=None, progress=None
     rules : None, path or Rules
         Class rules; None uses the bundled defaults.
     progress : callable, optional
-        ``progress(done, total, what)`` called as bands are rasterized.
+        ``progress(done, total, what)`` called as features are matched (``what`` =
+        "features") and as bands of rows are rasterized and written ("bands").
     origin : (lat, lon[, h]), optional
         ENU origin of the map (deg, deg, m). Default: the collection's ``"origin"``
         member, else the centre of the features' bounding box at h = 0.
@@ -171,7 +172,10 @@ def pack_geojson(src, out_path, *, res_m: float = 0.5, rules=None, progress=None
     mapped_by_class = [set() for _ in range(NUM_MAP_CLASSES)]
     unmapped_keys = Counter()
     n_unmapped = n_ignored = n_nogeom = 0
-    for f in fs.features:
+    n_feat = len(fs.features)
+    for fi, f in enumerate(fs.features):
+        if progress is not None and (fi % 5000 == 0 or fi == n_feat - 1):
+            progress(fi + 1, n_feat, "features")
         if f.kind == "none":
             n_nogeom += 1
             continue
