@@ -67,15 +67,27 @@ def make_run(path, *, n_frames=40, fps=5.0, gaps=False, seed=3) -> Path:
             lat, lon = frame.to_latlon(gx, gy)
             w.add_truth(t, lat, lon, ga, gx, gy)
     if gaps:
-        (path / "frames" / "000007.png").unlink()
-        lines = (path / "imu.csv").read_text().splitlines(keepends=True)
-        for k in (10, 11, 40):
-            t = lines[k].split(",")[0]
-            lines[k] = f"{t},nan,0.0,9.81\n"
-        (path / "imu.csv").write_text("".join(lines) + "1.23,0.0")
-        with open(path / "odometry.csv", "a") as f:
-            f.write("99.0,1.0")
+        inject_gaps(path, drop_frame=7)
     return path
+
+
+def inject_gaps(path, *, drop_frame: int, gnss_span=None) -> None:
+    """Damage a run folder the way real logs are damaged: one frame file gone, three NaN IMU rows,
+    (optionally) the GNSS rows with time in ``gnss_span`` removed, and imu.csv and odometry.csv cut
+    mid-line."""
+    path = Path(path)
+    (path / "frames" / f"{drop_frame:06d}.png").unlink()
+    lines = (path / "imu.csv").read_text().splitlines(keepends=True)
+    for k in (10, 11, 40):
+        t = lines[k].split(",")[0]
+        lines[k] = f"{t},nan,0.0,9.81\n"
+    (path / "imu.csv").write_text("".join(lines) + "1.23,0.0")
+    with open(path / "odometry.csv", "a") as f:
+        f.write("99.0,1.0")
+    if gnss_span is not None:
+        rows = (path / "gnss.csv").read_text().splitlines(keepends=True)
+        keep = [rows[0]] + [r for r in rows[1:] if not gnss_span[0] <= float(r.split(",")[0]) <= gnss_span[1]]
+        (path / "gnss.csv").write_text("".join(keep))
 
 
 def make_map(path) -> Path:

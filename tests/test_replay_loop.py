@@ -13,7 +13,9 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from _replay_helpers import make_map, make_run
+import shutil
+
+from _replay_helpers import inject_gaps, make_map, make_run
 from tinyloc.frames import wrap_angle
 from tinyloc.replay.loop_adapter import make_loop_localizer
 from tinyloc.replay.metrics import interp_pose
@@ -142,29 +144,43 @@ def sim_site(tmp_path_factory):
     cam = CameraModel(width=320, height=240, fx=225.0, fy=225.0, cx=159.5, cy=119.5,
                       dist=(-0.08, 0.015, 0.0, 0.0, 0.0), mount=Mount(height_m=0.8, pitch_deg=8.0))
     sim_run(site.world, d / "drive", seed=5, params=RunParams(frames=12), camera=cam)
+    shutil.copytree(d / "drive", d / "drive-gaps")
+    # Frames run from 1.5 s at 5 Hz (the simulator's start); GNSS gone from 2.0 to 4.5 s.
+    inject_gaps(d / "drive-gaps", drop_frame=4, gnss_span=(2.0, 4.5))
     return d
 
 
-def test_full_loop_replay_of_a_simulated_drive(sim_site, tmp_path, capsys):
-    """The default loop (tinyloc's segmenter, projector, correlator, tracker) on a simulated drive; the
-    report's numbers equal metrics.json (the same check as the harness test, now on the real loop)."""
+def test_full_loop_replay_of_simulated_drives(sim_site, tmp_path, capsys):
+    """The default loop (tinyloc's segmenter, projector, correlator, tracker) on two simulated drives in
+    parallel worker processes: one clean, one damaged (missing frame, NaN IMU rows, GNSS outage, cut last
+    lines). Both replay to the end; the damage is reported; the report's numbers equal metrics.json."""
     import re
 
     from tinyloc.cli.main import main
 
     out = tmp_path / "rep"
-    rc = main(["replay", str(sim_site / "drive"), "--map", str(sim_site / "site.tlm"), "-o", str(out), "--json",
-               "-q"])
+    rc = main(["replay", str(sim_site / "drive"), str(sim_site / "drive-gaps"), "--map", str(sim_site / "site.tlm"),
+               "-o", str(out), "--json", "--jobs", "2", "-q"])
     assert rc == 0
-    m = json.loads(capsys.readouterr().out)
+    runs = json.loads(capsys.readouterr().out)["runs"]
+    assert [r["error"] for r in runs] == [None, None]
+    m, mg = runs[0]["metrics"], runs[1]["metrics"]
     assert m["frames"] == 12 and m["frames_with_truth"] == 12
     assert m["loop_health"]["frames"] == 12 and m["run"]["localizer"] == "loop"
     assert m["frame_ms_median"] > 0 and m["replay"]["frames_per_s"] > 0
     for k in ("0.25m_2deg", "0.5m_2deg", "1m_3deg", "2m_5deg"):
         assert 0.0 <= m["recall"][k] <= 1.0
     assert m["gnss_median_error_m"] is not None and m["dead_reckoning"]["median_error_m"] is not None
-    assert json.loads((out / "metrics.json").read_text()) == m
-    text = (out / "report.html").read_text()
+    # The damaged drive: 11 frames (one file gone) replayed by the loop to the last one, every fault listed.
+    assert mg["frames"] == 11 and mg["loop_health"]["frames"] == 11
+    gl = "\n".join(mg["gaps"]["list"])
+    assert "frame file 'frames/000004.png' is missing" in gl and "frames: 0.40 s pause" in gl
+    assert gl.count("non-finite value") == 3 and gl.count("truncated last line ignored") == 2
+    assert "gnss.csv: outage" in gl
+    assert mg["gnss"]["frames_without_fix"] > 0
+
+    assert json.loads((out / "drive" / "metrics.json").read_text()) == m
+    text = (out / "drive" / "report.html").read_text()
     cells = re.findall(r'data-key="([^"]+)" data-value="([^"]*)">([^<]*)</td>', text)
     assert len(cells) > 30
     for key, raw, shown in cells:
