@@ -1,0 +1,138 @@
+"""``tinyloc run``: the live loop, from a source into sinks."""
+
+from __future__ import annotations
+
+import sys
+import time
+
+NAME = "run"
+HELP = "run the localizer live: frames in, poses out (serial, UDP, JSON lines, NMEA, run log)"
+DESCRIPTION = """\
+Run the localizer loop on a frame source and stream every pose (with its covariance and
+quality flag) to one or more sinks. The loop holds its memory fixed, drops frames it is too
+late for instead of queueing them (and says so in the pose status), and stops cleanly on
+Ctrl-C or SIGTERM: the frame in progress finishes, sinks get a final status, logs are flushed.
+
+sources (--source):
+  RUN_FOLDER          a recorded run folder (docs/run-folder.md); --realtime paces it
+  IMAGE_FOLDER        images in name order at --fps, no other sensors
+  camera:INDEX|URL    a live camera (cv2.VideoCapture); odometry and IMU from --sensors
+
+sinks (--to, repeatable; default "-"):
+  -                   JSON lines on stdout
+  udp://HOST:PORT     message-pack map per pose (binds 127.0.0.1 unless ?bind= is given)
+  /dev/ttyUSB0        framed binary to the firmware bridge (firmware_bridge/PROTOCOL.md)
+  nmea+udp://H:P      NMEA 0183 GGA/RMC/HDT/GST (also nmea+serial:DEV, nmea:-)
+  log:PATH            append-only crash-safe run log (read it with tinyloc.runtime.runlog)
+
+configuration: defaults are documented in docs/runtime.md; --config FILE.toml sets any of
+them, --set SECTION.KEY=VALUE overrides one (repeatable), --print-config shows the result.
+
+examples:
+  tinyloc run --map site.tlm --source runs/drive1 --to udp://127.0.0.1:5600 --to log:drive1.tlog
+  tinyloc run --map site.tlm --camera camera.toml --source camera:0 --sensors /dev/ttyUSB0 --to /dev/ttyUSB0
+"""
+
+
+def register(p):
+    p.add_argument("--map", required=False, metavar="SITE.tlm", help="packed site map (tinyloc map pack)")
+    p.add_argument("--camera", metavar="camera.toml", help="camera calibration (default: the run folder's)")
+    p.add_argument("--source", metavar="SRC", help="run folder, image folder or camera:INDEX|URL")
+    p.add_argument("--to", action="append", default=[], metavar="URL", help="pose sink (repeatable; default -)")
+    p.add_argument("--sensors", metavar="URL", help="link endpoint delivering odometry/IMU for a live camera "
+                                                     "(also receives the poses)")
+    p.add_argument("--config", metavar="loop.toml", help="loop configuration file (TOML)")
+    p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                   help="override one configuration value (repeatable), e.g. --set track.floor=0.001")
+    p.add_argument("--realtime", action="store_true", help="pace a recorded source at its own rate")
+    p.add_argument("--fps", type=float, default=10.0, help="frame rate of an image folder (default 10)")
+    p.add_argument("--max-frames", type=int, metavar="N", help="stop after N frames")
+    p.add_argument("--print-config", action="store_true", help="print the effective configuration (TOML) and exit")
+    p.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    p.set_defaults(func=main)
+
+
+def build(args, cfg):
+    """Open map, camera, source and sinks from the parsed arguments (shared with ``tinyloc demo``)."""
+    from ..camera.model import load_camera
+    from ..errors import InputError
+    from ..runtime.loop import Localizer
+    from ..runtime.sinks import open_sink
+    from ..runtime.sources import open_source
+
+    link = None
+    if getattr(args, "sensors", None):
+        link = open_sink(args.sensors)
+    src = open_source(args.source, realtime=args.realtime or cfg.loop.realtime, late_ms=cfg.loop.late_ms,
+                      max_frames=args.max_frames, fps=getattr(args, "fps", 10.0),
+                      link=getattr(link, "ep", None))
+    if args.camera:
+        cam = load_camera(args.camera)
+    elif getattr(src, "camera", None) is not None:
+        cam = src.camera
+    else:
+        raise InputError("--camera is needed for this source (only run folders carry their calibration)")
+    loc = Localizer.from_files(args.map, cam, cfg)
+    sinks = [open_sink(u, header={"map": str(args.map), "source": str(args.source)}) for u in (args.to or ["-"])]
+    if link is not None:
+        sinks.append(link)
+    return loc, src, sinks
+
+
+class Progress:
+    """One line on stderr about once a second: frames, frame rate, quality, status."""
+
+    def __init__(self, stream=sys.stderr, every_s: float = 1.0, total: int | None = None, truth=None):
+        self.stream = stream
+        self.every_s = every_s
+        self.total = total
+        self.truth = truth
+        self.t0 = time.monotonic()
+        self.t_last = 0.0
+        self.n = 0
+
+    def __call__(self, pose, frame):
+        import math
+
+        self.n += 1
+        now = time.monotonic()
+        if now - self.t_last < self.every_s and (self.total is None or self.n < self.total):
+            return
+        self.t_last = now
+        fps = self.n / max(now - self.t0, 1e-9)
+        tot = f"/{self.total}" if self.total else ""
+        err = ""
+        if self.truth is not None and 0 <= frame.index < len(self.truth) and math.isfinite(pose.x):
+            tx, ty, _ = self.truth[frame.index]
+            if math.isfinite(tx):
+                err = f"  err {math.hypot(pose.x - tx, pose.y - ty):5.2f} m"
+        print(f"\rframe {self.n}{tot}  {fps:5.1f} fps  {pose.frame_ms:6.1f} ms  {pose.quality:<9}{err}  "
+              f"{pose.status[:40]:<40}", end="", file=self.stream, flush=True)
+
+    def done(self):
+        print("", file=self.stream)
+
+
+def main(args) -> int:
+    from ..errors import InputError
+    from ..runtime.config import dumps_config, load_config
+    from ..runtime.runner import Runner
+
+    cfg = load_config(args.config, args.set)
+    if args.print_config:
+        sys.stdout.write(dumps_config(cfg))
+        return 0
+    if not args.map or not args.source:
+        raise InputError("tinyloc run needs --map and --source (see tinyloc run --help)")
+    loc, src, sinks = build(args, cfg)
+    prog = None if args.quiet else Progress(total=len(src) if hasattr(src, "__len__") else None)
+    runner = Runner(loc, src, sinks, on_pose=prog, status_every_s=cfg.loop.status_every_s)
+    summary = runner.run()
+    if prog is not None:
+        prog.done()
+    h = summary["health"]
+    print(f"tinyloc run: {summary['frames']} frames, {summary['dropped_late']} dropped late, "
+          f"{h.get('unusable_frames', 0)} unusable, quality {h.get('quality')}, "
+          f"stopped by {summary['stopped_by']}", file=sys.stderr)
+    loc.close()
+    return 0
