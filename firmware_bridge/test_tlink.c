@@ -2,6 +2,8 @@
  *
  * usage: test_tlink VECTOR_DIR            run all tests (exit status 0 = all passed)
  *        test_tlink --bench SECONDS       decoder throughput in bytes/s (one line of JSON)
+ *        test_tlink --decode < STREAM     decode stdin; one line per accepted frame, then the counters
+ *                                         (for differential tests against the Python decoder)
  */
 #define _POSIX_C_SOURCE 199309L
 #include "tlink.h"
@@ -498,8 +500,38 @@ static int bench(double seconds)
     return d.counters.frames_ok == frames && d.counters.resyncs == 0 ? 0 : 1;
 }
 
+static int decode_stdin(void)
+{
+    static uint8_t chunk[4096];
+    tlink_decoder_t d;
+    tlink_frame_t fr;
+    size_t n, i, k;
+    tlink_decoder_init(&d);
+    while ((n = fread(chunk, 1, sizeof chunk, stdin)) > 0) {
+        for (i = 0; i < n; i++) {
+            if (tlink_decoder_push(&d, chunk[i], &fr)) {
+                printf("frame %u %u %lld ", (unsigned)fr.type, (unsigned)fr.seq, (long long)fr.t_us);
+                for (k = 0; k < fr.len; k++) {
+                    printf("%02x", fr.payload[k]);
+                }
+                printf("\n");
+            }
+        }
+    }
+    printf("counters bytes_in=%lu frames_ok=%lu bad_crc=%lu bad_cobs=%lu bad_length=%lu bad_version=%lu "
+           "too_long=%lu unknown_type=%lu resyncs=%lu\n",
+           (unsigned long)d.counters.bytes_in, (unsigned long)d.counters.frames_ok, (unsigned long)d.counters.bad_crc,
+           (unsigned long)d.counters.bad_cobs, (unsigned long)d.counters.bad_length,
+           (unsigned long)d.counters.bad_version, (unsigned long)d.counters.too_long,
+           (unsigned long)d.counters.unknown_type, (unsigned long)d.counters.resyncs);
+    return 0;
+}
+
 int main(int argc, char **argv)
 {
+    if (argc == 2 && strcmp(argv[1], "--decode") == 0) {
+        return decode_stdin();
+    }
     if (argc == 3 && strcmp(argv[1], "--bench") == 0) {
         return bench(atof(argv[2]));
     }
