@@ -160,3 +160,15 @@ def noisy_truth(rf, packed):
 def broken(rf, packed):
     """Factory that fails: a localizer that cannot start."""
     raise RuntimeError("this localizer always fails to start")
+
+
+class StandStill:
+    """Test double that needs no truth: always reports the origin, searching, with a wide covariance."""
+
+    def step(self, fr):
+        return SimpleNamespace(x=0.0, y=0.0, yaw=0.0, lat=math.nan, lon=math.nan, cov=np.diag([100.0, 100.0, 1.0]),
+                               quality="searching", frame_ms=0.1, status="ok")
+
+
+def stand_still(rf, packed):
+    return StandStill()

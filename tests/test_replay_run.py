@@ -217,3 +217,18 @@ def test_report_without_matplotlib_states_it_and_uses_tables(site, tmp_path, mon
     assert "matplotlib is not installed" in text and "pip install" in text
     assert "position error (m)</th>" in text  # the error table
     assert len(re.findall(r"base64,", text)) >= 2  # the OpenCV trajectory and the worst frames remain
+
+
+def test_run_without_truth_still_replays_and_reports(site, tmp_path, capsys):
+    import shutil
+
+    run = shutil.copytree(site["run"], tmp_path / "no-truth")
+    (run / "truth.csv").unlink()
+    out = tmp_path / "o"
+    assert main(["replay", str(run), "-o", str(out), "--json", "-q", "--localizer", "_replay_helpers:stand_still"]) == 0
+    m = json.loads(capsys.readouterr().out)
+    assert m["frames"] == 40 and m["frames_with_truth"] == 0
+    assert m["recall"]["1m_3deg"] is None and m["median_error_m"] is None and m["inside_95_ellipse"] is None
+    assert m["frame_ms_median"] == pytest.approx(0.1)
+    text = (out / "report.html").read_text()
+    assert "No frames with ground truth to rank." in text and ">n/a</td>" in text

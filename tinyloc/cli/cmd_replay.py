@@ -25,8 +25,8 @@ For each run the output folder gets:
                  recall curves, uncertainty calibration, the worst frames, the gaps found
 
 Several runs (or a folder of run folders) are replayed in parallel, one process per
-core, each into OUT/<run name>/, with a summary table (OUT/summary.json, and
-OUT/index.html linking every report). A run that fails is reported and the others go on.
+core, each into REPORT_DIR/<run name>/, with a summary table (summary.json, and
+index.html linking every report). A run that fails is reported and the others go on.
 
 Without --map, a run's own map is used if its run.json names one ("map": path,
 relative to the run folder); otherwise the run is replayed without a map, which only
