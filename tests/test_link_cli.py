@@ -53,3 +53,8 @@ def test_listen_bad_port_is_one_line(capsys):
     assert main(["link", "listen", "/dev/tinyloc-no-such-port"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert err == ["tinyloc: error: /dev/tinyloc-no-such-port: cannot open: No such file or directory"]
+
+
+def test_listen_refuses_output_only_links(capsys):
+    assert main(["link", "listen", "nmea:-"]) == 2
+    assert "output only" in capsys.readouterr().err

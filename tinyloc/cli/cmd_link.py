@@ -123,6 +123,8 @@ def describe(msg) -> str:
 def _listen(args) -> int:
     from ..link.jsonl import json_line
 
+    if args.port == "-" or args.port.startswith(("jsonl:", "nmea")):
+        raise InputError(f"{args.port}: this link is output only; listen on a serial port or udp-listen://")
     ep = _open(args.port, args)
     t0 = time.monotonic()
     last_stats = t0
