@@ -204,11 +204,12 @@ def test_progress_reports_every_band(tmp_path):
 
 @pytest.mark.parametrize("argv,msg", [
     (["--res", "0"], "resolution 0.0 m is outside 0.02..50 m"),
+    (["-o", "/nonexistent-dir/o.tlm"], "/nonexistent-dir/o.tlm: directory /nonexistent-dir does not exist"),
     (["--origin", "95,10"], "--origin: latitude must be in [-90, 90] and longitude in [-180, 180] degrees"),
 ])
 def test_bad_pack_options(tmp_path, capsys, argv, msg):
     src = write_json(tmp_path / "s.geojson", site())
-    rc = main(["map", "pack", str(src), "-o", str(tmp_path / "o.tlm"), "-q"] + argv)
+    rc = main(["map", "pack", str(src), "-o", str(tmp_path / "o.tlm"), "-q"] + argv)  # a later -o wins
     assert rc == 2 and capsys.readouterr().err.strip() == f"tinyloc: error: {msg}"
 
 

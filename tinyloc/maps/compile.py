@@ -161,6 +161,9 @@ def pack_geojson(src, out_path, *, res_m: float = 0.5, rules=None, progress=None
     """
     t_start = time.perf_counter()
     prm = params or PackParams(res_m=res_m)
+    out_path = Path(out_path)
+    if not out_path.parent.is_dir():  # fail before the long part
+        raise InputError(f"{out_path}: directory {out_path.parent} does not exist")
     fs = load_geojson(src)
     rl = as_rules(rules)
     lat0, lon0, h0 = _resolve_origin(origin, fs)
@@ -245,7 +248,6 @@ def pack_geojson(src, out_path, *, res_m: float = 0.5, rules=None, progress=None
     t = prm.tile
     band = np.zeros((NUM_MAP_CLASSES, t, cols), dtype=np.float32)
     block = np.zeros((NUM_MAP_CLASSES, t, t), dtype=np.uint8)
-    out_path = Path(out_path)
     with PackWriter(out_path, meta) as w:
         for b in range(ras.n_bands):
             ras.band(b, band)

@@ -159,7 +159,14 @@ class PackWriter:
         self.meta = meta
         self.level = level
         self._tmp = self.path.with_name(self.path.name + ".part")
-        self._f = open(self._tmp, "wb")
+        if self.path.is_dir():
+            raise InputError(f"{self.path}: is a directory; give the packed map's file name")
+        if not self.path.parent.is_dir():
+            raise InputError(f"{self.path}: directory {self.path.parent} does not exist")
+        try:
+            self._f = open(self._tmp, "wb")
+        except OSError as e:
+            raise InputError(f"{self.path}: cannot write ({e.strerror or e})") from None
         head = _header_bytes(meta)
         self._n = meta.tile_rows * meta.tile_cols
         self._index = [(0, 0, 0)] * self._n
