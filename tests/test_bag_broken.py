@@ -4,7 +4,6 @@ import either completes with the fault reported or stops cleanly (never a silent
 The bags are written with the rosbags library's writers (tests/_bag_helpers.py), then damaged."""
 
 import json
-import shutil
 
 import numpy as np
 import pytest
@@ -212,7 +211,7 @@ def test_reader_failing_midway_leaves_incomplete_run(run, tmp_path, monkeypatch)
 def test_interrupt_leaves_incomplete_run(run, tmp_path, monkeypatch):
     bag = _bag(run, tmp_path)
     calls = {"n": 0}
-    real = ib._BagRunWriter.add_imu
+    real = ib.BagRunWriter.add_imu
 
     def add_imu(self, *a):
         calls["n"] += 1
@@ -220,7 +219,7 @@ def test_interrupt_leaves_incomplete_run(run, tmp_path, monkeypatch):
             raise KeyboardInterrupt
         return real(self, *a)
 
-    monkeypatch.setattr(ib._BagRunWriter, "add_imu", add_imu)
+    monkeypatch.setattr(ib.BagRunWriter, "add_imu", add_imu)
     with pytest.raises(KeyboardInterrupt):
         import_bag(bag, tmp_path / "out", ImportOptions(**Q))
     meta = json.loads((tmp_path / "out" / "run.json").read_text())

@@ -8,12 +8,12 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from _bag_helpers import CAMERA, ORIGIN, _Msgs, bag_name, make_run, mosaic, run_messages, write_bag
+from _bag_helpers import _Msgs, bag_name, make_run, mosaic, run_messages, write_bag
 from tinyloc.bagio.decode import (BadMessage, TransformTree, camera_from_info, check_compressed, horizontal_sigma_m,
                                   mount_from_transform, quat_to_yaw, raw_image_to_bgr)
 from tinyloc.bagio.import_bag import ImportOptions, import_bag
 from tinyloc.bagio.stamps import NS, StampParams, StampTracker
-from tinyloc.camera.model import CameraModel, Mount
+from tinyloc.camera.model import Mount
 from tinyloc.runfolder import RunFolder
 
 # sensor_msgs encoding -> OpenCV conversion code under OpenCV's older naming, as the ROS image bridge

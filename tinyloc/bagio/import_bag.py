@@ -23,7 +23,6 @@ import math
 import os
 import sqlite3
 import struct
-from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -32,35 +31,14 @@ import numpy as np
 from ..camera.model import CameraModel, load_camera
 from ..errors import InputError
 from ..geo import LocalFrame
-from ..runfolder import RunWriter, _fmt
 from ._rosbags import rosbags, stamp_ns, typestore
 from .decode import (COV_UNKNOWN, NAVSAT_NO_FIX, BadMessage, TransformTree, camera_from_info, check_compressed,
                      horizontal_sigma_m, mount_from_transform, quat_to_yaw, raw_image_to_bgr)
 from .progress import Progress
 from .stamps import NS, StampParams, StampTracker
+from .topics import COMPRESSED, POSE, STREAM_FILE, TF_MESSAGE, TF_STATIC, choose_topics, inventory
+from .writer import BagRunWriter, FrameQueue, png_bytes
 
-IMAGE = "sensor_msgs/msg/Image"
-COMPRESSED = "sensor_msgs/msg/CompressedImage"
-CAMERA_INFO = "sensor_msgs/msg/CameraInfo"
-IMU = "sensor_msgs/msg/Imu"
-ODOMETRY = "nav_msgs/msg/Odometry"
-NAVSATFIX = "sensor_msgs/msg/NavSatFix"
-POSE = "geometry_msgs/msg/PoseStamped"
-POSE_COV = "geometry_msgs/msg/PoseWithCovarianceStamped"
-TF_MESSAGE = "tf2_msgs/msg/TFMessage"
-TF_STATIC = "/tf_static"
-
-# stream -> message types it takes (candidates for the default pick, in preference order groups)
-STREAM_TYPES: dict[str, tuple[tuple[str, ...], ...]] = {
-    "camera": ((IMAGE,), (COMPRESSED,)),
-    "camera_info": ((CAMERA_INFO,),),
-    "imu": ((IMU,),),
-    "odom": ((ODOMETRY,),),
-    "gnss": ((NAVSATFIX,),),
-    "truth": ((POSE, POSE_COV, ODOMETRY),),
-}
-STREAM_FILE = {"camera": "frames", "camera_info": "camera.toml", "imu": "imu.csv", "odom": "odometry.csv",
-               "gnss": "gnss.csv", "truth": "truth.csv"}
 # Consecutive stampless messages at the start of a topic before we stop and suggest --record-time.
 MAX_LEADING_STAMPLESS = 20
 
@@ -197,91 +175,6 @@ def _why(e: BaseException) -> str:
     return text.strip().rstrip(".") or type(e).__name__
 
 
-@dataclass
-class TopicRow:
-    topic: str
-    msgtype: str
-    count: int
-
-
-def inventory(reader) -> list[TopicRow]:
-    """Topics of an open bag: name, message type, message count (sorted by name)."""
-    return [TopicRow(name, info.msgtype or "(mixed types)", int(info.msgcount))
-            for name, info in sorted(reader.topics.items())]
-
-
-def choose_topics(rows: list[TopicRow], opts: ImportOptions) -> tuple[dict[str, str | None], list[str]]:
-    """Pick a topic for every stream: the user's choice, else the only topic of a matching type.
-
-    Returns
-    -------
-    chosen : dict
-        stream -> topic (or None when left out or absent).
-    notes : list of str
-        Why a stream is absent or how it was picked.
-
-    Raises
-    ------
-    InputError
-        A named topic does not exist or has the wrong type; several topics fit a stream
-        and none was named; no camera topic at all.
-    """
-    by_name = {r.topic: r for r in rows}
-    given = {"camera": opts.camera_topic, "camera_info": opts.camera_info_topic, "imu": opts.imu_topic,
-             "odom": opts.odom_topic, "gnss": opts.gnss_topic, "truth": opts.truth_topic}
-    flag = {"camera": "--camera-topic", "camera_info": "--camera-info-topic", "imu": "--imu-topic",
-            "odom": "--odom-topic", "gnss": "--gnss-topic", "truth": "--truth-topic"}
-    chosen: dict[str, str | None] = {}
-    notes: list[str] = []
-    for stream, groups in STREAM_TYPES.items():
-        want = given[stream]
-        types = tuple(t for g in groups for t in g)
-        if want is not None and want.lower() == "none":
-            chosen[stream] = None
-            notes.append(f"{stream}: left out ({flag[stream]} none)")
-            continue
-        if want is not None:
-            if want not in by_name:
-                close = [r.topic for r in rows if r.msgtype in types]
-                raise InputError(f"{flag[stream]} {want}: no such topic in the bag"
-                                 + (f" (topics of a fitting type: {', '.join(close)})" if close else ""))
-            if by_name[want].msgtype not in types:
-                raise InputError(f"{flag[stream]} {want}: topic has type {by_name[want].msgtype}, "
-                                 f"expected {' or '.join(types)}")
-            chosen[stream] = want
-            continue
-        if stream == "truth":
-            chosen[stream] = None
-            cands = [r.topic for r in rows if r.msgtype in (POSE, POSE_COV)]
-            if cands:
-                notes.append(f"truth: not picked by default (pose topics: {', '.join(cands)}; name one with "
-                             "--truth-topic and give its ENU origin with --origin)")
-            continue
-        taken = set(v for v in chosen.values() if v) | ({opts.truth_topic} if opts.truth_topic else set())
-        pick = None
-        for g in groups:
-            cands = [r.topic for r in rows if r.msgtype in g and r.topic not in taken and r.count > 0]
-            if stream == "camera_info" and len(cands) > 1 and chosen.get("camera"):
-                # The calibration beside the image topic (image_transport names them siblings).
-                cam_ns = chosen["camera"].rsplit("/", 1)[0]
-                near = [c for c in cands if chosen["camera"].startswith(c.rsplit("/", 1)[0] + "/")
-                        or c.rsplit("/", 1)[0] == cam_ns]
-                if len(near) >= 1:
-                    cands = sorted(near, key=len, reverse=True)[:1]
-            if len(cands) == 1:
-                pick = cands[0]
-                break
-            if len(cands) > 1:
-                raise InputError(f"several {' / '.join(g)} topics ({', '.join(cands)}); choose one with {flag[stream]}")
-        chosen[stream] = pick
-        if pick is None:
-            if stream == "camera":
-                raise InputError("no image topic in the bag (sensor_msgs Image or CompressedImage); "
-                                 "a run folder needs frames")
-            notes.append(f"{stream}: no {' / '.join(types)} topic; {STREAM_FILE[stream]} not written")
-    return chosen, notes
-
-
 def describe_bag(path, opts: ImportOptions | None = None) -> str:
     """The ``--list`` text: what the bag holds and which topic feeds which run-folder file."""
     opts = opts or ImportOptions()
@@ -319,22 +212,6 @@ def describe_bag(path, opts: ImportOptions | None = None) -> str:
 
 # ----------------------------------------------------------------------------- writing
 
-class _BagRunWriter(RunWriter):
-    """RunWriter plus frames stored as the bag's own JPEG/PNG bytes (no re-encoding, so no loss)."""
-
-    def add_encoded_frame(self, t: float, data: bytes, ext: str) -> str:
-        """Write an already-encoded frame (``ext`` '.jpg' or '.png'); returns its file name."""
-        t = float(t)
-        if not t > self._last_frame_t:
-            raise InputError(f"frame time {t!r} s does not increase (previous {self._last_frame_t!r} s)")
-        rel = f"frames/{self._n_frames:06d}{ext}"
-        (self.path / rel).write_bytes(data)
-        self._files["frames"].write(f"{_fmt(t)},{rel}\n")
-        self._n_frames += 1
-        self._last_frame_t = t
-        return rel
-
-
 def _update_meta(path: Path, updates: dict) -> None:
     p = path / "run.json"
     meta = json.loads(p.read_text(encoding="utf-8"))
@@ -342,68 +219,6 @@ def _update_meta(path: Path, updates: dict) -> None:
     tmp = p.with_name("run.json.tmp")
     tmp.write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
     tmp.replace(p)
-
-
-def _png_bytes(img: np.ndarray) -> tuple[bytes, str]:
-    import cv2
-
-    # Lossless either way; zlib level 1 with Huffman-only coding is 2-3x faster than level 3 with the
-    # default strategy and ~9 % smaller on camera images (measured on 640x480 street images: the
-    # PNG row filters already remove what the LZ77 matching would find in sensor noise).
-    ok, buf = cv2.imencode(".png", img, [cv2.IMWRITE_PNG_COMPRESSION, 1,
-                                         cv2.IMWRITE_PNG_STRATEGY, cv2.IMWRITE_PNG_STRATEGY_HUFFMAN_ONLY])
-    if not ok:
-        raise BadMessage("PNG encoder failed")
-    return buf.tobytes(), ".png"
-
-
-class _FrameQueue:
-    """Encode or check frames on worker threads (OpenCV releases the GIL), write them in order.
-
-    At most ``2 * workers`` frames wait at any time, so memory stays bounded. A job returns
-    (bytes, extension) or raises :class:`BadMessage`; the frame is then dropped and reported.
-    """
-
-    def __init__(self, writer: "_BagRunWriter", workers: int, on_drop):
-        from concurrent.futures import ThreadPoolExecutor
-
-        self.writer = writer
-        self.pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="frames") if workers > 1 else None
-        self.limit = 2 * max(workers, 1)
-        self.pending: deque = deque()
-        self.on_drop = on_drop
-        self.written = 0
-
-    def put(self, t: float, topic: str, index: int, job) -> None:
-        if self.pool is None:
-            self._write(t, topic, index, job)
-            return
-        self.pending.append((t, topic, index, self.pool.submit(job)))
-        while len(self.pending) > self.limit:
-            self._pop()
-
-    def _pop(self) -> None:
-        t, topic, index, fut = self.pending.popleft()
-        self._write(t, topic, index, fut.result)
-
-    def _write(self, t, topic, index, get) -> None:
-        try:
-            data, ext = get()
-        except BadMessage as e:
-            self.on_drop(topic, index, str(e))
-            return
-        self.writer.add_encoded_frame(t, data, ext)
-        self.written += 1
-
-    def close(self, *, flush: bool) -> None:
-        """Write the frames still waiting (``flush``) or forget them; stop the workers."""
-        try:
-            while flush and self.pending:
-                self._pop()
-        finally:
-            self.pending.clear()
-            if self.pool is not None:
-                self.pool.shutdown(wait=True, cancel_futures=True)
 
 
 # ----------------------------------------------------------------------------- the import
@@ -617,7 +432,7 @@ class _Importer:
         extra = {"import": info, "time_base_ns": int(base_ns)}
         if origin is not None:
             extra["origin_source"] = origin_note
-        writer = _BagRunWriter(self.out, camera=camera, origin=origin, name=self.out.name,
+        writer = BagRunWriter(self.out, camera=camera, origin=origin, name=self.out.name,
                                source=f"bag {self.bag.name}", extra=extra)
         counts = {"frames": 0, "imu": 0, "odometry": 0, "gnss": 0, "truth": 0}
         index = {t: 0 for t in streams}
@@ -625,7 +440,7 @@ class _Importer:
         gnss_skip = {"no fix": 0, "unknown covariance": 0}
         progress = Progress(win1 - win0, "import", enabled=opts.progress)
         workers = opts.workers if opts.workers > 0 else min(4, os.cpu_count() or 1)
-        frames = _FrameQueue(writer, workers, self._drop)
+        frames = FrameQueue(writer, workers, self._drop)
         stop_reason = None
         last = ("", -1)
         it = reader.messages(connections=conns, start=self.start_ns, stop=self.stop_ns)
@@ -676,7 +491,7 @@ class _Importer:
                             if img.shape[0] != camera.height or img.shape[1] != camera.width:
                                 raise BadMessage(f"image is {img.shape[1]}x{img.shape[0]}, the camera "
                                                  f"calibration says {camera.width}x{camera.height}")
-                            frames.put(t, topic, i, lambda im=img: _png_bytes(im))
+                            frames.put(t, topic, i, lambda im=img: png_bytes(im))
                     elif kind == "imu":
                         if float(msg.linear_acceleration_covariance[0]) == -1.0:
                             raise BadMessage("no linear acceleration (covariance[0] = -1 marks it absent)")

@@ -1,0 +1,90 @@
+"""Writing imported frames: the bag's own JPEG/PNG bytes kept as they are, raw images encoded to PNG
+on worker threads and written in order."""
+
+from __future__ import annotations
+
+from collections import deque
+
+import numpy as np
+
+from ..errors import InputError
+from ..runfolder import RunWriter
+from .decode import BadMessage
+
+
+class BagRunWriter(RunWriter):
+    """RunWriter plus frames stored as the bag's own JPEG/PNG bytes (no re-encoding, so no loss)."""
+
+    def add_encoded_frame(self, t: float, data: bytes, ext: str) -> str:
+        """Write an already-encoded frame (``ext`` '.jpg' or '.png'); returns its file name."""
+        t = float(t)
+        if not t > self._last_frame_t:
+            raise InputError(f"frame time {t!r} s does not increase (previous {self._last_frame_t!r} s)")
+        rel = f"frames/{self._n_frames:06d}{ext}"
+        (self.path / rel).write_bytes(data)
+        self._files["frames"].write(f"{t!r},{rel}\n")  # repr: the float read back exactly
+        self._n_frames += 1
+        self._last_frame_t = t
+        return rel
+
+
+def png_bytes(img: np.ndarray) -> tuple[bytes, str]:
+    import cv2
+
+    # Lossless either way; zlib level 1 with Huffman-only coding is 2-3x faster than level 3 with the
+    # default strategy and ~9 % smaller on camera images (measured on 640x480 street images: the
+    # PNG row filters already remove what the LZ77 matching would find in sensor noise).
+    ok, buf = cv2.imencode(".png", img, [cv2.IMWRITE_PNG_COMPRESSION, 1,
+                                         cv2.IMWRITE_PNG_STRATEGY, cv2.IMWRITE_PNG_STRATEGY_HUFFMAN_ONLY])
+    if not ok:
+        raise BadMessage("PNG encoder failed")
+    return buf.tobytes(), ".png"
+
+
+class FrameQueue:
+    """Encode or check frames on worker threads (OpenCV releases the GIL), write them in order.
+
+    At most ``2 * workers`` frames wait at any time, so memory stays bounded. A job returns
+    (bytes, extension) or raises :class:`BadMessage`; the frame is then dropped and reported.
+    """
+
+    def __init__(self, writer: "BagRunWriter", workers: int, on_drop):
+        from concurrent.futures import ThreadPoolExecutor
+
+        self.writer = writer
+        self.pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="frames") if workers > 1 else None
+        self.limit = 2 * max(workers, 1)
+        self.pending: deque = deque()
+        self.on_drop = on_drop
+        self.written = 0
+
+    def put(self, t: float, topic: str, index: int, job) -> None:
+        if self.pool is None:
+            self._write(t, topic, index, job)
+            return
+        self.pending.append((t, topic, index, self.pool.submit(job)))
+        while len(self.pending) > self.limit:
+            self._pop()
+
+    def _pop(self) -> None:
+        t, topic, index, fut = self.pending.popleft()
+        self._write(t, topic, index, fut.result)
+
+    def _write(self, t, topic, index, get) -> None:
+        try:
+            data, ext = get()
+        except BadMessage as e:
+            self.on_drop(topic, index, str(e))
+            return
+        self.writer.add_encoded_frame(t, data, ext)
+        self.written += 1
+
+    def close(self, *, flush: bool) -> None:
+        """Write the frames still waiting (``flush``) or forget them; stop the workers."""
+        try:
+            while flush and self.pending:
+                self._pop()
+        finally:
+            self.pending.clear()
+            if self.pool is not None:
+                self.pool.shutdown(wait=True, cancel_futures=True)
