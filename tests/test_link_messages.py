@@ -171,3 +171,27 @@ def test_reserved_timesync_phase_is_skipped_not_damage():
     payload = payload[:24] + b"\x07" + payload[25:]
     u = m.decode_raw(m.frame_bytes(0x03, 4, 0, payload))
     assert type(u) is m.Unknown and u.type == 0x03
+
+
+@pytest.mark.parametrize("bad", [
+    m.Pose(0.0, "east", 0, 0), m.Pose(0.0, 0, 0, 0, lat="north"), m.Pose(0.0, 0, 0, 0, lat=500.0),
+    m.Pose("noon", 0, 0, 0), m.Odometry(0.0, 0, 0, 0, flags=math.nan), m.Imu(0.0, None, 0, 0),
+    m.Heartbeat(0.0, uptime_ms="long"), m.Pose(0.0, 0, 0, 0, status=None, frame_ms=[1]),
+], ids=lambda x: type(x).__name__)
+def test_garbage_fields_raise_protocol_error_only(bad):
+    with pytest.raises(ProtocolError):
+        m.encode_frame(bad)
+    from tinyloc.link.serial_port import SerialEndpoint
+
+    import io
+
+    from tinyloc.link import open_endpoint
+
+    rx = open_endpoint("udp-listen://127.0.0.1:0")
+    for ep in (SerialEndpoint("loop://"), open_endpoint(f"udp://127.0.0.1:{rx.address[1]}"),
+               open_endpoint("-", stream=io.StringIO()), open_endpoint("nmea:-", stream=io.StringIO())):
+        if type(bad) is not m.Pose and "nmea" in ep.url:
+            continue
+        assert ep.send(bad) is False and ep.counters.bad_message == 1   # in the loop: counted, never raised
+        ep.close()
+    rx.close()

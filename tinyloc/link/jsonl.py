@@ -26,7 +26,8 @@ def _clean(v):
 
 
 def json_line(msg, seq: int | None = None) -> str:
-    """One JSON line (no newline) of a message."""
+    """One JSON line (no newline) of a message; :class:`ProtocolError` if it is not a valid message."""
+    m.validate(msg)
     d = {k: _clean(v) for k, v in m.to_map(msg).items()}
     if seq is not None:
         d["seq"] = seq

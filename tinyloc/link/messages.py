@@ -370,9 +370,20 @@ def encode_frame(msg, seq: int | None = None) -> bytes:
     ProtocolError
         If a field cannot be represented (unknown quality word, non-finite time, ...).
     """
-    code, payload = encode_payload(msg)
-    raw = frame_bytes(code, msg.seq if seq is None else seq, _us(msg.t), payload)
+    try:
+        code, payload = encode_payload(msg)
+        raw = frame_bytes(code, msg.seq if seq is None else seq, _us(msg.t), payload)
+    except ProtocolError:
+        raise
+    except (struct.error, ValueError, TypeError, OverflowError, AttributeError) as e:
+        # Any field that is not a number of the right kind ends here, as one error class.
+        raise ProtocolError(f"{getattr(msg, 'NAME', type(msg).__name__)}: cannot encode: {e}") from None
     return b"\x00" + cobs.encode(raw) + b"\x00"
+
+
+def validate(msg) -> None:
+    """Raise :class:`ProtocolError` unless ``msg`` can be put on the wire (the map-form sinks use this too)."""
+    encode_frame(msg, 0)
 
 
 def decode_frame(encoded):

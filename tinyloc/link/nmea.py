@@ -260,10 +260,11 @@ class NmeaEndpoint(Endpoint):
         c = self.counters
         try:
             msg = m.as_message(msg)
+            if type(msg) is not m.Pose:
+                return False
+            m.validate(msg)
         except ProtocolError:
             c.bad_message += 1
-            return False
-        if type(msg) is not m.Pose:
             return False
         now = self._clock()
         if now - self._last_emit < self.period_s * 0.999:

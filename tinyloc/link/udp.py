@@ -39,7 +39,11 @@ def _is_loopback(host: str) -> bool:
 
 
 def pack_message(msg, seq: int) -> bytes:
-    """Message-pack bytes of a message's map form with sequence number ``seq``."""
+    """Message-pack bytes of a message's map form with sequence number ``seq``.
+
+    Raises :class:`ProtocolError` for a message that would not pass on the serial wire either.
+    """
+    m.validate(msg)
     d = m.to_map(msg)
     d["seq"] = seq & 0xFFFF
     return msgpack.packb(d, use_bin_type=True)
