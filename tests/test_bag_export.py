@@ -85,3 +85,23 @@ def test_export_uses_run_time_base_and_rejects_bad_input(tmp_path, rng):
     with pytest.raises(InputError, match="q.csv row 2: quality 'confident' is not one of"):
         export_bag(tmp_path / "q.csv", tmp_path / "c.mcap")
     assert not (tmp_path / "c.mcap").exists() and not (tmp_path / ".c.mcap.partial").exists()
+
+
+def test_export_reads_the_replay_per_frame_csv(tmp_path):
+    from tinyloc.replay.records import FrameRecords, write_csv
+
+    rec = FrameRecords(3)
+    rec.t[:] = [0.1, 0.2, 0.3]
+    rec.x[:] = [1.0, 2.0, np.nan]
+    rec.y[:] = [5.0, 6.0, np.nan]
+    rec.yaw[:] = [0.1, 0.2, np.nan]
+    rec.cov[:2] = np.diag([0.04, 0.09, 0.001])
+    rec.quality[:] = ["tracking", "degraded", "no-fix"]
+    (tmp_path / "rep").mkdir()
+    write_csv(rec, tmp_path / "rep" / "frames.csv")
+    res = export_bag(tmp_path / "rep", tmp_path / "o.mcap", time_base_ns=10**18)
+    assert res["messages"] == {"/tinyloc/pose": 2, "/tinyloc/quality": 3, "/tinyloc/fix": 0}
+    with AnyReader([tmp_path / "o.mcap"]) as r:
+        poses = [r.deserialize(raw, c.msgtype) for c, _, raw in r.messages() if c.topic == "/tinyloc/pose"]
+    assert [p.pose.pose.position.x for p in poses] == [1.0, 2.0]
+    assert np.asarray(poses[1].pose.covariance).reshape(6, 6)[1, 1] == 0.09

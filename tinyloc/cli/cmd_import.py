@@ -28,7 +28,9 @@ stamp or going back in time are dropped; gaps, clock jumps and the rate of every
 are reported (and stored in run.json). The camera mount comes from /tf_static
 (base_footprint or base_link -> the image's frame) or else from --camera camera.toml.
 
-An import that stops early (damaged bag, Ctrl-C) leaves run.json with "complete": false.
+A recording cut short (recorder killed: an MCAP file without its footer, a ROS 1 .bag.active
+without its index) is read up to the cut, and the output says so. An import that stops early
+(damaged bag, Ctrl-C) leaves run.json with "complete": false; it is not resumed: run it again.
 
 examples:
   tinyloc import bag drive.mcap --list
