@@ -195,3 +195,19 @@ def test_garbage_fields_raise_protocol_error_only(bad):
         assert ep.send(bad) is False and ep.counters.bad_message == 1   # in the loop: counted, never raised
         ep.close()
     rx.close()
+
+
+def test_no_fix_estimate_with_nones_goes_out_flagged():
+    est = SimpleNamespace(t=2.0, x=None, y=None, yaw=None, lat=None, lon=None, cov=None, quality="no-fix",
+                          modes=[], frame_ms=None, status="no map")
+    back = m.decode_frame(m.encode_frame(m.as_message(est))[1:-1])
+    assert math.isnan(back.x) and math.isnan(back.lat) and back.quality == "no-fix"
+    assert back.cov[0][0] == back.cov[1][1] == back.cov[2][2] == math.inf
+
+
+def test_runtime_pose_estimate_is_accepted():
+    loop = pytest.importorskip("tinyloc.runtime.loop", reason="runtime loop not in this tree yet")
+    est = loop.PoseEstimate(t=1.0, x=3.0, y=4.0, yaw=0.5, lat=47.0, lon=8.0, cov=np.eye(3) * 0.04,
+                            quality="tracking", frame_ms=9.0, status="ok")
+    p = m.as_message(est)
+    assert (p.x, p.y, p.quality, p.cov[1][1]) == (3.0, 4.0, "tracking", 0.04)

@@ -506,16 +506,30 @@ def clock_offset(t1: float, t2: float, t3: float, t4: float) -> tuple[float, flo
     return 0.5 * ((t2 - t1) + (t3 - t4)), (t4 - t1) - (t3 - t2)
 
 
+def _num_or_nan(v) -> float:
+    return math.nan if v is None else float(v)
+
+
+_UNBOUNDED = ((math.inf, 0.0, 0.0), (0.0, math.inf, 0.0), (0.0, 0.0, math.inf))
+
+
 def as_message(obj):
-    """Accept a message, a map form, or any object with ``PoseEstimate`` attributes; return a message."""
+    """Accept a message, a map form, or any object with ``PoseEstimate`` attributes; return a message.
+
+    For pose-like objects, ``None`` in x, y, yaw, lat or lon reads as NaN (unknown) and a
+    ``None`` covariance as unbounded (infinite variances), so a "no-fix" estimate still goes out
+    with its honest flag.
+    """
     if type(obj) in BY_CODE.values() or type(obj) is Unknown:
         return obj
     if isinstance(obj, dict):
         return from_map(obj)
     try:
-        return Pose(float(obj.t), float(obj.x), float(obj.y), float(obj.yaw),
-                    float(getattr(obj, "lat", math.nan)), float(getattr(obj, "lon", math.nan)),
-                    tuple(tuple(float(obj.cov[i][j]) for j in range(3)) for i in range(3)),
-                    str(obj.quality), str(getattr(obj, "status", "")), float(getattr(obj, "frame_ms", 0.0) or 0.0))
+        cov = getattr(obj, "cov")
+        cov = _UNBOUNDED if cov is None else tuple(tuple(float(cov[i][j]) for j in range(3)) for i in range(3))
+        return Pose(float(obj.t), _num_or_nan(obj.x), _num_or_nan(obj.y), _num_or_nan(obj.yaw),
+                    _num_or_nan(getattr(obj, "lat", None)), _num_or_nan(getattr(obj, "lon", None)), cov,
+                    str(obj.quality), str(getattr(obj, "status", "") or ""),
+                    float(getattr(obj, "frame_ms", 0.0) or 0.0))
     except (AttributeError, TypeError, ValueError, IndexError) as e:
         raise ProtocolError(f"cannot send a {type(obj).__name__}: {e}") from None
