@@ -57,3 +57,15 @@ def test_errors_are_one_line(bag, tmp_path, capsys):
     assert "--every 0: must be a positive whole number" in capsys.readouterr().err
     assert main(["import", "bag", str(bag), "-o", str(tmp_path / "r"), "--truth-topic", "/ins/pose"]) == 2
     assert "give that frame's origin with --origin" in capsys.readouterr().err
+
+
+def test_missing_rosbags_is_one_line(bag, monkeypatch, capsys):
+    import sys
+
+    for name in [m for m in sys.modules if m == "rosbags" or m.startswith("rosbags.")]:
+        monkeypatch.setitem(sys.modules, name, None)  # makes "import rosbags..." raise ImportError
+    monkeypatch.setitem(sys.modules, "rosbags", None)
+    assert main(["import", "bag", str(bag), "--list"]) == 2
+    err = capsys.readouterr().err
+    assert err == "tinyloc: error: reading or writing bag files needs the optional 'rosbags' package: " \
+                  "pip install 'tinyloc[bag]'\n"
