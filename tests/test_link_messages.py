@@ -211,3 +211,24 @@ def test_runtime_pose_estimate_is_accepted():
                             quality="tracking", frame_ms=9.0, status="ok")
     p = m.as_message(est)
     assert (p.x, p.y, p.quality, p.cov[1][1]) == (3.0, 4.0, "tracking", 0.04)
+
+
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+_any_float = st.floats(allow_nan=True, allow_infinity=True) | st.integers(-10 ** 20, 10 ** 20)
+
+
+@settings(max_examples=120, deadline=None)
+@given(st.tuples(_any_float, _any_float, _any_float, _any_float, _any_float, _any_float),
+       st.lists(_any_float, min_size=9, max_size=9),
+       st.sampled_from(list(m.QUALITIES) + ["", "TRACKING", "lost"]), st.text(max_size=40))
+def test_any_pose_fields_encode_or_fail_cleanly(vals, cov, quality, status):
+    t, x, y, yaw, lat, lon = vals
+    p = m.Pose(t, x, y, yaw, lat, lon, (tuple(cov[0:3]), tuple(cov[3:6]), tuple(cov[6:9])), quality, status)
+    try:
+        wire = m.encode_frame(p)
+    except ProtocolError:
+        return
+    back = m.decode_frame(wire[1:-1])
+    assert back.quality == quality and len(back.status.encode("ascii")) <= 24
+    assert m.encode_frame(back) == wire
