@@ -1,0 +1,75 @@
+"""The bundled demo data: a small invented site ("demo_park") and a short drive through it.
+
+``python -m tinyloc.sim.demo`` regenerates, byte for byte (same tinyloc, numpy and
+OpenCV versions):
+
+- ``tinyloc/data/demo/demo_park.tlm``          packed map (0.5 m cells)
+- ``tinyloc/data/demo/demo_park.geojson``      the map it was packed from (imperfect, as open maps are)
+- ``tinyloc/data/demo/demo_park.world.json``   the hidden 3D world (to render more runs)
+- ``tinyloc/data/demo/run/``                   a run folder: JPEG frames, labels, IMU, odometry, GNSS, truth
+- ``maps_packed/demo_park.tlm`` and ``maps_packed/demo_park.geojson``  copies for the repository's map shelf
+
+Use :func:`demo_paths` to find the bundled files from code.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import sys
+from dataclasses import replace
+from importlib import resources
+from pathlib import Path
+
+from .runs import RunParams, make_run, stderr_progress
+from .site import DEMO_PARAMS, generate_site
+
+SITE_SEED = 3
+RUN_SEED = 10
+FRAMES = 120
+RATE_HZ = 2.0
+JPEG_QUALITY = 80
+
+
+def demo_paths() -> dict:
+    """Paths of the bundled demo files: ``map``, ``geojson``, ``world``, ``run`` (pathlib.Path each)."""
+    base = Path(str(resources.files("tinyloc") / "data" / "demo"))
+    return {"map": base / "demo_park.tlm", "geojson": base / "demo_park.geojson",
+            "world": base / "demo_park.world.json", "run": base / "run"}
+
+
+def write_demo(data_dir, maps_dir=None, *, progress=None) -> dict:
+    """Generate the demo site and run into ``data_dir`` (and copy the map into ``maps_dir``)."""
+    from ..maps.compile import pack_geojson
+
+    data_dir = Path(data_dir)
+    data_dir.mkdir(parents=True, exist_ok=True)
+    site = generate_site(SITE_SEED, DEMO_PARAMS)
+    gj = data_dir / "demo_park.geojson"
+    gj.write_text(json.dumps(site.geojson, separators=(",", ":")) + "\n", encoding="utf-8")
+    site.world.save(data_dir / "demo_park.world.json")
+    rep = pack_geojson(site.geojson, data_dir / "demo_park.tlm", res_m=0.5)
+    run_dir = data_dir / "run"
+    if run_dir.exists():
+        shutil.rmtree(run_dir)
+    params = RunParams(frames=FRAMES, frame_rate_hz=RATE_HZ, image_ext=".jpg", jpeg_quality=JPEG_QUALITY)
+    params = replace(params, drive=replace(params.drive, stop_prob=0.25))
+    summary = make_run(site.world, run_dir, seed=RUN_SEED, params=params, progress=progress, name="demo_park-1")
+    if maps_dir is not None:
+        maps_dir = Path(maps_dir)
+        maps_dir.mkdir(parents=True, exist_ok=True)
+        shutil.copyfile(data_dir / "demo_park.tlm", maps_dir / "demo_park.tlm")
+        shutil.copyfile(gj, maps_dir / "demo_park.geojson")
+    return {"site": site.name, "map_bytes": rep.file_bytes, **summary}
+
+
+def main(argv=None) -> int:
+    root = Path(__file__).resolve().parents[2]
+    s = write_demo(root / "tinyloc" / "data" / "demo", root / "maps_packed",
+                   progress=stderr_progress("demo run: frames"))
+    print(json.dumps(s, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
