@@ -123,6 +123,18 @@ def test_info_text_and_outside_point(packed, capsys):
     assert "building   1.000" in text
 
 
+def test_info_check_finds_damaged_tiles(packed, tmp_path, capsys):
+    _, _, out, _ = packed
+    assert main(["map", "info", str(out), "--check"]) == 0
+    assert "all tiles sound" in capsys.readouterr().out
+    raw = bytearray(out.read_bytes())
+    raw[-20] ^= 0xFF  # inside the last stored tile
+    bad = tmp_path / "damaged.tlm"
+    bad.write_bytes(bytes(raw))
+    assert main(["map", "info", str(bad), "--check", "--json"]) == 1
+    assert json.loads(capsys.readouterr().out)["damaged_tiles"] == 1
+
+
 def test_polygon_coverage_matches_shoelace_area(packed):
     _, _, out, _ = packed
     with PackedMap.open(out) as pm:

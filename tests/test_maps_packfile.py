@@ -296,6 +296,10 @@ def test_byte_flips_in_tiles_read_as_unknown_with_one_warning(packed, tmp_path, 
             assert pm.tiles_damaged == 3
     warnings = [r for r in caplog.records if "damaged tile" in r.getMessage()]
     assert len(warnings) == 3  # once per tile, not once per read
+    with PackedMap.open(q) as pm:
+        assert pm.check_tiles() == 3
+    with PackedMap.open(p) as pm:
+        assert pm.check_tiles() == 0
     assert all("CRC-32 mismatch" in r.getMessage() for r in warnings)
     bad = np.zeros((m.rows, m.cols), dtype=bool)
     for k in hit:

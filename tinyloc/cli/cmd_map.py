@@ -42,7 +42,8 @@ outside the map).
 
 examples:
   tinyloc map info site.tlm
-  tinyloc map info site.tlm --at 44.43880,-101.22160 --json"""
+  tinyloc map info site.tlm --at 44.43880,-101.22160 --json
+  tinyloc map info site.tlm --check            verify every tile (e.g. after copying to the robot)"""
 
 _RENDER_HELP = """\
 Write a colour preview (PNG) of the whole map or of a square window, with a legend,
@@ -79,6 +80,8 @@ def register(parser):
     p.add_argument("map", metavar="SITE.tlm", help="packed map")
     p.add_argument("--at", metavar="LAT,LON", help="report the coverage of every class at this point (degrees)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.add_argument("--check", action="store_true",
+                   help="also read every tile and verify its checksum and stream (exit status 1 if any is damaged)")
     p.set_defaults(func=_info)
 
     p = sub.add_parser("render", help="write a colour preview PNG with a legend", description=_RENDER_HELP,
@@ -157,9 +160,12 @@ def _info(args) -> int:
                   "known": cov is not None}
             d["at"] = at
             d["coverage"] = None if cov is None else {n: round(float(v), 4) for n, v in zip(pm.meta.class_names, cov)}
+        if args.check:
+            d["damaged_tiles"] = pm.check_tiles()
+    rc = 1 if d.get("damaged_tiles") else 0
     if args.json:
         print(json.dumps(d))
-        return 0
+        return rc
     o = d["origin"]
     print(f"file        {d['file']} ({d['bytes'] / 1024:.1f} KiB, format version {d['version']})")
     print(f"origin      lat {o['lat']:.7f}, lon {o['lon']:.7f}, h {o['h']:.2f} m (ENU x east, y north)")
@@ -167,6 +173,9 @@ def _info(args) -> int:
     print(f"extent      x {d['x_min']:.1f} .. {d['x_max']:.1f} m, y {d['y_min']:.1f} .. {d['y_max']:.1f} m")
     print(f"tiles       {d['tiles']} of {d['tile']} x {d['tile']} cells ({d['empty_tiles']} empty)")
     print(f"classes     {', '.join(d['classes'])}")
+    if args.check:
+        n = d["damaged_tiles"]
+        print(f"check       {'all tiles sound' if n == 0 else f'{n} damaged tile(s): their cells read as unknown'}")
     if at is not None:
         print(f"at          lat {at['lat']:.7f}, lon {at['lon']:.7f} -> x {at['x']:.2f} m, y {at['y']:.2f} m "
               f"(cell row {at['row']}, col {at['col']})")
@@ -175,7 +184,7 @@ def _info(args) -> int:
         else:
             for n, v in d["coverage"].items():
                 print(f"  {n:<10} {v:.3f}")
-    return 0
+    return rc
 
 
 def _render(args) -> int:

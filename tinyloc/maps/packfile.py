@@ -372,6 +372,22 @@ class PackedMap:
     def cache_used_bytes(self) -> int:
         return self._cached
 
+    def check_tiles(self) -> int:
+        """Read and verify every stored tile (checksum, stream, size); returns the number damaged.
+
+        Damaged tiles are logged once each, as during window reads. Uses no cache.
+        """
+        m = self.meta
+        for k in range(m.tile_rows * m.tile_cols):
+            off, length, crc = (int(v) for v in self._index[k])
+            if length == 0 or k in self._damaged:
+                continue
+            with self._lock:
+                self._f.seek(off)
+                blob = self._f.read(length)
+            self._decode(k, blob, crc)
+        return len(self._damaged)
+
     def clear_cache(self) -> None:
         """Forget every decoded tile (the next reads are cold)."""
         with self._lock:
