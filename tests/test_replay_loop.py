@@ -6,6 +6,7 @@ replay feeds the loop's step() with the run's rows, the loop's real grid filter 
 and the loop's poses, covariances and quality flags come out in frames.csv and metrics.json.
 """
 
+import html
 import json
 import math
 from types import SimpleNamespace
@@ -185,7 +186,7 @@ def test_full_loop_replay_of_simulated_drives(sim_site, tmp_path, capsys):
     assert len(cells) > 30
     for key, raw, shown in cells:
         v = m
-        for part in key.split("/"):
+        for part in html.unescape(key).split("/"):
             v = v[part]
         if v is None:
             assert shown == "n/a"

@@ -248,3 +248,9 @@ def test_frames_csv_round_trip(tmp_path):
     np.testing.assert_allclose(back.cov, rec.cov, rtol=1e-12)
     assert back.status[2] == "frame missing"
     assert list(back.quality) == list(rec.quality)
+
+
+def test_status_counts_group_numbers_and_parts():
+    got = M.status_counts(["global search; slow frame 1245 ms", "ok", "slow frame 300.5 ms", "ok", "a/b 2"])
+    assert got == {"slow frame # ms": 2, "ok": 2, "global search": 1, "a|b #": 1}
+    assert list(got)[:2] == ["slow frame # ms", "ok"]  # most frequent first

@@ -86,7 +86,7 @@ def test_report_numbers_equal_metrics_json(site, tmp_path):
               "gnss/median_error_m", "inside_95_ellipse", "frame_ms_median", "first_good_fix/time_s", "lost/spells"):
         assert k in keys, k
     for key, raw, shown in cells:
-        v = _get(m, key)
+        v = _get(m, html.unescape(key))
         if v is None:
             assert shown == "n/a" and raw == ""
         elif isinstance(v, str):

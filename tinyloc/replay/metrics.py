@@ -430,6 +430,33 @@ def gnss_at_frames(gnss_t, gnss_xy, gnss_acc_m, frame_t, *, max_age_s: float):
 
 # ----------------------------------------------------------------------------- one run
 
+def status_counts(status, top: int = 12) -> dict:
+    """How often the loop said what: status texts with their numbers replaced by ``#``, most frequent first.
+
+    ``"slow frame 412 ms; global search"`` counts as ``"slow frame # ms"`` and ``"global search"``
+    (parts separated by ``;`` are counted apart).
+    """
+    import re
+    from collections import Counter
+
+    c: Counter = Counter()
+    for s in status if status is not None else ():
+        for part in str(s).split(";"):
+            # '/' would split the report's key paths (metrics.json keys are looked up by "a/b/c").
+            part = re.sub(r"-?\d+(\.\d+)?", "#", part.strip()).replace("/", "|")
+            if part:
+                c[part] += 1
+    return dict(c.most_common(top))
+
+
+def _column(rec, name):
+    try:
+        return rec[name]
+    except (KeyError, AttributeError, IndexError):
+        return None
+
+
+
 def _num(v):
     """JSON-safe float: NaN/inf become None."""
     if v is None:
@@ -541,6 +568,8 @@ def compute_metrics(rec, params: MetricParams = MetricParams()) -> dict:
                     "tracking_but_wrong_frames": int(np.count_nonzero(wrong)),
                     "tracking_but_wrong_share": (float(np.count_nonzero(wrong)) / n_track) if n_track else None,
                     "wrong_bound": f"{loose_p:g} m, {loose_a:g} deg"}
+
+    m["status_counts"] = status_counts(_column(rec, "status"))
 
     # GNSS baseline: position only (a fix has no heading); a frame in an outage is a miss.
     gxy = np.stack([rec["gnss_x"], rec["gnss_y"]], axis=1) if n else np.zeros((0, 2))

@@ -218,7 +218,8 @@ def _fig_png(fig, canvas_cls) -> str:
     return base64.b64encode(bio.getvalue()).decode("ascii")
 
 
-def plot_error_over_time(rec, mpl) -> str:
+def plot_error_over_time(rec, mpl, lost_spans=()) -> str:
+    """Position and heading error against time (log axes), quality flag beneath, lost spells shaded."""
     Figure, Canvas = mpl
     err, yerr, gerr, drerr, _ = rec.errors()
     t = np.asarray(rec["t"], float)
@@ -232,6 +233,9 @@ def plot_error_over_time(rec, mpl) -> str:
     ax1.plot(t, floor(gerr, 0.02), lw=0.8, color="tab:blue", alpha=0.7, label="GNSS")
     ax1.plot(t, floor(drerr, 0.02), lw=0.8, color="tab:purple", alpha=0.7, label="dead reckoning")
     ax1.set_yscale("log")
+    for ax in (ax1, ax2):
+        for a, b in lost_spans:
+            ax.axvspan(a, b, color="tab:red", alpha=0.12, lw=0)
     for yv in (0.25, 0.5, 1.0, 2.0):
         ax1.axhline(yv, color="0.8", lw=0.6, zorder=0)
     ax1.set_ylabel("position error (m)")
@@ -444,7 +448,7 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
 
     out.append("<h2>Error over time</h2>")
     if mpl is not None:
-        out.append(f"<img alt='error over time' src='data:image/png;base64,{plot_error_over_time(rec, mpl)}'>")
+        out.append(f"<img alt='error over time' src='data:image/png;base64,{plot_error_over_time(rec, mpl, _lost_spans(metrics, rec))}'>")
     else:
         out.append("<p class='note'>matplotlib is not installed, so the error, recall and calibration plots are "
                    "replaced by tables (install the report extra: pip install 'tinyloc[report]').</p>")
@@ -464,6 +468,14 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
     obs = M.calibration_curve(calibration_d2(rec), CAL_LEVELS)
     out.append("<table><tr><th>nominal</th>" + "".join(f"<td class='num'>{p:.2f}</td>" for p in CAL_LEVELS) +
                "</tr><tr><th>observed</th>" + "".join(f"<td class='num'>{o:.3f}</td>" for o in obs) + "</tr></table>")
+
+    sc = metrics.get("status_counts") or {}
+    if sc:
+        out.append("<h2>What the loop said</h2><p>Status texts of the frames (numbers replaced by #), most "
+                   "frequent first.</p><table><tr><th>status</th><th>frames</th></tr>")
+        for k in sc:
+            out.append(f"<tr><td>{html.escape(k)}</td>{_cell(metrics, f'status_counts/{k}', '{:d}')}</tr>")
+        out.append("</table>")
 
     lost = metrics.get("lost", {}).get("list", [])
     if lost:
@@ -504,6 +516,14 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
                "that are not good, lasting at least the shortest spell counted. See docs/replay.md.</p>")
     out.append("</body></html>")
     return "\n".join(out)
+
+
+def _lost_spans(metrics: dict, rec) -> list[tuple[float, float]]:
+    t = np.asarray(rec["t"], float)
+    if not len(t):
+        return []
+    return [(s["start_t"] - t[0], s["start_t"] - t[0] + s["duration_s"]) for s in metrics.get("lost", {}).get("list", [])
+            if s.get("start_t") is not None and s.get("duration_s") is not None]
 
 
 def _fmtv(v) -> str:
