@@ -356,7 +356,10 @@ class PackedMap:
     def xy_of(self, row, col):
         """Continuous (row, col) -> ENU metres (x east, y north)."""
         m = self.meta
-        return m.x_min + np.asarray(col, dtype=np.float64) * m.res_m, m.y_max - np.asarray(row, dtype=np.float64) * m.res_m
+        if np.ndim(row) == 0 and np.ndim(col) == 0:
+            return m.x_min + float(col) * m.res_m, m.y_max - float(row) * m.res_m
+        return (m.x_min + np.asarray(col, dtype=np.float64) * m.res_m,
+                m.y_max - np.asarray(row, dtype=np.float64) * m.res_m)
 
     @property
     def tiles_damaged(self) -> int:
@@ -383,6 +386,8 @@ class PackedMap:
             if length == 0 or k in self._damaged:
                 continue
             with self._lock:
+                if self._f is None:
+                    raise InputError(f"{self.path}: map is closed")
                 self._f.seek(off)
                 blob = self._f.read(length)
             self._decode(k, blob, crc)
