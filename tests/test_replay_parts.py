@@ -85,3 +85,23 @@ def test_summary_table_marks_failures():
             {"run": "/x/b", "error": "/x/b/run.json: missing"}]
     text = format_table(rows)
     assert "FAILED" in text and "failed: /x/b/run.json: missing" in text and "0.500" in text
+
+
+def test_truth_and_gnss_move_to_the_map_frame_when_origins_differ(tmp_path):
+    """A map whose origin is 0.0001 deg further north: truth and GNSS land 11.1 m further south in its frame
+    (1e-4 deg of latitude near 47 deg is 11.12 m: the WGS84 meridian arc is about 111.18 km per degree there;
+    value from memory of the usual geodesy tables, 111.13 km at 45 deg and 111.23 km at 50 deg)."""
+    from _replay_helpers import ORIGIN, make_run
+    from tinyloc.geo import LocalFrame
+    from tinyloc.replay.replay import ReplayParams, prepare_records
+    from tinyloc.runfolder import RunFolder
+
+    rf = RunFolder.open(make_run(tmp_path / "r", n_frames=10))
+    same = prepare_records(rf, LocalFrame(*ORIGIN), ReplayParams())
+    other = prepare_records(rf, LocalFrame(ORIGIN[0] + 1e-4, ORIGIN[1], ORIGIN[2]), ReplayParams())
+    dy = other.truth_y - same.truth_y
+    assert np.all(np.abs(dy + 11.12) < 0.02), dy
+    assert np.all(np.abs(other.truth_x - same.truth_x) < 0.01)
+    np.testing.assert_allclose(other.truth_yaw, same.truth_yaw)
+    gy = other.gnss_y - same.gnss_y
+    assert np.all(np.abs(gy[np.isfinite(gy)] + 11.12) < 0.02)
