@@ -200,3 +200,66 @@ def test_frame_size_mismatch(tmp_path):
 def test_not_a_directory(tmp_path):
     with pytest.raises(RunFolderError, match="not a directory"):
         RunFolder.open(tmp_path / "nothing")
+
+
+def test_line_length_limit(tmp_path):
+    from tinyloc.runfolder import MAX_LINE_CHARS
+
+    run = _write(tmp_path / "run")
+    base = "0.35,0.0,0.0,9.81,"
+    ok = base + "x" * (MAX_LINE_CHARS - len(base))  # extra column, exactly at the limit
+    p = run / "imu.csv"
+    p.write_text("t,fx,fy,fz,note\n" + ok + "\n")
+    assert RunFolder.open(run).imu.shape == (1, 4)
+    p.write_text("t,fx,fy,fz,note\n" + ok + "x\n")
+    with pytest.raises(RunFolderError, match=f"imu.csv line 2: line longer than {MAX_LINE_CHARS} characters"):
+        RunFolder.open(run)
+
+
+def test_every_truncation_is_read_or_rejected_cleanly(tmp_path):
+    run = _write(tmp_path / "run")
+    full = (run / "imu.csv").read_bytes()
+    ref = RunFolder.open(run).imu
+    for k in range(len(full)):
+        (run / "imu.csv").write_bytes(full[:k])
+        try:
+            rf = RunFolder.open(run)
+        except RunFolderError as e:
+            assert "imu.csv" in str(e)
+            continue
+        assert rf.imu.shape[0] <= 4 and np.all(np.isfinite(rf.imu))
+        # what was read is the true rows, but for a cut-short number in the last row (cannot be told apart)
+        # (a cut inside the last field still parses; every other cut is dropped as a truncated last line)
+        n = len(rf.imu)
+        if n:
+            np.testing.assert_array_equal(rf.imu[:n - 1], ref[:n - 1])
+            assert rf.imu[n - 1, 0] == ref[n - 1, 0]
+
+
+def test_fuzzed_files_never_escape_as_other_exceptions(tmp_path):
+    run = _write(tmp_path / "run")
+    rng = np.random.default_rng(2024)
+    names = ["run.json", "frames.csv", "imu.csv", "odometry.csv", "gnss.csv", "truth.csv", "camera.toml"]
+    originals = {n: (run / n).read_bytes() for n in names}
+    for trial in range(300):
+        n = names[trial % len(names)]
+        b = bytearray(originals[n])
+        for _ in range(int(rng.integers(1, 4))):
+            op = rng.integers(0, 3)
+            i = int(rng.integers(0, len(b)))
+            if op == 0:
+                b[i] = int(rng.integers(0, 256))
+            elif op == 1:
+                del b[i]
+            else:
+                b.insert(i, int(rng.choice(list(b",.\n-e#n"))))
+        (run / n).write_bytes(bytes(b))
+        try:
+            rf = RunFolder.open(run)
+            for a in (rf.imu, rf.odometry, rf.gnss):
+                assert np.all(np.isfinite(a))
+        except RunFolderError as e:
+            assert "\n" not in str(e)
+        for p in check_run(run):
+            assert isinstance(p, str)
+        (run / n).write_bytes(originals[n])
