@@ -212,12 +212,16 @@ def main(argv=None) -> int:
             imp_code = ("from tinyloc.bagio.import_bag import ImportOptions, import_bag\n"
                         f"r = import_bag({str(bag)!r}, {str(run)!r}, ImportOptions(progress=False, workers={w}))\n"
                         "print(r.lines[0])")
+            # Seconds of driving in the run (first to last frame), for a real-time factor.
             imp_s, imp_rss, out = _child(imp_code)
             tag = f"{k}_w{w}"
             res.update({f"import_{tag}_s": round(imp_s, 2), f"import_{tag}_mb_per_s": round(mb / imp_s, 1),
                         f"import_{tag}_peak_rss_mb": round(imp_rss, 1),
                         f"import_{tag}_over_read_time": round(imp_s / base_s, 2),
                         f"import_{tag}_result": out.splitlines()[0] if out else ""})
+            t = [float(ln.split(",")[0]) for ln in (run / "frames.csv").read_text().splitlines()[1:] if ln]
+            if len(t) > 1:
+                res[f"import_{tag}_x_real_time"] = round((t[-1] - t[0]) / imp_s, 2)
         if a.json:
             print(json.dumps(res))
         else:
