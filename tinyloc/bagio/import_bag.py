@@ -223,6 +223,83 @@ def _update_meta(path: Path, updates: dict) -> None:
 
 # ----------------------------------------------------------------------------- the import
 
+class _Rows:
+    """Accepted messages -> run-folder rows and frames, one method per stream (errors raise BadMessage)."""
+
+    def __init__(self, writer: BagRunWriter, frames: FrameQueue, camera: CameraModel, r_base_imu: np.ndarray,
+                 frame: LocalFrame | None, opts: ImportOptions):
+        self.writer, self.frames, self.camera, self.r_base_imu, self.frame = writer, frames, camera, r_base_imu, frame
+        self.opts = opts
+        self.counts = {"frames": 0, "imu": 0, "odometry": 0, "gnss": 0, "truth": 0}
+        self.gnss_skip = {"no fix": 0, "unknown covariance": 0}
+        self.kept_frames = 0
+
+    def add(self, kind: str, msgtype: str, msg, t: float, topic: str, index: int) -> None:
+        getattr(self, "_" + kind)(msgtype, msg, t, topic, index)
+
+    def _camera(self, msgtype, msg, t, topic, index):
+        self.kept_frames += 1
+        if (self.kept_frames - 1) % self.opts.every:
+            return
+        cam = self.camera
+        if msgtype == COMPRESSED:
+            data = msg.data.tobytes() if hasattr(msg.data, "tobytes") else bytes(msg.data)
+            self.frames.put(t, topic, index, lambda d=data: (d, check_compressed(d, cam.width, cam.height)[0]))
+            return
+        img = raw_image_to_bgr(msg.height, msg.width, msg.encoding, msg.step, msg.data)
+        if img.shape[0] != cam.height or img.shape[1] != cam.width:
+            raise BadMessage(f"image is {img.shape[1]}x{img.shape[0]}, the camera calibration says "
+                             f"{cam.width}x{cam.height}")
+        self.frames.put(t, topic, index, lambda im=img: png_bytes(im))
+
+    def _imu(self, msgtype, msg, t, topic, index):
+        if float(msg.linear_acceleration_covariance[0]) == -1.0:
+            raise BadMessage("no linear acceleration (covariance[0] = -1 marks it absent)")
+        a = msg.linear_acceleration
+        f = self.r_base_imu @ np.array([a.x, a.y, a.z], dtype=np.float64)
+        if not np.all(np.isfinite(f)):
+            raise BadMessage("non-finite linear acceleration")
+        self.writer.add_imu(t, f[0], f[1], f[2])
+        self.counts["imu"] += 1
+
+    def _odom(self, msgtype, msg, t, topic, index):
+        p, q = msg.pose.pose.position, msg.pose.pose.orientation
+        yaw = quat_to_yaw(q.x, q.y, q.z, q.w)
+        if not all(math.isfinite(v) for v in (p.x, p.y, yaw)):
+            raise BadMessage("non-finite odometry pose")
+        self.writer.add_odometry(t, p.x, p.y, yaw)
+        self.counts["odometry"] += 1
+
+    def _gnss(self, msgtype, msg, t, topic, index):
+        if int(msg.status.status) <= NAVSAT_NO_FIX:
+            self.gnss_skip["no fix"] += 1
+            return
+        if int(msg.position_covariance_type) == COV_UNKNOWN:
+            if self.opts.gnss_acc_m is None:
+                self.gnss_skip["unknown covariance"] += 1
+                return
+            acc = float(self.opts.gnss_acc_m)
+        else:
+            acc = horizontal_sigma_m(msg.position_covariance)
+        if not (math.isfinite(acc) and acc > 0):
+            raise BadMessage("position covariance gives no positive horizontal accuracy")
+        lat, lon, h = float(msg.latitude), float(msg.longitude), float(msg.altitude)
+        if not (math.isfinite(lat) and math.isfinite(lon) and abs(lat) <= 90 and abs(lon) <= 180):
+            raise BadMessage(f"latitude/longitude ({lat}, {lon}) not valid")
+        self.writer.add_gnss(t, lat, lon, h if math.isfinite(h) else 0.0, acc)
+        self.counts["gnss"] += 1
+
+    def _truth(self, msgtype, msg, t, topic, index):
+        pose = msg.pose if msgtype == POSE else msg.pose.pose
+        p, q = pose.position, pose.orientation
+        yaw = quat_to_yaw(q.x, q.y, q.z, q.w)
+        if not all(math.isfinite(v) for v in (p.x, p.y, yaw)):
+            raise BadMessage("non-finite truth pose")
+        lat, lon = self.frame.to_latlon(p.x, p.y)
+        self.writer.add_truth(t, lat, lon, yaw, p.x, p.y)
+        self.counts["truth"] += 1
+
+
 class _Importer:
     def __init__(self, bag, out, opts: ImportOptions):
         if opts.every < 1:
@@ -357,6 +434,61 @@ class _Importer:
             except Exception:  # closing a damaged bag may fail again; the outcome is already decided
                 pass
 
+    def _imu_rotation(self, reader, topic) -> np.ndarray:
+        """base_from_imu rotation from /tf_static (identity, with a note, when it cannot be known)."""
+        got = self._first(reader, topic)
+        imu_frame = str(got[0][2].header.frame_id).lstrip("/") if got else ""
+        if imu_frame and self.base_frame and imu_frame != self.base_frame:
+            found = self.tree.lookup(self.base_frame, imu_frame)
+            if found is not None:
+                self.notes.append(f"IMU rotated into '{self.base_frame}' by {TF_STATIC} ({imu_frame})")
+                return found[0]
+            self.notes.append(f"IMU frame '{imu_frame}' is not connected to '{self.base_frame}' in "
+                              f"{TF_STATIC}; samples written as measured (assumes an FLU-aligned IMU)")
+        elif imu_frame and not self.base_frame:
+            self.notes.append(f"no base frame in {TF_STATIC}; IMU samples written as measured in "
+                              f"'{imu_frame}' (assumes it is aligned with the FLU base frame, REP 103)")
+        return np.eye(3)
+
+    def _origin(self, reader, chosen) -> tuple[tuple | None, str]:
+        """run.json origin: --origin, else the first valid GNSS fix of the window."""
+        if self.opts.origin is not None:
+            return tuple(self.opts.origin), "--origin"
+        if chosen["gnss"]:
+            for _, _, fix in self._first(reader, chosen["gnss"], limit=50):
+                if int(fix.status.status) > NAVSAT_NO_FIX and math.isfinite(fix.latitude) and \
+                        math.isfinite(fix.longitude) and abs(fix.latitude) <= 90 and abs(fix.longitude) <= 180:
+                    return (float(fix.latitude), float(fix.longitude),
+                            float(fix.altitude) if math.isfinite(fix.altitude) else 0.0), "first GNSS fix"
+        return None, ""
+
+    def _lookahead(self, reader, rows, chosen) -> tuple[int, CameraModel, np.ndarray, tuple | None, str]:
+        """Static transforms, first frame (its frame id and the time base), calibration, IMU frame, origin."""
+        self.tree = TransformTree()
+        if any(r.topic == TF_STATIC and r.msgtype == TF_MESSAGE for r in rows):
+            conns = [c for c in reader.connections if c.topic == TF_STATIC]
+            try:
+                for c, _, raw in reader.messages(connections=conns):
+                    self.tree.add(reader.deserialize(raw, c.msgtype))
+            except _reader_errors() as e:
+                self.notes.append(f"{TF_STATIC} could not be read completely: {_why(e)}")
+        known = self.tree.frames()
+        self.base_frame = self.opts.base_frame or next(
+            (f for f in ("base_footprint", "base_link") if f in known), None)
+        first = self._first(reader, chosen["camera"], stamped=True)
+        if not first:
+            raise InputError(f"{self.bag}: camera topic {chosen['camera']} has no message in the window")
+        _, rec0, msg0 = first[0]
+        self.first_image_frame = str(msg0.header.frame_id)
+        base_ns = (self._stamp(msg0, rec0) // NS) * NS
+        camera = self._camera(reader, chosen)
+        r_base_imu = self._imu_rotation(reader, chosen["imu"]) if chosen["imu"] else np.eye(3)
+        origin, origin_note = self._origin(reader, chosen)
+        if chosen["truth"] and self.opts.origin is None:
+            raise InputError(f"--truth-topic {chosen['truth']}: truth poses are x/y metres in an ENU frame; "
+                             "give that frame's origin with --origin LAT,LON[,H]")
+        return base_ns, camera, r_base_imu, origin, origin_note
+
     def _run(self, reader) -> ImportResult:
         opts = self.opts
         rows = inventory(reader)
@@ -369,57 +501,7 @@ class _Importer:
         self.stop_ns = t0 + int(round(opts.end_s * NS)) if opts.end_s is not None else None
         win0 = self.start_ns if self.start_ns is not None else t0
         win1 = self.stop_ns if self.stop_ns is not None else reader.end_time
-
-        # Look-ahead: static transforms, first frame (frame id, time base), first IMU (its frame).
-        self.tree = TransformTree()
-        if any(r.topic == TF_STATIC and r.msgtype == TF_MESSAGE for r in rows):
-            conns = [c for c in reader.connections if c.topic == TF_STATIC]
-            try:
-                for c, _, raw in reader.messages(connections=conns):
-                    self.tree.add(reader.deserialize(raw, c.msgtype))
-            except _reader_errors() as e:
-                self.notes.append(f"{TF_STATIC} could not be read completely: {_why(e)}")
-        frames_known = self.tree.frames()
-        self.base_frame = opts.base_frame or next((f for f in ("base_footprint", "base_link") if f in frames_known),
-                                                  None)
-        first = self._first(reader, chosen["camera"], stamped=True)
-        if not first:
-            raise InputError(f"{self.bag}: camera topic {chosen['camera']} has no message in the window")
-        _, rec0, msg0 = first[0]
-        self.first_image_frame = str(msg0.header.frame_id)
-        base_ns = (self._stamp(msg0, rec0) // NS) * NS
-        camera = self._camera(reader, chosen)
-        r_base_imu = np.eye(3)
-        if chosen["imu"]:
-            got = self._first(reader, chosen["imu"])
-            imu_frame = str(got[0][2].header.frame_id).lstrip("/") if got else ""
-            if imu_frame and self.base_frame and imu_frame != self.base_frame:
-                found = self.tree.lookup(self.base_frame, imu_frame)
-                if found is not None:
-                    r_base_imu = found[0]
-                    self.notes.append(f"IMU rotated into '{self.base_frame}' by {TF_STATIC} ({imu_frame})")
-                else:
-                    self.notes.append(f"IMU frame '{imu_frame}' is not connected to '{self.base_frame}' in "
-                                      f"{TF_STATIC}; samples written as measured (assumes an FLU-aligned IMU)")
-            elif imu_frame and not self.base_frame:
-                self.notes.append(f"no base frame in {TF_STATIC}; IMU samples written as measured in "
-                                  f"'{imu_frame}' (assumes it is aligned with the FLU base frame, REP 103)")
-        frame = None
-        origin = opts.origin
-        origin_note = "--origin"
-        if origin is None and chosen["gnss"]:
-            for _, _, fix in self._first(reader, chosen["gnss"], limit=50):
-                if int(fix.status.status) > NAVSAT_NO_FIX and math.isfinite(fix.latitude) and \
-                        math.isfinite(fix.longitude) and abs(fix.latitude) <= 90 and abs(fix.longitude) <= 180:
-                    origin = (float(fix.latitude), float(fix.longitude),
-                              float(fix.altitude) if math.isfinite(fix.altitude) else 0.0)
-                    origin_note = "first GNSS fix"
-                    break
-        if origin is not None:
-            frame = LocalFrame(*(list(origin) + [0.0])[:3])
-        if chosen["truth"] and opts.origin is None:
-            raise InputError(f"--truth-topic {chosen['truth']}: truth poses are x/y metres in an ENU frame; "
-                             "give that frame's origin with --origin LAT,LON[,H]")
+        base_ns, camera, r_base_imu, origin, origin_note = self._lookahead(reader, rows, chosen)
 
         streams = {chosen[k]: k for k in ("camera", "imu", "odom", "gnss", "truth") if chosen[k]}
         trackers = {t: StampTracker(t, opts.stamp_params) for t in streams}
@@ -433,14 +515,13 @@ class _Importer:
         if origin is not None:
             extra["origin_source"] = origin_note
         writer = BagRunWriter(self.out, camera=camera, origin=origin, name=self.out.name,
-                               source=f"bag {self.bag.name}", extra=extra)
-        counts = {"frames": 0, "imu": 0, "odometry": 0, "gnss": 0, "truth": 0}
-        index = {t: 0 for t in streams}
-        kept_frames = 0
-        gnss_skip = {"no fix": 0, "unknown covariance": 0}
-        progress = Progress(win1 - win0, "import", enabled=opts.progress)
+                              source=f"bag {self.bag.name}", extra=extra)
         workers = opts.workers if opts.workers > 0 else min(4, os.cpu_count() or 1)
         frames = FrameQueue(writer, workers, self._drop)
+        rows_out = _Rows(writer, frames, camera, r_base_imu,
+                         LocalFrame(*(list(origin) + [0.0])[:3]) if origin is not None else None, opts)
+        index = {t: 0 for t in streams}
+        progress = Progress(win1 - win0, "import", enabled=opts.progress)
         stop_reason = None
         last = ("", -1)
         it = reader.messages(connections=conns, start=self.start_ns, stop=self.stop_ns)
@@ -467,7 +548,6 @@ class _Importer:
                 except errors as e:
                     self._drop(topic, i, f"does not deserialize ({_why(e)})")
                     continue
-                kind = streams[topic]
                 tr = trackers[topic]
                 stamp = self._stamp(msg, rec)
                 if not tr.check(stamp, rec, i):
@@ -476,63 +556,8 @@ class _Importer:
                                        "pass --record-time to use the bag's record time instead")
                         break
                     continue
-                t = (stamp - base_ns) / NS
                 try:
-                    if kind == "camera":
-                        kept_frames += 1
-                        if (kept_frames - 1) % opts.every:
-                            continue
-                        if conn.msgtype == COMPRESSED:
-                            data = msg.data.tobytes() if hasattr(msg.data, "tobytes") else bytes(msg.data)
-                            frames.put(t, topic, i, lambda d=data: (d, check_compressed(d, camera.width,
-                                                                                        camera.height)[0]))
-                        else:
-                            img = raw_image_to_bgr(msg.height, msg.width, msg.encoding, msg.step, msg.data)
-                            if img.shape[0] != camera.height or img.shape[1] != camera.width:
-                                raise BadMessage(f"image is {img.shape[1]}x{img.shape[0]}, the camera "
-                                                 f"calibration says {camera.width}x{camera.height}")
-                            frames.put(t, topic, i, lambda im=img: png_bytes(im))
-                    elif kind == "imu":
-                        if float(msg.linear_acceleration_covariance[0]) == -1.0:
-                            raise BadMessage("no linear acceleration (covariance[0] = -1 marks it absent)")
-                        a = msg.linear_acceleration
-                        f = r_base_imu @ np.array([a.x, a.y, a.z], dtype=np.float64)
-                        if not np.all(np.isfinite(f)):
-                            raise BadMessage("non-finite linear acceleration")
-                        writer.add_imu(t, f[0], f[1], f[2])
-                        counts["imu"] += 1
-                    elif kind == "odom":
-                        p, q = msg.pose.pose.position, msg.pose.pose.orientation
-                        yaw = quat_to_yaw(q.x, q.y, q.z, q.w)
-                        if not all(math.isfinite(v) for v in (p.x, p.y, yaw)):
-                            raise BadMessage("non-finite odometry pose")
-                        writer.add_odometry(t, p.x, p.y, yaw)
-                        counts["odometry"] += 1
-                    elif kind == "gnss":
-                        if int(msg.status.status) <= NAVSAT_NO_FIX:
-                            gnss_skip["no fix"] += 1
-                            continue
-                        if int(msg.position_covariance_type) == COV_UNKNOWN:
-                            if opts.gnss_acc_m is None:
-                                gnss_skip["unknown covariance"] += 1
-                                continue
-                            acc = float(opts.gnss_acc_m)
-                        else:
-                            acc = horizontal_sigma_m(msg.position_covariance)
-                        if not (math.isfinite(acc) and acc > 0):
-                            raise BadMessage("position covariance gives no positive horizontal accuracy")
-                        lat, lon, h = float(msg.latitude), float(msg.longitude), float(msg.altitude)
-                        if not (math.isfinite(lat) and math.isfinite(lon) and abs(lat) <= 90 and abs(lon) <= 180):
-                            raise BadMessage(f"latitude/longitude ({lat}, {lon}) not valid")
-                        writer.add_gnss(t, lat, lon, h if math.isfinite(h) else 0.0, acc)
-                        counts["gnss"] += 1
-                    else:  # truth
-                        pose = msg.pose if conn.msgtype == POSE else msg.pose.pose
-                        p, q = pose.position, pose.orientation
-                        yaw = quat_to_yaw(q.x, q.y, q.z, q.w)
-                        lat, lon = frame.to_latlon(p.x, p.y)
-                        writer.add_truth(t, lat, lon, yaw, p.x, p.y)
-                        counts["truth"] += 1
+                    rows_out.add(streams[topic], conn.msgtype, msg, (stamp - base_ns) / NS, topic, i)
                 except (BadMessage, AttributeError, TypeError, ValueError) as e:
                     self._drop(topic, i, str(e))
                 except OSError as e:  # the run folder cannot be written (disk full, permissions)
@@ -546,12 +571,12 @@ class _Importer:
                 complete = False
                 stop_reason = stop_reason or f"{self.out}: cannot write ({e.strerror or e})"
             finally:
-                counts["frames"] = frames.written
+                rows_out.counts["frames"] = frames.written
                 progress.done()
                 writer.close(complete=complete)
             if not complete and stop_reason is None:
                 stop_reason = f"interrupted after topic {last[0]} message #{last[1]}"
-            report = self._report(trackers, counts, gnss_skip, stop_reason)
+            report = self._report(trackers, rows_out.counts, rows_out.gnss_skip, stop_reason)
             info.update(state="complete" if complete else "stopped", report=report)
             if stop_reason:
                 info["stopped"] = stop_reason
@@ -559,10 +584,10 @@ class _Importer:
                 _update_meta(self.out, {"import": info})
             except OSError:
                 pass
-        lines = self._lines(trackers, counts, gnss_skip, stop_reason)
+        lines = self._lines(trackers, rows_out.counts, rows_out.gnss_skip, stop_reason)
         if stop_reason:
             raise StopImport(f"{stop_reason}; {self.out} holds what came before and is marked incomplete")
-        return ImportResult(self.out, complete, counts, report, lines)
+        return ImportResult(self.out, complete, rows_out.counts, report, lines)
 
     def _report(self, trackers, counts, gnss_skip, stop_reason) -> dict:
         return {"written": dict(counts), "topics": {t: tr.summary() for t, tr in trackers.items()},
