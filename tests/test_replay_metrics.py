@@ -254,3 +254,15 @@ def test_status_counts_group_numbers_and_parts():
     got = M.status_counts(["global search; slow frame 1245 ms", "ok", "slow frame 300.5 ms", "ok", "a/b 2"])
     assert got == {"slow frame # ms": 2, "ok": 2, "global search": 1, "a|b #": 1}
     assert list(got)[:2] == ["slow frame # ms", "ok"]  # most frequent first
+
+
+def test_first_good_fix_needs_the_tracking_flag():
+    rec = _records(10)
+    rec.quality[:] = "searching"
+    rec.quality[6:] = "tracking"  # good poses from frame 0, but the loop claims a fix only from frame 6
+    rec.x[6] += 5.0               # ... and that first claimed fix is wrong
+    m = M.compute_metrics(rec)
+    assert m["first_good_fix"]["frame"] == 7
+    assert m["first_good_fix"]["time_s"] == pytest.approx(1.4)          # 0.2 s per frame
+    assert m["first_good_fix"]["distance_m"] == pytest.approx(7 * 0.2 * 1.5)  # 1.5 m/s
+    assert m["first_good_fix"]["first_tracking_s"] == pytest.approx(1.2)

@@ -515,9 +515,15 @@ def compute_metrics(rec, params: MetricParams = MetricParams()) -> dict:
     m["duration_s"] = _num(t[-1] - t[0]) if n else None
     m["truth_distance_m"] = _num(dist[-1]) if n else None
 
-    ft, fd, fi = first_good_fix(t, good, dist)
+    # A fix the robot would act on: within the bound *and* flagged tracking (a lucky guess while
+    # searching is not a fix). The first tracking flag, right or wrong, is reported beside it.
+    q = np.asarray(rec["quality"]).astype(str)
+    tracking = q == "tracking"
+    ft, fd, fi = first_good_fix(t, good & tracking, dist)
+    tt, td, ti = first_good_fix(t, tracking, dist)
     m["first_good_fix"] = {"time_s": ft, "distance_m": fd, "frame": fi,
-                           "bound": f"{params.good_pos_m:g} m, {params.good_yaw_deg:g} deg"}
+                           "bound": f"{params.good_pos_m:g} m, {params.good_yaw_deg:g} deg",
+                           "first_tracking_s": tt, "first_tracking_distance_m": td}
 
     spells = lost_spells(t, good, dist, min_lost_s=params.min_lost_s)
     durs = [s.duration_s for s in spells]
@@ -558,7 +564,6 @@ def compute_metrics(rec, params: MetricParams = MetricParams()) -> dict:
     m["latency"] = {"median_ms": m["frame_ms_median"], "p99_ms": _num(percentile(fms, 99)),
                     "max_ms": _num(float(np.max(fms[np.isfinite(fms)])) if np.any(np.isfinite(fms)) else None)}
 
-    q = np.asarray(rec["quality"]).astype(str)
     qshare = {k: (float(np.count_nonzero(q == k)) / n if n else None) for k in QUALITIES}
     # The dangerous case: the flag says tracking while the pose is outside the loosest bound.
     loose_p, loose_a = max(params.recall_thresholds)

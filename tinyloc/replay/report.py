@@ -421,7 +421,8 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
     for label, key, fmt in [
             ("time to first good fix (s)", "first_good_fix/time_s", "{:.2f}"),
             ("distance to first good fix (m)", "first_good_fix/distance_m", "{:.1f}"),
-            ("good fix bound", "first_good_fix/bound", "{}"),
+            ("good fix bound (and flagged tracking)", "first_good_fix/bound", "{}"),
+            ("time to the first tracking flag (s)", "first_good_fix/first_tracking_s", "{:.2f}"),
             ("lost spells", "lost/spells", "{:d}"), ("recoveries", "lost/recoveries", "{:d}"),
             ("time lost in total (s)", "lost/total_s", "{:.2f}"), ("longest lost spell (s)", "lost/longest_s", "{:.2f}"),
             ("shortest spell counted (s)", "lost/min_lost_s", "{:g}"),
