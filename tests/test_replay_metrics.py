@@ -266,3 +266,12 @@ def test_first_good_fix_needs_the_tracking_flag():
     assert m["first_good_fix"]["time_s"] == pytest.approx(1.4)          # 0.2 s per frame
     assert m["first_good_fix"]["distance_m"] == pytest.approx(7 * 0.2 * 1.5)  # 1.5 m/s
     assert m["first_good_fix"]["first_tracking_s"] == pytest.approx(1.2)
+
+
+def test_lost_spells_start_after_the_given_fix():
+    t = np.arange(8.0)
+    dist = t.copy()
+    good = np.array([1, 0, 0, 1, 1, 0, 0, 1], bool)
+    # From the first good frame: spells 1..2 and 5..6; from a fix at frame 3: only 5..6.
+    assert [(s.start, s.end) for s in M.lost_spells(t, good, dist, min_lost_s=0.0)] == [(1, 3), (5, 7)]
+    assert [(s.start, s.end) for s in M.lost_spells(t, good, dist, min_lost_s=0.0, start=3)] == [(5, 7)]

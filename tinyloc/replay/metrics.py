@@ -213,8 +213,8 @@ class Spell:
     recovered: bool
 
 
-def lost_spells(t_s, good, dist_m, *, min_lost_s: float) -> list[Spell]:
-    """Lost spells: maximal runs of not-good frames after the first good frame.
+def lost_spells(t_s, good, dist_m, *, min_lost_s: float, start: int | None = None) -> list[Spell]:
+    """Lost spells: maximal runs of not-good frames after the first good fix.
 
     Parameters
     ----------
@@ -222,16 +222,20 @@ def lost_spells(t_s, good, dist_m, *, min_lost_s: float) -> list[Spell]:
         Frame times (s), good flags, cumulative true distance (m).
     min_lost_s : float
         Runs shorter than this (s, by :attr:`Spell.duration_s`) are dropped.
+    start : int, optional
+        Index of the first good fix (spells are looked for after it); default the first good frame.
     """
     t = np.asarray(t_s, dtype=np.float64)
     g = np.asarray(good, dtype=bool)
     d = np.asarray(dist_m, dtype=np.float64)
     n = len(t)
-    idx = np.flatnonzero(g)
-    if idx.size == 0:
-        return []
+    if start is None:
+        idx = np.flatnonzero(g)
+        if idx.size == 0:
+            return []
+        start = int(idx[0])
     spells = []
-    i = int(idx[0]) + 1
+    i = int(start) + 1
     while i < n:
         if g[i]:
             i += 1
@@ -525,7 +529,7 @@ def compute_metrics(rec, params: MetricParams = MetricParams()) -> dict:
                            "bound": f"{params.good_pos_m:g} m, {params.good_yaw_deg:g} deg",
                            "first_tracking_s": tt, "first_tracking_distance_m": td}
 
-    spells = lost_spells(t, good, dist, min_lost_s=params.min_lost_s)
+    spells = [] if fi is None else lost_spells(t, good, dist, min_lost_s=params.min_lost_s, start=fi)
     durs = [s.duration_s for s in spells]
     m["lost"] = {
         "spells": len(spells),
