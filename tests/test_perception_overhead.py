@@ -139,7 +139,7 @@ def test_ground_gather_kernel_vs_reference(rng):
 def test_vertical_contact_range():
     """A wall whose foot is at row 80 in every column lands where the ray through the row edge meets the ground."""
     cam = _cam()
-    p = OverheadParams(vertical_depth_m=0.0)
+    p = OverheadParams(building_depth_m=0.0)
     proj = OverheadProjector(cam, p)
     h, w = cam.height, cam.width
     labels = np.full((h, w), ROAD, np.uint8)

@@ -7,8 +7,10 @@ sky -> sky; building -> building; fence -> fence; road -> road; pavement -> side
 dynamic; unlabelled -> left out of scoring. Every labelled pixel counts: pixels of classes we do not
 detect (vehicles, people) count against whatever class we give them.
 
-The thresholds were tuned on every 4th image of this folder (ids 0, 4, 8, ...); the odd ids were never
-used for tuning, so their figures are reported separately. Floors are the measured IoU minus about 0.03.
+The thresholds were tuned on every 4th image of this folder (ids 0, 4, 8, ...) together with rendered
+frames of simulated sites 1 and 2; the odd ids were never used for tuning, so their figures are reported
+separately. Floors are the measured IoU minus about 0.03. The issue's goal (road/sidewalk, building,
+vegetation and sky each >= 0.5) is met for sky and road+sidewalk only; see docs/perception.md.
 """
 
 import cv2
@@ -25,8 +27,8 @@ SET_TO_OURS = np.array([SKY, BUILDING, POLE, ROAD, SIDEWALK, TREE, POLE, FENCE, 
 GROUPS = {"sky": [SKY], "building": [BUILDING], "road": [ROAD], "sidewalk": [SIDEWALK],
           "road+sidewalk": [ROAD, SIDEWALK], "vegetation": [TREE, GRASS], "pole": [POLE], "fence": [FENCE]}
 # Measured on this folder with the "street" preset (see docs/perception.md), minus a margin.
-FLOORS_ALL = {"sky": 0.77, "building": 0.42, "road": 0.69, "road+sidewalk": 0.81, "vegetation": 0.18}
-FLOORS_UNSEEN = {"sky": 0.77, "building": 0.41, "road": 0.69, "road+sidewalk": 0.81, "vegetation": 0.18}
+FLOORS_ALL = {"sky": 0.74, "building": 0.40, "road": 0.72, "road+sidewalk": 0.81, "vegetation": 0.14}
+FLOORS_UNSEEN = {"sky": 0.74, "building": 0.39, "road": 0.73, "road+sidewalk": 0.81, "vegetation": 0.14}
 
 
 def street_counts(root, ids, params):

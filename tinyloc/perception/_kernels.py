@@ -21,8 +21,8 @@ NF = 10
 # Parameter vector layout for seg_scores (filled by segment.SegmentParams.vector()).
 (P_SKY_TEX, P_SKY_V, P_SKY_S, P_SKY_BLUE, P_SKY_V2, P_SKY_BELOW, P_GREEN0, P_GREEN_W, P_G_U0, P_G_W,
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
- P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD) = range(27)
-NP = 27
+ P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND) = range(30)
+NP = 30
 
 # Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
 BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
@@ -257,6 +257,53 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, 
 
 
 @njit(**JIT)
+def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
+    """Carry buildings down across the horizon to their foot.
+
+    Everything nearer than the camera's height appears below the horizon, so the bottom of a facade
+    first scores as ground. In each column whose pixel at the horizon is building, pixels below it
+    that look like ground are relabelled building while their Lab colour stays within ``wall_dist``
+    of the facade's (the mean of the three pixels above the horizon) and no horizontal edge stronger
+    than ``wall_edge`` (|dI/dy|, 0..1) is crossed: the foot of a wall is such an edge. It also stops
+    at a pixel that looks like the surface under the robot (within ``wall_ground`` of ``ref``).
+    """
+    nc, h, w = probs.shape
+    dmax = prm[P_WALL_DIST]
+    emax = prm[P_WALL_EDGE]
+    refl = prm[P_REF_L]
+    refd = prm[P_WALL_GROUND]
+    for j in range(w):
+        r = int(math.floor(hrow[j]))
+        if r < 3 or r >= h - 1 or labels[r, j] != BUILDING:
+            continue
+        c0 = 0.0
+        c1 = 0.0
+        c2 = 0.0
+        for q in range(r - 2, r + 1):
+            c0 += lab[q, j, 0]
+            c1 += lab[q, j, 1]
+            c2 += lab[q, j, 2]
+        c0 /= 3.0
+        c1 /= 3.0
+        c2 /= 3.0
+        for i in range(r + 1, h):
+            if labels[i, j] == BUILDING:
+                continue
+            if not is_ground[labels[i, j]]:
+                break
+            d = 0.5 * abs(lab[i, j, 0] - c0) + abs(lab[i, j, 1] - c1) + abs(lab[i, j, 2] - c2)
+            if d > dmax or feat[F_GY, i, j] > emax:
+                break
+            dg = abs(lab[i, j, 0] - ref[0]) * refl + abs(lab[i, j, 1] - ref[1]) + abs(lab[i, j, 2] - ref[2])
+            if dg < refd:
+                break
+            labels[i, j] = BUILDING
+            for c in range(nc):
+                probs[c, i, j] = 0.0
+            probs[BUILDING, i, j] = 1.0
+
+
+@njit(**JIT)
 def horizon_rows(rays, level, out):
     """Horizon row per column from base-frame pixel rays (h, w, 3) and level_from_base (3, 3); out (w,) f64.
 
@@ -356,86 +403,86 @@ def ground_gather(probs, labels, pu, pv, cell_range, max_range, is_ground, to_ma
 
 
 @njit(**JIT)
-def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, to_map, min_run, max_range, depth_m,
-                      res_m, origin_row, origin_col, evidence, free, visible):
-    """Deposit vertical classes at the ground contact of each column's lowest run of a vertical class.
+def _deposit_foot(labels, probs, rays, level, cam, j, i, k, val, to_map, max_range, depth_m, res_m, origin_row,
+                  origin_col, evidence, free, visible):  # depth_m: of this class
+    """Place the foot of class k between rows i (object) and i + 1 (ground) of column j; 1 if placed."""
+    gh, gw = visible.shape
+    m = to_map[k]
+    pa = probs[k, i, j]
+    pb = probs[k, i + 1, j]
+    t = 0.5
+    if pa > pb:
+        t = (pa - 0.5) / (pa - pb)
+        t = min(max(t, 0.0), 1.0)
+    dx = rays[i, j, 0] + t * (rays[i + 1, j, 0] - rays[i, j, 0])
+    dy = rays[i, j, 1] + t * (rays[i + 1, j, 1] - rays[i, j, 1])
+    dz = rays[i, j, 2] + t * (rays[i + 1, j, 2] - rays[i, j, 2])
+    lx = level[0, 0] * dx + level[0, 1] * dy + level[0, 2] * dz
+    ly = level[1, 0] * dx + level[1, 1] * dy + level[1, 2] * dz
+    lz = level[2, 0] * dx + level[2, 1] * dy + level[2, 2] * dz
+    if lz >= -1e-9:
+        return 0
+    s = -cam[2] / lz
+    gx = cam[0] + s * lx
+    gy = cam[1] + s * ly
+    if gx * gx + gy * gy > max_range * max_range:
+        return 0
+    hn = math.sqrt(lx * lx + ly * ly)
+    ux = lx / hn
+    uy = ly / hn
+    nstep = int(depth_m / (0.5 * res_m)) + 1
+    for q in range(nstep):
+        d = q * 0.5 * res_m
+        cc = int(math.floor(origin_col + (gx + ux * d) / res_m))
+        rr = int(math.floor(origin_row - (gy + uy * d) / res_m))
+        if 0 <= rr < gh and 0 <= cc < gw:
+            visible[rr, cc] = 1.0
+            free[rr, cc] = 0.0
+            if m >= 0 and evidence[m, rr, cc] < val:
+                evidence[m, rr, cc] = val
+    return 1
 
-    For each image column, scanning up from the bottom row to the horizon, the first pixel of a
-    vertical class that starts a run of at least ``min_run`` pixels of that class is the object's
-    foot. The contact row is refined to where that class's probability crosses 0.5 between it and
-    the pixel below; the ray through it (levelled) meets the ground at the object's range. The class
-    evidence (the run's mean probability) is written there and ``depth_m`` further along the ray.
-    Returns the number of contacts deposited.
+
+@njit(**JIT)
+def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_ground, to_map, min_run, max_range,
+                      depth_m, res_m, origin_row, origin_col, evidence, free, visible):
+    # depth_m: (256,) float64, metres of evidence behind the foot, per class
+    """Deposit vertical classes at their ground contacts, column by column.
+
+    Scanning each image column up from the bottom row to the horizon, every place where a ground pixel
+    is directly below a run of at least ``min_run`` pixels of one vertical class is that object's foot
+    on visible ground (objects higher up the column stand further away). An object whose bottom rests
+    on another object (a house behind a hedge) or on the image's bottom edge has no visible foot and is
+    not placed. The foot is refined to where the class probability crosses 0.5 between the two rows;
+    the levelled ray through it meets the ground at the object's range. The class evidence (the run's
+    mean probability) is written there and ``depth_m[k]`` further along the ray, where free space is
+    cleared (an object stands there). Returns the number of feet placed.
     """
     nc, h, w = probs.shape
-    gh, gw = visible.shape
-    cz = cam[2]
     count = 0
     for j in range(w):
         top = int(math.floor(hrow[j])) + 1
         if top < 0:
             top = 0
-        i = h - 1
-        found = -1
+        i = h - 2
         while i >= top:
             k = labels[i, j]
-            if is_vertical[k]:
+            if is_vertical[k] and is_ground[labels[i + 1, j]]:
                 run = 0
                 psum = 0.0
                 ii = i
-                while ii >= 0 and labels[ii, j] == k and run < min_run:
-                    psum += probs[k, ii, j]
+                while ii >= 0 and labels[ii, j] == k:
+                    if run < min_run:
+                        psum += probs[k, ii, j]
                     run += 1
                     ii -= 1
                 if run >= min_run:
-                    found = i
-                    break
+                    count += _deposit_foot(labels, probs, rays, level, cam, j, i, k, psum / min_run, to_map,
+                                           max_range, depth_m[k], res_m, origin_row, origin_col, evidence, free,
+                                           visible)
                 i = ii
             else:
                 i -= 1
-        if found < 0 or found >= h - 1:
-            continue  # no obstacle, or its foot is below the image: its range is unknown
-        k = labels[found, j]
-        m = to_map[k]
-        pa = probs[k, found, j]
-        pb = probs[k, found + 1, j]
-        t = 0.5
-        if pa > pb:
-            t = (pa - 0.5) / (pa - pb)
-            t = min(max(t, 0.0), 1.0)
-        ra = rays[found, j]
-        rb = rays[found + 1, j]
-        dx = ra[0] + t * (rb[0] - ra[0])
-        dy = ra[1] + t * (rb[1] - ra[1])
-        dz = ra[2] + t * (rb[2] - ra[2])
-        lx = level[0, 0] * dx + level[0, 1] * dy + level[0, 2] * dz
-        ly = level[1, 0] * dx + level[1, 1] * dy + level[1, 2] * dz
-        lz = level[2, 0] * dx + level[2, 1] * dy + level[2, 2] * dz
-        if lz >= -1e-9:
-            continue
-        s = -cz / lz
-        gx = cam[0] + s * lx
-        gy = cam[1] + s * ly
-        rng = math.sqrt(gx * gx + gy * gy)
-        if rng > max_range:
-            continue
-        count += 1
-        val = psum / min_run
-        hn = math.sqrt(lx * lx + ly * ly)
-        ux = lx / hn
-        uy = ly / hn
-        nstep = int(depth_m / (0.5 * res_m)) + 1
-        for q in range(nstep):
-            d = q * 0.5 * res_m
-            px = gx + ux * d
-            py = gy + uy * d
-            cc = int(math.floor(origin_col + px / res_m))
-            rr = int(math.floor(origin_row - py / res_m))
-            if 0 <= rr < gh and 0 <= cc < gw:
-                visible[rr, cc] = 1.0
-                free[rr, cc] = 0.0
-                if m >= 0 and evidence[m, rr, cc] < val:
-                    evidence[m, rr, cc] = val
     return count
 
 

@@ -12,10 +12,13 @@ bilinearly. Cells further than ``max_range_m``, outside the picture, above the h
 pixel shows something other than ground are not seen. Seen ground is also free space: negative
 evidence for the vertical classes.
 
-Vertical classes (building, fence, tree, pole) are scattered: in each image column the lowest
-run of a vertical class marks the object's foot; the ray through it (sub-pixel, where the class
-probability crosses 0.5) meets the ground at the object's range, and the evidence is written
-there and ``vertical_depth_m`` beyond it along the ray.
+Vertical classes (building, fence, tree, pole) are scattered: in each image column, scanning up
+from the bottom, each run of a vertical class standing directly on seen ground marks that object's
+foot (the lowest such run is the nearest object; runs further up stand further away); the ray through
+the foot (sub-pixel, where the class probability crosses 0.5) meets the ground at the object's range,
+and the evidence is written there and ``building_depth_m`` (``object_depth_m`` for thin objects)
+beyond it along the ray. An object resting
+on another in the picture (a house behind a hedge) has no visible foot and is not placed.
 
 The lookup (cell centre -> pixel) is computed once per calibration for a level base; a frame
 whose gravity vector tilts the base gets its own lookup, recomputed in place by a kernel
@@ -29,7 +32,7 @@ import math
 
 import numpy as np
 
-from ..classes import CLASSES, DYNAMIC, NUM_MAP_CLASSES
+from ..classes import BUILDING, CLASSES, DYNAMIC, NUM_MAP_CLASSES
 from ..errors import InputError
 from . import _kernels as K
 
@@ -107,8 +110,11 @@ class OverheadParams:
     max_range_m : float
         Ground and objects further than this (horizontal distance from the base origin) are ignored:
         one image row spans about range^2 / camera height x the pixel's angle, so far ground is coarse.
-    vertical_depth_m : float
-        How far behind an object's foot its evidence is written (m).
+    building_depth_m : float
+        How far behind a building's foot (its facade) its evidence is written (m): a facade implies a
+        footprint behind it, and the map holds footprints.
+    object_depth_m : float
+        The same for thin objects (fence, tree trunk, pole; also where vehicles and people stand).
     min_run_px : int
         A vertical class must cover this many pixels upward from its foot to count (segmentation pixels).
     """
@@ -119,7 +125,8 @@ class OverheadParams:
     origin_row: float = 32.0
     origin_col: float = 0.0
     max_range_m: float = 20.0
-    vertical_depth_m: float = 1.0
+    building_depth_m: float = 2.0
+    object_depth_m: float = 0.5
     min_run_px: int = 3
 
     def __post_init__(self):
@@ -129,8 +136,10 @@ class OverheadParams:
             raise InputError(f"bird's-eye resolution {self.res_m} m is out of range (0.01 .. 10 m)")
         if not (math.isfinite(self.max_range_m) and self.max_range_m > 0):
             raise InputError("max_range_m must be a positive number of metres")
-        if not (math.isfinite(self.vertical_depth_m) and 0.0 <= self.vertical_depth_m <= 20.0):
-            raise InputError("vertical_depth_m must be within 0 .. 20 m")
+        for name in ("building_depth_m", "object_depth_m"):
+            v = getattr(self, name)
+            if not (math.isfinite(v) and 0.0 <= v <= 20.0):
+                raise InputError(f"{name} must be within 0 .. 20 m")
         if not 1 <= int(self.min_run_px) <= 100:
             raise InputError("min_run_px must be within 1 .. 100")
 
@@ -201,6 +210,10 @@ class OverheadProjector:
         self._level_v = np.empty_like(self.lut_v)
         self.hrow = np.empty(w)
         self._lut_for(np.eye(3), self.lut_u, self.lut_v)
+        self.depth = np.zeros(256)
+        for c in CLASSES:
+            if c.vertical:
+                self.depth[c.index] = params.building_depth_m if c.index == BUILDING else params.object_depth_m
         self.hrow_level = np.empty(w)
         K.horizon_rows(self.rays, np.eye(3), self.hrow_level)
 
@@ -233,8 +246,8 @@ class OverheadProjector:
         K.ground_gather(probs, labels, pu, pv, self.cell_range, p.max_range_m, IS_GROUND, TO_MAP, hrow,
                         out.evidence, out.free, out.visible)
         np.matmul(level, self._t_base, out=self._cam_l)
-        return K.vertical_contacts(labels, probs, self.rays, level, self._cam_l, hrow, IS_VERTICAL, TO_MAP,
-                                   int(p.min_run_px), p.max_range_m, p.vertical_depth_m, p.res_m, p.origin_row,
+        return K.vertical_contacts(labels, probs, self.rays, level, self._cam_l, hrow, IS_VERTICAL, IS_GROUND, TO_MAP,
+                                   int(p.min_run_px), p.max_range_m, self.depth, p.res_m, p.origin_row,
                                    p.origin_col, out.evidence, out.free, out.visible)
 
     def pixel_to_ground(self, uv_seg, level: np.ndarray | None = None) -> np.ndarray:

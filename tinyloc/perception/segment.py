@@ -12,7 +12,9 @@ thresholds sit in :class:`SegmentParams`:
 - **vegetation**: ExG - ExR above a threshold (Meyer and Neto 2008) gives grass below the horizon and
   trees above it; above the horizon, textured regions mixed with bright sky pixels (bare crowns
   against the sky: high local variance and a high share of bright pixels) also score as tree;
-- **building**: what remains above the horizon (not sky, not vegetation).
+- **building**: what remains above the horizon (not sky, not vegetation); a facade is carried down
+  across the horizon (everything nearer than the camera's height appears below it) while its colour
+  holds and until the strong horizontal edge of its foot.
 
 Work happens at reduced resolution (``width`` pixels wide, default 160): the frame is area-averaged
 down first, which also removes sensor noise. Scores are normalised per pixel to sum to 1.
@@ -29,7 +31,7 @@ from dataclasses import dataclass, fields
 import cv2
 import numpy as np
 
-from ..classes import NUM_CLASSES
+from ..classes import CLASSES, NUM_CLASSES
 from ..errors import InputError
 from . import _kernels as K
 
@@ -47,32 +49,35 @@ class SegmentParams:
     horizon_frac: float = 0.56  # horizon row / image height when no camera model is given
     tex_window: int = 5  # window of the gradient-energy mean (px at segmentation size)
     mix_window: int = 3  # window of the bright-share and variance statistics (px)
-    sky_tex: float = 0.0676  # sky is smoother than this
-    sky_v: float = 0.4165  # ... and brighter than this (HSV value) with saturation below sky_s
-    sky_s: float = 0.25
-    sky_blue: float = 5.6  # ... or bluer than b* < -sky_blue (Lab units) with value above sky_v2
-    sky_v2: float = 0.845
-    sky_below: float = 0.02  # sky may reach this far (image heights) below the horizon
-    green0: float = 0.06  # ExG - ExR vegetation threshold
-    green_w: float = 0.0355
+    sky_tex: float = 0.1142  # sky is smoother than this
+    sky_v: float = 0.704  # ... and brighter than this (HSV value) with saturation below sky_s
+    sky_s: float = 0.175
+    sky_blue: float = 2.74  # ... or bluer than b* < -sky_blue (Lab units) with value above sky_v2
+    sky_v2: float = 0.591
+    sky_below: float = 0.0098  # sky may reach this far (image heights) below the horizon
+    green0: float = 0.0  # ExG - ExR vegetation threshold
+    green_w: float = 0.0461
     ground_u0: float = 0.02  # ground starts this far (image heights) below the horizon
-    ground_w: float = 0.03
-    smooth_tex: float = 0.11  # paved ground is smoother than this
+    ground_w: float = 0.0147
+    smooth_tex: float = 0.186  # paved ground is smoother than this
     smooth_w: float = 0.013
-    here_weight: float = 1.3  # weight of the surface under the robot
-    other_weight: float = 0.6  # weight of the other paved surface
-    grass_weight: float = 0.49
-    building_weight: float = 0.845
-    tree_weight: float = 0.49
-    crown_weight: float = 0.91
-    ground_floor: float = 0.098  # score any ground pixel keeps for "surface under the robot"
-    ref_l_weight: float = 0.5  # weight of lightness in the colour distance to the robot's surface
-    ref_dist: float = 15.0  # colour distance (Lab units) still counted as the same surface
-    ref_w: float = 2.8
-    crown_bright: float = 0.33  # share of bright pixels that makes a textured patch a crown
-    crown_var: float = 0.00343  # local grey-level variance of a crown (0..1 units)
-    crown_var_w: float = 0.00845
-    tree_low: float = 0.5  # how much green below the horizon counts less as tree
+    here_weight: float = 1.69  # weight of the surface under the robot
+    other_weight: float = 0.294  # weight of the other paved surface
+    grass_weight: float = 0.343
+    building_weight: float = 0.591
+    tree_weight: float = 1.077
+    crown_weight: float = 0.637
+    ground_floor: float = 0.089  # score any ground pixel keeps for "surface under the robot"
+    ref_l_weight: float = 0.35  # weight of lightness in the colour distance to the robot's surface
+    ref_dist: float = 19.5  # colour distance (Lab units) still counted as the same surface
+    ref_w: float = 1.96
+    crown_bright: float = 0.162  # share of bright pixels that makes a textured patch a crown
+    crown_var: float = 0.00446  # local grey-level variance of a crown (0..1 units)
+    crown_var_w: float = 0.00414
+    tree_low: float = 1.0  # how much green below the horizon counts less as tree (1: none, it is grass)
+    wall_dist: float = 25.0  # a facade continues below the horizon while its colour stays this close (Lab)
+    wall_edge: float = 0.06  # ... and until a horizontal edge at least this strong (|dI/dy|, 0..1): its foot
+    wall_ground: float = 19.5  # ... or a pixel this close (Lab distance) to the surface under the robot
     robot_on: str = "road"  # surface under the robot: "road" or "sidewalk"
 
     def __post_init__(self):
@@ -102,15 +107,18 @@ class SegmentParams:
         v[K.P_MIX0], v[K.P_VAR0], v[K.P_VAR_W] = self.crown_bright, self.crown_var, self.crown_var_w
         v[K.P_TREE_LOW] = self.tree_low
         v[K.P_ON_ROAD] = 1.0 if self.robot_on == "road" else 0.0
+        v[K.P_WALL_DIST], v[K.P_WALL_EDGE], v[K.P_WALL_GROUND] = self.wall_dist, self.wall_edge, self.wall_ground
         return v
 
 
-#: Named parameter sets. "street" was tuned on the labelled street-image set (a car on city roads);
-#: "sidewalk" is the same with the robot on the footway; "park" expects more vegetation.
+#: Named parameter sets. The defaults ("street") were tuned jointly on the labelled street-image set
+#: (a car on city roads) and on rendered frames of simulated sites 1 and 2; "sidewalk" has the robot on
+#: the footway (and lets facades reach further down, tuned on the same rendered sites); "park"
+#: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
-    "sidewalk": SegmentParams(robot_on="sidewalk"),
-    "park": SegmentParams(robot_on="sidewalk", green0=0.02, grass_weight=0.8, tree_weight=0.8),
+    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0),
+    "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, green0=-0.02, grass_weight=0.6),
 }
 
 
@@ -216,7 +224,13 @@ class Segmenter:
         K.patch_median_lab(self.lab, r0, r1, c0, c1, self.hist, self.ref)
         K.seg_scores(self.feat, self.lab, self.tex, self.sky, self.brightmix, self.gmean, self.g2mean, self.ref,
                      self._prm, self.probs, self.labels)
+        K.extend_walls(self.feat, self.lab, hrow, self.ref, self._prm, _IS_GROUND, self.probs, self.labels)
         return self.probs, self.labels
+
+
+_IS_GROUND = np.zeros(256, np.uint8)
+for _c in CLASSES:
+    _IS_GROUND[_c.index] = (not _c.vertical) and _c.name != "sky"
 
 
 def labels_at(probs: np.ndarray, size: tuple[int, int]) -> np.ndarray:
