@@ -235,3 +235,36 @@ def test_output_folder_not_empty(run, tmp_path):
     with pytest.raises(InputError, match="folder is not empty"):
         import_bag(bag, tmp_path / "out", ImportOptions(**Q))
     assert (tmp_path / "out" / "x").read_text() == "keep me"
+
+
+def test_ambiguous_topics_need_a_flag_and_raw_beats_compressed(run, tmp_path):
+    m = _Msgs(False)
+    msgs = run_messages(run, m)
+    extra = [(rec + 1, "/imu/raw", msg) for rec, topic, msg in msgs if topic == "/imu/data"]
+    jpg = run_messages(run, m, image="png")
+    extra += [(rec, topic, msg) for rec, topic, msg in jpg if topic.endswith("/compressed")]
+    bag = write_bag(bag_name(tmp_path, "mcap"), sorted(msgs + extra, key=lambda r: r[0]), m, "mcap")
+    with pytest.raises(InputError, match=r"several sensor_msgs/msg/Imu topics \(/imu/data, /imu/raw\); "
+                                         r"choose one with --imu-topic"):
+        import_bag(bag, tmp_path / "a", ImportOptions(**Q))
+    res = import_bag(bag, tmp_path / "b", ImportOptions(imu_topic="/imu/raw", **Q))
+    assert res.report["topics"].keys() >= {"/front/image_raw", "/imu/raw"}  # Image preferred over compressed
+    res = import_bag(bag, tmp_path / "c", ImportOptions(imu_topic="/imu/raw",
+                                                        camera_topic="/front/image_raw/compressed", **Q))
+    assert RunFolder.open(tmp_path / "c").frame_files[0].endswith(".png") and res.counts["frames"] == len(run)
+
+
+def test_truth_from_an_odometry_topic(run, tmp_path):
+    from tinyloc.geo import LocalFrame
+
+    bag = _bag(run, tmp_path)
+    origin = (12.3456, -45.6789, 20.0)
+    res = import_bag(bag, tmp_path / "out", ImportOptions(truth_topic="/wheel/odom", origin=origin, **Q))
+    out = RunFolder.open(tmp_path / "out")
+    assert res.counts["odometry"] == 0 and any(n.startswith("odom: no nav_msgs/msg/Odometry topic")
+                                               for n in res.report["notes"])
+    tr = out.truth
+    assert np.max(np.abs(tr[:, [4, 5]] - run.odometry[:, [1, 2]])) < 1e-9
+    assert np.max(np.abs(tr[:, 3] - run.odometry[:, 3])) < 1e-9
+    lat, lon = LocalFrame(*origin).to_latlon(run.odometry[:, 1], run.odometry[:, 2])
+    assert np.max(np.abs(tr[:, 1] - lat)) < 1e-12 and np.max(np.abs(tr[:, 2] - lon)) < 1e-12
