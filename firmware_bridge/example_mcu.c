@@ -48,8 +48,11 @@ static void handle(const tlink_frame_t *f, int64_t now)
         break;
     case TLINK_TYPE_TIMESYNC:
         if (tlink_get_timesync(f, &ts) && ts.phase == 0) {
+            /* Stamp receipt now, when the frame is complete (not at the top of the loop pass):
+             * a receive time taken before the last byte arrived would break the offset's bound. */
+            (void)now;
             ts.phase = 1;
-            ts.t_receive_us = now;
+            ts.t_receive_us = board_time_us();
             ts.t_transmit_us = board_time_us();
             send_frame(tlink_put_timesync(&ts, tx_seq++, ts.t_transmit_us, tx, sizeof tx));
         }

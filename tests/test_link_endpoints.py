@@ -254,7 +254,7 @@ def test_pty_unplug_replug_reconnects_and_reports_the_gap(tmp_path):
         assert a.connected and b.connected
         assert any("reconnected after" in e for e in events)
         # the outage (0.6 s) is reported as the gap, give or take the back-off and detection
-        assert 0.4 < cb.last_gap_s < 1.2 and 0.4 < ca.last_gap_s < 1.2
+        assert 0.4 < cb.last_gap_s < 2.0 and 0.4 < ca.last_gap_s < 2.0
         # poses flow again after the replug, and every sequence number is accounted for:
         # received + reported lost = span of sequence numbers seen
         seqs = [g.seq for g in got_b]
