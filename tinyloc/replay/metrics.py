@@ -529,6 +529,7 @@ def compute_metrics(rec, params: MetricParams = MetricParams()) -> dict:
                            "bound": f"{params.good_pos_m:g} m, {params.good_yaw_deg:g} deg",
                            "first_tracking_s": tt, "first_tracking_distance_m": td}
 
+    status = _column(rec, "status")
     spells = [] if fi is None else lost_spells(t, good, dist, min_lost_s=params.min_lost_s, start=fi)
     durs = [s.duration_s for s in spells]
     m["lost"] = {
@@ -540,7 +541,9 @@ def compute_metrics(rec, params: MetricParams = MetricParams()) -> dict:
         "longest_distance_m": _num(max(s.distance_m for s in spells)) if spells else 0.0,
         "min_lost_s": params.min_lost_s,
         "list": [{"start_t": _num(t[s.start]), "duration_s": _num(s.duration_s),
-                  "distance_m": _num(s.distance_m), "recovered": s.recovered} for s in spells],
+                  "distance_m": _num(s.distance_m), "recovered": s.recovered,
+                  "quality_at_start": str(q[s.start]),
+                  "status_at_start": str(status[s.start]) if status is not None else ""} for s in spells],
     }
 
     # Calibration: every frame with truth counts; no estimate or a bad covariance is outside.

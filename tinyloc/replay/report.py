@@ -480,11 +480,15 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
 
     lost = metrics.get("lost", {}).get("list", [])
     if lost:
-        out.append("<h2>Lost spells</h2><table><tr><th>start (s)</th><th>duration (s)</th><th>distance (m)</th>"
-                   "<th>recovered</th></tr>")
+        t0 = float(np.asarray(rec["t"], float)[0]) if len(rec["t"]) else 0.0
+        out.append("<h2>Lost spells</h2><table><tr><th>start (s since first frame)</th><th>duration (s)</th>"
+                   "<th>distance (m)</th><th>recovered</th><th>flag at start</th><th>the loop said</th></tr>")
         for s in lost:
-            out.append("<tr>" + "".join(f"<td class='num'>{_fmtv(s[k])}</td>" for k in
-                                         ("start_t", "duration_s", "distance_m", "recovered")) + "</tr>")
+            start = s["start_t"] - t0 if s.get("start_t") is not None else None
+            out.append("<tr>" + "".join(f"<td class='num'>{_fmtv(v)}</td>" for v in
+                                         (start, s["duration_s"], s["distance_m"], s["recovered"])) +
+                       f"<td>{html.escape(s.get('quality_at_start', ''))}</td>"
+                       f"<td>{html.escape(s.get('status_at_start', ''))}</td></tr>")
         out.append("</table>")
 
     out.append("<h2>Worst frames</h2>")
