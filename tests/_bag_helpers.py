@@ -171,8 +171,9 @@ def run_messages(rf: RunFolder, m: _Msgs, *, image="raw", info_model="plumb_bob"
                  truth=True, stamp_hook=None, jpeg_quality=90):
     """(record ns, topic, message) of the whole run, sorted by record time.
 
-    ``image``: 'raw' (bgr8 Image), 'rgb8', 'mono8', 'png' / 'jpeg' (CompressedImage; 'png' carries the
-    run's own frame files byte for byte), or a bayer encoding such as 'bayer_rggb8'.
+    ``image``: 'raw' (bgr8 Image), 'rgb8', 'mono8', 'file' (CompressedImage carrying the run's own
+    PNG/JPEG frame files byte for byte), 'jpeg' (CompressedImage, re-encoded), or a bayer encoding
+    such as 'bayer_rggb8'.
     ``stamp_hook(topic, index, stamp_ns) -> stamp_ns`` lets a test break stamps.
     """
     out = []
@@ -199,9 +200,10 @@ def run_messages(rf: RunFolder, m: _Msgs, *, image="raw", info_model="plumb_bob"
             add("/front/image_raw", t, lambda s: m.image(s, img[:, :, ::-1], "rgb8"))
         elif image == "mono8":
             add("/front/image_raw", t, lambda s: m.image(s, cv2.cvtColor(img, cv2.COLOR_BGR2GRAY), "mono8"))
-        elif image == "png":
+        elif image == "file":  # the run's own frame files, byte for byte
             data = (rf.path / rf.frame_files[i]).read_bytes()
-            add("/front/image_raw/compressed", t, lambda s: m.compressed(s, data, "bgr8; png compressed bgr8"))
+            fmt = "bgr8; png compressed bgr8" if rf.frame_files[i].endswith(".png") else "bgr8; jpeg compressed bgr8"
+            add("/front/image_raw/compressed", t, lambda s: m.compressed(s, data, fmt))
         elif image == "jpeg":
             ok, buf = cv2.imencode(".jpg", img, [cv2.IMWRITE_JPEG_QUALITY, jpeg_quality])
             add("/front/image_raw/compressed", t, lambda s: m.compressed(s, buf.tobytes(), "jpeg"))

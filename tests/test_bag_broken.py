@@ -164,7 +164,7 @@ def test_damaged_message_is_dropped_rest_kept(run, tmp_path):
     import cv2
 
     m = _Msgs(False)
-    msgs = run_messages(run, m, image="png")
+    msgs = run_messages(run, m, image="file")
     k = [i for i, r in enumerate(msgs) if "compressed" in r[1]][3]
     rec, topic, msg = msgs[k]
     msgs[k] = (rec, topic, m.compressed(int(msg.header.stamp.sec) * NS + int(msg.header.stamp.nanosec),
@@ -241,7 +241,7 @@ def test_ambiguous_topics_need_a_flag_and_raw_beats_compressed(run, tmp_path):
     m = _Msgs(False)
     msgs = run_messages(run, m)
     extra = [(rec + 1, "/imu/raw", msg) for rec, topic, msg in msgs if topic == "/imu/data"]
-    jpg = run_messages(run, m, image="png")
+    jpg = run_messages(run, m, image="file")
     extra += [(rec, topic, msg) for rec, topic, msg in jpg if topic.endswith("/compressed")]
     bag = write_bag(bag_name(tmp_path, "mcap"), sorted(msgs + extra, key=lambda r: r[0]), m, "mcap")
     with pytest.raises(InputError, match=r"several sensor_msgs/msg/Imu topics \(/imu/data, /imu/raw\); "

@@ -39,6 +39,15 @@ def _check_streams(src: RunFolder, out: RunFolder, tol=1e-9):
     assert np.max(np.abs(src.frame_t - (out.frame_t + d))) <= tol
 
 
+def _check_camera(ref, c):
+    # Calibration: intrinsics exactly (CameraInfo carries them as float64), the mount through the
+    # /tf_static chain (quaternions from SciPy, composed by tinyloc) to 1e-9.
+    assert (c.width, c.height, c.fx, c.fy, c.cx, c.cy, c.dist) == \
+        (ref.width, ref.height, ref.fx, ref.fy, ref.cx, ref.cy, ref.dist)
+    for k in ("height_m", "pitch_deg", "roll_deg", "yaw_deg", "x_m", "y_m"):
+        assert abs(getattr(c.mount, k) - getattr(ref.mount, k)) < 1e-9, k
+
+
 @pytest.mark.parametrize("storage", ["ros1", "sqlite3", "mcap"])
 def test_roundtrip_raw_images(run, tmp_path, storage):
     bag = bag_from_run(run, bag_name(tmp_path, storage), storage)
@@ -50,12 +59,7 @@ def test_roundtrip_raw_images(run, tmp_path, storage):
     for i in range(len(run)):  # lossless: the very same pixels
         assert np.array_equal(out.load_frame(i), run.load_frame(i))
     _check_streams(run, out)
-    # Calibration: intrinsics exactly, mount through the /tf_static chain to 1e-9.
-    c = out.camera
-    assert (c.width, c.height, c.fx, c.fy, c.cx, c.cy, c.dist) == \
-        (CAMERA.width, CAMERA.height, CAMERA.fx, CAMERA.fy, CAMERA.cx, CAMERA.cy, CAMERA.dist)
-    for k in ("height_m", "pitch_deg", "roll_deg", "yaw_deg", "x_m", "y_m"):
-        assert abs(getattr(c.mount, k) - getattr(CAMERA.mount, k)) < 1e-9, k
+    _check_camera(CAMERA, out.camera)
     rep = json.loads((tmp_path / "out" / "run.json").read_text())["import"]
     assert rep["state"] == "complete"
     imu = rep["report"]["topics"]["/imu/data"]
@@ -65,7 +69,7 @@ def test_roundtrip_raw_images(run, tmp_path, storage):
 
 @pytest.mark.parametrize("storage", ["sqlite3", "mcap"])
 def test_roundtrip_png_compressed_is_byte_identical(run, tmp_path, storage):
-    bag = bag_from_run(run, bag_name(tmp_path, storage), storage, image="png")
+    bag = bag_from_run(run, bag_name(tmp_path, storage), storage, image="file")
     import_bag(bag, tmp_path / "out", ImportOptions(truth_topic="/ins/pose", origin=ORIGIN, progress=False))
     out = RunFolder.open(tmp_path / "out")
     for i in range(len(run)):
@@ -111,3 +115,21 @@ def test_every_and_window(run, tmp_path):
     t = b.imu[:, 0] + _shift_s(b)
     assert t.min() >= 0.2 - 1e-9 and t.max() < 0.45
     assert len(b.imu) == int(np.sum((run.imu[:, 0] >= 0.2 - 1e-9) & (run.imu[:, 0] < 0.45 - 1e-12)))
+
+
+def test_roundtrip_of_the_simulators_demo_run(tmp_path):
+    # The simulator's bundled drive (JPEG frames, 50 Hz odometry, GNSS with its accuracy, truth),
+    # written with rosbags as a ROS 2 MCAP bag carrying the frame files as CompressedImage.
+    from tinyloc.sim.demo import demo_paths
+
+    src = RunFolder.open(demo_paths()["run"])
+    bag = bag_from_run(src, bag_name(tmp_path, "mcap"), "mcap", image="file")
+    o = src.frame
+    res = import_bag(bag, tmp_path / "out", ImportOptions(truth_topic="/ins/pose", progress=False,
+                                                          origin=(o.lat0_deg, o.lon0_deg, o.h0_m)))
+    out = RunFolder.open(tmp_path / "out")
+    assert res.complete and len(out) == len(src) == 120
+    for i in range(len(src)):
+        assert (out.path / out.frame_files[i]).read_bytes() == (src.path / src.frame_files[i]).read_bytes()
+    _check_streams(src, out)
+    _check_camera(src.camera, out.camera)
