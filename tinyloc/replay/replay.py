@@ -20,7 +20,6 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 import math
 import time
-from pathlib import Path
 from typing import Callable, Protocol
 
 import numpy as np
