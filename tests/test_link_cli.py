@@ -3,6 +3,7 @@
 import json
 import subprocess
 import sys
+import time
 
 import pytest
 
@@ -58,3 +59,29 @@ def test_listen_bad_port_is_one_line(capsys):
 def test_listen_refuses_output_only_links(capsys):
     assert main(["link", "listen", "nmea:-"]) == 2
     assert "output only" in capsys.readouterr().err
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="pseudo-terminal test needs Linux ptys")
+def test_link_pty_command_makes_a_working_pair():
+    from tinyloc.link import messages as m, open_endpoint
+
+    proc = subprocess.Popen([sys.executable, "-m", "tinyloc", "link", "pty", "--for", "2"], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        a_name = proc.stdout.readline().strip()
+        b_name = proc.stdout.readline().strip()
+        a, b = open_endpoint(a_name), open_endpoint(b_name)
+        for i in range(20):
+            assert a.send(m.Odometry(i * 0.01, i, 0, 0))
+        got = []
+        for _ in range(200):
+            got += b.poll()
+            if len(got) == 20:
+                break
+            time.sleep(0.005)
+        assert [g.x for g in got] == [float(i) for i in range(20)]
+        a.close()
+        b.close()
+    finally:
+        proc.wait(timeout=10)
+    assert proc.returncode == 0

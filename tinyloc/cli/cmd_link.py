@@ -25,7 +25,7 @@ examples:
   tinyloc link listen /dev/ttyUSB0                        decode odometry/IMU/heartbeats from the MCU
   tinyloc link send /dev/ttyUSB0 --demo --rate 50         stream synthetic poses to it
   tinyloc link send nmea:- --demo --for 2                 see the NMEA sentences a pose becomes
-  socat -d -d pty,raw,echo=0 pty,raw,echo=0               make a pseudo-terminal pair, then
+  tinyloc link pty                                        make a pseudo-terminal pair (prints its two names), then
   tinyloc link listen /dev/pts/5 & tinyloc link send /dev/pts/6 --demo"""
 
 # The demo's invented site: a georeference on open plains, no real place.
@@ -67,6 +67,19 @@ def register(parser):
     p.add_argument("--baud", type=int, default=115200, help="serial line rate in bits/s (default 115200)")
     p.add_argument("--wait", action="store_true", help="if PORT cannot be opened yet, keep trying instead of failing")
     p.set_defaults(func=_send)
+
+    p = sub.add_parser("pty", help="make a pseudo-terminal pair joined like a serial cable (for tests without hardware)",
+                       description="Create two pseudo-terminals joined like the two ends of a serial cable, print "
+                                   "their device names (one per line, end A first) and relay bytes between them, "
+                                   "paced at --baud, until Ctrl-C or --for. Point `link send` at one end and "
+                                   "`link listen` (or your firmware's host build) at the other.")
+    p.add_argument("--baud", type=float, default=115200.0,
+                   help="pace the relay at this line rate, 10 bits per byte (default 115200; 0: no pacing)")
+    p.add_argument("--for", dest="duration", type=float, default=None, metavar="SECONDS",
+                   help="stop after this many seconds (default: until Ctrl-C)")
+    p.add_argument("--links", metavar="DIR", default=None,
+                   help="also keep symlinks DIR/ttyA and DIR/ttyB to the two ends")
+    p.set_defaults(func=_pty)
 
 
 def _open(url, args):
@@ -224,4 +237,24 @@ def _send(args) -> int:
             flush(1.0)
         print(f"tinyloc: sent {i} messages; {_counters_line(ep.counters)}", file=sys.stderr, flush=True)
         ep.close()
+    return 0
+
+
+def _pty(args) -> int:
+    from ..link.ptypair import PtyPair
+
+    pair = PtyPair(baud=args.baud if args.baud > 0 else None, link_dir=args.links)
+    print(pair.end_a)
+    print(pair.end_b, flush=True)
+    pace = f"paced at {args.baud:.0f} baud" if args.baud > 0 else "unpaced"
+    print(f"tinyloc: relaying between {pair.devices[0]} and {pair.devices[1]} ({pace}); Ctrl-C stops",
+          file=sys.stderr, flush=True)
+    t0 = time.monotonic()
+    try:
+        while args.duration is None or time.monotonic() - t0 < args.duration:
+            time.sleep(0.05)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        pair.close()
     return 0
