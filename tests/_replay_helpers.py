@@ -172,3 +172,12 @@ class StandStill:
 
 def stand_still(rf, packed):
     return StandStill()
+
+
+class Flaky(NoisyTruth):
+    """Test double that raises on every 5th frame (a localizer bug met mid-run)."""
+
+    def step(self, fr):
+        if fr.index % 5 == 4:
+            raise ValueError(f"cannot handle frame {fr.index}")
+        return super().step(fr)

@@ -232,3 +232,15 @@ def test_run_without_truth_still_replays_and_reports(site, tmp_path, capsys):
     assert m["frame_ms_median"] == pytest.approx(0.1)
     text = (out / "report.html").read_text()
     assert "No frames with ground truth to rank." in text and ">n/a</td>" in text
+
+
+def test_a_localizer_that_raises_on_some_frames_does_not_stop_the_run(site):
+    from _replay_helpers import Flaky
+
+    res = replay_run(site["run"], lambda rf: Flaky(rf))
+    assert res.records.n == 40
+    bad = [i for i in range(40) if str(res.records.status[i]).startswith("localizer raised ValueError")]
+    assert bad == list(range(4, 40, 5))
+    assert all(res.records.quality[i] == "no-fix" for i in bad)
+    assert sum("localizer raised" in g for g in res.gaps) == 8
+    assert res.metrics["missed_frames"] == 8

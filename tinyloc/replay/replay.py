@@ -209,7 +209,11 @@ def _step(localizer, rf, rec, i, image, fault, imu, odo, gnss) -> None:
     t = float(rec.t[i])
     frame = ReplayFrame(i, t, image, fault, imu.upto(t), odo.upto(t), gnss.upto(t))
     t0 = time.perf_counter()
-    pose = localizer.step(frame)
+    try:
+        pose = localizer.step(frame)
+    except Exception as e:  # noqa: BLE001 - a localizer that trips on one frame is data, the run goes on
+        pose = None
+        fault = (fault + "; " if fault else "") + f"localizer raised {type(e).__name__}: {e}"[:160]
     wall_ms = (time.perf_counter() - t0) * 1e3
     rec.x[i], rec.y[i], rec.yaw[i] = _pose_f(pose, "x"), _pose_f(pose, "y"), _pose_f(pose, "yaw")
     rec.lat[i], rec.lon[i] = _pose_f(pose, "lat"), _pose_f(pose, "lon")
@@ -226,7 +230,10 @@ def _step(localizer, rf, rec, i, image, fault, imu, odo, gnss) -> None:
     fms = _pose_f(pose, "frame_ms")
     rec.frame_ms[i] = fms if math.isfinite(fms) else wall_ms
     status = str(getattr(pose, "status", "") or "")
-    rec.status[i] = (f"image unreadable; {status}" if fault else status)[:200]
+    if "localizer raised" in fault:
+        rec.status[i] = fault[fault.index("localizer raised"):][:200]
+    else:
+        rec.status[i] = (f"image unreadable; {status}" if fault else status)[:200]
 
 
 def worst_frames(rec: FrameRecords, k: int) -> list[int]:
@@ -279,7 +286,10 @@ def replay_run(run, localizer_factory: Callable[[RunFolder], Localizer], *, worl
     wall = time.perf_counter() - t0
     unreadable = [f"frame {i} ({rec.file[i]}): image unreadable" for i in range(rec.n)
                   if str(rec.status[i]).startswith("image unreadable")]
-    gaps = gaps + unreadable
+    raised = [i for i in range(rec.n) if str(rec.status[i]).startswith("localizer raised")]
+    if raised and len(raised) == rec.n:
+        raise RunFolderError(f"{rf.path}: the localizer failed on every frame ({rec.status[raised[0]]})")
+    gaps = gaps + unreadable + [f"frame {i} ({rec.file[i]}): {rec.status[i]}" for i in raised]
     m = M.compute_metrics(rec, params.metrics)
     m["replay"] = {"wall_s": wall, "frames_per_s": (rec.n / wall) if wall > 0 else None}
     m["gaps"] = {"count": len(gaps), "list": gaps[:200]}

@@ -511,7 +511,9 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
 
     out.append("<h2>Gaps and data faults</h2>")
     if gaps:
-        out.append("<div class='warn'>" + html.escape("\n".join(gaps)) + "</div>")
+        shown = gaps[:500]
+        more = f"\n... and {len(gaps) - len(shown)} more" if len(gaps) > len(shown) else ""
+        out.append(f"<p>{len(gaps)} found.</p><div class='warn'>" + html.escape("\n".join(shown) + more) + "</div>")
     else:
         out.append("<p>None found.</p>")
     out.append("<h2>Definitions</h2><p style='font-size:12px'>Recall: share of frames with truth whose position "
