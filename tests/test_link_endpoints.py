@@ -7,6 +7,7 @@ both ends with pyserial through symlinks, and stream 100 Hz poses; one test unpl
 
 import io
 import json
+import os
 import sys
 import time
 
@@ -32,14 +33,23 @@ def wire_view(msg):
     return m.decode_frame(m.encode_frame(msg)[1:-1])
 
 
-def test_loop_url_round_trip():
-    with open_endpoint("loop://") as ep:
+# The round trip runs on pyserial's loop:// by default, and also on a real port when one is given:
+# TINYLOC_TEST_PORT=/dev/ttyUSB0 (a port whose TX is wired to its RX) pytest tests/test_link_endpoints.py
+LOOP_PORTS = ["loop://"] + [p for p in os.environ.get("TINYLOC_TEST_PORT", "").split(",") if p]
+
+
+@pytest.mark.parametrize("url", LOOP_PORTS)
+def test_loop_url_round_trip(url):
+    with open_endpoint(url) as ep:
         sent = [pose(i) for i in range(20)] + [m.Odometry(1.0, 1, 2, 3), m.Heartbeat(2.0, 99)]
         for msg in sent:
             assert ep.send(msg)
         got = []
-        for _ in range(50):
+        for _ in range(200):
             got += ep.poll()
+            if len(got) == len(sent):
+                break
+            time.sleep(0.005)
         assert [m.encode_frame(g) for g in got] == [m.encode_frame(wire_view(s), i) for i, s in enumerate(sent)]
         c = ep.counters
         assert c.frames_ok == c.frames_out == 22 and c.resyncs == 0 and c.seq_lost == 0
