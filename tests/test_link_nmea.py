@@ -49,7 +49,7 @@ def test_sentences_parse_to_the_values_sent():
     assert set(msgs) == {"GGA", "RMC", "HDT", "GST"}
     gga, rmc, hdt, gst = msgs["GGA"], msgs["RMC"], msgs["HDT"], msgs["GST"]
     assert gga.talker == "GN"
-    assert abs(gga.latitude - 47.3812345678) < 1e-8 and abs(gga.longitude + 8.5401234567) < 1e-8
+    assert abs(gga.latitude - 47.3812345678) < 1e-8 and abs(gga.longitude + 8.5401234567) < 1e-8  # 6 decimals of a minute
     assert gga.lat_dir == "N" and gga.lon_dir == "W"
     assert gga.gps_qual == 1 and gga.timestamp.replace(tzinfo=None) == dt.time(9, 26, 53, 580000)
     assert float(gga.altitude) == 412.5
@@ -91,7 +91,7 @@ def test_degree_minute_rounding_carries():
     # 59.99999999 minutes must not print as "60.0000000"
     s = nmea.pose_sentences(pose(lat=10.9999999999, lon=179.99999999999), UTC)[0]
     msg = pynmea2.parse(s.strip())
-    assert msg.lat == "1100.0000000" and msg.lon == "18000.0000000"
+    assert msg.lat == "1100.000000" and msg.lon == "18000.000000"
 
 
 def test_bad_covariance_leaves_gst_fields_empty():
@@ -174,3 +174,13 @@ def test_bad_gga_options():
         open_endpoint("nmea:-?hdop_m=0")
     with pytest.raises(LinkError, match="nmea\\+udp:// only"):
         open_endpoint("nmea:-?bind=0.0.0.0:0")
+
+
+def test_sentences_stay_within_82_characters():
+    # Worst cases: far south-west, fast, every optional field filled, huge uncertainty.
+    prev = pose(t=0.0, x=0.0, y=0.0, lat=-89.9999999, lon=-179.9999999)
+    p = pose(t=0.01, x=900.0, y=-900.0, lat=-89.9999999, lon=-179.9999999,
+             cov=((1e30, 1e29, 0.0), (1e29, 1e31, 0.0), (0.0, 0.0, 1.0)))
+    for s in nmea.pose_sentences(p, UTC, prev=prev, alt_m=-99999.99, sats=99, hdop_m=1e-9, tracking_fix=5):
+        assert len(s) <= nmea.MAX_SENTENCE, s
+        pynmea2.parse(s.strip(), check=True)

@@ -77,11 +77,13 @@ def _lon(lon: float) -> tuple[str, str]:
 
 
 def _dm(deg: float, width: int) -> str:
-    # degrees and decimal minutes, 7 decimals of a minute (about 0.2 mm); round first so 59.99999995 carries.
-    total = round(deg * 60.0 * 1e7)
-    d, rem = divmod(total, 60 * 10 ** 7)
-    mi, frac = divmod(rem, 10 ** 7)
-    return f"{d:0{width}d}{mi:02d}.{frac:07d}"
+    # Degrees and decimal minutes with 6 decimals of a minute (1.9 mm of latitude): far below
+    # the pose's accuracy, and short enough to keep RMC within the 82-character sentence limit.
+    # Round the whole value first so 59.9999999 minutes carries into the degrees.
+    total = round(deg * 60.0 * 1e6)
+    d, rem = divmod(total, 60 * 10 ** 6)
+    mi, frac = divmod(rem, 10 ** 6)
+    return f"{d:0{width}d}{mi:02d}.{frac:06d}"
 
 
 def _hms(utc: _dt.datetime) -> str:
@@ -89,8 +91,15 @@ def _hms(utc: _dt.datetime) -> str:
     return f"{utc.hour:02d}{utc.minute:02d}{utc.second:02d}.{cs:02d}"
 
 
+MAX_SENTENCE = 82  # characters from "$" to the end of CR LF (NMEA 0183; common practice, from memory)
+_FIELD_MAX = 99999.0
+
+
 def _num(v: float, nd: int) -> str:
-    return f"{v:.{nd}f}" if v is not None and math.isfinite(v) else ""
+    # Clamp so a huge (useless) value cannot overflow the sentence length; 99999 m already says "do not use".
+    if v is None or not math.isfinite(v):
+        return ""
+    return f"{max(-_FIELD_MAX, min(_FIELD_MAX, v)):.{nd}f}"
 
 
 def error_ellipse(cov) -> tuple[float, float, float, float, float]:
@@ -161,7 +170,7 @@ def pose_sentences(pose, utc: _dt.datetime, *, talker: str = "GN", prev=None, al
         if 0.0 < dt <= 5.0 and math.isfinite(pose.x - prev.x + pose.y - prev.y):
             dx, dy = pose.x - prev.x, pose.y - prev.y
             v = math.hypot(dx, dy) / dt
-            speed = f"{v * KNOTS_PER_MPS:.3f}"
+            speed = _num(min(v * KNOTS_PER_MPS, 999.0), 3)
             if v > 0.1:  # below this the direction of a jittering position means nothing
                 course = f"{yaw_to_heading_deg(math.atan2(dy, dx)):.2f}"
     status = "A" if q == "tracking" else "V"
