@@ -13,6 +13,7 @@ import time
 from pathlib import Path
 
 import pytest
+from hypothesis import HealthCheck, given, settings, strategies as st
 
 from tinyloc.link import messages as m, open_endpoint
 
@@ -124,6 +125,28 @@ def test_c_and_python_decoders_agree_on_damaged_streams(sanitized):
     assert c_lines == py_lines
     assert len(c_lines) > 60                                   # about a third of the frames are left intact
     assert "bad_crc=0" not in c_lines[-1] and "too_long=0" not in c_lines[-1]
+
+
+_GOOD = [m.encode_frame(x, i) for i, x in enumerate([
+    m.Pose(1.0, 2.0, 3.0, 0.5, 47.0, 8.0, quality="tracking"), m.Odometry(2.0, 1.0, 0.0, 0.0),
+    m.Imu(3.0, 0.0, 0.0, 9.81), m.Heartbeat(4.0, 7), m.Unknown(5.0, 0x99, bytes(range(1, 60))),
+    m.TimeSync(6.0, "request", 6.0)])]
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.one_of(st.sampled_from(range(len(_GOOD))), st.binary(max_size=80)), max_size=12),
+       st.lists(st.tuples(st.integers(0, 10 ** 6), st.integers(0, 255)), max_size=6))
+def test_c_and_python_agree_on_hypothesis_streams(sanitized, parts, edits):
+    """Property: for any mix of frames, noise and byte edits, both decoders give the same output."""
+    stream = bytearray()
+    for p in parts:
+        stream += _GOOD[p] if isinstance(p, int) else p
+    for pos, val in edits:
+        if stream:
+            stream[pos % len(stream)] = val
+    r = subprocess.run([str(sanitized), "--decode"], input=bytes(stream), capture_output=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.decode().splitlines() == _python_decode(bytes(stream))
 
 
 def test_example_builds_strict(tmp_path):
