@@ -68,7 +68,7 @@ def register(parser):
                    help="robot base frame in /tf_static (default: base_footprint, else base_link)")
     c.add_argument("--origin", metavar="LAT,LON[,H]",
                    help="ENU origin for run.json and the truth poses (default: the first GNSS fix); write "
-                        "--origin=-34.5,-58.4 when the latitude is negative")
+                        "--origin=-12.3456,-45.6789 when the latitude is negative")
     c.add_argument("--gnss-acc", type=float, metavar="M",
                    help="1-sigma accuracy (m) for fixes with unknown covariance (default: drop them)")
     c.add_argument("--record-time", action="store_true",
