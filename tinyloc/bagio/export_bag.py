@@ -219,7 +219,7 @@ def export_bag(result, out, *, run=None, time_base_ns: int | None = None, frame_
     except BaseException:
         try:
             writer.close()
-        except Exception:
+        except Exception:  # the partial output is deleted anyway; the first error is the one to report
             pass
         shutil.rmtree(tmp_dir, ignore_errors=True)
         raise
