@@ -14,21 +14,32 @@ from _link_helpers import PtyCable
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="pseudo-terminal test needs Linux ptys")
 def test_listen_and_send_demo_over_a_pty_pair(tmp_path):
+    import signal
+    import threading
+
     cable = PtyCable(tmp_path, baud=115200)
+    rows = []
     try:
         listen = subprocess.Popen([sys.executable, "-m", "tinyloc", "link", "listen", str(cable.end_b), "--json",
-                                   "--for", "2.5", "--stats", "0"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                   "--for", "30", "--stats", "0"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                                   text=True)
         # pyserial drops input waiting at open: start sending once the listener has its port open
         assert "listening on" in listen.stderr.readline()
+        reader = threading.Thread(target=lambda: rows.extend(json.loads(s) for s in listen.stdout), daemon=True)
+        reader.start()
         send = subprocess.run([sys.executable, "-m", "tinyloc", "link", "send", str(cable.end_a), "--demo",
                                "--rate", "100", "--for", "1.2"], capture_output=True, text=True, timeout=30)
-        out, err = listen.communicate(timeout=30)
+        sent = int(send.stderr.split("sent ")[1].split()[0])
+        end = time.monotonic() + 5.0
+        while len(rows) < sent and time.monotonic() < end:
+            time.sleep(0.02)
+        listen.send_signal(signal.SIGINT)          # Ctrl-C: the listener prints its counters and exits 0
+        err = listen.stderr.read()
+        listen.wait(timeout=10)
+        reader.join(timeout=5)
     finally:
         cable.close()
     assert send.returncode == 0 and listen.returncode == 0, send.stderr + err
-    sent = int(send.stderr.split("sent ")[1].split()[0])
-    rows = [json.loads(s) for s in out.splitlines()]
     assert sent >= 100 and len(rows) == sent
     assert [r["seq"] for r in rows] == list(range(sent))
     assert {r["quality"] for r in rows} == {"searching", "tracking"}

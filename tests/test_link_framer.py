@@ -64,7 +64,7 @@ def _damage(frame: bytes, op: int, pos: int, val: int) -> bytes:
     return bytes(b)
 
 
-@settings(max_examples=500, deadline=None)
+@settings(max_examples=250, deadline=None)
 @given(st.lists(st.tuples(st.integers(0, 29), st.integers(0, 4), st.integers(0, 10 ** 6), st.integers(0, 10 ** 6)),
                 min_size=1, max_size=12),
        st.binary(max_size=40))
@@ -87,7 +87,7 @@ def test_damaged_frames_rejected_intact_frames_recovered(damage, noise):
     assert intact <= got
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=100, deadline=None)
 @given(st.binary(min_size=1, max_size=600), st.lists(st.integers(1, 50), min_size=1, max_size=40))
 def test_chunking_does_not_matter(noise, cuts):
     stream = noise + b"".join(GOOD[:6]) + noise[:20] + b"".join(GOOD[6:12])
