@@ -14,6 +14,7 @@ GEOM = MapGeometry(0.0, 200.0, 0.5)
 
 
 def _filter(n=16, A=8, **kw):
+    kw.setdefault("likelihood_weight", 1.0)
     return GridFilter(GEOM, TrackParams(window_cells=n, headings=A, floor=0.0, q_xy_m2=0.0, q_xy_per_m=0.0,
                                         q_yaw_rad2=0.0, q_yaw_per_m=0.0, q_yaw_per_rad=0.0, **kw))
 
@@ -316,7 +317,7 @@ def _gauss_volume(f, x, y, yaw, sx, syaw):
 
 
 def test_estimate_recovers_a_sub_cell_gaussian_peak():
-    f = GridFilter(GEOM, TrackParams(window_cells=32, headings=64, floor=0.0))
+    f = GridFilter(GEOM, TrackParams(window_cells=32, headings=64, floor=0.0, likelihood_weight=1.0))
     f.reset(50.0, 150.0)
     x, y, yaw = 50.37, 149.81, 0.4321
     e = None
@@ -331,7 +332,7 @@ def test_estimate_recovers_a_sub_cell_gaussian_peak():
 
 
 def test_two_modes_give_a_large_covariance_not_a_confident_mean():
-    f = GridFilter(GEOM, TrackParams(window_cells=64, headings=32, floor=0.0))
+    f = GridFilter(GEOM, TrackParams(window_cells=64, headings=32, floor=0.0, likelihood_weight=1.0))
     f.reset(50.0, 150.0)
     v1 = _gauss_volume(f, 45.0, 150.0, 0.0, 0.5, 0.05)
     v2 = _gauss_volume(f, 55.0, 150.0, 0.0, 0.5, 0.05)

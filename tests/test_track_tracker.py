@@ -74,6 +74,8 @@ class PlantedMatcher:
 
 
 def _params(**kw):
+    # planted frames are independent and their log-likelihoods calibrated: no tempering
+    kw.setdefault("likelihood_weight", 1.0)
     return TrackParams(window_cells=48, headings=64, **kw)
 
 

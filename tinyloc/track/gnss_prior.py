@@ -45,6 +45,9 @@ class GnssParams:
         A fix farther than ``max(disagree_m, 3 * scale)`` from the estimate disagrees with it (m).
     disagree_s : float
         Sustained disagreement for this long asks for a global check (s).
+    gate_m : float
+        Global-search candidates farther than ``max(gate_m, 5 * scale)`` from a fresh fix are not
+        considered (the pose near the current estimate always is) (m).
     """
 
     sigma_floor_m: float = 3.0
@@ -56,6 +59,7 @@ class GnssParams:
     max_age_s: float = 2.0
     disagree_m: float = 15.0
     disagree_s: float = 4.0
+    gate_m: float = 30.0
 
 
 def effective_sigma_m(acc_m: float, p: GnssParams) -> float:

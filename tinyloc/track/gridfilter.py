@@ -124,8 +124,11 @@ class TrackParams:
     floor : float
         Share of probability mixed back in uniformly after each update [1e-4].
     likelihood_weight : float
-        Extra tempering exponent on each frame's log-likelihood [1.0]; lower it when frames are
-        strongly correlated (high frame rate, slow robot).
+        Tempering exponent on each frame's log-likelihood, also applied to global-search scores
+        [0.1]. Successive frames see mostly the same scene, so their likelihoods are far from
+        independent, and the correlator's scores are not yet calibrated (temperature 1.0): at
+        weight 1 one frame decides the belief. 0.1 was chosen on a simulated drive (docs/tracking.md);
+        raise it if the correlator's temperature is calibrated.
     loglik_clip : float
         Dynamic range kept below the frame's best log-likelihood [40].
     q_xy_m2, q_xy_per_m : float
@@ -174,7 +177,7 @@ class TrackParams:
     window_cells: int = 64
     headings: int = 256
     floor: float = 1e-4
-    likelihood_weight: float = 1.0
+    likelihood_weight: float = 0.1
     loglik_clip: float = 40.0
     q_xy_m2: float = 1e-4
     q_xy_per_m: float = 4e-3
@@ -861,7 +864,7 @@ class Tracker:
         f = self.filter
         H, W = ev.best.shape
         sc = self._score_for(H, W)
-        sc[:] = ev.best
+        np.multiply(ev.best, p.likelihood_weight, out=sc)  # the same tempering as the update
         if g is not None:
             # robust GNSS prior on the candidates (same tempering as while searching)
             rows = ev.row0 + ev.scale * (np.arange(H) + 0.5)
@@ -869,8 +872,12 @@ class Tracker:
             fr, fc = self.geom.cell_of(g[0], g[1])
             s = g[2] / self.geom.res_m
             nu = p.gnss.nu
-            d2 = ((rows - fr)[:, None] ** 2 + (cols - fc)[None, :] ** 2) / (nu * s * s)
-            sc += np.log1p(d2) * (-0.5 * (nu + 2.0) * p.gnss.weight_search)
+            r2 = (rows - fr)[:, None] ** 2 + (cols - fc)[None, :] ** 2
+            sc += np.log1p(r2 / (nu * s * s)) * (-0.5 * (nu + 2.0) * p.gnss.weight_search)
+            gate = max(p.gnss.gate_m / self.geom.res_m, 5.0 * s)
+            gated = r2 > gate * gate
+        else:
+            gated = None
         score = sc
 
         def pose_at(i, j):
@@ -879,6 +886,8 @@ class Tracker:
             return x, y, yaw
 
         if self.state == "searching" or self.last is None:
+            if gated is not None and not gated.all():
+                score[gated] = -np.inf
             k = int(np.argmax(score))
             bx, by, byaw = pose_at(*divmod(k, W))
             if self._far_from_window(bx, by):
@@ -897,6 +906,8 @@ class Tracker:
         lo_i, hi_i, lo_j, hi_j = max(0, i0 - rad), min(H, i0 + rad + 1), max(0, j0 - rad), min(W, j0 + rad + 1)
         if lo_i < hi_i and lo_j < hi_j:
             score[lo_i:hi_i, lo_j:hi_j] = -np.inf
+        if gated is not None:
+            score[gated] = -np.inf  # "elsewhere" must also be where the fix allows
         k = int(np.argmax(score))
         bi, bj = divmod(k, W)
         alt = float(score[bi, bj])
