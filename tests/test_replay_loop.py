@@ -187,7 +187,7 @@ def test_full_loop_replay_of_simulated_drives(sim_site, tmp_path, capsys):
     for key, raw, shown in cells:
         v = m
         for part in html.unescape(key).split("/"):
-            v = v[part]
+            v = v[int(part)] if isinstance(v, list) else v[part]
         if v is None:
             assert shown == "n/a"
         elif not isinstance(v, str):

@@ -275,3 +275,20 @@ def test_lost_spells_start_after_the_given_fix():
     # From the first good frame: spells 1..2 and 5..6; from a fix at frame 3: only 5..6.
     assert [(s.start, s.end) for s in M.lost_spells(t, good, dist, min_lost_s=0.0)] == [(1, 3), (5, 7)]
     assert [(s.start, s.end) for s in M.lost_spells(t, good, dist, min_lost_s=0.0, start=3)] == [(5, 7)]
+
+
+def test_signoff_rules():
+    from tinyloc.errors import InputError
+    from tinyloc.replay.signoff import check, parse_rule
+
+    m = {"recall": {"1m_3deg": 0.92}, "median_error_m": 0.31, "first_good_fix": {"time_s": None}}
+    rules = [parse_rule(r) for r in ("recall/1m_3deg>=0.9", "median_error_m < 0.3", "first_good_fix/time_s<=5",
+                                     "nope/x==1", "recall/1m_3deg==0.92")]
+    res = check(m, rules)
+    assert [c["passed"] for c in res["checks"]] == [True, False, False, False, True]
+    assert res["checks"][2]["why"] == "no value (null)" and res["checks"][3]["why"].startswith("no such figure")
+    assert res["passed"] is False and check(m, [])["passed"] is True
+    assert parse_rule("a/b>=1e-3").value == 1e-3
+    for bad in ("recall", "recall>=x", "a => 1", ">= 3"):
+        with pytest.raises(InputError):
+            parse_rule(bad)

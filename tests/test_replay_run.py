@@ -39,7 +39,7 @@ def _cells(text):
 
 def _get(d, key):
     for k in key.split("/"):
-        d = d[k]
+        d = d[int(k)] if isinstance(d, list) else d[k]
     return d
 
 
@@ -244,3 +244,25 @@ def test_a_localizer_that_raises_on_some_frames_does_not_stop_the_run(site):
     assert all(res.records.quality[i] == "no-fix" for i in bad)
     assert sum("localizer raised" in g for g in res.gaps) == 8
     assert res.metrics["missed_frames"] == 8
+
+
+def test_signoff_rules_pass_fail_and_exit_status(site, tmp_path, capsys):
+    out = tmp_path / "s"
+    rc = main(["replay", str(site["run"]), "-o", str(out), "--json", "-q", "--localizer", HELPER,
+               "--require", "recall/2m_5deg>=0.5", "--require", "median_error_m<=0.01",
+               "--require", "first_good_fix/time_s<=100"])
+    assert rc == 1
+    cap = capsys.readouterr()
+    m = json.loads(cap.out)
+    assert [c["passed"] for c in m["signoff"]["checks"]] == [True, False, True]
+    assert m["signoff"]["passed"] is False
+    assert "sign-off failed" in cap.err and "median_error_m<=0.01" in cap.err
+    text = (out / "report.html").read_text()
+    assert "Sign-off: <span class='verdict-bad'>FAILED</span>" in text
+    for key, raw, shown in _cells(text):  # the rule values are metrics.json's numbers too
+        if key.startswith("signoff/"):
+            assert float(raw) == _get(m, key)
+    assert main(["replay", str(site["run"]), "-o", str(out), "-q", "--localizer", HELPER,
+                 "--require", "recall/1m_3deg>0.5"]) == 0
+    assert main(["replay", str(site["run"]), "-q", "--localizer", HELPER, "--require", "recall >= lots"]) == 2
+    assert "--require: expected KEY>=NUMBER" in capsys.readouterr().err

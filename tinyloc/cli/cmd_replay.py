@@ -34,6 +34,7 @@ localizers that need none can do.
 
 examples:
   tinyloc replay drives/loop-3 --map site.tlm -o report/
+  tinyloc replay drives/ --map site.tlm --require recall/1m_3deg>=0.9 --require inside_95_ellipse>=0.9
   tinyloc replay drives/ --map site.tlm -o reports/ --jobs 2
   tinyloc replay drives/loop-3 --map site.tlm --json | jq .recall
 """
@@ -62,6 +63,10 @@ def register(p):
     p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE", dest="overrides",
                    help="override one loop setting, e.g. --set track.floor=1e-3 (repeatable): how a drive is "
                         "re-scored while tuning")
+    p.add_argument("--require", action="append", default=[], metavar="KEY>=NUMBER",
+                   help="sign-off rule on a figure of metrics.json (path with '/', operators >= <= > < ==), e.g. "
+                        "--require recall/1m_3deg>=0.9 --require quality/tracking_but_wrong_share<=0.01; "
+                        "a run that misses one fails (exit status 1); a missing figure fails (repeatable)")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 
@@ -104,8 +109,11 @@ def _params(args):
 def run(args) -> int:
     from ..replay.batch import Job, format_table, resolve_factory, run_batch
 
+    from ..replay.signoff import parse_rule
+
     runs = expand_runs(args.runs)
     params = _params(args)
+    rules = tuple(parse_rule(r) for r in args.require)
     resolve_factory(args.localizer)  # bad spec: fail before starting any worker
     if args.localizer == "loop":
         from ..runtime.config import load_config
@@ -121,7 +129,7 @@ def run(args) -> int:
     dup = {n for n in names if names.count(n) > 1}
     names = [f"{n}-{i}" if n in dup else n for i, n in enumerate(names)]
     jobs = [Job(run=r, out_dir=str(out if single else out / n), map_path=args.map, localizer=args.localizer,
-                params=params, report=not args.no_report, config=args.config, overrides=tuple(args.overrides))
+                params=params, report=not args.no_report, config=args.config, overrides=tuple(args.overrides), require=rules)
             for r, n in zip(runs, names)]
     rows = run_batch(jobs, workers=args.jobs or None, show_progress=not args.quiet)
     failed = [r for r in rows if r.get("error")]
@@ -143,7 +151,14 @@ def run(args) -> int:
     else:
         print(format_table(rows))
         print(f"outputs in {out}/")
+    rc = 0
     if failed:
         print(f"tinyloc: {len(failed)} of {len(rows)} runs failed", file=sys.stderr)
-        return 1
-    return 0
+        rc = 1
+    refused = [r for r in rows if not r.get("error") and r.get("signoff") is False]
+    for r in refused:
+        bad = [c for c in r["metrics"]["signoff"]["checks"] if not c["passed"]]
+        print(f"tinyloc: sign-off failed for {r['run']}: " +
+              "; ".join(f"{c['rule']} ({c['why']}, value {c['value']})" for c in bad), file=sys.stderr)
+        rc = 1
+    return rc

@@ -24,7 +24,7 @@ from .replay import ReplayParams
 
 SUMMARY_COLUMNS = ("run", "frames", "recall_1m_3deg", "median_error_m", "p90_error_m", "median_heading_error_deg",
                    "gnss_median_error_m", "dr_median_error_m", "inside_95_ellipse", "first_good_fix_s", "lost_spells",
-                   "gaps", "frame_ms_median", "frames_per_s", "error")
+                   "gaps", "frame_ms_median", "frames_per_s", "signoff", "error")
 
 
 @dataclass(frozen=True)
@@ -45,6 +45,8 @@ class Job:
     params : ReplayParams
     report : bool
         Write report.html.
+    require : tuple of Rule
+        Sign-off rules checked on the metrics (:mod:`tinyloc.replay.signoff`).
     config : str or None
         The live loop's TOML config file (``localizer="loop"`` only).
     overrides : tuple of str
@@ -59,6 +61,7 @@ class Job:
     report: bool = True
     config: str | None = None
     overrides: tuple = ()
+    require: tuple = ()
 
 
 def resolve_factory(spec: str):
@@ -161,6 +164,10 @@ def _run_job(job: Job, index: int, row: dict) -> dict:
                                 if isinstance(v, (int, str, bool)) or (isinstance(v, float) and math.isfinite(v))}
         except Exception:  # noqa: BLE001 - health is informative only
             pass
+    if job.require:
+        from .signoff import check
+
+        m["signoff"] = check(m, list(job.require))
     write_csv(res.records, out / "frames.csv")
     (out / "metrics.json").write_text(json.dumps(m, indent=1, allow_nan=False) + "\n", encoding="utf-8")
     if job.report:
@@ -178,7 +185,8 @@ def summary_row(run: str, m: dict) -> dict:
             "gnss_median_error_m": m["gnss_median_error_m"], "dr_median_error_m": m.get("dr_median_error_m"),
             "inside_95_ellipse": m["inside_95_ellipse"], "first_good_fix_s": m["first_good_fix"]["time_s"],
             "lost_spells": m["lost"]["spells"], "gaps": m["gaps"]["count"], "frame_ms_median": m["frame_ms_median"],
-            "frames_per_s": m["replay"]["frames_per_s"], "metrics": m, "error": None}
+            "frames_per_s": m["replay"]["frames_per_s"],
+            "signoff": (m["signoff"]["passed"] if "signoff" in m else None), "metrics": m, "error": None}
 
 
 class Bar:
@@ -284,6 +292,8 @@ def format_table(rows: list[dict]) -> str:
             ("dr_median_error_m", "DR m", "{:.2f}"), ("inside_95_ellipse", "in95", "{:.3f}"),
             ("first_good_fix_s", "fix s", "{:.1f}"), ("lost_spells", "lost", "{}"), ("gaps", "gaps", "{}"),
             ("frame_ms_median", "ms", "{:.1f}"), ("frames_per_s", "fps", "{:.1f}")]
+    if any(r.get("signoff") is not None for r in rows):
+        cols.append(("signoff", "sign-off", "{}"))
     table = [[h for _, h, _ in cols]]
     errors = []
     for r in rows:
@@ -291,8 +301,9 @@ def format_table(rows: list[dict]) -> str:
             table.append([_short(r["run"])] + ["FAILED"] + [""] * (len(cols) - 2))
             errors.append(r["error"])
             continue
-        table.append([_short(r["run"]) if k == "run" else ("n/a" if r.get(k) is None else f.format(r[k]))
-                      for k, _, f in cols])
+        table.append([_short(r["run"]) if k == "run" else
+                      ("n/a" if r.get(k) is None else ({True: "pass", False: "FAIL"}[r[k]] if k == "signoff"
+                                                       else f.format(r[k]))) for k, _, f in cols])
     widths = [max(len(row[c]) for row in table) for c in range(len(cols))]
     lines = ["  ".join(v.ljust(widths[c]) if c == 0 else v.rjust(widths[c]) for c, v in enumerate(row))
              for row in table]

@@ -330,11 +330,14 @@ def plot_calibration(rec, mpl) -> str:
 
 # ----------------------------------------------------------------------------- HTML
 
-def _get(d: dict, key: str):
+def _get(d, key: str):
     for k in key.split("/"):
-        if not isinstance(d, dict) or k not in d:
+        if isinstance(d, list) and k.isdigit() and int(k) < len(d):
+            d = d[int(k)]
+        elif isinstance(d, dict) and k in d:
+            d = d[k]
+        else:
             return None
-        d = d[k]
     return d
 
 
@@ -391,6 +394,18 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
         out.append("<p>" + " &middot; ".join(html.escape(f"{k}: {v}") for k, v in run.items()) + "</p>")
     for n in notes or []:
         out.append(f"<p class='note'>{html.escape(n)}</p>")
+
+    so = metrics.get("signoff")
+    if so:
+        verdict = "passed" if so["passed"] else "FAILED"
+        cls = "verdict-good" if so["passed"] else "verdict-bad"
+        out.append(f"<h2>Sign-off: <span class='{cls}'>{verdict}</span></h2><table><tr><th>rule</th><th>value</th>"
+                   "<th>result</th></tr>")
+        for k, c in enumerate(so["checks"]):
+            res = "pass" if c["passed"] else f"FAIL ({c['why']})"
+            out.append(f"<tr><td>{html.escape(c['rule'])}</td>{_cell(metrics, f'signoff/checks/{k}/value', '{:.4g}')}"
+                       f"<td class='{'verdict-good' if c['passed'] else 'verdict-bad'}'>{html.escape(res)}</td></tr>")
+        out.append("</table>")
 
     # Headline table.
     out.append("<h2>Summary</h2><table><tr><th>figure</th><th>tinyloc</th><th>GNSS only</th>"
