@@ -270,8 +270,8 @@ def _sky(dx, dy, dz, sun, p_sky, t_s):
 @njit(**PJIT)
 def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph, objs,
                  gmat, g_x0, g_y1, g_res, gcolor, gclass, shadow, s_x0, s_y1, s_res,
-                 grid_c, grid_s, sun, light, p_sky, t_s, max_t, haze_m, lut, gains, noise_sigma, frame_seed,
-                 pix_ang, out_bgr, out_lab):
+                 grid_c, grid_s, sun, light, p_sky, t_s, max_t, haze_m, lut, gains, saturation, noise_sigma,
+                 frame_seed, pix_ang, out_bgr, out_lab):
     """Ray-cast every pixel; writes BGR uint8 (H, W, 3) and class labels (H, W).
 
     rays (H, W, 3) base-frame unit rays; vig (H, W) vignetting gain; R, org world_from_base rotation and the
@@ -279,7 +279,7 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
     boxes carry two extra columns (cos, sin of the yaw); objs (N, 2) int (kind, row); gmat ground materials (north-up raster), gcolor/gclass per material;
     shadow light fraction raster (uint8); grid_c/grid_s rotation of the street grid (paving joints);
     sun unit vector; light (sun r, g, b, ambient r, g, b); lut (L,) tone curve to uint8 over linear 0..2;
-    gains (3,) exposure x white balance (r, g, b).
+    gains (3,) exposure x white balance (r, g, b); saturation 1 = as shaded, 0 = gray.
     """
     H, W = out_lab.shape
     gh, gw = gmat.shape
@@ -388,11 +388,15 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
                                 k = 0.8 + 0.3 * f1 + 0.3 * f2 + 0.3 * (f3 - 0.5)
                             cr, cg, cb = cr * k, cg * k, cb * k
                         # shadow lookup
-                        sc = np.int64(math.floor((x - s_x0) / s_res))
-                        sr = np.int64(math.floor((s_y1 - y) / s_res))
+                        fc = (x - s_x0) / s_res - 0.5  # bilinear between cell centres
+                        fr = (s_y1 - y) / s_res - 0.5
+                        sc = np.int64(math.floor(fc))
+                        sr = np.int64(math.floor(fr))
                         lit = 1.0
-                        if sr >= 0 and sr < sh_h and sc >= 0 and sc < sh_w:
-                            lit = shadow[sr, sc] * (1.0 / 255.0)
+                        if sr >= 0 and sr < sh_h - 1 and sc >= 0 and sc < sh_w - 1:
+                            ac, ar = fc - sc, fr - sr
+                            lit = ((shadow[sr, sc] * (1 - ac) + shadow[sr, sc + 1] * ac) * (1 - ar) +
+                                   (shadow[sr + 1, sc] * (1 - ac) + shadow[sr + 1, sc + 1] * ac) * ar) * (1.0 / 255.0)
                         sunlit = lit * max(sun[2], 0.0)
                     else:
                         kind = objs[hit, 0]
@@ -539,6 +543,11 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
                 out_lab[v, u] = cls
                 # tone map, noise
                 g = vig[v, u]
+                if saturation != 1.0:
+                    lum = 0.3 * q0 + 0.59 * q1 + 0.11 * q2
+                    q0 = lum + saturation * (q0 - lum)
+                    q1 = lum + saturation * (q1 - lum)
+                    q2 = lum + saturation * (q2 - lum)
                 pid = np.int64(v) * 7919 + np.int64(u)
                 hA = np.int64(_hash3(pid, frame_seed, 1) * 1073741824.0)
                 hB = np.int64(_hash3(pid, frame_seed, 2) * 1073741824.0)

@@ -33,7 +33,7 @@ from ..classes import DYNAMIC
 from ..errors import InputError
 from ..frames import rpy_to_matrix
 from . import _render_kernels as K
-from .world import (B_CX, B_CY, B_HX, B_HY, B_Z0, B_Z1, C_CX, C_CY, C_R, C_Z0, C_Z1, GROUND_CLASS, GROUND_COLOR,
+from .world import (GM, B_CX, B_CY, B_HX, B_HY, B_Z0, B_Z1, C_CX, C_CY, C_R, C_Z0, C_Z1, GROUND_CLASS, GROUND_COLOR,
                     S_CX, S_CY, S_CZ, S_RXY, S_RZ, World, ground_raster, shadow_raster, sun_vector)
 
 TILE = 16
@@ -58,7 +58,9 @@ class RenderParams:
     exposure_s : float
         Exposure time used by the motion blur (s).
     cloud_cover : float
-        0 clear .. 1 overcast.
+        0 clear .. 1 overcast (sunlight and shadows fade above 0.5).
+    saturation : float
+        Colour saturation of the camera (1 = as shaded, 0 = gray).
     ground_res_m, shadow_res_m : float
         Resolutions of the ground-material and shadow rasters.
     tile_capacity : int
@@ -72,6 +74,7 @@ class RenderParams:
     motion_blur: bool = False
     exposure_s: float = 0.012
     cloud_cover: float = 0.45
+    saturation: float = 0.85
     ground_res_m: float = 0.05
     shadow_res_m: float = 0.1
     tile_capacity: int = 384
@@ -152,12 +155,15 @@ class Renderer:
         self._s = s
         yaw = float(world.meta.get("grid_yaw_rad", 0.0))
         self._grid_cs = (math.cos(yaw), math.sin(yaw))
-        self.gcolor = np.ascontiguousarray(GROUND_COLOR, dtype=np.float64)
+        gcol = np.array(GROUND_COLOR, dtype=np.float64)
+        for name, rgb in world.meta.get("palette", {}).items():  # per-site material colours
+            if name in GM:
+                gcol[GM[name]] = rgb
+        self.gcolor = np.ascontiguousarray(gcol)
         self.gclass = np.ascontiguousarray(GROUND_CLASS)
-        sun_rgb = np.array([1.0, 0.93, 0.82]) * 1.25
-        amb_rgb = np.array([0.36, 0.42, 0.52]) * (0.9 + 0.6 * params.cloud_cover)
-        if params.cloud_cover > 0.8:
-            sun_rgb *= 0.4
+        overcast = max(0.0, params.cloud_cover - 0.5) / 0.5
+        sun_rgb = np.array([1.0, 0.93, 0.82]) * 1.25 * (1.0 - 0.85 * overcast)
+        amb_rgb = np.array([0.36, 0.42, 0.52]) * (0.9 + 0.6 * params.cloud_cover) + 0.1 * overcast
         self.light = np.concatenate([sun_rgb, amb_rgb])
         self.p_sky = np.array([params.cloud_cover, 0.0016 * 400.0, float(seed % 100000), params.haze_m])
         self.lut = _tone_lut()
@@ -274,8 +280,8 @@ class Renderer:
         K.render_tiles(self.rays, self.vig, R, org, self.tile_obj, self.tile_n, self.tile_px, boxes, cyls, sph, objs,
                        g.data, g.x_min, g.y_max, g.res_m, self.gcolor, self.gclass, s.data, s.x_min, s.y_max,
                        s.res_m, self._grid_cs[0], self._grid_cs[1], self.sun, self.light, self.p_sky, float(t_s),
-                       p.max_range_m * 4.0, p.haze_m, self.lut, gains, p.noise_sigma, int(frame_index) + 1,
-                       self.pix_ang, ob, ol)
+                       p.max_range_m * 4.0, p.haze_m, self.lut, gains, float(p.saturation), p.noise_sigma,
+                       int(frame_index) + 1, self.pix_ang, ob, ol)
         if p.blur_sigma_px > 0:
             cv2.GaussianBlur(ob, (0, 0), p.blur_sigma_px, dst=ob)
         if p.motion_blur:

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 import sys
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -29,6 +29,9 @@ DEFAULT_CAMERA = CameraModel(width=640, height=480, fx=450.0, fy=450.0, cx=319.5
                              dist=(-0.08, 0.015, 0.0, 0.0, 0.0), mount=Mount(height_m=0.8, pitch_deg=8.0))
 
 
+AE_TARGET = 105.0  # auto-exposure target: mean 8-bit level of a frame
+
+
 @dataclass(frozen=True)
 class RunParams:
     """Everything that shapes a simulated run, besides the world and the seed."""
@@ -41,6 +44,10 @@ class RunParams:
     exposure_drift: float = 0.12       # 1-sigma of the log exposure drift
     wb_drift: float = 0.04             # 1-sigma of the white-balance channel gains
     sun_el_deg: tuple = (25.0, 60.0)   # range drawn per run
+    cloud_cover: tuple = (0.1, 0.95)   # range drawn per run (above 0.5 the sun fades: overcast)
+    saturation: tuple = (0.55, 0.95)   # camera colour saturation, drawn per run
+    exposure: tuple = (0.7, 1.05)      # nominal exposure gain, drawn per run
+    auto_exposure: bool = True         # the camera's auto exposure (one frame late, as real ones are)
     drive: DriveParams = field(default_factory=DriveParams)
     imu: ImuParams = field(default_factory=ImuParams)
     odometry: OdometryParams = field(default_factory=OdometryParams)
@@ -103,24 +110,33 @@ def make_run(world: World, out_dir, *, seed: int, params: RunParams = RunParams(
     t_frames = t0 + np.arange(params.frames) / params.frame_rate_hz
     st = traj.at(t_frames)
     n = params.frames
-    expo = np.exp(_ou(r_look, n, params.exposure_drift, 3.0 * params.frame_rate_hz))
+    cloud = float(r_look.uniform(*params.cloud_cover))
+    sat = float(r_look.uniform(*params.saturation))
+    expo0 = float(r_look.uniform(*params.exposure))
+    expo = expo0 * np.exp(_ou(r_look, n, params.exposure_drift, 3.0 * params.frame_rate_hz))
     wb = 1.0 + np.stack([_ou(r_look, n, params.wb_drift, 5.0 * params.frame_rate_hz) for _ in range(3)], axis=1)
     wb[:, 1] = 1.0  # white balance drifts red and blue against green
-    renderer = Renderer(world, cam, params.render, sun_az_deg=sun_az, sun_el_deg=sun_el, seed=int(seed))
+    rparams = replace(params.render, cloud_cover=cloud, saturation=sat)
+    renderer = Renderer(world, cam, rparams, sun_az_deg=sun_az, sun_el_deg=sun_el, seed=int(seed))
     meta = {"simulated": {"seed": int(seed), "site": world.meta.get("name"), "site_seed": world.meta.get("seed"),
-                          "sun_az_deg": sun_az, "sun_el_deg": sun_el, "frame_rate_hz": params.frame_rate_hz,
+                          "sun_az_deg": sun_az, "sun_el_deg": sun_el, "cloud_cover": cloud, "saturation": sat,
+                          "exposure": expo0, "frame_rate_hz": params.frame_rate_hz,
                           "odometry": asdict(params.odometry), "gnss": asdict(params.gnss), "imu": asdict(params.imu)}}
     lat_f, lon_f = frame.to_latlon(st["x"], st["y"])
     lat_g, lon_g = frame.to_latlon(gn["x"], gn["y"])
     render_ms = []
+    ae = 1.0  # auto exposure: steers the frame's mean level towards AE_TARGET, reacting one frame late
     with RunWriter(out_dir, camera=cam, origin=world.origin, name=name, source="tinyloc sim run",
                    extra=meta, image_ext=params.image_ext, jpeg_quality=params.jpeg_quality) as w:
         for k in range(n):
             pose = (st["x"][k], st["y"][k], st["roll"][k], st["pitch"][k], st["yaw"][k])
             a = time.perf_counter()
-            bgr, lab = renderer.render(pose, t_s=float(t_frames[k]), frame_index=k, exposure=float(expo[k]),
+            bgr, lab = renderer.render(pose, t_s=float(t_frames[k]), frame_index=k, exposure=float(expo[k]) * ae,
                                        white_balance=tuple(wb[k]), rates=(st["yaw_rate"][k], 0.0, st["speed"][k]))
             render_ms.append((time.perf_counter() - a) * 1e3)
+            if params.auto_exposure:
+                level = float(bgr[::8, ::8].mean()) + 1.0
+                ae = float(np.clip(ae * (AE_TARGET / level) ** 0.6, 0.5, 2.5))
             w.add_frame(float(t_frames[k]), bgr, label=lab if params.write_labels else None)
             w.add_truth(float(t_frames[k]), float(lat_f[k]), float(lon_f[k]), float(st["yaw"][k]),
                         float(st["x"][k]), float(st["y"][k]))

@@ -510,7 +510,15 @@ def generate_site(seed: int, params: SiteParams = SiteParams()) -> Site:
     bounds = (float(corners[:, 0].min()), float(corners[:, 1].min()), float(corners[:, 0].max()),
               float(corners[:, 1].max()))
     nodes = [[float(v) for v in rot(np.array([x, y]))] for x in xs for y in ys]
-    meta = {"name": name, "seed": int(seed), "params": asdict(p), "grid_yaw_rad": theta,
+    # per-site material colours (linear RGB): towns differ in paving, asphalt and how green the grass is
+    pave = float(rng.uniform(0.09, 0.30))
+    tint = (1.0 + float(rng.uniform(-0.04, 0.08)), 1.0, 1.0 - float(rng.uniform(0.0, 0.12)))
+    asph = float(rng.uniform(0.05, 0.13))
+    palette = {"paving": [pave * t for t in tint], "curb": [min(0.6, 1.2 * pave * t) for t in tint],
+               "asphalt": [asph, asph, asph * 1.05], "lot": [asph * 1.2, asph * 1.15, asph * 1.1],
+               "grass": [float(rng.uniform(0.07, 0.12)), float(rng.uniform(0.12, 0.18)), float(rng.uniform(0.03, 0.06))],
+               "rough": [float(rng.uniform(0.13, 0.2)), float(rng.uniform(0.13, 0.18)), float(rng.uniform(0.07, 0.1))]}
+    meta = {"name": name, "seed": int(seed), "params": asdict(p), "grid_yaw_rad": theta, "palette": palette,
             "streets": {"xs": [float(v) for v in xs], "ys": [float(v) for v in ys],
                         "lo": [float(lo_x), float(lo_y)], "hi": [float(hi_x), float(hi_y)],
                         "sx": [{k: s[k] for k in ("road", "verge", "walk", "name")} for s in sx],
