@@ -93,7 +93,7 @@ def test_c_and_python_decoders_agree_on_damaged_streams(sanitized):
     for i in range(300):
         k = i % 4
         if k == 0:
-            msg = m.Pose(i * 0.01, rnd.uniform(-99, 99), rnd.uniform(-99, 99), 0.1, 47.0, 8.0, quality="tracking")
+            msg = m.Pose(i * 0.01, rnd.uniform(-99, 99), rnd.uniform(-99, 99), 0.1, 44.44, -101.25, quality="tracking")
         elif k == 1:
             msg = m.Odometry(i * 0.01, rnd.uniform(-9, 9), 0.0, 0.0, left_ticks=i)
         elif k == 2:
@@ -128,7 +128,7 @@ def test_c_and_python_decoders_agree_on_damaged_streams(sanitized):
 
 
 _GOOD = [m.encode_frame(x, i) for i, x in enumerate([
-    m.Pose(1.0, 2.0, 3.0, 0.5, 47.0, 8.0, quality="tracking"), m.Odometry(2.0, 1.0, 0.0, 0.0),
+    m.Pose(1.0, 2.0, 3.0, 0.5, 44.44, -101.25, quality="tracking"), m.Odometry(2.0, 1.0, 0.0, 0.0),
     m.Imu(3.0, 0.0, 0.0, 9.81), m.Heartbeat(4.0, 7), m.Unknown(5.0, 0x99, bytes(range(1, 60))),
     m.TimeSync(6.0, "request", 6.0)])]
 
@@ -174,7 +174,7 @@ def test_example_mcu_over_pty_with_python_host(tmp_path):
         while time.monotonic() - t0 < 1.5:         # 100 Hz poses for 1.5 s
             while n < (time.monotonic() - t0) * 100:
                 q = "tracking" if n % 2 else "degraded"
-                assert host.send(m.Pose(n * 0.01, n * 0.5, 1.0, 0.2, 47.0, 8.0, quality=q, status="ok"))
+                assert host.send(m.Pose(n * 0.01, n * 0.5, 1.0, 0.2, 44.44, -101.25, quality=q, status="ok"))
                 n += 1
             got += host.poll()
             time.sleep(0.001)

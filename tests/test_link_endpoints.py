@@ -24,7 +24,7 @@ needs_pty = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="pse
 
 
 def pose(i, t0=0.0):
-    return m.Pose(t0 + i * 0.01, 100.0 + i * 0.01, -20.0, 0.5, 47.0 + i * 1e-7, 8.0, ((0.1, 0, 0), (0, 0.1, 0),
+    return m.Pose(t0 + i * 0.01, 100.0 + i * 0.01, -20.0, 0.5, 44.44 + i * 1e-7, -101.25, ((0.1, 0, 0), (0, 0.1, 0),
                   (0, 0, 0.01)), "tracking", f"frame {i}", 15.0)
 
 
@@ -61,7 +61,7 @@ def test_send_accepts_pose_estimate_like_objects_and_counts_bad_ones():
     from types import SimpleNamespace
 
     with open_endpoint("loop://") as ep:
-        est = SimpleNamespace(t=1.0, x=1.0, y=2.0, yaw=0.0, lat=47.0, lon=8.0, cov=[[1, 0, 0], [0, 1, 0], [0, 0, 1]],
+        est = SimpleNamespace(t=1.0, x=1.0, y=2.0, yaw=0.0, lat=44.44, lon=-101.25, cov=[[1, 0, 0], [0, 1, 0], [0, 0, 1]],
                               quality="searching", status="lost", modes=[], frame_ms=3.0)
         assert ep.send(est)
         assert not ep.send(SimpleNamespace(t=1.0, x=1.0, y=2.0, yaw=0.0, cov=None, quality="x"))

@@ -15,7 +15,7 @@ def frames(n, seed=1):
         kind = i % 3
         if kind == 0:
             msg = m.Pose(i * 0.01, rnd.uniform(-500, 500), rnd.uniform(-500, 500), rnd.uniform(-3, 3),
-                         47.0 + rnd.random(), 8.0 + rnd.random(), ((0.1, 0, 0), (0, 0.1, 0), (0, 0, 0.01)),
+                         44.4 + rnd.random(), -101.3 + rnd.random(), ((0.1, 0, 0), (0, 0.1, 0), (0, 0, 0.01)),
                          "tracking", "ok")
         elif kind == 1:
             msg = m.Odometry(i * 0.01, rnd.uniform(-5, 5), 0.0, 0.0, left_ticks=rnd.randrange(-99, 99))

@@ -20,7 +20,7 @@ def f32(v):
 
 def sample_messages():
     return [
-        m.Pose(3.25, 10.5, -4.0, 0.75, 47.1234567, 8.7654321, ((0.04, 0.01, 0.0), (0.01, 0.09, 0.0), (0.0, 0.0, 0.003)),
+        m.Pose(3.25, 10.5, -4.0, 0.75, 44.4412345, -101.2476543, ((0.04, 0.01, 0.0), (0.01, 0.09, 0.0), (0.0, 0.0, 0.003)),
                "tracking", "ok", 21.0, seq=3),
         m.Status(4.0, "fault", "degraded", 7, 10, 2, 1, "camera-stalled", seq=4),
         m.TimeSync(5.0, "request", 4.999999, 0.0, 0.0, seq=5),
@@ -59,7 +59,7 @@ def test_pose_fields_on_the_wire():
     assert raw[0] == 1 and raw[1] == 0x01 and struct.unpack_from("<H", raw, 2)[0] == 3
     assert struct.unpack_from("<q", raw, 4)[0] == 3250000 and raw[12] == 74
     x, y, yaw, lat, lon = struct.unpack_from("<fffii", raw, 13)
-    assert (x, y, yaw) == (10.5, -4.0, 0.75) and lat == 471234567 and lon == 87654321
+    assert (x, y, yaw) == (10.5, -4.0, 0.75) and lat == 444412345 and lon == -1012476543
     assert struct.unpack_from("<I", raw, len(raw) - 4)[0] == crc32(raw[:-4])
     back = m.decode_frame(wire[1:-1])
     c = np.array(back.cov)
@@ -151,7 +151,7 @@ def test_map_form_validation():
 
 
 def test_pose_estimate_like_objects_are_sent_as_poses():
-    est = SimpleNamespace(t=1.5, x=1.0, y=2.0, yaw=0.1, lat=47.0, lon=8.0, cov=np.eye(3) * 0.01,
+    est = SimpleNamespace(t=1.5, x=1.0, y=2.0, yaw=0.1, lat=44.44, lon=-101.25, cov=np.eye(3) * 0.01,
                           quality="tracking", modes=[], frame_ms=12.0, status="ok")
     p = m.as_message(est)
     assert type(p) is m.Pose and p.cov[2][2] == 0.01 and p.quality == "tracking"
@@ -207,7 +207,7 @@ def test_no_fix_estimate_with_nones_goes_out_flagged():
 
 def test_runtime_pose_estimate_is_accepted():
     loop = pytest.importorskip("tinyloc.runtime.loop", reason="runtime loop not in this tree yet")
-    est = loop.PoseEstimate(t=1.0, x=3.0, y=4.0, yaw=0.5, lat=47.0, lon=8.0, cov=np.eye(3) * 0.04,
+    est = loop.PoseEstimate(t=1.0, x=3.0, y=4.0, yaw=0.5, lat=44.44, lon=-101.25, cov=np.eye(3) * 0.04,
                             quality="tracking", frame_ms=9.0, status="ok")
     p = m.as_message(est)
     assert (p.x, p.y, p.quality, p.cov[1][1]) == (3.0, 4.0, "tracking", 0.04)

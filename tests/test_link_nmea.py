@@ -27,7 +27,7 @@ def test_checksum_of_published_examples():
 
 
 def pose(quality="tracking", **kw):
-    base = dict(t=100.0, x=12.0, y=-3.0, yaw=heading_deg_to_yaw(30.0), lat=47.3812345678, lon=-8.5401234567,
+    base = dict(t=100.0, x=12.0, y=-3.0, yaw=heading_deg_to_yaw(30.0), lat=44.4412345678, lon=-101.2471234567,
                 cov=((0.25, 0.1, 0.0), (0.1, 0.16, 0.0), (0.0, 0.0, 0.001)), quality=quality, status="ok")
     base.update(kw)
     return m.Pose(**base)
@@ -49,7 +49,7 @@ def test_sentences_parse_to_the_values_sent():
     assert set(msgs) == {"GGA", "RMC", "HDT", "GST"}
     gga, rmc, hdt, gst = msgs["GGA"], msgs["RMC"], msgs["HDT"], msgs["GST"]
     assert gga.talker == "GN"
-    assert abs(gga.latitude - 47.3812345678) < 1e-8 and abs(gga.longitude + 8.5401234567) < 1e-8  # 6 decimals of a minute
+    assert abs(gga.latitude - 44.4412345678) < 1e-8 and abs(gga.longitude + 101.2471234567) < 1e-8  # 6 decimals of a minute
     assert gga.lat_dir == "N" and gga.lon_dir == "W"
     assert gga.gps_qual == 1 and gga.timestamp.replace(tzinfo=None) == dt.time(9, 26, 53, 580000)
     assert float(gga.altitude) == 412.5

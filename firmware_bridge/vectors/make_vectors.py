@@ -32,13 +32,13 @@ def text(s: str) -> str:
 
 
 VECTORS = [
-    ("pose_tracking", m.Pose(12.345678, 103.25, -47.5, f32(1.2345), 47.3812345, 8.5401234,
+    ("pose_tracking", m.Pose(12.345678, 103.25, -47.5, f32(1.2345), 44.4412345, -101.2471234,
                              ((f32(0.04), f32(0.001), 0.0), (f32(0.001), f32(0.09), f32(-0.002)),
                               (0.0, f32(-0.002), f32(0.0025))), "tracking", "ok", 18.5), 7),
     ("pose_nofix", m.Pose(0.0, float("nan"), float("nan"), float("nan"), float("nan"), float("nan"),
                           ((f32(1e6), 0.0, 0.0), (0.0, f32(1e6), 0.0), (0.0, 0.0, f32(10.0))),
                           "no-fix", "waiting-for-map", 0.0), 0),
-    ("pose_degraded_south_west", m.Pose(86400.000001, -1.5, 2.25, -3.0, -33.9012345, -70.6543210,
+    ("pose_degraded_south_west", m.Pose(86400.000001, -1.5, 2.25, -3.0, -44.4412345, -101.2471234,
                                         ((0.25, 0.0, 0.0), (0.0, 0.25, 0.0), (0.0, 0.0, f32(0.01))),
                                         "degraded", "few-features-in-view-xyz", 33.0), 65535),
     ("status_running", m.Status(5.5, "running", "tracking", 3, 1200, 4, 2, "all-good"), 11),

@@ -66,7 +66,7 @@ def run(args) -> dict:
     from ..link import messages as m
     from ..link.framer import Framer
 
-    pose = m.Pose(12.345678, 103.25, -47.5, 1.2345, 47.3812345, 8.5401234,
+    pose = m.Pose(12.345678, 103.25, -47.5, 1.2345, 44.4412345, -101.2471234,
                   ((0.04, 0.001, 0.0), (0.001, 0.09, -0.002), (0.0, -0.002, 0.0025)), "tracking", "ok", 18.5, 7)
     n, rep = args.frames, args.repeat
 
