@@ -182,6 +182,7 @@ class Localizer:
         self.health_counters = {"frames": 0, "unusable_frames": 0, "global_searches": 0, "overruns": 0,
                                 "map_damaged_tiles": 0}
         self.last_pose: PoseEstimate | None = None
+        self.stage_ms = [0.0, 0.0, 0.0]  # last frame: perceive, match (+ predict), filter update + estimate
         if self.cfg.loop.warmup:
             self.warmup()
 
@@ -228,6 +229,7 @@ class Localizer:
             notes.append(f"sensor rows unreadable: {type(e).__name__}")
         img = getattr(frame, "image", None)
         bev = None
+        t1 = time.perf_counter()
         if img is None:
             notes.append(getattr(frame, "image_fault", "") or "no image")
         else:
@@ -244,12 +246,17 @@ class Localizer:
                 elif nvis < p.match.min_visible_cells:
                     notes.append(f"too little ground seen ({nvis} cells)")
                     bev = None
+        t2 = time.perf_counter()
         tr.begin(t, inc, fix, have_frame=bev is not None)
         vol = self._match(bev, notes) if bev is not None else None
+        t3 = time.perf_counter()
         if vol is None:
             hc["unusable_frames"] += 1
         out = tr.finish(vol, frame_status="; ".join(notes) if notes else "ok")
-        ms = (time.perf_counter() - t0) * 1e3
+        t4 = time.perf_counter()
+        ms = (t4 - t0) * 1e3
+        st = self.stage_ms
+        st[0], st[1], st[2] = (t2 - t1) * 1e3, (t3 - t2) * 1e3, (t4 - t3) * 1e3
         status = out.status
         if notes and vol is not None:
             status = "; ".join(notes + ([status] if status != "ok" else []))
