@@ -21,6 +21,7 @@ Baselines (both OpenCV, both per heading, summing the channels):
 from __future__ import annotations
 
 import math
+import os
 import time
 
 import numpy as np
@@ -145,7 +146,7 @@ def run(args) -> dict:
     corr.set_map(win)
     print("bench correlate: compiling / warming up ...", file=sys.stderr)
     t0 = time.perf_counter()
-    corr.warm_up(("exact", "fast", "track"))
+    corr.warm_up(("exact", "fast", "track", "track_exact"))
     warm_s = time.perf_counter() - t0
     F = corr.model.n_features
     corr._prepare(bev)
@@ -163,6 +164,7 @@ def run(args) -> dict:
     r = corr.search(bev)
     a_true = r.modes[0].cell
     track_ms = median_ms(lambda: corr.track(bev, a_true[1], a_true[2], a_true[0]), repeat=15)
+    track_exact_ms = median_ms(lambda: corr.track(bev, a_true[1], a_true[2], a_true[0], exact=True), repeat=5)
     fast_best = corr.search_fast(bev).modes[0].cell
     # Allocation in repeated calls (numpy buffers and Python objects, as tracemalloc sees them).
     tracemalloc.start()
@@ -184,6 +186,7 @@ def run(args) -> dict:
         "tinyloc_ms": fast_ms,
         "exact_ms": exact_ms,
         "tracking_ms": track_ms,
+        "tracking_exact_ms": track_exact_ms,
         "speedup": base_ms / fast_ms,
         "speedup_same": base_same_ms / fast_ms,
         "speedup_exact": base_ms / exact_ms,
@@ -198,13 +201,16 @@ def run(args) -> dict:
         "exact_fraction_of_fft_throughput": flops / (exact_ms / 1e3) / 1e9 / gf,
         "fft_size_exact": corr._fine.N,
         "fft_size_coarse": corr._coarse.N,
-        "fft_size_track": corr._track.N,
+        "fft_size_track": corr._track_c.N,
+        "fft_size_track_exact": corr._track.N,
         "workspace_mb_exact": (ws["shared"] + ws["exact"]) / 1e6,
         "workspace_mb_fast": (ws["shared"] + ws["coarse"]) / 1e6,
         "workspace_mb_track": (ws["shared"] + ws["track"]) / 1e6,
+        "workspace_mb_fast_and_track": (ws["shared"] + ws["coarse"] + ws["track"]) / 1e6,
         "workspace_mb_all": sum(ws.values()) / 1e6,
         "traced_alloc_peak_kb": peak_alloc / 1e3,
         "warm_up_s": warm_s,
+        "load_avg_1min": os.getloadavg()[0],
         "channels": F,
     }
     for k, v in parts.items():
@@ -232,7 +238,7 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
     A = p.n_headings
     from ..classes import BUILDING, TREE
     strict = tol = ex_near = fa_near = n_inf = inf_near = 0
-    gaps = []
+    gaps, failures = [], []
     maps = {}
     t0 = time.perf_counter()
     for t in range(trials):
@@ -257,6 +263,8 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
         gaps.append(gap)
         strict += ok
         tol += ok or gap <= tie_nats
+        if not ok:
+            failures.append((t, round(float(gap), 4)))
         # "Informative": a building corner or a tree in view (at least 4 cells of such evidence).
         informative = float(bev.evidence[BUILDING].sum() + bev.evidence[TREE].sum()) >= 4.0
         n_inf += informative
@@ -275,5 +283,6 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
     g = np.array(gaps)
     return {"agreement_trials": trials, "agreement_rate": strict / trials, "agreement_rate_tie_tolerant": tol / trials,
             "agreement_tie_nats": tie_nats, "agreement_worst_gap_nats": float(g.max()),
+            "agreement_failures": failures,
             "exact_within_1m_3deg_rate": ex_near / trials, "fast_within_1m_3deg_rate": fa_near / trials,
             "informative_frames": n_inf, "fast_within_1m_3deg_rate_informative": inf_near / max(1, n_inf)}

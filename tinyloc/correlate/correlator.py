@@ -38,7 +38,7 @@ from ..classes import NUM_MAP_CLASSES
 from ..errors import InputError
 from ..frames import wrap_angle
 from . import _kernels as K
-from .peaks import Mode, PeakWork, find_modes, modes_of_volume, refine_mode
+from .peaks import Mode, PeakWork, coarse_start, find_modes, modes_of_volume, refine_mode
 from .scoring import ScoringModel
 
 
@@ -64,6 +64,10 @@ class CorrelatorParams:
         Non-maximum suppression radius in cells (x, y) and in heading steps.
     coarse_top_k : int
         Hypotheses of the 2x-coarse search refined at full resolution (fast search).
+    coarse_climb : int
+        Of those, the best (by the exact score under them) climbed to a local maximum.
+    coarse_heading_step : int
+        Heading step of the coarse full search, in full steps (1 or 2).
     track_radius_cells : int
         Half size of the tracking window (cells); 20 = +-10 m at 0.5 m.
     track_half_headings : int
@@ -82,6 +86,8 @@ class CorrelatorParams:
     mode_radius_cells: int = 6
     mode_radius_headings: int = 8
     coarse_top_k: int = 32
+    coarse_climb: int = 16
+    coarse_heading_step: int = 2
     track_radius_cells: int = 20
     track_half_headings: int = 15
     track_refine: int = 1
@@ -98,8 +104,10 @@ class CorrelatorParams:
             raise InputError(f"res_m must be > 0, got {self.res_m}")
         if self.track_radius_cells < 1 or self.track_half_headings < 0 or self.track_half_headings * 2 + 1 > A:
             raise InputError("tracking window: radius >= 1 cell and 2 * half_headings + 1 <= n_headings")
-        if self.n_modes < 1 or self.coarse_top_k < 1 or self.track_refine < 1:
-            raise InputError("n_modes, coarse_top_k and track_refine must be >= 1")
+        if self.coarse_heading_step not in (1, 2):
+            raise InputError(f"coarse_heading_step must be 1 or 2, got {self.coarse_heading_step}")
+        if min(self.n_modes, self.coarse_top_k, self.coarse_climb, self.track_refine) < 1:
+            raise InputError("n_modes, coarse_top_k, coarse_climb and track_refine must be >= 1")
 
     @property
     def dyaw(self) -> float:
@@ -127,8 +135,10 @@ class SearchResult:
         The full log-likelihood volume, if the caller passed a buffer for it.
     scale : int
         1 for the full-resolution forms; 2 when ``best`` etc. come from the coarse
-        level (fast search): coarse cell (i, j) covers full cells (2i..2i+1, 2j..2j+1)
-        and coarse heading a is full heading 2a.
+        level (fast search): coarse cell (i, j) covers full cells (2i..2i+1, 2j..2j+1).
+    heading_scale : int
+        Full heading steps per heading index of the reduced forms (coarse heading a is
+        full heading ``heading_scale * a``).
     ok : bool
     status : str
     """
@@ -140,6 +150,7 @@ class SearchResult:
     modes: list = field(default_factory=list)
     volume: np.ndarray | None = None
     scale: int = 1
+    heading_scale: int = 1
     ok: bool = True
     status: str = "ok"
 
@@ -417,7 +428,7 @@ class Correlator:
             H, W = p.window_shape
             h, w = p.bev_shape
             self._coarse = _CircleEngine(self.model.n_features, H // 2, W // 2, (h // 2, w // 2), p.origin_row / 2,
-                                         p.origin_col / 2, p.n_headings // 2)
+                                         p.origin_col / 2, p.n_headings // p.coarse_heading_step)
             if self._have_map:
                 self._coarse.set_map(self._Gc)
         return self._coarse
@@ -550,15 +561,22 @@ class Correlator:
         p, e = self.params, self._coarse_engine()
         status = self._prepare(bev)
         if status != "ok":
-            return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, scale=2, ok=False, status=status)
+            return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, scale=2,
+                                heading_scale=p.coarse_heading_step, ok=False, status=status)
         K.downsample2(self._feat, self._feat_c)
         e.run(self._feat_c, self._inv_temp, None)
         self._refiner.reset()
         cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, p.coarse_top_k, max(1, p.mode_radius_cells // 2),
-                           max(1, p.mode_radius_headings // 2), p.n_headings // 2)
-        fine = [self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=True) for m in cands]
+                           max(1, p.mode_radius_headings // p.coarse_heading_step),
+                           p.n_headings // p.coarse_heading_step)
+        starts = [coarse_start(self._refiner, self._feat, self._G, m, self._inv_temp, p, p.coarse_heading_step)
+                  for m in cands]
+        starts.sort(key=lambda m: -m.cell_loglik)
+        fine = [self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=True)
+                for m in starts[:p.coarse_climb]]
         modes = _distinct(fine, p, p.n_modes)
-        return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, scale=2)
+        return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, scale=2,
+                            heading_scale=p.coarse_heading_step)
 
     def track(self, bev, row: float, col: float, heading_index: int, *, exact: bool = False) -> TrackResult:
         """Tracking update around a prior: +-track_radius_cells and +-track_half_headings.
@@ -600,8 +618,9 @@ class Correlator:
         e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, self._inv_temp)
         cands = modes_of_volume(e.vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
                                 max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // 2))
+        starts = [coarse_start(self._refiner, self._feat, self._G, m, self._inv_temp, p) for m in cands]
         modes = _distinct([self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=True)
-                           for m in cands], p, p.n_modes)
+                           for m in starts], p, p.n_modes)
         return TrackResult(e.vol, row0, col0, a0, modes=modes, scale=2)
 
     def pose_of(self, mode: Mode) -> tuple[float, float, float]:
@@ -684,5 +703,5 @@ class _Refiner:
         K.sparse_scores(self.uv[s], self.vals[s], self.count[s], G, self.rows[:n], self.cols[:n], self.out[:n])
         return [float(self.out[k]) * inv_temp for k in range(n)]
 
-    def refine(self, feat, G, m: Mode, inv_temp, *, hill_climb: bool) -> Mode:
-        return refine_mode(self, feat, G, m, inv_temp, self.p, hill_climb=hill_climb)
+    def refine(self, feat, G, m: Mode, inv_temp, *, hill_climb: bool, heading_scale: int = 2) -> Mode:
+        return refine_mode(self, feat, G, m, inv_temp, self.p, hill_climb=hill_climb, heading_scale=heading_scale)

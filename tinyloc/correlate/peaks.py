@@ -80,13 +80,32 @@ def _parabola(sm, s0, sp):
     return off, s0 - 0.25 * (sm - sp) * off
 
 
-def refine_mode(refiner, feat, G, m: Mode, inv_temp, p, *, hill_climb: bool) -> Mode:
+def coarse_start(refiner, feat, G, m: Mode, inv_temp, p, heading_scale: int = 2) -> Mode:
+    """Best exact full-resolution pose among the 4 cells x 3 headings under a coarse mode.
+
+    Returns a full-resolution Mode (integer cell, its exact score) to climb from.
+    """
+    A = p.n_headings
+    H, W = p.window_shape
+    a0, i0, j0 = m.cell
+    a0, i0, j0 = heading_scale * a0, 2 * i0, 2 * j0
+    cells = [(i, j) for i in (i0, i0 + 1) for j in (j0, j0 + 1) if 0 <= i < H and 0 <= j < W]
+    best, best_v = (a0 % A, i0, j0), -np.inf
+    for da in (-1, 0, 1):
+        vals = refiner.scores(feat, G, a0 + da, cells, inv_temp)
+        for (i, j), v in zip(cells, vals):
+            if v > best_v:
+                best, best_v = ((a0 + da) % A, i, j), v
+    return Mode(float(best[1]), float(best[2]), float(best[0]), best_v, best, best_v)
+
+
+def refine_mode(refiner, feat, G, m: Mode, inv_temp, p, *, hill_climb: bool, heading_scale: int = 2) -> Mode:
     """Exact full-resolution refinement of a mode.
 
-    With ``hill_climb`` the mode comes from the 2x-coarse level: its four full cells
-    and three full headings are scored, then the pose climbs the 3 x 3 x 3
-    neighbourhood (exact scores) to a local maximum. Finally a parabola through the
-    neighbours in row, col and heading gives the sub-cell, sub-step pose.
+    With ``hill_climb`` the mode is a full-resolution start (see :func:`coarse_start`)
+    that climbs the 3 x 3 x 3 neighbourhood (exact scores) to a local maximum.
+    Finally a parabola through the neighbours in row, col and heading gives the
+    sub-cell, sub-step pose.
     """
     A = p.n_headings
     H, W = p.window_shape
@@ -112,17 +131,8 @@ def refine_mode(refiner, feat, G, m: Mode, inv_temp, p, *, hill_climb: bool) -> 
 
     a0, i0, j0 = m.cell
     if hill_climb:
-        a0, i0, j0 = 2 * a0, 2 * i0, 2 * j0
-        start = [(i0 + di, j0 + dj) for di in (0, 1) for dj in (0, 1)]
-        for da in (-1, 0, 1):
-            score_block(a0 + da, start)
-        best_key, best_v = None, -np.inf
-        for da in (-1, 0, 1):
-            for i, j in start:
-                v = score(a0 + da, i, j)
-                if v > best_v:
-                    best_key, best_v = ((a0 + da) % A, i, j), v
-        cur = best_key
+        cur, best_v = (a0 % A, i0, j0), m.cell_loglik
+        cache[cur] = best_v
         for _ in range(12):
             a, i, j = cur
             nb = [(i + di, j + dj) for di in (-1, 0, 1) for dj in (-1, 0, 1)]

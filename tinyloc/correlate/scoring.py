@@ -307,8 +307,8 @@ def _main(argv=None) -> int:
         return 2
     m = calibrate(a.trials, a.seed)
     m.save(a.output)
-    print(f"temperature {m.temperature:.4g} (mean -log p at truth {m.provenance['temperature']['mean_nll_at_truth']:.3f})"
-          f" -> {a.output}")
+    nll = m.provenance["temperature"]["mean_nll_at_truth"]
+    print(f"temperature {m.temperature:.4g} (mean -log p at truth {nll:.3f}) -> {a.output}")
     return 0
 
 
