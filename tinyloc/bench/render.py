@@ -22,7 +22,6 @@ rate one idle core would give.
 
 from __future__ import annotations
 
-import math
 import statistics
 import time
 

@@ -21,7 +21,8 @@ OBJ_BOX, OBJ_CYL, OBJ_SPH = 0, 1, 2
 HIT_SKY, HIT_GROUND = -2, -1
 
 # ground material indices (must match world.GROUND_MATERIALS)
-G_ROUGH, G_ASPHALT, G_MARKING, G_PAVING, G_CURB, G_GRASS, G_GRAVEL, G_LOT, G_LOTLINE, G_WATER, G_BED, G_CROSS = range(12)
+(G_ROUGH, G_ASPHALT, G_MARKING, G_PAVING, G_CURB, G_GRASS, G_GRAVEL, G_LOT, G_LOTLINE, G_WATER, G_BED,
+ G_CROSS) = range(12)
 # box materials (must match world.BM_*)
 BM_PLASTER, BM_BRICK, BM_GLASS, BM_WALL, BM_FENCE_SLAT, BM_FENCE_MESH, BM_CAR, BM_CABIN, BM_HEDGE, BM_ROOF = range(10)
 SKY_CLASS, NEAR_T = 9, 0.05
@@ -276,7 +277,8 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
 
     rays (H, W, 3) base-frame unit rays; vig (H, W) vignetting gain; R, org world_from_base rotation and the
     camera centre; tile_obj/tile_n from :func:`cull_tiles`; tile_px (T, 4) pixel ranges (r0, r1, c0, c1);
-    boxes carry two extra columns (cos, sin of the yaw); objs (N, 2) int (kind, row); gmat ground materials (north-up raster), gcolor/gclass per material;
+    boxes carry two extra columns (cos, sin of the yaw); objs (N, 2) int (kind, row); gmat ground materials
+    (north-up raster), gcolor/gclass per material;
     shadow light fraction raster (uint8); grid_c/grid_s rotation of the street grid (paving joints);
     sun unit vector; light (sun r, g, b, ambient r, g, b); lut (L,) tone curve to uint8 over linear 0..2;
     gains (3,) exposure x white balance (r, g, b); saturation 1 = as shaded, 0 = gray.
@@ -466,7 +468,8 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
                                                 cg = g0 * (1 - fr) + sky1 * fr * 0.6
                                                 cb = g0 * 1.2 * (1 - fr) + sky2 * fr * 0.6
                             elif m == BM_HEDGE:
-                                hn = _vnoise3(x * 6.0, y * 6.0, z * 6.0, 31) * 0.6 + _vnoise3(x * 15.0, y * 15.0, z * 15.0, 32) * 0.4
+                                hn = _vnoise3(x * 6.0, y * 6.0, z * 6.0, 31) * 0.6 + \
+                                    _vnoise3(x * 15.0, y * 15.0, z * 15.0, 32) * 0.4
                                 k = 0.45 + 1.1 * hn
                                 cr, cg, cb = cr * k, cg * k, cb * k
                                 amb = 0.7

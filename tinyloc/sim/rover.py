@@ -130,7 +130,8 @@ def plan_route(world: World, rng: np.random.Generator, length_m: float, params: 
         street = sx[nodes[k][0]] if abs(dv[1]) > 0.5 else sy[nodes[k][1]]
         n = np.array([dv[1], -dv[0]]) * off(street)
         segs.append((a + n, b + n, dv))
-    poly = [segs[0][0]]
+    # start a few metres into the first edge, on the sidewalk rather than in the crossing
+    poly = [segs[0][0] + segs[0][2] * min(10.0, 0.3 * float(np.linalg.norm(segs[0][1] - segs[0][0])))]
     for k in range(len(segs) - 1):
         (a0, b0, d0), (a1, b1, d1) = segs[k], segs[k + 1]
         cr = d0[0] * d1[1] - d0[1] * d1[0]
@@ -158,7 +159,8 @@ def _fillet(poly: np.ndarray, radius: float, step: float):
         if abs(turn) < 1e-6:
             out.append(p1)
             continue
-        r = min(radius, 0.45 * min(np.linalg.norm(p1 - p0), np.linalg.norm(p2 - p1)) / max(math.tan(abs(turn) / 2), 1e-6))
+        room = 0.45 * min(np.linalg.norm(p1 - p0), np.linalg.norm(p2 - p1))
+        r = min(radius, room / max(math.tan(abs(turn) / 2), 1e-6))
         tl = r * math.tan(abs(turn) / 2)
         a = p1 - d0 * tl
         sgn = 1.0 if turn > 0 else -1.0

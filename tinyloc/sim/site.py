@@ -516,7 +516,8 @@ def generate_site(seed: int, params: SiteParams = SiteParams()) -> Site:
     asph = float(rng.uniform(0.05, 0.13))
     palette = {"paving": [pave * t for t in tint], "curb": [min(0.6, 1.2 * pave * t) for t in tint],
                "asphalt": [asph, asph, asph * 1.05], "lot": [asph * 1.2, asph * 1.15, asph * 1.1],
-               "grass": [float(rng.uniform(0.07, 0.12)), float(rng.uniform(0.12, 0.18)), float(rng.uniform(0.03, 0.06))],
+               "grass": [float(rng.uniform(0.07, 0.12)), float(rng.uniform(0.12, 0.18)),
+                         float(rng.uniform(0.03, 0.06))],
                "rough": [float(rng.uniform(0.13, 0.2)), float(rng.uniform(0.13, 0.18)), float(rng.uniform(0.07, 0.1))]}
     meta = {"name": name, "seed": int(seed), "params": asdict(p), "grid_yaw_rad": theta, "palette": palette,
             "streets": {"xs": [float(v) for v in xs], "ys": [float(v) for v in ys],

@@ -141,7 +141,8 @@ class World:
     def from_dict(cls, doc: dict, name: str = "world") -> "World":
         """Build from the JSON document, checking shapes."""
         if not isinstance(doc, dict) or doc.get("format") != FORMAT_NAME:
-            raise InputError(f"{name}: not a tinyloc world file (format {doc.get('format') if isinstance(doc, dict) else None!r})")
+            fmt = doc.get("format") if isinstance(doc, dict) else None
+            raise InputError(f"{name}: not a tinyloc world file (format {fmt!r})")
         if doc.get("version") != FORMAT_VERSION:
             raise InputError(f"{name}: world version {doc.get('version')!r} is not {FORMAT_VERSION}")
 
