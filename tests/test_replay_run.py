@@ -266,3 +266,25 @@ def test_signoff_rules_pass_fail_and_exit_status(site, tmp_path, capsys):
                  "--require", "recall/1m_3deg>0.5"]) == 0
     assert main(["replay", str(site["run"]), "-q", "--localizer", HELPER, "--require", "recall >= lots"]) == 2
     assert "--require: expected KEY>=NUMBER" in capsys.readouterr().err
+
+
+def test_compare_with_an_earlier_replay(site, tmp_path, capsys):
+    a, b = tmp_path / "a", tmp_path / "b"
+    assert main(["replay", str(site["run"]), "-o", str(a), "-q", "--localizer", HELPER]) == 0
+    capsys.readouterr()
+    assert main(["replay", str(site["gappy"]), "-o", str(b), "-q", "--json", "--localizer", HELPER,
+                 "--compare", str(a)]) == 0
+    m = json.loads(capsys.readouterr().out)
+    before = json.loads((a / "metrics.json").read_text())
+    f = m["compare"]["figures"]
+    assert m["compare"]["with"] == str(a / "metrics.json") and m["compare"]["same_frames"] is False
+    assert f["recall|1m_3deg"]["before"] == before["recall"]["1m_3deg"]
+    assert f["recall|1m_3deg"]["now"] == m["recall"]["1m_3deg"]
+    assert f["median_error_m"]["change"] == pytest.approx(m["median_error_m"] - before["median_error_m"])
+    text = (b / "report.html").read_text()
+    assert "Compared with an earlier replay" in text and "a different number of frames" in text
+    for key, raw, shown in _cells(text):
+        if key.startswith("compare/"):
+            v = _get(m, html.unescape(key))
+            assert (raw == "" and v is None) or float(raw) == v
+    assert main(["replay", str(site["run"]), "-q", "--localizer", HELPER, "--compare", str(tmp_path / "none")]) == 2

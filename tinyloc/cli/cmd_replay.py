@@ -35,6 +35,7 @@ localizers that need none can do.
 examples:
   tinyloc replay drives/loop-3 --map site.tlm -o report/
   tinyloc replay drives/ --map site.tlm --require recall/1m_3deg>=0.9 --require inside_95_ellipse>=0.9
+  tinyloc replay drives/loop-3 --map site.tlm --set track.floor=1e-3 --compare report/ -o report-floor/
   tinyloc replay drives/ --map site.tlm -o reports/ --jobs 2
   tinyloc replay drives/loop-3 --map site.tlm --json | jq .recall
 """
@@ -67,6 +68,9 @@ def register(p):
                    help="sign-off rule on a figure of metrics.json (path with '/', operators >= <= > < ==), e.g. "
                         "--require recall/1m_3deg>=0.9 --require quality/tracking_but_wrong_share<=0.01; "
                         "a run that misses one fails (exit status 1); a missing figure fails (repeatable)")
+    p.add_argument("--compare", metavar="EARLIER",
+                   help="an earlier replay of the same drive(s): its output folder (or metrics.json; for several "
+                        "runs the batch folder): the report and the table show before, now and the change")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 
@@ -114,6 +118,8 @@ def run(args) -> int:
     runs = expand_runs(args.runs)
     params = _params(args)
     rules = tuple(parse_rule(r) for r in args.require)
+    if args.compare is not None and not Path(args.compare).exists():
+        raise InputError(f"--compare: {args.compare}: no such file or folder")
     resolve_factory(args.localizer)  # bad spec: fail before starting any worker
     if args.localizer == "loop":
         from ..runtime.config import load_config
@@ -129,7 +135,8 @@ def run(args) -> int:
     dup = {n for n in names if names.count(n) > 1}
     names = [f"{n}-{i}" if n in dup else n for i, n in enumerate(names)]
     jobs = [Job(run=r, out_dir=str(out if single else out / n), map_path=args.map, localizer=args.localizer,
-                params=params, report=not args.no_report, config=args.config, overrides=tuple(args.overrides), require=rules)
+                params=params, report=not args.no_report, config=args.config, overrides=tuple(args.overrides), require=rules,
+                compare=args.compare)
             for r, n in zip(runs, names)]
     rows = run_batch(jobs, workers=args.jobs or None, show_progress=not args.quiet)
     failed = [r for r in rows if r.get("error")]

@@ -24,7 +24,8 @@ from .replay import ReplayParams
 
 SUMMARY_COLUMNS = ("run", "frames", "recall_1m_3deg", "median_error_m", "p90_error_m", "median_heading_error_deg",
                    "gnss_median_error_m", "dr_median_error_m", "inside_95_ellipse", "first_good_fix_s", "lost_spells",
-                   "gaps", "frame_ms_median", "frames_per_s", "signoff", "error")
+                   "gaps", "frame_ms_median", "frames_per_s", "signoff", "change_recall_1m_3deg",
+                   "change_median_error_m", "error")
 
 
 @dataclass(frozen=True)
@@ -47,6 +48,8 @@ class Job:
         Write report.html.
     require : tuple of Rule
         Sign-off rules checked on the metrics (:mod:`tinyloc.replay.signoff`).
+    compare : str or None
+        An earlier replay's output (metrics.json, its folder, or a batch folder) to compare with.
     config : str or None
         The live loop's TOML config file (``localizer="loop"`` only).
     overrides : tuple of str
@@ -62,6 +65,7 @@ class Job:
     config: str | None = None
     overrides: tuple = ()
     require: tuple = ()
+    compare: str | None = None
 
 
 def resolve_factory(spec: str):
@@ -164,6 +168,11 @@ def _run_job(job: Job, index: int, row: dict) -> dict:
                                 if isinstance(v, (int, str, bool)) or (isinstance(v, float) and math.isfinite(v))}
         except Exception:  # noqa: BLE001 - health is informative only
             pass
+    if job.compare:
+        from .compare import compare, load_previous
+
+        before, src = load_previous(job.compare, Path(job.out_dir).name)
+        m["compare"] = compare(m, before, src)
     if job.require:
         from .signoff import check
 
@@ -186,7 +195,10 @@ def summary_row(run: str, m: dict) -> dict:
             "inside_95_ellipse": m["inside_95_ellipse"], "first_good_fix_s": m["first_good_fix"]["time_s"],
             "lost_spells": m["lost"]["spells"], "gaps": m["gaps"]["count"], "frame_ms_median": m["frame_ms_median"],
             "frames_per_s": m["replay"]["frames_per_s"],
-            "signoff": (m["signoff"]["passed"] if "signoff" in m else None), "metrics": m, "error": None}
+            "signoff": (m["signoff"]["passed"] if "signoff" in m else None),
+            "change_recall_1m_3deg": (m["compare"]["figures"]["recall|1m_3deg"]["change"] if "compare" in m else None),
+            "change_median_error_m": (m["compare"]["figures"]["median_error_m"]["change"] if "compare" in m else None),
+            "metrics": m, "error": None}
 
 
 class Bar:
@@ -292,6 +304,8 @@ def format_table(rows: list[dict]) -> str:
             ("dr_median_error_m", "DR m", "{:.2f}"), ("inside_95_ellipse", "in95", "{:.3f}"),
             ("first_good_fix_s", "fix s", "{:.1f}"), ("lost_spells", "lost", "{}"), ("gaps", "gaps", "{}"),
             ("frame_ms_median", "ms", "{:.1f}"), ("frames_per_s", "fps", "{:.1f}")]
+    if any(r.get("change_recall_1m_3deg") is not None or r.get("change_median_error_m") is not None for r in rows):
+        cols += [("change_recall_1m_3deg", "d 1m/3deg", "{:+.3f}"), ("change_median_error_m", "d med m", "{:+.2f}")]
     if any(r.get("signoff") is not None for r in rows):
         cols.append(("signoff", "sign-off", "{}"))
     table = [[h for _, h, _ in cols]]

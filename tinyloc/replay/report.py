@@ -407,6 +407,16 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
                        f"<td class='{'verdict-good' if c['passed'] else 'verdict-bad'}'>{html.escape(res)}</td></tr>")
         out.append("</table>")
 
+    cmp_ = metrics.get("compare")
+    if cmp_:
+        out.append(f"<h2>Compared with an earlier replay</h2><p>{html.escape(str(cmp_['with']))}"
+                   + ("" if cmp_.get("same_frames") else " <b>(a different number of frames)</b>") + "</p>"
+                   "<table><tr><th>figure</th><th>before</th><th>now</th><th>change</th></tr>")
+        for name in cmp_["figures"]:
+            cells = "".join(_cell(metrics, f"compare/figures/{name}/{k}", "{:.4g}") for k in ("before", "now", "change"))
+            out.append(f"<tr><th>{html.escape(name.replace('|', '/'))}</th>{cells}</tr>")
+        out.append("</table>")
+
     # Headline table.
     out.append("<h2>Summary</h2><table><tr><th>figure</th><th>tinyloc</th><th>GNSS only</th>"
                "<th>dead reckoning only</th></tr>")
