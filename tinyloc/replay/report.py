@@ -520,7 +520,9 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
     if worst_frames:
         out.append("<table class='frames'>")
         for wf in worst_frames:
-            cap = (f"frame {wf['frame']} at t = {wf['t']:.2f} s: error {_fmtv(wf['err_m'])} m, "
+            t_rel = wf['t'] - float(np.asarray(rec["t"], float)[0])
+            cap = (f"frame {wf['frame']} at {t_rel:.2f} s since the first frame (t = {wf['t']:.2f} s): "
+                   f"error {_fmtv(wf['err_m'])} m, "
                    f"{_fmtv(wf['err_yaw_deg'])} deg, {wf['quality']}; {wf.get('status', '')}")
             out.append(f"<tr><td colspan='4'><b>{html.escape(cap)}</b></td></tr><tr>")
             imgs = wf.get("images") or {}
@@ -544,8 +546,9 @@ def render_html(metrics: dict, rec, *, title: str, backdrop: MapBackdrop | None 
     out.append("<h2>Definitions</h2><p style='font-size:12px'>Recall: share of frames with truth whose position "
                "and heading errors are both within the bound; a frame without an estimate counts as a miss. "
                "Percentiles: numpy.percentile, linear interpolation, over frames with an estimate. "
-               "A good fix is within the good-fix bound; a lost spell is a run of frames after the first good fix "
-               "that are not good, lasting at least the shortest spell counted. See docs/replay.md.</p>")
+               "A good fix is a frame within the good-fix bound and flagged tracking; a lost spell is a run of frames "
+               "after the first good fix that are not within the bound, lasting at least the shortest spell counted. "
+               "See docs/replay.md.</p>")
     out.append("</body></html>")
     return "\n".join(out)
 
