@@ -73,7 +73,8 @@ def main(args) -> int:
     else:
         dm, dr = find_demo()
         map_path, run_path = Path(args.map or dm), Path(args.run or dr)
-    src = RunFolderSource(run_path, realtime=args.realtime, late_ms=cfg.loop.late_ms, max_frames=args.max_frames)
+    src = RunFolderSource(run_path, realtime=args.realtime, late_ms=cfg.loop.late_ms, max_frames=args.max_frames,
+                          labels=cfg.loop.external_labels)
     if not args.quiet:
         print(f"tinyloc demo: map {map_path}, run {run_path} ({len(src)} frames); starting the loop",
               file=sys.stderr)

@@ -65,7 +65,7 @@ def build(args, cfg):
         link = open_sink(args.sensors)
     src = open_source(args.source, realtime=args.realtime or cfg.loop.realtime, late_ms=cfg.loop.late_ms,
                       max_frames=args.max_frames, fps=getattr(args, "fps", 10.0),
-                      link=getattr(link, "ep", None))
+                      link=getattr(link, "ep", None), labels=cfg.loop.external_labels)
     if args.camera:
         cam = load_camera(args.camera)
     elif getattr(src, "camera", None) is not None:

@@ -25,9 +25,20 @@ class PerceptionAdapter:
         self.perc = Perception(camera, warm_up=cfg.loop.warmup)
         self.grid = self.perc.new_grid()
         self.status = "ok"
+        self.external = bool(cfg.loop.external_labels)
+        from ..classes import NUM_CLASSES
 
-    def perceive(self, image, gravity):
-        self.status = self.perc.process(image, gravity, self.grid)
+        self.lut = np.full(256, 255, np.uint8)  # labels already speak tinyloc's class indices
+        self.lut[:NUM_CLASSES] = np.arange(NUM_CLASSES)
+
+    def perceive(self, image, gravity, labels=None):
+        if self.external:
+            if labels is None:
+                self.grid.status = self.status = "bad-frame: no external label image for this frame"
+                return self.grid
+            self.status = self.perc.process_labels(labels, gravity, self.grid, self.lut)
+        else:
+            self.status = self.perc.process(image, gravity, self.grid)
         return self.grid
 
 

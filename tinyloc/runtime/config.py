@@ -70,6 +70,9 @@ class LoopParams:
         Period of the status messages sent to sinks that take them (s) [1.0].
     warmup : bool
         Compile and run every kernel once at start-up so the first frame is on time [True].
+    external_labels : bool
+        Take each frame's class labels from another segmenter (a run folder's ``labels/``, class
+        indices of tinyloc's table, 255 = unlabelled) instead of tinyloc's own segmenter [False].
     """
 
     realtime: bool = False
@@ -79,6 +82,7 @@ class LoopParams:
     imu_timeout_s: float = 1.0
     status_every_s: float = 1.0
     warmup: bool = True
+    external_labels: bool = False
 
 
 @dataclass(frozen=True)

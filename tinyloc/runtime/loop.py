@@ -81,6 +81,8 @@ class Frame:
     ``imu`` (k, 4) rows t,fx,fy,fz; ``odometry`` (k, 4) rows t,x,y,yaw (odom frame); ``gnss`` (k, 5)
     rows t,lat,lon,h,acc_m: the sensor rows with time in (previous frame time, this frame's time].
     ``image`` is BGR (or gray) uint8, or None when it could not be read (``image_fault`` says why).
+    ``labels`` (optional) is another segmenter's class-index image for the frame (used with
+    ``loop.external_labels``).
     """
 
     index: int
@@ -90,6 +92,7 @@ class Frame:
     imu: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
     odometry: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
     gnss: np.ndarray = field(default_factory=lambda: np.zeros((0, 5)))
+    labels: np.ndarray | None = None
 
 
 class SensorState:
@@ -234,7 +237,9 @@ class Localizer:
             notes.append(getattr(frame, "image_fault", "") or "no image")
         else:
             try:
-                bev = self.perceiver.perceive(img, grav)
+                lab = getattr(frame, "labels", None)
+                bev = (self.perceiver.perceive(img, grav, lab) if lab is not None
+                       else self.perceiver.perceive(img, grav))
             except Exception as e:  # a stage bug must not stop the robot: report it in the status
                 notes.append(f"perception failed: {type(e).__name__}: {e}"[:120])
             if bev is not None:

@@ -77,7 +77,8 @@ class RunFolderSource:
         Stop after this many frames.
     """
 
-    def __init__(self, path, *, realtime: bool = False, late_ms: float = 100.0, max_frames: int | None = None):
+    def __init__(self, path, *, realtime: bool = False, late_ms: float = 100.0, max_frames: int | None = None,
+                 labels: bool = False):
         from ..runfolder import RunFolder
 
         self.rf = RunFolder.open(path, strict=False)
@@ -85,6 +86,9 @@ class RunFolderSource:
             raise RunFolderError(f"{self.rf.path}/frames.csv: no usable frames")
         self.name = self.rf.name
         self.camera = self.rf.camera
+        self.labels = labels
+        if labels and not self.rf.has_labels:
+            raise RunFolderError(f"{self.rf.path}: external labels asked for, but the run has no labels/ folder")
         self.realtime = realtime
         self.late_ms = late_ms
         self.max_frames = max_frames
@@ -109,7 +113,13 @@ class RunFolderSource:
                 image = rf.load_frame(i)
             except (RunFolderError, OSError, ValueError) as e:
                 image, fault = None, str(e)
-            yield Frame(i, t, image, fault, *rows)
+            lab = None
+            if self.labels:
+                try:
+                    lab = rf.load_label(i)
+                except (RunFolderError, OSError, ValueError):
+                    lab = None
+            yield Frame(i, t, image, fault, *rows, labels=lab)
 
     def truth_xy(self, world=None) -> np.ndarray | None:
         """Ground truth (x, y, yaw) per frame in ``world`` (a LocalFrame; default the run's own), or None."""
@@ -253,14 +263,14 @@ class CameraSource:
 
 
 def open_source(spec: str, *, realtime: bool = False, late_ms: float = 100.0, max_frames: int | None = None,
-                fps: float = 10.0, link=None):
+                fps: float = 10.0, link=None, labels: bool = False):
     """Open a frame source from its command-line spec (see the module notes)."""
     s = str(spec)
     if s.startswith("camera:"):
         return CameraSource(s[len("camera:"):], link=link)
     p = Path(s)
     if p.is_dir() and (p / "run.json").is_file():
-        return RunFolderSource(p, realtime=realtime, late_ms=late_ms, max_frames=max_frames)
+        return RunFolderSource(p, realtime=realtime, late_ms=late_ms, max_frames=max_frames, labels=labels)
     if p.is_dir():
         return ImageFolderSource(p, fps=fps, realtime=realtime, late_ms=late_ms, max_frames=max_frames)
     raise InputError(f"--source {s}: not a run folder (no run.json), an image folder or camera:INDEX|URL")
