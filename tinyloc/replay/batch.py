@@ -116,7 +116,12 @@ _progress_put = None  # where a job reports (run index, frames done, total); set
 def _init_worker(q):
     global _progress_put
     _progress_put = q.put
-    os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+
+# Several runs in parallel already use every core: each worker keeps its numeric libraries to one
+# thread, so they do not fight over the cores. Set in the environment the workers inherit (read when
+# those libraries load); a value the user chose is kept.
+_WORKER_THREAD_VARS = ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 def run_job(job: Job, index: int = 0) -> dict:
@@ -266,6 +271,20 @@ def run_batch(jobs: list[Job], *, workers: int | None = None, show_progress: boo
         return rows
     ctx = mp.get_context("spawn")  # no forked numba/OpenCV thread state
     q = ctx.Queue()
+    saved = {k: os.environ.get(k) for k in _WORKER_THREAD_VARS}
+    for k in _WORKER_THREAD_VARS:
+        os.environ.setdefault(k, "1")
+    try:
+        return _pool(jobs, workers, ctx, q, bar, rows)
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+def _pool(jobs, workers, ctx, q, bar, rows):
     with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker, initargs=(q,)) as ex:
         futs = {ex.submit(run_job, job, i): i for i, job in enumerate(jobs)}
         pending = set(futs)
