@@ -39,6 +39,22 @@ def _sim(args, *cmd):
         raise RuntimeError(f"tinyloc sim {' '.join(cmd)} failed: {r.stderr.strip()[-300:]}")
 
 
+def _fresh_map(site: Path) -> Path:
+    """The site's packed map, packed again from its GeoJSON if this tinyloc no longer reads it."""
+    from tinyloc.errors import MapFormatError
+    from tinyloc.maps.packfile import PackedMap
+
+    tlm = site / "site.tlm"
+    try:
+        PackedMap.open(tlm).close()
+    except MapFormatError:
+        r = subprocess.run([sys.executable, "-W", "ignore", "-m", "tinyloc", "map", "pack", str(site / "site.geojson"),
+                            "-o", str(tlm), "-q"], capture_output=True, text=True)
+        if r.returncode != 0:
+            raise RuntimeError(f"map pack failed: {r.stderr.strip()[-300:]}")
+    return tlm
+
+
 def evaluate(run: Path, site_map: Path, overrides, skip_m: float):
     cfg = load_config(None, overrides)
     src = RunFolderSource(run, labels=cfg.loop.external_labels)
@@ -75,7 +91,11 @@ def main(argv=None) -> int:
             _sim(a, "run", str(site), "--seed", str(seed), "--frames", str(a.frames), "-o", str(run))
         for mode in a.modes:
             ov = list(a.set) + (["loop.external_labels=true"] if mode == "labels" else [])
-            s = evaluate(run, site / "site.tlm", ov, a.skip_m)
+            try:
+                s = evaluate(run, _fresh_map(site), ov, a.skip_m)
+            except Exception as e:  # one bad seed must not hide the others
+                print(f"seed {seed} {mode}: failed: {type(e).__name__}: {e}", file=sys.stderr, flush=True)
+                continue
             s.update(seed=seed, mode=mode)
             rows.append(s)
             print(f"seed {seed} {mode:<9} recall {s['recall_1m_3deg']:.2f}  median {s['median_error_m']:.2f} m "
