@@ -3,7 +3,10 @@
 Outside reference: tinyloc's simulator (a separate stage): per-pixel true classes from its ray caster,
 and the true class of every ground cell from its world (ground polygons, building boxes); see
 tests/_perception_sim.py. The segmenter's thresholds were tuned on sites 1 and 2; these tests use
-sites 5 and 6. Floors are measured values minus a margin (docs/perception.md has the tables).
+sites 5 and 6. Floors are measured values minus about 0.03 (docs/perception.md has the tables); they
+follow the simulator's rendering, so a change of its look can move them. The issue's bird's-eye goal
+(>= 0.6 for buildings and road within 20 m) is not met; the "oracle" rows show how much of the gap is
+segmentation rather than projection.
 
 Bird's-eye IoU is counted over the cells within 20 m that the "oracle" grid (the true label image
 through the same projector) marks as seen - what this camera truly saw from this pose - so a
@@ -23,10 +26,10 @@ FRAMES = 8
 PIX_GROUPS = {"sky": [SKY], "building": [BUILDING], "road": [ROAD], "sidewalk": [SIDEWALK],
               "road+sidewalk": [ROAD, SIDEWALK], "vegetation": [TREE, GRASS]}
 BEV_CLASSES = {"building": BUILDING, "road": ROAD, "sidewalk": SIDEWALK, "grass": GRASS}
-PIX_FLOORS = {"sky": 0.73, "building": 0.55, "road": 0.73, "sidewalk": 0.83, "road+sidewalk": 0.91, "vegetation": 0.65}
-BEV_FLOORS = {"building": 0.09, "road": 0.50, "sidewalk": 0.44, "grass": 0.67}
+PIX_FLOORS = {"sky": 0.83, "building": 0.62, "road": 0.76, "sidewalk": 0.80, "road+sidewalk": 0.90, "vegetation": 0.69}
+BEV_FLOORS = {"building": 0.12, "road": 0.45, "sidewalk": 0.38, "grass": 0.66}
 ORACLE_FLOORS = {"building": 0.55, "road": 0.86}
-FACING_FLOORS = {"building": 0.34}
+FACING_FLOORS = {"building": 0.30}
 FACING_ORACLE_FLOORS = {"building": 0.67}
 
 

@@ -49,35 +49,35 @@ class SegmentParams:
     horizon_frac: float = 0.56  # horizon row / image height when no camera model is given
     tex_window: int = 5  # window of the gradient-energy mean (px at segmentation size)
     mix_window: int = 3  # window of the bright-share and variance statistics (px)
-    sky_tex: float = 0.1142  # sky is smoother than this
+    sky_tex: float = 0.251  # sky is smoother than this
     sky_v: float = 0.704  # ... and brighter than this (HSV value) with saturation below sky_s
-    sky_s: float = 0.175
-    sky_blue: float = 2.74  # ... or bluer than b* < -sky_blue (Lab units) with value above sky_v2
+    sky_s: float = 0.04823
+    sky_blue: float = 1.918  # ... or bluer than b* < -sky_blue (Lab units) with value above sky_v2
     sky_v2: float = 0.591
     sky_below: float = 0.0098  # sky may reach this far (image heights) below the horizon
-    green0: float = 0.0  # ExG - ExR vegetation threshold
-    green_w: float = 0.0461
-    ground_u0: float = 0.02  # ground starts this far (image heights) below the horizon
-    ground_w: float = 0.0147
-    smooth_tex: float = 0.186  # paved ground is smoother than this
+    green0: float = -0.02  # ExG - ExR vegetation threshold
+    green_w: float = 0.07791
+    ground_u0: float = 0.0  # ground starts this far (image heights) below the horizon
+    ground_w: float = 0.00702
+    smooth_tex: float = 0.314  # paved ground is smoother than this
     smooth_w: float = 0.013
-    here_weight: float = 1.69  # weight of the surface under the robot
-    other_weight: float = 0.294  # weight of the other paved surface
-    grass_weight: float = 0.343
-    building_weight: float = 0.591
+    here_weight: float = 2.197  # weight of the surface under the robot
+    other_weight: float = 0.206  # weight of the other paved surface
+    grass_weight: float = 0.58
+    building_weight: float = 0.576
     tree_weight: float = 1.077
-    crown_weight: float = 0.637
-    ground_floor: float = 0.089  # score any ground pixel keeps for "surface under the robot"
-    ref_l_weight: float = 0.35  # weight of lightness in the colour distance to the robot's surface
-    ref_dist: float = 19.5  # colour distance (Lab units) still counted as the same surface
-    ref_w: float = 1.96
-    crown_bright: float = 0.162  # share of bright pixels that makes a textured patch a crown
-    crown_var: float = 0.00446  # local grey-level variance of a crown (0..1 units)
-    crown_var_w: float = 0.00414
+    crown_weight: float = 0.312
+    ground_floor: float = 0.06525  # score any ground pixel keeps for "surface under the robot"
+    ref_l_weight: float = 0.245  # weight of lightness in the colour distance to the robot's surface
+    ref_dist: float = 13.65  # colour distance (Lab units) still counted as the same surface
+    ref_w: float = 2.548
+    crown_bright: float = 0.06356  # share of bright pixels that makes a textured patch a crown
+    crown_var: float = 0.0098  # local grey-level variance of a crown (0..1 units)
+    crown_var_w: float = 0.00203
     tree_low: float = 1.0  # how much green below the horizon counts less as tree (1: none, it is grass)
-    wall_dist: float = 25.0  # a facade continues below the horizon while its colour stays this close (Lab)
-    wall_edge: float = 0.06  # ... and until a horizontal edge at least this strong (|dI/dy|, 0..1): its foot
-    wall_ground: float = 19.5  # ... or a pixel this close (Lab distance) to the surface under the robot
+    wall_dist: float = 13.125  # a facade continues below the horizon while its colour stays this close (Lab)
+    wall_edge: float = 0.101  # ... and until a horizontal edge at least this strong (|dI/dy|, 0..1): its foot
+    wall_ground: float = 12.421  # ... or a pixel this close (Lab distance) to the surface under the robot
     robot_on: str = "road"  # surface under the robot: "road" or "sidewalk"
 
     def __post_init__(self):
@@ -89,6 +89,8 @@ class SegmentParams:
             v = getattr(self, f.name)
             if isinstance(v, float) and not np.isfinite(v):
                 raise InputError(f"segmentation parameter {f.name} must be finite")
+        if not 0.0 <= self.tree_low <= 1.0:
+            raise InputError("tree_low must be within 0 .. 1")
         if self.tex_window % 2 == 0 or self.mix_window % 2 == 0:
             raise InputError("tex_window and mix_window must be odd")
 

@@ -1,0 +1,89 @@
+"""Plain-NumPy reference of the classical segmenter (slow, written from the formulas, no numba).
+
+It follows segment.py's documented rules step by step with whole-array operations, using
+features.py for the colour indices and gradient energy and OpenCV's connected components for
+the sky flood fill, so the kernels can be checked against an independent implementation.
+"""
+
+import math
+
+import cv2
+import numpy as np
+
+from tinyloc.classes import BUILDING, GRASS, NUM_CLASSES, ROAD, SIDEWALK, SKY, TREE
+from tinyloc.perception.features import box_mean, exg_minus_exr, gradient_energy, hsv_saturation_value
+
+
+def _sig(x):
+    return 1.0 / (1.0 + np.exp(-np.clip(x, -60, 60)))
+
+
+def segment_reference(bgr, p, hrow=None):
+    """(probs (C, h, w), labels (h, w)) for one BGR frame with SegmentParams ``p``."""
+    H, W = bgr.shape[:2]
+    w = min(p.width, W)
+    h = max(8, int(round(H * w / W)))
+    small = bgr if (w, h) == (W, H) else cv2.resize(bgr, (w, h), interpolation=cv2.INTER_AREA)
+    lab = cv2.cvtColor(small, cv2.COLOR_BGR2Lab).astype(np.float64)
+    if hrow is None:
+        hrow = np.full(w, p.horizon_frac * h - 0.5)
+    s, v = hsv_saturation_value(small)
+    exgr = exg_minus_exr(small)
+    bstar = lab[..., 2] - 128.0
+    gray = small.astype(np.float64).sum(axis=2) / 3.0
+    tx, ty = gradient_energy(gray, p.tex_window)
+    tex = tx + ty
+    u = (hrow[None, :] - np.arange(h)[:, None]) / h
+    bright = ((v > p.sky_v) & (s < p.sky_s)) | ((bstar < -p.sky_blue) & (v > p.sky_v2))
+    cand = bright & (tex < p.sky_tex) & (u > -p.sky_below)
+    n, comp = cv2.connectedComponents(cand.astype(np.uint8), connectivity=4)
+    top = np.unique(comp[0][cand[0]])
+    sky = np.isin(comp, top[top > 0])
+    g01 = gray / 255.0
+    brightmix = box_mean((bright & ~sky).astype(float), p.mix_window)
+    var = np.maximum(box_mean(g01 * g01, p.mix_window) - box_mean(g01, p.mix_window) ** 2, 0.0)
+    r0, r1, c0, c1 = int(h * 0.85), h, int(w * 0.35), max(int(w * 0.65), int(w * 0.35) + 1)
+    patch = lab[r0:r1, c0:c1].reshape(-1, 3)
+    srt = np.sort(patch, axis=0)
+    ref = srt[(len(srt) + 1) // 2 - 1]  # lower median
+    green = _sig((exgr - p.green0) / p.green_w)
+    below = _sig((-u - p.ground_u0) / p.ground_w)
+    smooth = _sig((p.smooth_tex - tex) / p.smooth_w)
+    dist = np.abs(lab[..., 0] - ref[0]) * p.ref_l_weight + np.abs(lab[..., 1] - ref[1]) + np.abs(lab[..., 2] - ref[2])
+    on = _sig((p.ref_dist - dist) / p.ref_w)
+    crown = _sig((brightmix - p.crown_bright) / 0.05) * _sig((var - p.crown_var) / p.crown_var_w)
+    here = below * (1 - green) * (p.here_weight * on * (0.5 + 0.5 * smooth) + p.ground_floor)
+    other = below * (1 - green) * (1 - on) * smooth * p.other_weight
+    sc = np.zeros((NUM_CLASSES, h, w))
+    sc[ROAD], sc[SIDEWALK] = (here, other) if p.robot_on == "road" else (other, here)
+    sc[SKY] = np.where(sky, 2.0, 0.0)
+    sc[GRASS] = below * green * p.grass_weight
+    sc[BUILDING] = (1 - below) * (1 - green) * p.building_weight * (1 - crown)
+    sc[TREE] = green * p.tree_weight * (1 - below * p.tree_low) + (1 - below) * crown * p.crown_weight
+    labels = sc.argmax(axis=0).astype(np.uint8)
+    tot = sc.sum(axis=0)
+    probs = np.where(tot > 0, sc / np.where(tot > 0, tot, 1.0), 0.0)
+    # facades carried down across the horizon
+    gy = np.zeros_like(g01)
+    gy[1:-1] = np.abs(g01[2:] - g01[:-2]) * 0.5
+    ground = {ROAD, SIDEWALK, GRASS, 7, 8}
+    for j in range(w):
+        r = int(math.floor(hrow[j]))
+        if r < 3 or r >= h - 1 or labels[r, j] != BUILDING:
+            continue
+        c = lab[r - 2:r + 1, j].mean(axis=0)
+        for i in range(r + 1, h):
+            if labels[i, j] == BUILDING:
+                continue
+            if labels[i, j] not in ground:
+                break
+            d = 0.5 * abs(lab[i, j, 0] - c[0]) + abs(lab[i, j, 1] - c[1]) + abs(lab[i, j, 2] - c[2])
+            if d > p.wall_dist or gy[i, j] > p.wall_edge:
+                break
+            dg = abs(lab[i, j, 0] - ref[0]) * p.ref_l_weight + abs(lab[i, j, 1] - ref[1]) + abs(lab[i, j, 2] - ref[2])
+            if dg < p.wall_ground:
+                break
+            labels[i, j] = BUILDING
+            probs[:, i, j] = 0.0
+            probs[BUILDING, i, j] = 1.0
+    return probs, labels

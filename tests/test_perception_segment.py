@@ -1,0 +1,56 @@
+"""The segmenter's kernels against the plain-NumPy reference (tests/_perception_reference.py)."""
+
+import cv2
+import numpy as np
+import pytest
+
+from _perception_reference import segment_reference
+from test_perception_frames import _street_like
+from tinyloc.errors import InputError
+from tinyloc.perception.segment import PRESETS, SegmentParams, Segmenter, preset, segment_image
+
+
+def _frames():
+    rng = np.random.default_rng(4)
+    yield "street-like", cv2.resize(_street_like(seed=2), (480, 360))
+    noise = rng.integers(0, 256, (240, 320, 3)).astype(np.uint8)
+    yield "noise", noise
+    smooth = cv2.GaussianBlur(noise, (0, 0), 6)
+    yield "smooth noise", smooth
+
+
+@pytest.mark.parametrize("name", list(PRESETS))
+def test_kernels_match_reference(name):
+    p = preset(name)
+    for what, img in _frames():
+        seg = Segmenter((img.shape[1], img.shape[0]), p)
+        hrow = np.linspace(0.45, 0.6, seg.size[0]) * seg.size[1]
+        probs, labels = seg.run(img, hrow)
+        rp, rl = segment_reference(img, p, hrow)
+        # the kernel's logistic is a table (error < 3e-6): a few near-ties may flip
+        assert np.mean(labels != rl) < 0.002, (what, np.mean(labels != rl))
+        same = labels == rl
+        assert np.max(np.abs(probs[:, same] - rp[:, same])) < 1e-4, what
+        assert np.allclose(probs.sum(axis=0)[same], rp.sum(axis=0)[same], atol=1e-5)
+
+
+def test_probabilities_are_valid():
+    img = cv2.resize(_street_like(seed=3), (640, 480))
+    probs, labels, full = segment_image(img)
+    assert probs.shape == (11, 120, 160) and labels.shape == (120, 160) and full.shape == (480, 640)
+    assert probs.min() >= 0.0 and probs.max() <= 1.0 + 1e-6
+    s = probs.sum(axis=0)
+    assert np.all((np.abs(s - 1.0) < 1e-5) | (s == 0))
+
+
+def test_params_validated():
+    with pytest.raises(InputError, match="segmentation width"):
+        SegmentParams(width=8)
+    with pytest.raises(InputError, match="robot_on"):
+        SegmentParams(robot_on="lawn")
+    with pytest.raises(InputError, match="unknown segmentation preset"):
+        preset("moon")
+    with pytest.raises(InputError, match="must be finite"):
+        SegmentParams(sky_v=float("nan"))
+    with pytest.raises(InputError, match="expected an"):
+        segment_image(np.zeros((10, 10), np.uint8))
