@@ -61,9 +61,35 @@ def test_map_backdrop_puts_cells_where_the_raster_convention_says(tmp_path):
     np.testing.assert_array_equal(bd.image_bgr[r, c], colour_classes(one)[0, 0])
     far = bd.image_bgr[int((bd.y_max - 4.5) / bd.res_m), int((1.0 - bd.x_min) / bd.res_m)]
     assert not np.array_equal(far, bd.image_bgr[r, c])
+    # Read block by block (512-cell blocks): a 700 m wide area equals one direct read of the same cells.
+    bd3, _ = map_backdrop(pm, [[-340.0, 0.0], [340.0, 0.0]], margin_m=5.0)
+    h3, w3 = bd3.image_bgr.shape[:2]
+    assert bd3.res_m == 0.5 and w3 > 512
+    r0, c0 = pm.cell_of(bd3.x_min + 0.25, bd3.y_max - 0.25)
+    direct = np.zeros((9, h3, w3), np.float32)
+    known = np.zeros((h3, w3), np.uint8)
+    pm.read_window(math.floor(r0), math.floor(c0), direct, known_out=known)
+    ref = colour_classes(direct)
+    ref[known == 0] = (225, 225, 225)
+    np.testing.assert_array_equal(bd3.image_bgr, ref)
+    # Wider than 2400 cells: shrunk by a whole factor (here 2: 1 m per pixel).
+    bd4, _ = map_backdrop(pm, [[-700.0, 0.0], [700.0, 0.0]])
+    assert bd4.res_m == 1.0 and bd4.image_bgr.shape[1] <= 2400
     # Too large an area is refused with a reason, not drawn.
-    bd2, note2 = map_backdrop(pm, [[0.0, 0.0], [5000.0, 0.0]])
+    bd2, note2 = map_backdrop(pm, [[0.0, 0.0], [30000.0, 0.0]])
     assert bd2 is None and "more than the report draws" in note2
+
+
+def test_backdrop_ignores_wild_estimates():
+    from tinyloc.replay.report import backdrop_points
+
+    rec = FrameRecords(3)
+    rec.truth_x[:] = [0.0, 10.0, 20.0]
+    rec.truth_y[:] = 0.0
+    rec.x[:] = [1.0, 5000.0, 21.0]
+    rec.y[:] = 0.0
+    pts = backdrop_points(rec)
+    assert pts[:, 0].max() == 21.0 and len(pts) == 5
 
 
 def test_progress_bar_lines_without_terminal():

@@ -52,14 +52,17 @@ def _meta(obj, key):
     return obj[key] if isinstance(obj, dict) else getattr(obj, key)
 
 
-def map_backdrop(packed, xy, *, margin_m: float = 15.0, max_cells: int = 2400) -> tuple[MapBackdrop | None, str]:
-    """Read the map window under a set of points and colour it by class.
+def map_backdrop(packed, xy, *, margin_m: float = 15.0, max_px: int = 2400,
+                 max_cells: int = 40000) -> tuple[MapBackdrop | None, str]:
+    """Read the map under a set of points and colour it by class.
+
+    Areas wider than ``max_px`` cells are read block by block and shrunk by an integer factor (so
+    memory stays at one block whatever the drive's length); areas wider than ``max_cells`` are refused.
 
     Parameters
     ----------
     packed : PackedMap-like
-        Has ``.meta`` (``res_m``, ``x_min``, ``y_max``), ``cell_of(x, y)`` and ``read_window``
-        as in docs/interfaces.md.
+        Has ``.meta`` (``res_m``, ``x_min``, ``y_max``) and ``read_window`` as in docs/interfaces.md.
     xy : array_like (N, 2)
         World points to cover (NaN rows ignored).
 
@@ -68,6 +71,8 @@ def map_backdrop(packed, xy, *, margin_m: float = 15.0, max_cells: int = 2400) -
     (MapBackdrop or None, note)
         None with a one-line reason when there is nothing to draw or the area is too large.
     """
+    import cv2
+
     p = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
     p = p[np.all(np.isfinite(p), axis=1)]
     if len(p) == 0:
@@ -81,14 +86,42 @@ def map_backdrop(packed, xy, *, margin_m: float = 15.0, max_cells: int = 2400) -
     row1 = int(math.ceil((y_max0 - lo[1]) / res))
     h, w = row1 - row0, col1 - col0
     if h > max_cells or w > max_cells:
-        return None, f"trajectory spans {w} x {h} map cells, more than the report draws ({max_cells})"
+        return None, f"the drive spans {w} x {h} map cells, more than the report draws ({max_cells})"
+    k = max(1, -(-max(h, w) // max_px))  # shrink factor
+    h, w = -(-h // k) * k, -(-w // k) * k
     ids = tuple(getattr(packed.meta, "class_ids", range(len(MAP_CLASSES))))
-    buf = np.zeros((len(ids), h, w), dtype=np.float32)
-    known = np.zeros((h, w), dtype=np.uint8)
-    packed.read_window(row0, col0, buf, known_out=known)
-    img = colour_classes(buf, ids)
-    img[known == 0] = (225, 225, 225)
-    return MapBackdrop(img, x_min0 + col0 * res, y_max0 - row0 * res, res), ""
+    blk = k * max(1, 512 // k)
+    img = np.empty((h // k, w // k, 3), np.uint8)
+    buf = np.zeros((len(ids), blk, blk), dtype=np.float32)
+    known = np.zeros((blk, blk), dtype=np.uint8)
+    for r in range(0, h, blk):
+        for c in range(0, w, blk):
+            bh, bw = min(blk, h - r), min(blk, w - c)
+            if (bh, bw) == (blk, blk):
+                b, kn = buf, known
+            else:  # edge blocks: the reader fills contiguous buffers
+                b, kn = np.zeros((len(ids), bh, bw), np.float32), np.zeros((bh, bw), np.uint8)
+            packed.read_window(row0 + r, col0 + c, b, known_out=kn)
+            tile = colour_classes(b, ids)
+            tile[kn == 0] = (225, 225, 225)
+            if k > 1:
+                tile = cv2.resize(tile, (bw // k, bh // k), interpolation=cv2.INTER_AREA)
+            img[r // k:(r + bh) // k, c // k:(c + bw) // k] = tile
+    return MapBackdrop(img, x_min0 + col0 * res, y_max0 - row0 * res, res * k), ""
+
+
+def backdrop_points(rec) -> np.ndarray:
+    """Points the map backdrop must cover: the truth, and the estimates within 100 m of it (a wild
+    estimate far away must not make the map huge); all estimates when there is no truth."""
+    tru = np.stack([rec["truth_x"], rec["truth_y"]], 1)
+    est = np.stack([rec["x"], rec["y"]], 1)
+    tru = tru[np.all(np.isfinite(tru), 1)]
+    est = est[np.all(np.isfinite(est), 1)]
+    if len(tru) == 0:
+        return est
+    lo, hi = tru.min(0) - 100.0, tru.max(0) + 100.0
+    near = est[np.all((est >= lo) & (est <= hi), 1)]
+    return np.concatenate([tru, near])
 
 
 def colour_classes(channels: np.ndarray, class_ids=None) -> np.ndarray:
@@ -672,9 +705,8 @@ def write_run_report(path, res, *, packed=None, use_matplotlib: bool = True) -> 
     backdrop, why = None, "no map given"
     if packed is not None:
         rec = res.records
-        pts = np.concatenate([np.stack([rec.truth_x, rec.truth_y], 1), np.stack([rec.x, rec.y], 1)])
         try:
-            backdrop, why = map_backdrop(packed, pts)
+            backdrop, why = map_backdrop(packed, backdrop_points(rec))
         except Exception as e:  # noqa: BLE001 - a damaged map still gives a report without backdrop
             backdrop, why = None, f"map could not be read ({type(e).__name__}: {e})"
     worst = worst_frame_panels(res, notes=notes)
