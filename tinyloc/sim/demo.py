@@ -38,7 +38,7 @@ def demo_paths() -> dict:
             "world": base / "demo_park.world.json", "run": base / "run"}
 
 
-def write_demo(data_dir, maps_dir=None, *, progress=None) -> dict:
+def write_demo(data_dir, maps_dir=None, *, progress=None, run_seed: int = RUN_SEED) -> dict:
     """Generate the demo site and run into ``data_dir`` (and copy the map into ``maps_dir``)."""
     from ..maps.compile import pack_geojson
 
@@ -53,8 +53,10 @@ def write_demo(data_dir, maps_dir=None, *, progress=None) -> dict:
     if run_dir.exists():
         shutil.rmtree(run_dir)
     params = RunParams(frames=FRAMES, frame_rate_hz=RATE_HZ, image_ext=".jpg", jpeg_quality=JPEG_QUALITY)
-    params = replace(params, drive=replace(params.drive, stop_prob=0.25))
-    summary = make_run(site.world, run_dir, seed=RUN_SEED, params=params, progress=progress, name="demo_park-1")
+    # a fair-weather day: broken clouds, sun, a camera with natural colour
+    params = replace(params, drive=replace(params.drive, stop_prob=0.25), cloud_cover=(0.3, 0.4),
+                     saturation=(0.85, 0.9))
+    summary = make_run(site.world, run_dir, seed=run_seed, params=params, progress=progress, name="demo_park-1")
     if maps_dir is not None:
         maps_dir = Path(maps_dir)
         maps_dir.mkdir(parents=True, exist_ok=True)

@@ -511,9 +511,9 @@ def generate_site(seed: int, params: SiteParams = SiteParams()) -> Site:
               float(corners[:, 1].max()))
     nodes = [[float(v) for v in rot(np.array([x, y]))] for x in xs for y in ys]
     # per-site material colours (linear RGB): towns differ in paving, asphalt and how green the grass is
-    pave = float(rng.uniform(0.09, 0.30))
+    pave = float(rng.uniform(0.16, 0.30))  # aged concrete; asphalt below (albedos from memory)
     tint = (1.0 + float(rng.uniform(-0.04, 0.08)), 1.0, 1.0 - float(rng.uniform(0.0, 0.12)))
-    asph = float(rng.uniform(0.05, 0.13))
+    asph = float(rng.uniform(0.05, 0.11))
     palette = {"paving": [pave * t for t in tint], "curb": [min(0.6, 1.2 * pave * t) for t in tint],
                "asphalt": [asph, asph, asph * 1.05], "lot": [asph * 1.2, asph * 1.15, asph * 1.1],
                "grass": [float(rng.uniform(0.07, 0.12)), float(rng.uniform(0.12, 0.18)),
