@@ -194,6 +194,8 @@ def test_bad_input_is_one_line(site, tmp_path, capsys):
     assert capsys.readouterr().err.strip().count("\n") == 0
     assert main(["replay", str(site["run"]), "--map", str(tmp_path / "x.tlm"), "--localizer", HELPER]) == 2
     assert "map file not found" in capsys.readouterr().err
+    assert main(["replay", str(site["run"]), "-o", str(tmp_path / "nm"), "-q"]) == 2  # the live loop, no map
+    assert "the live loop needs a map: give --map SITE.tlm" in capsys.readouterr().err
     assert main(["replay", str(site["run"]), "--good", "1", "--localizer", HELPER]) == 2
     assert main(["replay", str(site["run"]), "--localizer", "nomodule_xyz:f"]) == 2
     err = capsys.readouterr().err
