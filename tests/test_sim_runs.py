@@ -89,3 +89,15 @@ def test_cli_bad_site_folder(tmp_path, capsys):
     rc = main(["sim", "run", str(tmp_path), "--seed", "1", "-o", str(tmp_path / "r")])
     err = capsys.readouterr().err
     assert rc == 2 and "world.json: no such file" in err and "\n" == err[-1] and err.count("\n") == 1
+
+
+def test_site_folder_byte_identical_for_a_seed(tmp_path):
+    from tinyloc.cli.cmd_sim import write_site
+
+    write_site(12, tmp_path / "a", size="demo")
+    write_site(12, tmp_path / "b", size="demo")
+    write_site(13, tmp_path / "c", size="demo")
+    fa, fb, fc = _files(tmp_path / "a"), _files(tmp_path / "b"), _files(tmp_path / "c")
+    assert set(fa) == {"site.geojson", "world.json", "site.tlm", "site.json"}
+    assert fa == fb
+    assert all(fa[k] != fc[k] for k in fa)
