@@ -163,7 +163,7 @@ class Renderer:
         self.gclass = np.ascontiguousarray(GROUND_CLASS)
         overcast = max(0.0, params.cloud_cover - 0.5) / 0.5
         sun_rgb = np.array([1.0, 0.93, 0.82]) * 1.25 * (1.0 - 0.85 * overcast)
-        amb_rgb = np.array([0.36, 0.42, 0.52]) * (0.9 + 0.6 * params.cloud_cover) + 0.1 * overcast
+        amb_rgb = np.array([0.39, 0.43, 0.49]) * (0.9 + 0.6 * params.cloud_cover) + 0.1 * overcast
         self.light = np.concatenate([sun_rgb, amb_rgb])
         self.p_sky = np.array([params.cloud_cover, 0.0016 * 400.0, float(seed % 100000), params.haze_m])
         self.lut = _tone_lut()
