@@ -245,3 +245,41 @@ def test_config_file_and_overrides(tmp_path):
         load_config(None, ["track.headings=many"])
     with pytest.raises(InputError, match=r"track.window_cells = 2"):
         load_config(None, ["track.window_cells=2"])
+
+
+def test_kidnapped_mid_run_recovers_within_15_s(site):
+    path, cov = site
+    pm = PackedMap.open(path)
+    road = cov[1]
+    rows = [r for r in range(60, SIZE - 60) if road[r, 60:SIZE - 60].mean() > 0.9]
+    r1, r2 = rows[0], next(r for r in rows if abs(r - rows[0]) * 0.5 >= 40.0)
+    y1, y2 = 80.0 - 0.5 * (r1 + 0.5), 80.0 - 0.5 * (r2 + 0.5)
+    perc = MapCutPerceiver(pm, cov, [])
+    loc = Localizer(pm, CAM, _cfg(), perceiver=perc)
+    img = np.zeros((4, 4, 3), np.uint8)
+    rng = np.random.default_rng(9)
+    dt, before, after = 0.1, 40, 150
+    q_after, back_at = [], None
+    for k in range(before + after):
+        x = -40.0 + 0.1 * k  # 1 m/s east; the odometry sees only this
+        y = y1 if k < before else y2  # carried 40+ m to another street at frame `before`
+        truth = (x, y, 0.0)
+        perc.truth, perc.i = [truth], 0
+        t = dt * k
+        lat, lon = pm.frame.to_latlon(x + rng.normal(0, 2.0), y + rng.normal(0, 2.0))
+        p = loc.step(Frame(k, t, img, "", np.array([[t, 0, 0, 9.81]]), np.array([[t, 0.1 * k, 0.0, 0.0]]),
+                           np.array([[t, lat, lon, 0.0, 1.5]])))
+        if k == before - 1:
+            assert p.quality == "tracking"
+        if k >= before:
+            q_after.append(p.quality)
+            ok = p.quality == "tracking" and _err(p, truth)[0] < 1.0
+            if ok and back_at is None and any(q != "tracking" for q in q_after):
+                back_at = (k - before) * dt
+            if back_at is not None and k - before > back_at / dt + 10:
+                assert ok
+                break
+    assert any(q in ("searching", "degraded") for q in q_after), "quality never dropped"
+    assert back_at is not None and back_at <= 15.0, back_at
+    assert loc.health()["track_lost"] >= 1
+    print(f"kidnapped {abs(y2 - y1):.0f} m: back within 1 m and tracking {back_at:.1f} s later")
