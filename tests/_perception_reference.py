@@ -86,4 +86,44 @@ def segment_reference(bgr, p, hrow=None):
             labels[i, j] = BUILDING
             probs[:, i, j] = 0.0
             probs[BUILDING, i, j] = 1.0
+    # poles (thin vertical lines crossing the horizon) and fences (building runs too low for a house)
+    def runs(col_mask):
+        i = h - 1
+        while i >= 0:
+            if col_mask[i]:
+                i1 = i
+                while i >= 0 and col_mask[i]:
+                    i -= 1
+                yield i + 1, i1
+            else:
+                i -= 1
+
+    def put(i, j, k):
+        probs[:, i, j] = 0.0
+        probs[k, i, j] = 1.0
+        labels[i, j] = k
+
+    if p.pole_contrast > 0:
+        g = g01
+        dl = np.zeros_like(g)
+        dr = np.zeros_like(g)
+        dl[:, 2:-2] = g[:, 2:-2] - g[:, :-4]
+        dr[:, 2:-2] = g[:, 2:-2] - g[:, 4:]
+        c = p.pole_contrast
+        mark = (((dl > c) & (dr > c)) | ((dl < -c) & (dr < -c))) & (labels != SKY)
+        mark[:, :2] = False
+        mark[:, -2:] = False
+        min_run = max(2, int(p.pole_run * h + 0.5))
+        for j in range(w):
+            for i0, i1 in list(runs(mark[:, j])):
+                if i1 - i0 + 1 >= min_run and i0 < hrow[j] < i1:
+                    for q in range(i0, i1 + 1):
+                        put(q, j, 5)
+    if p.fence_top > 0:
+        for j in range(w):
+            for i0, i1 in list(runs(labels[:, j] == BUILDING)):
+                above = labels[i0 - 1, j] if i0 > 0 else SKY
+                if i1 > hrow[j] and hrow[j] - i0 < p.fence_top * h and above in (SKY, TREE):
+                    for q in range(i0, i1 + 1):
+                        put(q, j, 6)
     return probs, labels

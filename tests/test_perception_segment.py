@@ -19,9 +19,14 @@ def _frames():
     yield "smooth noise", smooth
 
 
-@pytest.mark.parametrize("name", list(PRESETS))
+CASES = {**{n: preset(n) for n in PRESETS},
+         "poles and fences on": SegmentParams(pole_contrast=0.05, pole_run=0.1, fence_top=0.08)}
+
+
+@pytest.mark.parametrize("name", list(CASES))
 def test_kernels_match_reference(name):
-    p = preset(name)
+    p = CASES[name]
+    seen = set()
     for what, img in _frames():
         seg = Segmenter((img.shape[1], img.shape[0]), p)
         hrow = np.linspace(0.45, 0.6, seg.size[0]) * seg.size[1]
@@ -32,6 +37,9 @@ def test_kernels_match_reference(name):
         same = labels == rl
         assert np.max(np.abs(probs[:, same] - rp[:, same])) < 1e-4, what
         assert np.allclose(probs.sum(axis=0)[same], rp.sum(axis=0)[same], atol=1e-5)
+        seen |= set(np.unique(labels).tolist())
+    if name == "poles and fences on":
+        assert {5, 6} <= seen  # both optional rules fired on these frames, so they were compared
 
 
 def test_probabilities_are_valid():

@@ -21,8 +21,9 @@ NF = 10
 # Parameter vector layout for seg_scores (filled by segment.SegmentParams.vector()).
 (P_SKY_TEX, P_SKY_V, P_SKY_S, P_SKY_BLUE, P_SKY_V2, P_SKY_BELOW, P_GREEN0, P_GREEN_W, P_G_U0, P_G_W,
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
- P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND) = range(30)
-NP = 30
+ P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND,
+ P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP) = range(33)
+NP = 33
 
 # Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
 BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
@@ -254,6 +255,69 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, 
             scores[GRASS, i, j] = s_grass * k
             scores[TREE, i, j] = s_tree * k
             scores[SKY, i, j] = s_sky * k
+
+
+@njit(**JIT)
+def _set_class(probs, labels, i, j, k):
+    for c in range(probs.shape[0]):
+        probs[c, i, j] = 0.0
+    probs[k, i, j] = 1.0
+    labels[i, j] = k
+
+
+@njit(**JIT)
+def thin_and_low(feat, hrow, prm, probs, labels, mark):
+    """Poles from thin vertical lines, fences from low walls.
+
+    Pole: a pixel darker or brighter than both pixels two columns away by at least ``pole_contrast``
+    (grey level 0..1, same sign both sides: a line at most 3 pixels wide); a vertical run of such
+    pixels at least ``pole_run`` image heights long that crosses the horizon (it stands on the ground
+    and rises above the camera) is a pole. Fence: a run of building that starts below the horizon,
+    ends less than ``fence_top`` image heights above it and has sky or vegetation on top is too low
+    for a house within range: a fence or wall. mark : (h, w) uint8 scratch.
+    """
+    nc, h, w = probs.shape
+    con = prm[P_POLE_CONTRAST]
+    min_run = max(2, int(prm[P_POLE_RUN] * h + 0.5))
+    ftop = prm[P_FENCE_TOP] * h
+    for i in range(h):
+        for j in range(w):
+            mark[i, j] = 0
+            if con > 0.0 and 2 <= j < w - 2 and labels[i, j] != SKY:
+                c = feat[F_GRAY, i, j]
+                dl = c - feat[F_GRAY, i, j - 2]
+                dr = c - feat[F_GRAY, i, j + 2]
+                if (dl > con and dr > con) or (dl < -con and dr < -con):
+                    mark[i, j] = 1
+    for j in range(w):
+        hr = hrow[j]
+        i = h - 1
+        while i >= 0:
+            if mark[i, j]:
+                i1 = i
+                while i >= 0 and mark[i, j]:
+                    i -= 1
+                i0 = i + 1  # run is rows i0..i1
+                if i1 - i0 + 1 >= min_run and i0 < hr < i1:
+                    for q in range(i0, i1 + 1):
+                        _set_class(probs, labels, q, j, POLE)
+            else:
+                i -= 1
+        if ftop <= 0.0:
+            continue
+        i = h - 1
+        while i >= 0:
+            if labels[i, j] == BUILDING:
+                i1 = i
+                while i >= 0 and labels[i, j] == BUILDING:
+                    i -= 1
+                i0 = i + 1
+                above = labels[i, j] if i >= 0 else SKY
+                if i1 > hr and hr - i0 < ftop and (above == SKY or above == TREE):
+                    for q in range(i0, i1 + 1):
+                        _set_class(probs, labels, q, j, FENCE)
+            else:
+                i -= 1
 
 
 @njit(**JIT)

@@ -19,9 +19,13 @@ thresholds sit in :class:`SegmentParams`:
 Work happens at reduced resolution (``width`` pixels wide, default 160): the frame is area-averaged
 down first, which also removes sensor noise. Scores are normalised per pixel to sum to 1.
 
+Two further rules exist but are off by default because they measured worse than leaving them out
+(docs/perception.md): **poles** from thin vertical lines crossing the horizon (``pole_contrast``,
+``pole_run``) and **fences** from building runs too low for a house (``fence_top``).
+
 Known limits (measured, see docs/perception.md): bare trees and buildings are often confused; road
-and sidewalk are told apart only by colour contrast to the robot's own surface; poles, fences,
-vehicles and people are not detected (their classes get no score).
+and sidewalk are told apart only by colour contrast to the robot's own surface; with the defaults
+poles, fences, vehicles and people are not output.
 """
 
 from __future__ import annotations
@@ -78,6 +82,9 @@ class SegmentParams:
     wall_dist: float = 13.125  # a facade continues below the horizon while its colour stays this close (Lab)
     wall_edge: float = 0.101  # ... and until a horizontal edge at least this strong (|dI/dy|, 0..1): its foot
     wall_ground: float = 12.421  # ... or a pixel this close (Lab distance) to the surface under the robot
+    pole_contrast: float = 0.0  # a pole is a line this much darker/brighter than both sides (0: off)
+    pole_run: float = 0.15  # ... at least this long (image heights), crossing the horizon
+    fence_top: float = 0.0  # building runs ending less than this above the horizon are fences (0: off)
     robot_on: str = "road"  # surface under the robot: "road" or "sidewalk"
 
     def __post_init__(self):
@@ -110,6 +117,7 @@ class SegmentParams:
         v[K.P_TREE_LOW] = self.tree_low
         v[K.P_ON_ROAD] = 1.0 if self.robot_on == "road" else 0.0
         v[K.P_WALL_DIST], v[K.P_WALL_EDGE], v[K.P_WALL_GROUND] = self.wall_dist, self.wall_edge, self.wall_ground
+        v[K.P_POLE_CONTRAST], v[K.P_POLE_RUN], v[K.P_FENCE_TOP] = self.pole_contrast, self.pole_run, self.fence_top
         return v
 
 
@@ -227,6 +235,7 @@ class Segmenter:
         K.seg_scores(self.feat, self.lab, self.tex, self.sky, self.brightmix, self.gmean, self.g2mean, self.ref,
                      self._prm, self.probs, self.labels)
         K.extend_walls(self.feat, self.lab, hrow, self.ref, self._prm, _IS_GROUND, self.probs, self.labels)
+        K.thin_and_low(self.feat, hrow, self._prm, self.probs, self.labels, self.cand)
         return self.probs, self.labels
 
 
