@@ -101,3 +101,22 @@ def test_site_folder_byte_identical_for_a_seed(tmp_path):
     assert set(fa) == {"site.geojson", "world.json", "site.tlm", "site.json"}
     assert fa == fb
     assert all(fa[k] != fc[k] for k in fa)
+
+
+def test_bundled_demo_data_is_complete_and_consistent():
+    """The shipped demo: a readable packed map and run folder sharing one origin (regenerate with
+    python -m tinyloc.sim.demo if the packed-map format changes)."""
+    from tinyloc.maps.packfile import PackedMap
+    from tinyloc.sim.demo import demo_paths
+
+    p = demo_paths()
+    rf = RunFolder.open(p["run"])
+    assert rf.warnings == [] and len(rf) >= 100 and rf.truth is not None and rf.has_labels
+    pm = PackedMap.open(p["map"])
+    m = pm.meta
+    assert (m.lat0_deg, m.lon0_deg) == (rf.frame.lat0_deg, rf.frame.lon0_deg)
+    # the drive stays inside the map
+    row, col = pm.cell_of(rf.truth[:, 4], rf.truth[:, 5])
+    assert np.all((row >= 0) & (row < m.rows) & (col >= 0) & (col < m.cols))
+    total = sum(f.stat().st_size for f in p["run"].rglob("*") if f.is_file()) + p["map"].stat().st_size
+    assert total < 8e6  # small enough to ship in the wheel
