@@ -70,6 +70,7 @@ FORMAT_VERSION = 1
 MAX_JSON_BYTES = 1 << 20
 MAX_LINE_CHARS = 4096
 MAX_ROWS = 20_000_000
+MAX_CSV_BYTES = 1 << 30
 MAX_IMAGE_BYTES = 64 << 20
 
 # name -> (required columns in array order, time must strictly increase, required file)
@@ -118,6 +119,8 @@ def _read_lines(rd: _Reader, name: str) -> tuple[list[tuple[int, str]], bool] | 
     if not p.is_file():
         return None
     try:
+        if p.stat().st_size > MAX_CSV_BYTES:
+            raise rd.fatal(name, f"larger than the reader's limit of {MAX_CSV_BYTES} bytes")
         raw = p.read_bytes()
     except OSError as e:
         raise rd.fatal(name, f"cannot read ({e.strerror or e})") from None
