@@ -57,7 +57,7 @@ class GnssParams:
     weight_track: float = 0.02
     max_acc_m: float = 100.0
     max_age_s: float = 2.0
-    disagree_m: float = 15.0
+    disagree_m: float = 10.0
     disagree_s: float = 4.0
     gate_m: float = 30.0
 
