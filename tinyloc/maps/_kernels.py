@@ -13,6 +13,7 @@ from __future__ import annotations
 import math
 
 from numba import njit
+import numpy as np
 
 from .._numba import JIT
 
@@ -298,3 +299,318 @@ def ring_self_hit(xy, order):
             if _seg_hit(ax, ay, bx, by, cx, cy, dx, dy):
                 return min(i, j), max(i, j)
     return -1, -1
+
+
+# ---------------------------------------------------------------------------------------------------------
+# Context coding of 16-level coverage tiles (packed map format 2; maps_packed/FORMAT.md, "Context coding").
+#
+# One walk over a tile serves three modes: 0 counts each binary decision per context (the writer's first
+# pass, which builds the map's probability model), 1 encodes, 2 decodes. The coder is a binary range coder
+# with 16-bit probabilities of the bit being 1, carry propagation through a cached byte, the always-zero
+# first byte omitted, and input past the end of a stream read as zero bytes. The state lives in ``st``
+# (int64[9], prepared by the wrapper): low, range, cache, cache_size, pos, code, n_in, first, overflow.
+
+NCTX = 5452           # contexts per channel: 2 * 2187 zero/full, 256 "equals the rest", 48 * 16 value tree,
+CTX_REST = 4374       # 2 * 27 block states
+CTX_TREE = 4630
+CTX_BLOCK = 5398
+BLOCK = 8             # cells per side of the blocks whose state (empty, full, mixed) is coded first
+
+
+@njit(inline="always", **JIT)
+def _q3(v):
+    """Neighbour state: 0 empty, 1 partial, 2 full (level 15)."""
+    if v == 0:
+        return 0
+    if v == 15:
+        return 2
+    return 1
+
+
+@njit(inline="always", **JIT)
+def _put(st, buf, b):
+    if st[7] == 1:
+        st[7] = 0  # the first byte out of the coder is always 0: not stored
+        return
+    pos = st[4]
+    if pos < buf.shape[0]:
+        buf[pos] = b
+        st[4] = pos + 1
+    else:
+        st[8] = 1
+
+
+@njit(inline="always", **JIT)
+def _shift_low(st, buf):
+    low = st[0]
+    if low < 0xFF000000 or low > 0xFFFFFFFF:
+        carry = low >> 32
+        temp = st[2]
+        while True:
+            _put(st, buf, (temp + carry) & 0xFF)
+            temp = 0xFF
+            st[3] -= 1
+            if st[3] == 0:
+                break
+        st[2] = (low >> 24) & 0xFF
+    st[3] += 1
+    st[0] = (low & 0x00FFFFFF) << 8
+
+
+@njit(inline="always", **JIT)
+def _bit(mode, st, buf, probs, counts, ctx, bit):
+    """Count, encode or decode one binary decision in context ``ctx``; returns the bit."""
+    if mode == 0:
+        counts[ctx, bit] += 1
+        return bit
+    rng = st[1]
+    bound = (rng >> 16) * np.int64(probs[ctx])
+    if mode == 1:
+        if bit == 1:
+            rng = bound
+        else:
+            st[0] += bound
+            rng -= bound
+        while rng < 16777216:
+            rng <<= 8
+            _shift_low(st, buf)
+        st[1] = rng
+        return bit
+    code = st[5]
+    if code < bound:
+        rng = bound
+        bit = 1
+    else:
+        code -= bound
+        rng -= bound
+        bit = 0
+    while rng < 16777216:
+        rng <<= 8
+        pos = st[4]
+        byte = 0
+        if pos < st[6]:
+            byte = np.int64(buf[pos])
+        st[4] = pos + 1
+        code = ((code << 8) | byte) & 0xFFFFFFFF
+    st[1] = rng
+    st[5] = code
+    return bit
+
+
+@njit(inline="always", **JIT)
+def _walk(mode, vals, kind, part, probs, counts, buf, st, blk, taken, qp):
+    """Count (mode 0), encode (1) or decode (2) the coded channels of one tile.
+
+    Channels are coded one after the other in channel order, each in row-major order of its cells; a
+    block's state is coded when the walk reaches the block's first cell.
+
+    Parameters
+    ----------
+    vals : (C, T, T) uint8
+        Coverage levels 0..15; read in modes 0 and 1, written (coded channels only) in mode 2.
+    kind : (C,) uint8
+        0 channel absent from the tile, 1 full, 2 coded.
+    part : (C,) uint8
+        1 for channels of the ground partition (their coverage sums to at most a cell).
+    probs : (C * NCTX,) uint16
+        Probability (x 65536) that a decision is 1, per context; values 1..65535 (modes 1, 2).
+    counts : (C * NCTX, 2) int64
+        Decision counts per context and bit (mode 0).
+    buf : uint8
+        Output bytes (mode 1) or the stream (mode 2, its length in ``st[6]``).
+    st : (9,) int64
+        Coder state, initialised by the wrapper.
+    blk : (C, nb, nb) uint8, nb = ceil(T / BLOCK)
+        Scratch: block states (0 empty, 1 full, 2 mixed).
+    taken : (T, T) int64
+        Scratch: levels of the partition channels already walked, summed per cell (zeroed here).
+    qp : (T + 2, T + 4) uint8
+        Scratch: neighbour states of the walked cells of the current channel, with a border of 2 that
+        stays 0 (cells outside the tile count as empty).
+    """
+    nch = vals.shape[0]
+    t = vals.shape[1]
+    for i in range(t):
+        for j in range(t):
+            taken[i, j] = 0
+    for c in range(nch):
+        k = kind[c]
+        if k == 1 and part[c] == 1:
+            for i in range(t):
+                for j in range(t):
+                    taken[i, j] += 15
+        if k != 2:
+            continue
+        for i in range(t + 2):
+            for j in range(t + 4):
+                qp[i, j] = 0
+        base = c * NCTX
+        for i in range(t):
+            bi = i // BLOCK
+            for j0 in range(0, t, BLOCK):
+                bj = j0 // BLOCK
+                if i % BLOCK == 0:
+                    _block_state(mode, vals, c, i, j0, probs, counts, buf, st, blk, qp)
+                if blk[c, bi, bj] != 2:
+                    continue
+                for j in range(j0, min(j0 + BLOCK, t)):
+                    v = 0
+                    if mode != 2:
+                        v = np.int64(vals[c, i, j])
+                    rest = 15
+                    if part[c] == 1:
+                        rest = 15 - taken[i, j]
+                        if rest < 0:
+                            rest = 0
+                    rs = 1
+                    if rest == 0:
+                        rs = 0
+                    elif rest == 15:
+                        rs = 2
+                    # qp[i + 2, j + 2] is cell (i, j): west, north, north-west, north-east, 2 west, 2 north.
+                    z = (((((np.int64(qp[i + 2, j + 1]) * 3 + qp[i + 1, j + 2]) * 3 + qp[i + 1, j + 1]) * 3
+                           + qp[i + 1, j + 3]) * 3 + qp[i + 2, j]) * 3 + qp[i, j + 2]) * 3 + rs
+                    if _bit(mode, st, buf, probs, counts, base + 2 * z, 1 if v != 0 else 0) == 0:
+                        v = 0
+                    elif _bit(mode, st, buf, probs, counts, base + 2 * z + 1, 1 if v == 15 else 0) == 1:
+                        v = 15
+                    else:
+                        a = np.int64(vals[c, i, j - 1]) if j > 0 else 0
+                        b = np.int64(vals[c, i - 1, j]) if i > 0 else 0
+                        nw = np.int64(vals[c, i - 1, j - 1]) if (i > 0 and j > 0) else 0
+                        ne = np.int64(vals[c, i - 1, j + 1]) if (i > 0 and j + 1 < t) else 0
+                        pred = 0
+                        if 0 < a < 15:
+                            pred = a
+                        elif 0 < b < 15:
+                            pred = b
+                        elif 0 < nw < 15:
+                            pred = nw
+                        elif 0 < ne < 15:
+                            pred = ne
+                        same = 0
+                        if rs == 1:
+                            same = _bit(mode, st, buf, probs, counts, base + CTX_REST + pred * 16 + rest,
+                                        1 if v == rest else 0)
+                        if same == 1:
+                            v = rest
+                        else:
+                            node = 1
+                            tb = base + CTX_TREE + (pred * 3 + rs) * 16
+                            for s in range(3, -1, -1):
+                                bit = _bit(mode, st, buf, probs, counts, tb + node, (v >> s) & 1)
+                                node = node * 2 + bit
+                            v = node - 16
+                    if mode == 2:
+                        vals[c, i, j] = v
+                    qp[i + 2, j + 2] = _q3(v)
+        if part[c] == 1:
+            for i in range(t):
+                for j in range(t):
+                    taken[i, j] += vals[c, i, j]
+
+
+@njit(**JIT)
+def count_tile(vals, kind, part, probs, counts, buf, st, blk, taken, qp):
+    """Add one tile's decisions to ``counts`` (arguments as :func:`_walk`; ``probs``, ``buf``, ``st`` unused)."""
+    _walk(0, vals, kind, part, probs, counts, buf, st, blk, taken, qp)
+
+
+@njit(**JIT)
+def encode_tile(vals, kind, part, probs, counts, buf, st, blk, taken, qp):
+    """Encode one tile into ``buf`` (arguments as :func:`_walk`; end the stream with :func:`finish_stream`)."""
+    _walk(1, vals, kind, part, probs, counts, buf, st, blk, taken, qp)
+
+
+@njit(**JIT)
+def decode_tile(vals, kind, part, probs, counts, buf, st, blk, taken, qp):
+    """Decode one tile from ``buf`` into ``vals`` (arguments as :func:`_walk`)."""
+    _walk(2, vals, kind, part, probs, counts, buf, st, blk, taken, qp)
+
+
+@njit(inline="always", **JIT)
+def _row_state(vals, c, i, j0, j1):
+    """0 when cells (i, j0..j1-1) of channel c are all empty, 1 when all full, else 2."""
+    lo = 15
+    hi = 0
+    for j in range(j0, j1):
+        x = vals[c, i, j]
+        if x < lo:
+            lo = x
+        if x > hi:
+            hi = x
+    if lo == 15:
+        return 1
+    if hi == 0:
+        return 0
+    return 2
+
+
+@njit(**JIT)
+def _block_state(mode, vals, c, i0, j0, probs, counts, buf, st, blk, qp):
+    """Code the state (0 empty, 1 full, 2 mixed) of the block whose first cell is (i0, j0), when the walk
+    reaches that cell; a uniform block is filled at once (mode 2), so later contexts see its cells."""
+    t = vals.shape[1]
+    i1 = min(i0 + BLOCK, t)
+    j1 = min(j0 + BLOCK, t)
+    bi = i0 // BLOCK
+    bj = j0 // BLOCK
+    state = 0
+    if mode != 2:
+        lo = 3
+        hi = 0
+        for i in range(i0, i1):
+            r = _row_state(vals, c, i, j0, j1)
+            if r == 2:
+                lo = 0
+                hi = 3
+                break
+            if r < lo:
+                lo = r
+            if r > hi:
+                hi = r
+        state = lo if lo == hi else 2
+    # Context: the decoded row north of the block, the cell west of its first cell, the block to the west.
+    en = _row_state(vals, c, i0 - 1, j0, j1) if i0 > 0 else 0
+    qw = _q3(np.int64(vals[c, i0, j0 - 1])) if j0 > 0 else 0
+    sw = np.int64(blk[c, bi, bj - 1]) if bj > 0 else 0
+    ctx = c * NCTX + CTX_BLOCK + ((en * 3 + qw) * 3 + sw) * 2
+    if _bit(mode, st, buf, probs, counts, ctx, 1 if state == 2 else 0) == 1:
+        state = 2
+    elif _bit(mode, st, buf, probs, counts, ctx + 1, 1 if state == 1 else 0) == 1:
+        state = 1
+    else:
+        state = 0
+    blk[c, bi, bj] = state
+    if state == 1:
+        for i in range(i0, i1):
+            for j in range(j0, j1):
+                qp[i + 2, j + 2] = 2
+    if mode == 2 and state != 2:
+        fill = 15 if state == 1 else 0
+        for i in range(i0, i1):
+            for j in range(j0, j1):
+                vals[c, i, j] = fill
+
+
+@njit(**JIT)
+def finish_stream(st, buf):
+    """End an encoded stream: pick the value in [low, low + range) with the most trailing zero bits, emit
+    it, and drop trailing zero bytes (a decoder reads zeros past the end). Returns the stream length, or -1
+    when ``buf`` was too small."""
+    low = st[0]
+    top = low + st[1]
+    for k in range(32, -1, -1):
+        m = (np.int64(1) << k) - 1
+        v = (low + m) & ~m
+        if v < top:
+            st[0] = v
+            break
+    for _ in range(5):
+        _shift_low(st, buf)
+    if st[8] == 1:
+        return -1
+    n = st[4]
+    while n > 0 and buf[n - 1] == 0:
+        n -= 1
+    return n

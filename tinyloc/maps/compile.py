@@ -241,8 +241,10 @@ def pack_geojson(src, out_path, *, res_m: float = 0.5, rules=None, progress=None
     cols = max(1, int(math.ceil((hi[0] + prm.margin_m - x_min) / res - 1e-9)))
     rows = max(1, int(math.ceil((y_max - (lo[1] - prm.margin_m)) / res - 1e-9)))
     grid = Grid(x_min, y_max, res, rows, cols)
+    # Channels are the classes in index order, so the surface order's classes are the partition channels.
     meta = MapMeta(lat0, lon0, h0, res, x_min, y_max, rows, cols, prm.tile,
-                   tuple(c.name for c in MAP_CLASSES), tuple(c.index for c in MAP_CLASSES))
+                   tuple(c.name for c in MAP_CLASSES), tuple(c.index for c in MAP_CLASSES),
+                   partition=tuple(sorted(set(prm.surface_order))))
 
     ras = BandRasterizer(geoms, grid, prm.tile, surface_order=prm.surface_order)
     t = prm.tile

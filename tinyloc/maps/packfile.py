@@ -1,17 +1,23 @@
-"""The packed map file (``.tlm``): writer and random-access window reader.
+"""The packed map file (``.tlm``), format version 2: writer and random-access window reader.
 
 Layout (all little-endian; the full specification is ``maps_packed/FORMAT.md``)::
 
-    header   magic b"TLMAP\\r\\n\\x1a", version u16, flags u16, header_size u32,
+    header   magic b"TLMAP\r\n\x1a", version u16, flags u16, header_size u32,
              origin lat/lon (f64 deg), origin h (f64 m), res_m f64, x_min f64, y_max f64,
-             rows u32, cols u32, tile u16, n_channels u16, n_tiles u32,
-             class table (n_channels x [class index u8, name length u8, ASCII name]),
+             rows u32, cols u32, tile u16, n_channels u16, n_tiles u32, model_size u32,
+             class table (n_channels x [class index u8, flags u8, name length u8, ASCII name]),
              CRC-32 of everything before it
-    index    n_tiles x [offset u64, length u32, crc32 u32] (row-major tiles), CRC-32 of the index
-    tiles    present mask u64, full mask u64, then one zlib stream that inflates to the channels
-             present and not full, in channel order, each tile x tile uint8 coverage (value / 255).
-             Channels absent from the tile read 0, full ones read 1.
+    index    n_tiles x [length u32, crc32 u32] (row-major tiles), CRC-32 of the index
+    model    model_size bytes (a zlib stream: one probability byte per context and channel), CRC-32
+    tiles    back to back in index order. Each: present mask, full mask (ceil(n_channels / 8) bytes
+             each), then, when a channel is present and not full, a coding byte and the body:
+             0 = zlib of the stored channels' uint8 codes, 1 = context-coded 16-level coverage.
              length 0 = a tile with nothing on it (all zero, but known).
+
+Context coding (``coding 1``) codes each cell's coverage level (0..15) as a few binary decisions
+whose probabilities come from the map's model, chosen by the cell's already-coded neighbours and by
+what the ground-partition channels before it left of the cell; blocks of 8 x 8 cells that are empty
+or full cost two decisions. The kernels are in :mod:`tinyloc.maps._kernels`.
 
 The reader checks every declared size against hard limits and against the file
 size *before* allocating, so a damaged or hostile file costs at most what the
@@ -35,15 +41,20 @@ import numpy as np
 
 from ..errors import InputError, MapFormatError
 from ..geo import LocalFrame
+from . import _kernels
 
 log = logging.getLogger("tinyloc.maps")
 
 MAGIC = b"TLMAP\r\n\x1a"
-VERSION = 1
-_FIXED = struct.Struct("<8sHHI6dIIHHI")  # 80 bytes
-_ENTRY = struct.Struct("<QII")  # 16 bytes
-_MASKS = struct.Struct("<QQ")  # tile payload prefix: present mask, full mask
+VERSION = 2
+_FIXED = struct.Struct("<8sHHI6dIIHHII")  # 84 bytes
+_ENTRY = struct.Struct("<II")  # 8 bytes: payload length, CRC-32
 MIN_HEADER = _FIXED.size + 4
+CODING_ZLIB = 0
+CODING_CONTEXT = 1
+FLAG_PARTITION = 1          # class table entry flag: the channel belongs to the ground partition
+NCTX = _kernels.NCTX        # model bytes per channel
+PROB_SCALE = 12.0           # model byte k -> probability 1 / (1 + exp((128 - k) / PROB_SCALE))
 # Hard limits (the decoder refuses anything beyond them before allocating).
 MAX_HEADER = 65536
 MAX_SIDE = 1 << 18          # cells per side (131 km at 0.5 m)
@@ -54,6 +65,41 @@ MAX_RES_M = 1000.0
 ZLIB_LEVEL = 9
 INV255 = np.float32(1.0 / 255.0)
 DEFAULT_CACHE_BYTES = 32 << 20
+
+
+def _prob_table() -> np.ndarray:
+    """Model byte (0..255) -> probability x 65536 that a decision is 1 (byte 0: an unused context, 1/2)."""
+    k = np.arange(256, dtype=np.float64)
+    p = np.floor(65536.0 / (1.0 + np.exp((128.0 - k) / PROB_SCALE)) + 0.5)
+    p = np.clip(p, 1, 65535).astype(np.uint16)
+    p[0] = 32768
+    return p
+
+
+PROB_LUT = _prob_table()
+
+
+def model_from_counts(counts: np.ndarray) -> np.ndarray:
+    """Decision counts (n_ctx, 2) -> model bytes (n_ctx,) uint8: the rounded logit of each context's
+    estimated probability of a 1 (Krichevsky-Trofimov estimate, (n1 + 1/2) / (n + 1)); 0 when unused."""
+    n = counts.sum(axis=1)
+    p1 = (counts[:, 1] + 0.5) / (n + 1.0)
+    k = np.clip(np.rint(128.0 + PROB_SCALE * np.log(p1 / (1.0 - p1))), 1, 255)
+    return np.where(n > 0, k, 0).astype(np.uint8)
+
+
+def _mask_bytes(n_channels: int) -> int:
+    return (n_channels + 7) // 8
+
+
+def _max_payload(m) -> int:
+    raw = m.n_channels * m.tile * m.tile
+    return 2 * _mask_bytes(m.n_channels) + 1 + raw + (raw >> 8) + 64  # > zlib's worst case
+
+
+def _max_model(n_channels: int) -> int:
+    raw = n_channels * NCTX
+    return raw + (raw >> 8) + 64
 
 
 @dataclass(frozen=True)
@@ -76,6 +122,7 @@ class MapMeta:
     class_names: tuple
     class_ids: tuple
     version: int = VERSION
+    partition: tuple = ()   # channels of the ground partition (their coverage sums to at most 1 per cell)
 
     # Aliases, so "origin" reads naturally at call sites.
     @property
@@ -131,26 +178,31 @@ def _check_meta(m: MapMeta, where: str) -> None:
         raise bad(f"header declares {m.n_channels} channels (limit 1..{MAX_CHANNELS})")
     if m.tile_rows * m.tile_cols > MAX_TILES:
         raise bad(f"header declares {m.tile_rows * m.tile_cols} tiles (limit {MAX_TILES})")
+    if any(not 0 <= int(c) < m.n_channels for c in m.partition):
+        raise bad(f"partition channels {m.partition} outside 0..{m.n_channels - 1}")
 
 
-def _header_bytes(m: MapMeta) -> bytes:
+def _header_bytes(m: MapMeta, model_size: int) -> bytes:
     table = b""
-    for cid, name in zip(m.class_ids, m.class_names):
+    part = set(int(c) for c in m.partition)
+    for i, (cid, name) in enumerate(zip(m.class_ids, m.class_names)):
         nb = name.encode("ascii")
         if not 1 <= len(nb) <= 255 or not 0 <= cid <= 255:
             raise InputError(f"class {name!r}: name must be 1..255 ASCII characters and index 0..255")
-        table += struct.pack("<BB", cid, len(nb)) + nb
+        table += struct.pack("<BBB", cid, FLAG_PARTITION if i in part else 0, len(nb)) + nb
     size = _FIXED.size + len(table) + 4
     fixed = _FIXED.pack(MAGIC, VERSION, 0, size, m.lat0_deg, m.lon0_deg, m.h0_m, m.res_m, m.x_min, m.y_max,
-                        m.rows, m.cols, m.tile, m.n_channels, m.tile_rows * m.tile_cols)
+                        m.rows, m.cols, m.tile, m.n_channels, m.tile_rows * m.tile_cols, model_size)
     body = fixed + table
     return body + struct.pack("<I", zlib.crc32(body))
 
 
 class PackWriter:
-    """Writes a packed map tile by tile (any order); the index is written on :meth:`close`.
+    """Writes a packed map tile by tile (any order); everything goes to disk on :meth:`close`.
 
-    The file appears at ``path`` only when complete (written to a temporary name, then renamed).
+    Tiles are held compressed in memory until then, because the map's probability model (the
+    statistics of every context-coded tile) must be known before the first tile is coded. The file
+    appears at ``path`` only when complete (written to a temporary name, then renamed).
     """
 
     def __init__(self, path, meta: MapMeta, *, level: int = ZLIB_LEVEL):
@@ -167,50 +219,120 @@ class PackWriter:
             self._f = open(self._tmp, "wb")
         except OSError as e:
             raise InputError(f"{self.path}: cannot write ({e.strerror or e})") from None
-        head = _header_bytes(meta)
         self._n = meta.tile_rows * meta.tile_cols
-        self._index = [(0, 0, 0)] * self._n
-        self._written = [False] * self._n
-        self._f.write(head)
-        self._f.write(b"\0" * (self._n * _ENTRY.size + 4))
-        self._index_at = len(head)
-        self._pos = self._index_at + self._n * _ENTRY.size + 4
+        self._spool = [None] * self._n  # per tile: None (empty) or (present, full, coding, zlib bytes)
+        self._part = np.zeros(meta.n_channels, dtype=np.uint8)
+        self._part[list(int(c) for c in meta.partition)] = 1
+        self._counts = np.zeros((meta.n_channels * NCTX, 2), dtype=np.int64)
+        nb = -(-meta.tile // _kernels.BLOCK)
+        self._blk = np.zeros((meta.n_channels, nb, nb), dtype=np.uint8)
+        self._taken = np.zeros((meta.tile, meta.tile), dtype=np.int64)
+        self._qp = np.zeros((meta.tile + 2, meta.tile + 4), dtype=np.uint8)
+        self._st = np.zeros(9, dtype=np.int64)
+        self._nobuf = np.zeros(1, dtype=np.uint8)
+        self._probs = np.zeros(meta.n_channels * NCTX, dtype=np.uint16)
         self.stored_bytes = 0
         self.empty_tiles = 0
+        self.context_tiles = 0
 
     def write_tile(self, tile_row: int, tile_col: int, data: np.ndarray) -> None:
-        """Store one tile: ``data`` (C, tile, tile) uint8 coverage (edge tiles padded with 0)."""
+        """Store one tile: ``data`` (C, tile, tile) uint8 coverage (edge tiles padded with 0).
+
+        Tiles whose stored codes are all multiples of 17 (16 coverage levels) are context-coded;
+        any other codes are kept exactly, compressed with zlib.
+        """
         m = self.meta
         if data.shape != (m.n_channels, m.tile, m.tile) or data.dtype != np.uint8:
             raise InputError(f"tile data must be uint8 {(m.n_channels, m.tile, m.tile)}, got {data.dtype} {data.shape}")
         k = tile_row * m.tile_cols + tile_col
-        present = data.reshape(m.n_channels, -1).max(axis=1) > 0
+        flat = data.reshape(m.n_channels, -1)
+        present = flat.max(axis=1) > 0
         if not present.any():
-            self._index[k] = (0, 0, 0)
-            self.empty_tiles += 1
+            self._spool[k] = None
+            return
+        full = flat.min(axis=1) == 255
+        stored = present & ~full
+        pm = sum(1 << int(i) for i in np.flatnonzero(present))
+        fm = sum(1 << int(i) for i in np.flatnonzero(full))
+        if not stored.any():
+            self._spool[k] = (pm, fm, None, b"")
+            return
+        codes = np.ascontiguousarray(data[stored])
+        if not np.any(codes % 17):
+            levels = data // 17
+            kinds = np.where(full, 1, np.where(present, 2, 0)).astype(np.uint8)
+            _kernels.count_tile(levels, kinds, self._part, self._probs, self._counts, self._nobuf, self._st,
+                                self._blk, self._taken, self._qp)
+            self._spool[k] = (pm, fm, CODING_CONTEXT, zlib.compress(codes.tobytes(), 1))
         else:
-            full = data.reshape(m.n_channels, -1).min(axis=1) == 255
-            stored = present & ~full
-            pm = sum(1 << i for i in np.flatnonzero(present))
-            fm = sum(1 << i for i in np.flatnonzero(full))
-            body = zlib.compress(np.ascontiguousarray(data[stored]).tobytes(), self.level) if stored.any() else b""
-            blob = _MASKS.pack(pm, fm) + body
-            self._f.write(blob)
-            self._index[k] = (self._pos, len(blob), zlib.crc32(blob))
-            self._pos += len(blob)
-            self.stored_bytes += len(blob)
-        self._written[k] = True
+            self._spool[k] = (pm, fm, CODING_ZLIB, zlib.compress(codes.tobytes(), self.level))
+
+    def _payload(self, item) -> bytes:
+        m = self.meta
+        pm, fm, coding, body = item
+        mb = _mask_bytes(m.n_channels)
+        head = pm.to_bytes(mb, "little") + fm.to_bytes(mb, "little")
+        if coding is None:
+            return head
+        if coding == CODING_ZLIB:
+            return head + bytes([CODING_ZLIB]) + body
+        present = [(pm >> i) & 1 == 1 for i in range(m.n_channels)]
+        full = [(fm >> i) & 1 == 1 for i in range(m.n_channels)]
+        stored = [i for i in range(m.n_channels) if present[i] and not full[i]]
+        raw = zlib.decompress(body)
+        data = np.zeros((m.n_channels, m.tile, m.tile), dtype=np.uint8)
+        data[stored] = np.frombuffer(raw, dtype=np.uint8).reshape(len(stored), m.tile, m.tile)
+        for i in range(m.n_channels):
+            if full[i]:
+                data[i] = 255
+        levels = data // 17
+        kinds = np.array([1 if full[i] else (2 if present[i] else 0) for i in range(m.n_channels)], dtype=np.uint8)
+        out = np.zeros(len(raw) + 64, dtype=np.uint8)
+        st = self._st
+        st[:] = 0
+        st[1] = 0xFFFFFFFF
+        st[3] = 1
+        st[7] = 1
+        _kernels.encode_tile(levels, kinds, self._part, self._probs, self._counts, out, st, self._blk, self._taken,
+                             self._qp)
+        n = _kernels.finish_stream(st, out)
+        if n < 0:  # the model fits this tile badly: keep it as zlib, never larger than that
+            return head + bytes([CODING_ZLIB]) + zlib.compress(raw, self.level)
+        self.context_tiles += 1
+        return head + bytes([CODING_CONTEXT]) + out[:n].tobytes()
 
     def close(self) -> int:
-        """Write the index, rename into place; returns the file size in bytes."""
+        """Build the model, code every tile, write the file and rename it into place; returns its size."""
         if self._f is None:
             return self.path.stat().st_size
         try:
-            idx = b"".join(_ENTRY.pack(*e) for e in self._index)
-            self._f.seek(self._index_at)
-            self._f.write(idx + struct.pack("<I", zlib.crc32(idx)))
-            self._f.close()
+            coded = any(it is not None and it[2] == CODING_CONTEXT for it in self._spool)
+            model = b""
+            if coded:
+                table = model_from_counts(self._counts)
+                self._probs[:] = PROB_LUT[table]
+                model = zlib.compress(table.tobytes(), 9)
+            index = []
+            f = self._f
+            head = _header_bytes(self.meta, len(model))
+            f.write(head)
+            f.write(b"\0" * (self._n * _ENTRY.size + 4))
+            f.write(model + struct.pack("<I", zlib.crc32(model)))
+            for it in self._spool:
+                if it is None:
+                    index.append((0, 0))
+                    self.empty_tiles += 1
+                    continue
+                blob = self._payload(it)
+                f.write(blob)
+                index.append((len(blob), zlib.crc32(blob)))
+                self.stored_bytes += len(blob)
+            idx = b"".join(_ENTRY.pack(*e) for e in index)
+            f.seek(len(head))
+            f.write(idx + struct.pack("<I", zlib.crc32(idx)))
+            f.close()
             self._f = None
+            self._spool = []
             os.replace(self._tmp, self.path)
         except BaseException:
             self.abort()
@@ -279,7 +401,8 @@ class PackedMap:
     path : Path
     """
 
-    def __init__(self, path: Path, f, meta: MapMeta, index: np.ndarray, cache_bytes: int, file_size: int):
+    def __init__(self, path: Path, f, meta: MapMeta, index: np.ndarray, cache_bytes: int, file_size: int,
+                 probs=None):
         self.path = path
         self._f = f
         self.meta = meta
@@ -292,6 +415,10 @@ class PackedMap:
         self._lock = threading.Lock()
         self.file_size = file_size
         self._tile_nbytes = meta.n_channels * meta.tile * meta.tile
+        self._probs = probs  # (C * NCTX,) uint16 from the model, or None when the map has no model
+        self._part = np.zeros(meta.n_channels, dtype=np.uint8)
+        self._part[list(meta.partition)] = 1
+        self._nocounts = np.zeros((1, 2), dtype=np.int64)
 
     # ------------------------------------------------------------------ opening
     @classmethod
@@ -321,11 +448,11 @@ class PackedMap:
             raise MapFormatError(f"{p}: cannot read ({e.strerror or e})") from None
         try:
             size = os.fstat(f.fileno()).st_size
-            meta, index = _read_head(f, size, str(p))
+            meta, index, probs = _read_head(f, size, str(p))
         except BaseException:
             f.close()
             raise
-        return cls(p, f, meta, index, cache_bytes, size)
+        return cls(p, f, meta, index, cache_bytes, size, probs)
 
     def close(self) -> None:
         if self._f is not None:
@@ -502,14 +629,17 @@ class PackedMap:
         m = self.meta
         reason = None
         tsz = m.tile * m.tile
+        mb = _mask_bytes(m.n_channels)
+        stored, full, raw, levels = [], [], b"", None
         if len(blob) != int(self._index[k][1]):
             reason = "file shorter than its index says"
         elif zlib.crc32(blob) != crc:
             reason = "CRC-32 mismatch"
-        elif len(blob) < _MASKS.size:
+        elif len(blob) < 2 * mb:
             reason = "shorter than its channel masks"
         else:
-            pm, fm = _MASKS.unpack_from(blob)
+            pm = int.from_bytes(blob[:mb], "little")
+            fm = int.from_bytes(blob[mb:2 * mb], "little")
             allowed = (1 << m.n_channels) - 1
             if pm & ~allowed or fm & ~pm or pm == 0:
                 reason = "channel masks name channels the map does not have"
@@ -517,18 +647,28 @@ class PackedMap:
                 present = [(pm >> i) & 1 == 1 for i in range(m.n_channels)]
                 full = [(fm >> i) & 1 == 1 for i in range(m.n_channels)]
                 stored = [i for i in range(m.n_channels) if present[i] and not full[i]]
-                want = len(stored) * tsz
-                raw = b""
-                try:
-                    if want:
+                body = memoryview(blob)[2 * mb + 1:]
+                if not stored:
+                    if len(blob) != 2 * mb:
+                        reason = "data after a tile with no stored channels"
+                elif len(blob) < 2 * mb + 1:
+                    reason = "no coding byte after the channel masks"
+                elif blob[2 * mb] == CODING_ZLIB:
+                    want = len(stored) * tsz
+                    try:
                         d = zlib.decompressobj()
-                        raw = d.decompress(memoryview(blob)[_MASKS.size:], want)
+                        raw = d.decompress(body, want)
                         if len(raw) != want or d.unconsumed_tail or not d.eof or d.unused_data:
                             reason = "stream does not inflate to the declared tile size"
-                    elif len(blob) != _MASKS.size:
-                        reason = "data after a tile with no stored channels"
-                except zlib.error as e:
-                    reason = f"bad zlib stream ({e})"
+                    except zlib.error as e:
+                        reason = f"bad zlib stream ({e})"
+                elif blob[2 * mb] == CODING_CONTEXT:
+                    if self._probs is None:
+                        reason = "context-coded, but the map has no model"
+                    else:
+                        levels = self._decode_context(present, full, body)
+                else:
+                    reason = f"unknown tile coding {blob[2 * mb]}"
         if reason is not None:
             with self._lock:
                 first = k not in self._damaged
@@ -538,6 +678,9 @@ class PackedMap:
                 log.warning("%s: damaged tile (row %d, col %d): %s; its cells read as unknown",
                             self.path, tr, tc, reason)
             return _DAMAGED
+        if levels is not None:
+            np.multiply(levels, np.uint8(17), out=levels)  # levels 0..15 -> codes 0..255
+            return levels
         tile = np.zeros((m.n_channels, m.tile, m.tile), dtype=np.uint8)
         if stored:
             tile[stored] = np.frombuffer(raw, dtype=np.uint8).reshape(len(stored), m.tile, m.tile)
@@ -546,9 +689,25 @@ class PackedMap:
                 tile[i] = 255
         return tile
 
+    def _decode_context(self, present, full, body) -> np.ndarray:
+        """Levels (C, t, t) uint8 of a context-coded tile (full channels 15, absent 0)."""
+        m = self.meta
+        kinds = np.array([1 if full[i] else (2 if present[i] else 0) for i in range(m.n_channels)], dtype=np.uint8)
+        levels = np.zeros((m.n_channels, m.tile, m.tile), dtype=np.uint8)
+        levels[kinds == 1] = 15
+        buf = np.frombuffer(bytearray(body), dtype=np.uint8) if len(body) else np.zeros(1, dtype=np.uint8)
+        head = bytes(body[:4]).ljust(4, b"\0")
+        st = np.array([0, 0xFFFFFFFF, 0, 0, 4, int.from_bytes(head, "big"), len(body), 0, 0], dtype=np.int64)
+        nb = -(-m.tile // _kernels.BLOCK)
+        blk = np.zeros((m.n_channels, nb, nb), dtype=np.uint8)
+        taken = np.zeros((m.tile, m.tile), dtype=np.int64)
+        qp = np.zeros((m.tile + 2, m.tile + 4), dtype=np.uint8)
+        _kernels.decode_tile(levels, kinds, self._part, self._probs, self._nocounts, buf, st, blk, taken, qp)
+        return levels
+
 
 def _read_head(f, size: int, where: str):
-    """Parse and check the header and the tile index; raises MapFormatError."""
+    """Parse and check the header, the tile index and the model; raises MapFormatError."""
     def bad(msg):
         return MapFormatError(f"{where}: {msg}")
 
@@ -557,14 +716,19 @@ def _read_head(f, size: int, where: str):
         raise bad("truncated: the file is empty")
     if head[:len(MAGIC)] != MAGIC[:len(head)]:
         raise bad("not a tinyloc packed map (wrong magic bytes)")
+    if len(head) >= 10:
+        (version,) = struct.unpack_from("<H", head, 8)
+        if version > VERSION:
+            raise bad(f"format version {version} is newer than this tinyloc reads ({VERSION}); update tinyloc")
+        if version == 1:
+            raise bad("format version 1 is no longer read by this tinyloc; pack the map again from its GeoJSON "
+                      "(tinyloc map pack)")
+        if version < 1:
+            raise bad(f"unsupported format version {version}")
     if len(head) < MIN_HEADER:
         raise bad(f"truncated: file is {size} bytes, shorter than the smallest header ({MIN_HEADER} bytes)")
     (magic, version, flags, hsize, lat0, lon0, h0, res, x_min, y_max, rows, cols, tile, nch,
-     ntiles) = _FIXED.unpack_from(head)
-    if version > VERSION:
-        raise bad(f"format version {version} is newer than this tinyloc reads ({VERSION}); update tinyloc")
-    if version < 1:
-        raise bad(f"unsupported format version {version}")
+     ntiles, model_size) = _FIXED.unpack_from(head)
     if not MIN_HEADER <= hsize <= MAX_HEADER:
         raise bad(f"header declares its size as {hsize} bytes (limit {MIN_HEADER}..{MAX_HEADER})")
     if hsize > size:
@@ -574,22 +738,27 @@ def _read_head(f, size: int, where: str):
         raise bad("header checksum mismatch (the file is damaged)")
     if flags != 0:
         raise bad(f"unknown header flags 0x{flags:04x} (written by a newer tinyloc?)")
-    names, ids = [], []
+    names, ids, part = [], [], []
     pos = _FIXED.size
     for i in range(nch if nch <= MAX_CHANNELS else 0):
-        if pos + 2 > hsize - 4:
+        if pos + 3 > hsize - 4:
             raise bad(f"class table runs past the header (entry {i})")
-        cid, n = head[pos], head[pos + 1]
-        name = head[pos + 2:pos + 2 + n]
-        if n == 0 or pos + 2 + n > hsize - 4:
+        cid, cflags, n = head[pos], head[pos + 1], head[pos + 2]
+        name = head[pos + 3:pos + 3 + n]
+        if n == 0 or pos + 3 + n > hsize - 4:
             raise bad(f"class table entry {i} is malformed")
+        if cflags & ~FLAG_PARTITION:
+            raise bad(f"class table entry {i} has unknown flags 0x{cflags:02x} (written by a newer tinyloc?)")
         try:
             names.append(name.decode("ascii"))
         except UnicodeDecodeError:
             raise bad(f"class table entry {i} is not ASCII") from None
         ids.append(cid)
-        pos += 2 + n
-    meta = MapMeta(lat0, lon0, h0, res, x_min, y_max, rows, cols, tile, tuple(names), tuple(ids), version)
+        if cflags & FLAG_PARTITION:
+            part.append(i)
+        pos += 3 + n
+    meta = MapMeta(lat0, lon0, h0, res, x_min, y_max, rows, cols, tile, tuple(names), tuple(ids), version,
+                   tuple(part))
     if nch > MAX_CHANNELS:
         raise bad(f"header declares {nch} channels (limit 1..{MAX_CHANNELS})")
     _check_meta(meta, where)
@@ -597,6 +766,8 @@ def _read_head(f, size: int, where: str):
         raise bad("class table does not fill the header exactly")
     if ntiles != meta.tile_rows * meta.tile_cols:
         raise bad(f"header declares {ntiles} tiles, the extent needs {meta.tile_rows * meta.tile_cols}")
+    if model_size > _max_model(nch):
+        raise bad(f"header declares a model of {model_size} bytes (limit {_max_model(nch)})")
     index_end = hsize + ntiles * _ENTRY.size + 4
     if index_end > size:
         raise bad(f"truncated: tile index needs {index_end} bytes, file has {size}")
@@ -607,17 +778,35 @@ def _read_head(f, size: int, where: str):
     (icrc,) = struct.unpack_from("<I", raw, ntiles * _ENTRY.size)
     if zlib.crc32(raw[:-4]) != icrc:
         raise bad("tile index checksum mismatch (the file is damaged)")
-    index = np.frombuffer(raw[:-4], dtype=np.dtype([("off", "<u8"), ("len", "<u4"), ("crc", "<u4")]))
-    index = np.stack([index["off"].astype(np.int64), index["len"].astype(np.int64), index["crc"].astype(np.int64)],
-                     axis=1)
-    used = index[:, 1] > 0
-    raw_max = meta.n_channels * tile * tile
-    max_blob = _MASKS.size + raw_max + (raw_max >> 8) + 64  # > zlib's worst case
-    if np.any(index[used, 1] > max_blob):
+    entries = np.frombuffer(raw[:-4], dtype=np.dtype([("len", "<u4"), ("crc", "<u4")]))
+    lengths = entries["len"].astype(np.int64)
+    max_blob = _max_payload(meta)
+    if np.any(lengths > max_blob):
         raise bad(f"tile index declares a tile larger than any valid tile ({max_blob} bytes)")
-    if np.any(index[used, 0] < index_end):
-        raise bad("tile index points into the header")
-    ends = index[used, 0] + index[used, 1]
-    if ends.size and int(ends.max()) > size:
-        raise bad(f"truncated: tile data needs {int(ends.max())} bytes, file has {size}")
-    return meta, index
+    model_end = index_end + model_size + 4
+    if model_end > size:
+        raise bad(f"truncated: model needs {model_end} bytes, file has {size}")
+    ends = model_end + np.cumsum(lengths)
+    if ends.size and int(ends[-1]) > size:
+        raise bad(f"truncated: tile data needs {int(ends[-1])} bytes, file has {size}")
+    index = np.stack([ends - lengths, lengths, entries["crc"].astype(np.int64)], axis=1)
+    probs = None
+    f.seek(index_end)
+    blob = f.read(model_size + 4)
+    if len(blob) != model_size + 4:
+        raise bad("truncated while reading the model")
+    (mcrc,) = struct.unpack_from("<I", blob, model_size)
+    if zlib.crc32(blob[:model_size]) != mcrc:
+        raise bad("model checksum mismatch (the file is damaged)")
+    if model_size:
+        want = nch * NCTX
+        try:
+            d = zlib.decompressobj()
+            table = d.decompress(blob[:model_size], want)
+            ok = len(table) == want and not d.unconsumed_tail and d.eof and not d.unused_data
+        except zlib.error:
+            ok = False
+        if not ok:
+            raise bad(f"model does not inflate to its declared size ({want} bytes)")
+        probs = PROB_LUT[np.frombuffer(table, dtype=np.uint8)]
+    return meta, index, probs
