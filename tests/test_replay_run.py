@@ -200,9 +200,11 @@ def test_bad_input_is_one_line(site, tmp_path, capsys):
     assert main(["replay", str(site["run"]), "--localizer", "nomodule_xyz:f"]) == 2
     err = capsys.readouterr().err
     assert "cannot load" in err
+    # A localizer that breaks is the job failing (status 1), still one line, not a traceback.
     assert main(["replay", str(site["run"]), "-o", str(tmp_path / "b"), "-q",
-                 "--localizer", "_replay_helpers:broken"]) == 2
-    assert "always fails to start" in capsys.readouterr().err
+                 "--localizer", "_replay_helpers:broken"]) == 1
+    err = capsys.readouterr().err
+    assert "RuntimeError: this localizer always fails to start" in err and err.count("\n") == 1
 
 
 def test_report_without_matplotlib_states_it_and_uses_tables(site, tmp_path, monkeypatch):

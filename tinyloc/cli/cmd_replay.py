@@ -141,7 +141,10 @@ def run(args) -> int:
     rows = run_batch(jobs, workers=args.jobs or None, show_progress=not args.quiet)
     failed = [r for r in rows if r.get("error")]
     if single and failed:
-        raise InputError(failed[0]["error"].removeprefix("tinyloc: error: "))
+        if failed[0].get("error_kind") == "input":
+            raise InputError(failed[0]["error"])  # bad run folder, map or settings: exit status 2
+        print(f"tinyloc: error: {failed[0]['error']}", file=sys.stderr)  # the replay itself failed
+        return 1
     if not single:
         out.mkdir(parents=True, exist_ok=True)
         summary = [{k: v for k, v in r.items() if k != "metrics"} for r in rows]

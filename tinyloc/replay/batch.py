@@ -132,8 +132,10 @@ def run_job(job: Job, index: int = 0) -> dict:
         return _run_job(job, index, row)
     except TinylocError as e:
         row["error"] = str(e)
+        row["error_kind"] = "input"
     except Exception as e:  # noqa: BLE001 - one run's unexpected fault must not stop the batch
         row["error"] = f"{job.run}: {type(e).__name__}: {e}"
+        row["error_kind"] = "internal"
     return row
 
 
