@@ -268,6 +268,20 @@ def _sky(dx, dy, dz, sun, p_sky, t_s):
     return r, gg, b
 
 
+@njit(**JIT)
+def _light_at(shadow, s_x0, s_y1, s_res, x, y):
+    """Ground light fraction 0..1 at (x, y), bilinear between shadow-raster cell centres."""
+    fc = (x - s_x0) / s_res - 0.5
+    fr = (s_y1 - y) / s_res - 0.5
+    sc = np.int64(math.floor(fc))
+    sr = np.int64(math.floor(fr))
+    if sr < 0 or sr >= shadow.shape[0] - 1 or sc < 0 or sc >= shadow.shape[1] - 1:
+        return 1.0
+    ac, ar = fc - sc, fr - sr
+    return ((shadow[sr, sc] * (1 - ac) + shadow[sr, sc + 1] * ac) * (1 - ar) +
+            (shadow[sr + 1, sc] * (1 - ac) + shadow[sr + 1, sc + 1] * ac) * ar) * (1.0 / 255.0)
+
+
 @njit(**PJIT)
 def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph, objs,
                  gmat, g_x0, g_y1, g_res, gcolor, gclass, shadow, s_x0, s_y1, s_res,
@@ -285,7 +299,6 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
     """
     H, W = out_lab.shape
     gh, gw = gmat.shape
-    sh_h, sh_w = shadow.shape
     nl = lut.shape[0]
     for ti in prange(tile_px.shape[0]):
         r0, r1, c0, c1 = tile_px[ti, 0], tile_px[ti, 1], tile_px[ti, 2], tile_px[ti, 3]
@@ -390,16 +403,7 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
                                 k = 0.8 + 0.3 * f1 + 0.3 * f2 + 0.3 * (f3 - 0.5)
                             cr, cg, cb = cr * k, cg * k, cb * k
                         # shadow lookup
-                        fc = (x - s_x0) / s_res - 0.5  # bilinear between cell centres
-                        fr = (s_y1 - y) / s_res - 0.5
-                        sc = np.int64(math.floor(fc))
-                        sr = np.int64(math.floor(fr))
-                        lit = 1.0
-                        if sr >= 0 and sr < sh_h - 1 and sc >= 0 and sc < sh_w - 1:
-                            ac, ar = fc - sc, fr - sr
-                            lit = ((shadow[sr, sc] * (1 - ac) + shadow[sr, sc + 1] * ac) * (1 - ar) +
-                                   (shadow[sr + 1, sc] * (1 - ac) + shadow[sr + 1, sc + 1] * ac) * ar) * (1.0 / 255.0)
-                        sunlit = lit * max(sun[2], 0.0)
+                        sunlit = _light_at(shadow, s_x0, s_y1, s_res, x, y) * max(sun[2], 0.0)
                     else:
                         kind = objs[hit, 0]
                         row = objs[hit, 1]
@@ -535,6 +539,12 @@ def render_tiles(rays, vig, R, org, tile_obj, tile_n, tile_px, boxes, cyls, sph,
                                 cr, cg, cb = 0.03, 0.02, 0.015  # hair
                         diff = nx * sun[0] + ny * sun[1] + nz * sun[2]
                         sunlit = max(diff, 0.0)
+                        if sunlit > 0.0 and nz < 0.5 and sun[2] > 0.05:
+                            # shadows cast on walls and trunks: the light at the ground point whose sun ray
+                            # passes through this point (a little towards the sun, clear of the wall itself)
+                            hz = math.sqrt(sun[0] * sun[0] + sun[1] * sun[1]) + 1e-12
+                            k = z / sun[2] * hz + 0.3
+                            sunlit *= _light_at(shadow, s_x0, s_y1, s_res, x + sun[0] / hz * k, y + sun[1] / hz * k)
                         amb *= 0.75 + 0.25 * nz
                     # lighting: sun + sky ambient
                     lr = light[0] * sunlit + light[3] * amb
