@@ -188,15 +188,20 @@ def designed_model() -> ScoringModel:
             m[k] = v
         rows.append((name, b, m, sigma))
 
-    feat("building", {BUILDING: 1.0}, {BUILDING: 1.0}, 1.0)
+    # Vertical features weigh 3x: chosen among 1x..4x by single-frame recovery on 60 generated frames
+    # (sites 200-203, seed 5; disjoint from the benchmark's sites), 45 % -> 60 % within 1 m / 3 deg.
+    feat("building", {BUILDING: 3.0}, {BUILDING: 1.0}, 1.0)
     feat("road", {ROAD: 1.0, VIS: -0.2}, {ROAD: 1.0, SIDEWALK: -0.5, GRASS: -0.5, PARKING: -0.3}, 0.5)
     feat("sidewalk", {SIDEWALK: 1.0, PARKING: 1.0, VIS: -0.2}, {SIDEWALK: 1.0, PARKING: 1.0, ROAD: -0.5, GRASS: -0.5},
          0.5)
     feat("grass", {GRASS: 1.0, WATER: 1.0, VIS: -0.2}, {GRASS: 1.0, WATER: 1.0, ROAD: -0.5, SIDEWALK: -0.5}, 0.5)
-    feat("small-vertical", {TREE: 1.0, POLE: 1.0, FENCE: 1.0}, {TREE: 1.0, POLE: 1.0, FENCE: 1.0}, 1.5)
+    feat("small-vertical", {TREE: 3.0, POLE: 3.0, FENCE: 3.0}, {TREE: 1.0, POLE: 1.0, FENCE: 1.0}, 1.5)
     feat("free", {FREE: 1.0}, {BUILDING: -1.0, TREE: -1.0, POLE: -1.0, FENCE: -1.0}, 1.0)
     return ScoringModel(tuple(r[0] for r in rows), np.stack([r[1] for r in rows]), np.stack([r[2] for r in rows]),
-                        tuple(r[3] for r in rows), 1.0, {"weights": "hand-designed (scoring.designed_model)"})
+                        tuple(r[3] for r in rows), 1.0,
+                        {"weights": "hand-designed (scoring.designed_model); vertical features x3 chosen among "
+                                    "x1..x4 by single-frame recovery on 60 generated frames (street_map seeds "
+                                    "200-203, trial seed 5, 192 x 192 windows, coarse-to-fine search)"})
 
 
 def bev_channels(bev) -> list[np.ndarray]:
