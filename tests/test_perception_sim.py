@@ -5,18 +5,23 @@ and the true class of every ground cell from its world (ground polygons, buildin
 tests/_perception_sim.py. The segmenter's thresholds were tuned on sites 1 and 2; these tests use
 sites 5 and 6. Floors are measured values minus about 0.03 (docs/perception.md has the tables); they
 follow the simulator's rendering, so a change of its look can move them. The issue's bird's-eye goal
-(>= 0.6 for buildings and road within 20 m) is not met; the "oracle" rows show how much of the gap is
-segmentation rather than projection.
+(>= 0.6 for buildings and road within 20 m) is met for road and not for buildings; the "oracle" rows
+show how much of the gap is segmentation rather than projection.
 
 Bird's-eye IoU is counted over the cells within 20 m that the "oracle" grid (the true label image
 through the same projector) marks as seen - what this camera truly saw from this pose - so a
 building's hidden interior does not count; the truth in those cells is the world, not the oracle.
 """
 
+import csv
+from pathlib import Path
+
+import cv2
 import numpy as np
 import pytest
 
 from _perception_sim import WorldRaster, building_frames, gravity_of, rendered_frames, sim_camera
+from tinyloc.camera.model import load_camera
 from tinyloc.classes import BUILDING, DYNAMIC, GRASS, NUM_CLASSES, ROAD, SIDEWALK, SKY, TREE
 from tinyloc.perception.pipeline import Perception, PerceptionParams
 from tinyloc.perception.segment import labels_at, preset
@@ -26,10 +31,10 @@ FRAMES = 8
 PIX_GROUPS = {"sky": [SKY], "building": [BUILDING], "road": [ROAD], "sidewalk": [SIDEWALK],
               "road+sidewalk": [ROAD, SIDEWALK], "vegetation": [TREE, GRASS]}
 BEV_CLASSES = {"building": BUILDING, "road": ROAD, "sidewalk": SIDEWALK, "grass": GRASS}
-PIX_FLOORS = {"sky": 0.83, "building": 0.62, "road": 0.76, "sidewalk": 0.80, "road+sidewalk": 0.90, "vegetation": 0.69}
-BEV_FLOORS = {"building": 0.12, "road": 0.45, "sidewalk": 0.38, "grass": 0.66}
+PIX_FLOORS = {"sky": 0.84, "building": 0.62, "road": 0.70, "sidewalk": 0.78, "road+sidewalk": 0.90, "vegetation": 0.69}
+BEV_FLOORS = {"building": 0.11, "road": 0.60, "sidewalk": 0.41, "grass": 0.65}
 ORACLE_FLOORS = {"building": 0.55, "road": 0.86}
-FACING_FLOORS = {"building": 0.30}
+FACING_FLOORS = {"building": 0.40}
 FACING_ORACLE_FLOORS = {"building": 0.67}
 
 
@@ -113,3 +118,36 @@ def test_bev_facing_buildings(facing):
         assert iou[k] >= floor, (k, iou[k])
     for k, floor in FACING_ORACLE_FLOORS.items():
         assert oracle[k] >= floor, (k, oracle[k])
+
+
+DEMO_RUN = Path(__file__).resolve().parents[1] / "tinyloc" / "data" / "demo" / "run"
+DEMO_FLOORS = {"sky": 0.72, "sidewalk": 0.79, "road+sidewalk": 0.85, "vegetation": 0.62}
+
+
+def test_demo_run_frames():
+    """The bundled demo run (another site, the rover's own drive on sidewalks, JPEG frames, IMU gravity)."""
+    need = ["camera.toml", "frames.csv", "imu.csv", "labels"]
+    missing = [n for n in need if not (DEMO_RUN / n).exists()]
+    if missing:
+        pytest.skip(f"demo run at {DEMO_RUN} lacks {', '.join(missing)} (the simulator regenerates it)")
+    cam = load_camera(DEMO_RUN / "camera.toml")
+    imu = np.loadtxt(DEMO_RUN / "imu.csv", delimiter=",", skiprows=1, ndmin=2)
+    perc = Perception(cam, PerceptionParams(segment=preset("sidewalk")))
+    grid = perc.new_grid()
+    counts = np.zeros((len(PIX_GROUPS), 2), np.int64)
+    with open(DEMO_RUN / "frames.csv", newline="") as f:
+        rows = list(csv.DictReader(f))
+    for row in rows:
+        img = cv2.imread(str(DEMO_RUN / row["file"]), cv2.IMREAD_COLOR)
+        lab = cv2.imread(str(DEMO_RUN / "labels" / (Path(row["file"]).stem + ".png")), cv2.IMREAD_GRAYSCALE)
+        k = int(np.argmin(np.abs(imu[:, 0] - float(row["t"]))))
+        assert perc.process(img, imu[k, 1:4], grid) == "ok"
+        pred = labels_at(perc.probs, (cam.width, cam.height))
+        m = lab != 255
+        for n, cs in enumerate(PIX_GROUPS.values()):
+            a, b = np.isin(pred, cs) & m, np.isin(lab, cs) & m
+            counts[n] += np.count_nonzero(a & b), np.count_nonzero(a | b)
+    iou = {k: counts[n, 0] / max(counts[n, 1], 1) for n, k in enumerate(PIX_GROUPS)}
+    print(f"demo run ({len(rows)} frames) IoU:", {k: round(v, 3) for k, v in iou.items()})
+    for k, floor in DEMO_FLOORS.items():
+        assert iou[k] >= floor, (k, iou[k])

@@ -123,12 +123,14 @@ class SegmentParams:
 
 #: Named parameter sets. The defaults ("street") were tuned jointly on the labelled street-image set
 #: (a car on city roads) and on rendered frames of simulated sites 1 and 2; "sidewalk" has the robot on
-#: the footway (and lets facades reach further down, tuned on the same rendered sites); "park"
+#: the footway (lightness weighs more in telling paving from asphalt, and facades may reach further
+#: down; both chosen on the same rendered sites 1 and 2); "park"
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
-    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0),
-    "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, green0=-0.02, grass_weight=0.6),
+    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0),
+    "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
+                          grass_weight=0.7),
 }
 
 
