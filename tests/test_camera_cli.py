@@ -7,8 +7,7 @@ import cv2
 import numpy as np
 import pytest
 
-from _camera_helpers import render_board
-from test_camera_calibrate import DIST, K, SIZE, _ground_board_photo, _views
+from test_camera_calibrate import DIST, K, _ground_board_photo, _views
 from tinyloc.camera.model import CameraModel, Mount, load_camera
 from tinyloc.cli.main import main
 

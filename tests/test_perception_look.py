@@ -45,3 +45,23 @@ def test_look_bad_input_one_line(tmp_path, capsys):
     cv2.imwrite(str(img), _street_like())
     assert main(["look", str(img), "--gravity", "1,2", "-o", str(tmp_path / "o")]) == 2
     assert "--gravity" in capsys.readouterr().err
+
+
+def test_look_with_external_labels(tmp_path):
+    from tinyloc.perception.labels_in import save_label_map
+
+    img = _street_like()
+    p = tmp_path / "frame.png"
+    cv2.imwrite(str(p), img)
+    ext = np.zeros((240, 320), np.uint8)
+    ext[80:130] = 7
+    ext[130:] = 2
+    cv2.imwrite(str(tmp_path / "ext.png"), ext)
+    save_label_map(tmp_path / "ids.toml", {0: "sky", 7: "building", 2: "road"})
+    cam = tmp_path / "camera.toml"
+    save_camera(cam, CameraModel(320, 240, 250.0, 250.0, 159.5, 119.5, mount=Mount(0.8, 8.0)))
+    out = tmp_path / "look"
+    assert main(["look", str(p), "--camera", str(cam), "--labels", str(tmp_path / "ext.png"), "--label-map",
+                 str(tmp_path / "ids.toml"), "-o", str(out)]) == 0
+    labels = cv2.imread(str(out / "labels.png"), cv2.IMREAD_UNCHANGED)
+    assert labels[10, 10] == 9 and labels[100, 10] == 0 and labels[200, 10] == 1

@@ -22,7 +22,7 @@ import pytest
 
 from _perception_sim import WorldRaster, building_frames, gravity_of, rendered_frames, sim_camera
 from tinyloc.camera.model import load_camera
-from tinyloc.classes import BUILDING, DYNAMIC, GRASS, NUM_CLASSES, ROAD, SIDEWALK, SKY, TREE
+from tinyloc.classes import BUILDING, GRASS, NUM_CLASSES, ROAD, SIDEWALK, SKY, TREE
 from tinyloc.perception.pipeline import Perception, PerceptionParams
 from tinyloc.perception.segment import labels_at, preset
 

@@ -109,7 +109,9 @@ def fit_mount_from_rectangle(camera: CameraModel, corners_px, width_m: float, le
 
 
 def set_mount(camera: CameraModel, **values) -> CameraModel:
-    """The camera with mount fields set by hand (``height_m``, ``pitch_deg``, ``roll_deg``, ``yaw_deg``, ``x_m``, ``y_m``).
+    """The camera with mount fields set by hand.
+
+    Fields: ``height_m``, ``pitch_deg``, ``roll_deg``, ``yaw_deg``, ``x_m``, ``y_m``.
 
     ``None`` values are left unchanged; the result is validated like a loaded file.
     """

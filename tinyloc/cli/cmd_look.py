@@ -34,7 +34,8 @@ def register(parser):
     p.add_argument("--preset", default="street", help="segmentation preset: street, sidewalk, park (default street)")
     p.add_argument("--labels", metavar="LABELS.png", help="use this external label image instead of segmenting")
     p.add_argument("--label-map", metavar="MAP.toml", help="id -> class table for --labels (docs/perception.md)")
-    p.add_argument("--scale", type=int, default=6, metavar="N", help="pixels per bird's-eye cell in bev.png (default 6)")
+    p.add_argument("--scale", type=int, default=6, metavar="N",
+                   help="pixels per bird's-eye cell in bev.png (default 6)")
     p.set_defaults(func=_run)
 
 
@@ -167,7 +168,7 @@ def _run(args) -> int:
         perc = Perception(cam, PerceptionParams(segment=seg_params))
         grid = perc.new_grid()
         status = perc.process(img, gravity, grid) if ext is None else perc.process_labels(ext, gravity, grid, lut)
-        probs = perc.probs if ext is None else perc._importer.probs
+        probs = perc.probs
     elif ext is not None:
         probs = None
     else:

@@ -166,8 +166,9 @@ def _fov_limits(camera) -> tuple[float, float]:
     """Largest |x/z| and |y/z| (undistorted) of the image border, with 5 % margin."""
     w, h = camera.width, camera.height
     t = np.linspace(0.0, 1.0, 33)
-    border = np.concatenate([np.stack([t * (w - 1), np.zeros_like(t)], 1), np.stack([t * (w - 1), np.full_like(t, h - 1)], 1),
-                             np.stack([np.zeros_like(t), t * (h - 1)], 1), np.stack([np.full_like(t, w - 1), t * (h - 1)], 1)])
+    zero, one = np.zeros_like(t), np.ones_like(t)
+    border = np.concatenate([np.stack([t * (w - 1), zero], 1), np.stack([t * (w - 1), one * (h - 1)], 1),
+                             np.stack([zero, t * (h - 1)], 1), np.stack([one * (w - 1), t * (h - 1)], 1)])
     xy = camera.undistort_pixels(border)
     return float(np.abs(xy[:, 0]).max() * 1.05), float(np.abs(xy[:, 1]).max() * 1.05)
 
