@@ -247,7 +247,7 @@ def _mpl():
 def _fig_png(fig, canvas_cls) -> str:
     canvas_cls(fig)
     bio = io.BytesIO()
-    fig.savefig(bio, format="png", dpi=100)
+    fig.savefig(bio, format="png", dpi=100, bbox_inches="tight")
     return base64.b64encode(bio.getvalue()).decode("ascii")
 
 
@@ -299,7 +299,7 @@ RECALL_GRID_M = np.concatenate([np.linspace(0.0, 2.0, 41), np.linspace(2.25, 5.0
 def plot_recall(rec, mpl) -> str:
     Figure, Canvas = mpl
     err, yerr, gerr, drerr, dryerr = rec.errors()
-    fig = Figure(figsize=(7, 4.2))
+    fig = Figure(figsize=(9.5, 4.2))
     ax = fig.subplots()
     for a, ls in ((2.0, ":"), (3.0, "--"), (5.0, "-")):
         ax.plot(RECALL_GRID_M, M.recall_curve(err, yerr, RECALL_GRID_M, a), color="k", ls=ls,
@@ -315,7 +315,7 @@ def plot_recall(rec, mpl) -> str:
     ax.set_ylim(0, 1.02)
     ax.set_xlim(0, RECALL_GRID_M[-1])
     ax.grid(True, lw=0.4)
-    ax.legend(fontsize=8, loc="lower right")
+    ax.legend(fontsize=8, loc="center left", bbox_to_anchor=(1.02, 0.5), frameon=False)
     fig.tight_layout()
     return _fig_png(fig, Canvas)
 
