@@ -122,3 +122,28 @@ def test_per_frame_path_allocates_no_frame_sized_buffers(perc):
         peaks.append(tracemalloc.get_traced_memory()[1] - base)
     tracemalloc.stop()
     assert max(peaks) < 16_000, peaks
+
+
+def test_corrupted_file_and_odd_layouts(perc, tmp_path):
+    import cv2
+
+    bad = tmp_path / "frame.jpg"
+    good = cv2.imencode(".jpg", _street_like())[1].tobytes()
+    bad.write_bytes(good[: len(good) // 3])  # truncated JPEG
+    img = cv2.imread(str(bad), cv2.IMREAD_COLOR)
+    grid = perc.new_grid()
+    st = perc.process(img, None, grid)
+    # OpenCV either refuses the truncated file (None) or returns a partly grey picture; both are handled
+    assert st.startswith("bad-frame: no image") or st in ("ok",) or st.startswith("no-ground")
+    garbage = tmp_path / "garbage.png"
+    garbage.write_bytes(b"\x89PNG\r\n\x1a\n" + bytes(100))
+    st = perc.process(cv2.imread(str(garbage), cv2.IMREAD_COLOR), None, grid)
+    assert st.startswith("bad-frame: no image") and grid.visible.sum() == 0
+    # a mirrored view (negative strides) and a Fortran-ordered copy are processed like the plain frame
+    f = _street_like()
+    ref = perc.new_grid()
+    perc.process(np.ascontiguousarray(f[:, ::-1]), None, ref)
+    for variant in (f[:, ::-1], np.asfortranarray(f[:, ::-1])):
+        g = perc.new_grid()
+        assert perc.process(variant, None, g) == "ok"
+        assert np.array_equal(g.evidence, ref.evidence) and np.array_equal(g.visible, ref.visible)
