@@ -29,7 +29,6 @@ import numpy as np
 
 from .. import _numba  # noqa: F401  (thread settings before numba loads)
 from ..camera.model import CameraModel
-from ..classes import DYNAMIC
 from ..errors import InputError
 from ..frames import rpy_to_matrix
 from . import _render_kernels as K
@@ -243,7 +242,7 @@ class Renderer:
             near = np.hypot(wc[:, 0] - org[0], wc[:, 1] - org[1]) > 0.6
             wc, ws = wc[near], ws[near]
         if len(wc):
-            nb, nc, nsph = len(boxes), len(cyls), len(sph)
+            nc, nsph = len(cyls), len(sph)
             cyls = np.ascontiguousarray(np.concatenate([cyls, wc]))
             sph = np.ascontiguousarray(np.concatenate([sph, ws]))
             extra = np.concatenate([np.stack([np.full(len(wc), K.OBJ_CYL), nc + np.arange(len(wc))], axis=1),
@@ -251,7 +250,6 @@ class Renderer:
             objs = np.concatenate([objs, extra.astype(np.int64)])
             _, _, _, _, bsw = self._objects(np.zeros((0, 14)), wc, ws)
             bs = np.concatenate([bs, bsw])
-            del nb
         # range cull (nearest first so a full tile keeps the objects that matter)
         v = bs[:, :3] - org
         dist = np.sqrt(np.einsum("ij,ij->i", v, v))
@@ -299,7 +297,3 @@ class Renderer:
                            "tiles_full": int(np.sum(self.tile_n >= self.tile_obj.shape[1]))}
         return ob, ol
 
-
-def dynamic_fraction(labels: np.ndarray) -> float:
-    """Fraction of pixels showing vehicles or people."""
-    return float(np.mean(labels == DYNAMIC))

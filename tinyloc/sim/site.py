@@ -488,10 +488,8 @@ def generate_site(seed: int, params: SiteParams = SiteParams()) -> Site:
         xy = np.asarray(xy, float)
         return np.stack([ct * xy[..., 0] - st * xy[..., 1], st * xy[..., 0] + ct * xy[..., 1]], axis=-1)
 
-    def rot_rows(a, cx, cy, yaw=None):
-        a = np.array(a, dtype=np.float64).reshape(-1, a[0].__len__() if len(a) else 1)
-        if len(a) == 0:
-            return a
+    def rot_rows(rows, cx, cy, yaw=None):
+        a = np.array(rows, dtype=np.float64)
         xy = rot(a[:, [cx, cy]])
         a[:, cx], a[:, cy] = xy[:, 0], xy[:, 1]
         if yaw is not None:
@@ -737,7 +735,7 @@ def _verge_furniture(b: _Builder, pa, pb, side, s):
     d = pb - pa
     L = float(np.hypot(*d))
     t = r.uniform(2.0, 6.0)
-    lamp_side = (hash(s["name"]) & 1) if False else (1 if s["c"] > 0 else -1)
+    lamp_side = 1 if s["c"] > 0 else -1  # lamps on one side of each street
     next_lamp = r.uniform(8, 20)
     while t < L - 2.0:
         q = pa + d / L * t
