@@ -492,8 +492,8 @@ def _deposit_foot(labels, probs, rays, level, cam, j, i, k, val, to_map, max_ran
     if gx * gx + gy * gy > max_range * max_range:
         return 0
     hn = math.sqrt(lx * lx + ly * ly)
-    ux = lx / hn
-    uy = ly / hn
+    ux = lx / hn if hn > 1e-12 else 0.0  # a ray straight down has no "behind": deposit at the foot only
+    uy = ly / hn if hn > 1e-12 else 0.0
     nstep = int(depth_m / (0.5 * res_m)) + 1
     for q in range(nstep):
         d = q * 0.5 * res_m
