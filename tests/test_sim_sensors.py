@@ -177,6 +177,11 @@ def test_gnss_worse_and_jumpier_near_tall_buildings():
     step_open = np.hypot(np.diff(g_open["err_x"]), np.diff(g_open["err_y"]))
     step_can = np.hypot(np.diff(g_canyon["err_x"]), np.diff(g_canyon["err_y"]))
     assert np.sum(step_can > 4.0) > 10 * max(1, np.sum(step_open > 4.0))
+    # outages: epochs without a fix in the canyon, none in the open
+    n = int(tr.t[-1] - tr.t[0])  # epochs at 1 Hz over the still log
+    assert len(g_open["t"]) == n  # open sky: a fix at every epoch
+    expect = n * p.outage_prob * g_canyon["blocked"][0]
+    assert abs((n - len(g_canyon["t"])) - expect) < 4 * np.sqrt(expect)
     # optimistic reports: error beyond 3x the reported per-axis sigma
     opt_open = np.mean(np.abs(g_open["err_x"]) > 3 * g_open["acc_m"])
     opt_can = np.mean(np.abs(g_canyon["err_x"]) > 3 * g_canyon["acc_m"])

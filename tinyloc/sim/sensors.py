@@ -16,7 +16,8 @@ Each model is a frozen parameter dataclass and a pure function of the true
   buildings: the share of the sky blocked above ``mask_deg`` scales an extra
   wandering error and the rate of jumps. The reported accuracy follows the
   open-sky figure and the blockage, but in multipath it is sometimes
-  optimistic (the receiver does not know).
+  optimistic (the receiver does not know). Deep in a street canyon some epochs
+  give no fix at all.
 """
 
 from __future__ import annotations
@@ -72,6 +73,7 @@ class GnssParams:
     jump_sigma_m: float = 6.0          # size of a jump, per axis
     jump_s: tuple = (2.0, 8.0)         # how long a jump lasts
     optimistic_prob: float = 0.4       # in multipath: chance an epoch reports the open-sky accuracy
+    outage_prob: float = 0.25          # chance of no fix at an epoch, at a fully blocked sky (scales with it)
     antenna_height_m: float = 0.9
 
 
@@ -162,8 +164,8 @@ def gnss_samples(traj: Trajectory, world: World, rng: np.random.Generator, p: Gn
     Returns
     -------
     dict with arrays ``t``, ``x``, ``y`` (ENU fix, m), ``h`` (height above the origin's, m),
-    ``acc_m`` (reported 1-sigma horizontal accuracy), ``err_x``, ``err_y`` (true errors), ``blocked``
-    (sky blockage 0..1 at each fix).
+    ``acc_m`` (reported per-axis 1-sigma horizontal accuracy), ``err_x``, ``err_y`` (true errors), ``blocked``
+    (sky blockage 0..1 at each fix); epochs without a fix are left out.
     """
     dt = 1.0 / p.rate_hz
     t = np.arange(math.ceil(traj.t[0]), traj.t[-1], dt)
@@ -194,5 +196,7 @@ def gnss_samples(traj: Trajectory, world: World, rng: np.random.Generator, p: Gn
     honest = np.sqrt(open_sky ** 2 + mp ** 2)
     optimistic = (blocked > 0) & (rng.random(n) < p.optimistic_prob)
     acc = np.where(optimistic, open_sky, honest) * np.exp(rng.normal(0, 0.1, n))
-    return {"t": t, "x": st["x"] + ex, "y": st["y"] + ey, "h": bz + wz, "acc_m": acc,
-            "err_x": ex, "err_y": ey, "blocked": blocked}
+    fix = rng.random(n) >= p.outage_prob * blocked  # epochs without a fix write no row
+    out = {"t": t, "x": st["x"] + ex, "y": st["y"] + ey, "h": bz + wz, "acc_m": acc,
+           "err_x": ex, "err_y": ey, "blocked": blocked}
+    return {k: v[fix] for k, v in out.items()}
