@@ -90,7 +90,7 @@ class CorrelatorParams:
     coarse_heading_step: int = 2
     track_radius_cells: int = 20
     track_half_headings: int = 15
-    track_refine: int = 1
+    track_refine: int = 2
 
     def __post_init__(self):
         A = self.n_headings
