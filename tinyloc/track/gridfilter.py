@@ -167,9 +167,9 @@ class TrackParams:
     switch_votes : int
         Consecutive "elsewhere" votes that declare the filter lost [2].
     ambiguity_margin : float
-        A pose elsewhere scoring within this (log units) of the best near the estimate makes the
-        output ambiguous: quality "degraded", the competing pose among the modes and in the
-        covariance, until a later check clears it [2.0].
+        A pose elsewhere scoring within this (tempered log units) of the best near the estimate in
+        two global checks in a row makes the output ambiguous: quality "degraded", the competing
+        pose among the modes and in the covariance, until a later check clears it [0.5].
     gnss : GnssParams
         Robust satellite-fix prior.
     """
@@ -203,7 +203,7 @@ class TrackParams:
     verify_every: int = 15
     switch_margin: float = 4.0
     switch_votes: int = 2
-    ambiguity_margin: float = 2.0
+    ambiguity_margin: float = 0.5
     gnss: GnssParams = field(default_factory=GnssParams)
 
     def __post_init__(self):
@@ -677,6 +677,7 @@ class Tracker:
         self._gnss_disagree_s = 0.0
         self._gnss_xy = None  # last usable fix (x, y, sigma, t)
         self._ambig = None  # (x, y, yaw, weight) of a competing pose found by the last global check
+        self._ambig_seen = 0
         self._fix_used_t = -math.inf
         self._t = 0.0
         self._notes = []
@@ -925,11 +926,15 @@ class Tracker:
             return est.x, est.y, est.yaw
         self._votes = 0
         if gap > -p.ambiguity_margin and math.isfinite(gap):
-            # a pose elsewhere explains the frame about as well: report it, do not pretend to know
-            w = 1.0 / (1.0 + math.exp(-gap))
-            self._ambig = (bx, by, byaw if math.isfinite(byaw) else est.yaw, w)
-            notes.append(f"ambiguous: a similar pose {d:.0f} m away")
+            # a pose elsewhere explains the frame about as well; one frame's check is a weak test
+            # (the belief holds many frames), so it must be seen twice in a row before it is reported
+            self._ambig_seen += 1
+            if self._ambig_seen >= 2:
+                w = 1.0 / (1.0 + math.exp(-gap))
+                self._ambig = (bx, by, byaw if math.isfinite(byaw) else est.yaw, w)
+                notes.append(f"ambiguous: a similar pose {d:.0f} m away")
         else:
+            self._ambig_seen = 0
             self._ambig = None
         return est.x, est.y, est.yaw
 
@@ -966,6 +971,7 @@ class Tracker:
         self._votes = 0
         self._surprised = 0
         self._ambig = None
+        self._ambig_seen = 0
         notes.append(f"lost: {why}")
 
     def _decide(self, est: FilterEstimate, notes) -> None:
