@@ -162,3 +162,161 @@ def brute_self_intersects(xy) -> bool:
 def circle(centre, radius, n=64):
     a = np.linspace(0, 2 * math.pi, n, endpoint=False)
     return np.stack([centre[0] + radius * np.cos(a), centre[1] + radius * np.sin(a)], axis=1)
+
+
+# ------------------------------------------------------------------ context coding, slow reference
+# Written from maps_packed/FORMAT.md ("Coding 1"), without the kernels' scratch planes: plain Python
+# integers and lists, one decision at a time.
+
+NCTX = 5452
+
+
+def _q(v):
+    return 0 if v == 0 else (2 if v == 15 else 1)
+
+
+def _walk_ref(levels, kinds, part, decide):
+    """Walk a tile in the order of the specification; ``decide(ctx, bit_or_None) -> bit``.
+
+    ``levels`` is a list of channels, each a list of rows of ints (read when encoding, filled when
+    decoding); ``kinds`` 0 absent, 1 full, 2 stored; ``part`` partition flags.
+    """
+    nch, t = len(levels), len(levels[0])
+    encoding = decide.encoding
+
+    def lv(c, i, j):
+        return levels[c][i][j] if 0 <= i < t and 0 <= j < t else 0
+
+    for c in range(nch):
+        if kinds[c] != 2:
+            continue
+        base = c * NCTX
+        state = {}
+        for i in range(t):
+            for j in range(t):
+                bi, bj = i // 8, j // 8
+                if i % 8 == 0 and j % 8 == 0:
+                    i1, j1 = min(i + 8, t), min(j + 8, t)
+                    cells = [levels[c][y][x] for y in range(i, i1) for x in range(j, j1)] if encoding else None
+                    north = [levels[c][i - 1][x] for x in range(j, j1)] if i > 0 else [0]
+                    e = 0 if all(v == 0 for v in north) else (1 if all(v == 15 for v in north) else 2)
+                    s = state.get((bi, bj - 1), 0)
+                    w = (e * 3 + _q(lv(c, i, j - 1))) * 3 + s
+                    want = None
+                    if encoding:
+                        want = 0 if all(v == 0 for v in cells) else (1 if all(v == 15 for v in cells) else 2)
+                    if decide(base + 5398 + 2 * w, None if want is None else int(want == 2)):
+                        st = 2
+                    elif decide(base + 5398 + 2 * w + 1, None if want is None else int(want == 1)):
+                        st = 1
+                    else:
+                        st = 0
+                    state[(bi, bj)] = st
+                    if not encoding and st != 2:
+                        for y in range(i, i1):
+                            for x in range(j, j1):
+                                levels[c][y][x] = 15 if st == 1 else 0
+                if state[(bi, bj)] != 2:
+                    continue
+                rest = 15
+                if part[c]:
+                    used = sum(15 if kinds[d] == 1 else (levels[d][i][j] if kinds[d] == 2 else 0)
+                               for d in range(c) if part[d])
+                    rest = max(0, 15 - used)
+                rs = 0 if rest == 0 else (2 if rest == 15 else 1)
+                a, b, nw, ne = lv(c, i, j - 1), lv(c, i - 1, j), lv(c, i - 1, j - 1), lv(c, i - 1, j + 1)
+                z = ((((((_q(a) * 3 + _q(b)) * 3 + _q(nw)) * 3 + _q(ne)) * 3 + _q(lv(c, i, j - 2))) * 3
+                      + _q(lv(c, i - 2, j))) * 3 + rs)
+                v = levels[c][i][j] if encoding else None
+                pred = next((x for x in (a, b, nw, ne) if 0 < x < 15), 0)
+                if not decide(base + 2 * z, None if v is None else int(v > 0)):
+                    v = 0
+                elif decide(base + 2 * z + 1, None if v is None else int(v == 15)):
+                    v = 15
+                elif rs == 1 and decide(base + 4374 + 16 * pred + rest, None if v is None else int(v == rest)):
+                    v = rest
+                else:
+                    node = 1
+                    for sbit in (3, 2, 1, 0):
+                        node = 2 * node + decide(base + 4630 + 16 * (3 * pred + rs) + node,
+                                                 None if v is None else (v >> sbit) & 1)
+                    v = node - 16
+                levels[c][i][j] = v
+
+
+def ref_encode_tile(levels, kinds, part, probs) -> bytes:
+    """Slow reference encoder: the carry-propagating range coder of the specification, tinyloc's end of
+    stream (the value with the most trailing zero bits, trailing zero bytes dropped, first byte omitted)."""
+    out = bytearray()
+    low, rng, cache, csize = 0, 0xFFFFFFFF, 0, 1
+
+    def shift_low():
+        nonlocal low, cache, csize
+        if low < 0xFF000000 or low > 0xFFFFFFFF:
+            carry = low >> 32
+            temp = cache
+            while True:
+                out.append((temp + carry) & 0xFF)
+                temp = 0xFF
+                csize -= 1
+                if csize == 0:
+                    break
+            cache = (low >> 24) & 0xFF
+        csize += 1
+        low = (low & 0x00FFFFFF) << 8
+
+    def decide(ctx, bit):
+        nonlocal low, rng
+        bound = (rng >> 16) * int(probs[ctx])
+        if bit:
+            rng = bound
+        else:
+            low += bound
+            rng -= bound
+        while rng < 1 << 24:
+            rng <<= 8
+            shift_low()
+        return bit
+
+    decide.encoding = True
+    _walk_ref([[list(map(int, row)) for row in ch] for ch in levels], list(kinds), list(part), decide)
+    top = low + rng
+    for k in range(32, -1, -1):
+        m = (1 << k) - 1
+        v = (low + m) & ~m
+        if v < top:
+            low = v
+            break
+    for _ in range(5):
+        shift_low()
+    body = bytes(out[1:])
+    return body.rstrip(b"\0")
+
+
+def ref_decode_tile(body: bytes, kinds, part, probs, tile: int):
+    """Slow reference decoder; returns levels as (C, tile, tile) nested lists (stored channels decoded,
+    full ones 15, absent 0)."""
+    nch = len(kinds)
+    levels = [[[15 if kinds[c] == 1 else 0] * tile for _ in range(tile)] for c in range(nch)]
+    pos = 4
+    code = int.from_bytes(body[:4].ljust(4, b"\0"), "big")
+    rng = 0xFFFFFFFF
+
+    def decide(ctx, _):
+        nonlocal code, rng, pos
+        bound = (rng >> 16) * int(probs[ctx])
+        if code < bound:
+            rng, bit = bound, 1
+        else:
+            code -= bound
+            rng -= bound
+            bit = 0
+        while rng < 1 << 24:
+            rng <<= 8
+            code = ((code << 8) | (body[pos] if pos < len(body) else 0)) & 0xFFFFFFFF
+            pos += 1
+        return bit
+
+    decide.encoding = False
+    _walk_ref(levels, list(kinds), list(part), decide)
+    return levels

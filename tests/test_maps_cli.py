@@ -17,7 +17,7 @@ import pytest
 
 from tinyloc.classes import BY_NAME
 from tinyloc.cli.main import main
-from tinyloc.maps.compile import pack_geojson
+from tinyloc.maps.compile import PackParams, pack_geojson
 from tinyloc.maps.packfile import PackedMap
 
 from _maps_helpers import FRAME, collection, line, point, polygon, shoelace, star_polygon, write_json
@@ -209,7 +209,7 @@ def test_progress_reports_every_band(tmp_path):
     calls = []
     src = write_json(tmp_path / "s.geojson", site())
     rep = pack_geojson(src, tmp_path / "s.tlm", progress=lambda d, t, w: calls.append((d, t, w)))
-    bands = -(-rep.rows // 64)
+    bands = -(-rep.rows // PackParams().tile)
     assert [c for c in calls if c[2] == "bands"] == [(b + 1, bands, "bands") for b in range(bands)]
     assert [c for c in calls if c[2] == "features"][-1] == (10, 10, "features")
 

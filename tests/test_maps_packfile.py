@@ -561,3 +561,79 @@ def test_missing_file_and_directory(tmp_path):
         PackedMap.open(tmp_path / "nope.tlm")
     with pytest.raises(MapFormatError, match="is a directory"):
         PackedMap.open(tmp_path)
+
+
+# ---------------------------------------------------------------- context coding against the slow reference
+
+def structured_levels(rng, nch, t):
+    """Levels 0..15 with blocks of every state: rectangles, a partition pair, speckle and ramps."""
+    lv = np.zeros((nch, t, t), dtype=np.uint8)
+    for c in range(nch):
+        for _ in range(3):
+            r0, c0 = rng.integers(0, t, 2)
+            lv[c, r0:r0 + rng.integers(1, t), c0:c0 + rng.integers(1, t)] = rng.integers(1, 16)
+        if rng.random() < 0.5:
+            lv[c] = np.where(rng.random((t, t)) < 0.1, rng.integers(0, 16, (t, t)), lv[c])
+    if nch >= 2:  # channel 1 takes what channel 0 leaves, as ground classes do
+        lv[1] = np.where(lv[0] > 0, 15 - lv[0], lv[1])
+    return lv
+
+
+def kernel_code(levels, kinds, part, probs):
+    from tinyloc.maps import _kernels as K
+    nch, t, _ = levels.shape
+    nb = -(-t // K.BLOCK)
+    scratch = dict(blk=np.zeros((nch, nb, nb), np.uint8), taken=np.zeros((t, t), np.int64),
+                   qp=np.zeros((t + 2, t + 4), np.uint8))
+    counts = np.zeros((nch * K.NCTX, 2), np.int64)
+    out = np.zeros(nch * t * t * 2 + 64, np.uint8)
+    st = np.array([0, 0xFFFFFFFF, 0, 1, 0, 0, 0, 1, 0], np.int64)
+    K.encode_tile(levels, kinds, part, probs, counts, out, st, **scratch)
+    n = K.finish_stream(st, out)
+    body = out[:n].tobytes()
+    dec = np.zeros_like(levels)
+    dec[kinds == 1] = 15
+    buf = np.frombuffer(bytearray(body) or bytearray(1), np.uint8)
+    st = np.array([0, 0xFFFFFFFF, 0, 0, 4, int.from_bytes(body[:4].ljust(4, b"\0"), "big"), len(body), 0, 0],
+                  np.int64)
+    K.decode_tile(dec, kinds, part, probs, counts, buf, st, **scratch)
+    K.count_tile(levels, kinds, part, probs, counts, np.zeros(1, np.uint8), st, **scratch)
+    return body, dec, counts
+
+
+@pytest.mark.parametrize("seed,t", [(1, 8), (2, 16), (3, 21), (4, 16)])
+def test_context_coding_matches_the_slow_reference(seed, t):
+    from tests._maps_helpers import NCTX, ref_decode_tile, ref_encode_tile
+    assert NCTX == packfile.NCTX
+    rng = np.random.default_rng(seed)
+    nch = 4
+    levels = structured_levels(rng, nch, t)
+    kinds = np.array([2, 2, 1, 2], np.uint8) if seed % 2 else np.array([2, 2, 0, 2], np.uint8)
+    levels[kinds == 1] = 15
+    levels[kinds == 0] = 0
+    part = np.array([1, 1, 1, 0], np.uint8)
+    # Probabilities: the model rule on this tile's own counts, and plain random ones.
+    for trial in range(2):
+        if trial == 0:
+            _, _, counts = kernel_code(levels, kinds, part, np.full(nch * NCTX, 32768, np.uint16))
+            probs = packfile.PROB_LUT[packfile.model_from_counts(counts)]
+        else:
+            probs = rng.integers(1, 65536, nch * NCTX).astype(np.uint16)
+        body, dec, counts = kernel_code(levels, kinds, part, probs)
+        assert np.array_equal(dec, levels)
+        ref = ref_encode_tile(levels, kinds, part, probs)
+        assert body == ref
+        assert np.array_equal(np.array(ref_decode_tile(body, kinds, part, probs, t), np.uint8), levels)
+    # A trained model codes this tile in far fewer bytes than its raw levels.
+    _, _, counts = kernel_code(levels, kinds, part, np.full(nch * NCTX, 32768, np.uint16))
+    body, _, _ = kernel_code(levels, kinds, part, packfile.PROB_LUT[packfile.model_from_counts(counts)])
+    assert len(body) < 0.5 * (kinds == 2).sum() * t * t
+
+
+def test_probability_table_follows_the_spec():
+    # FORMAT.md: P(b) = clamp(floor(65536 / (1 + exp((128 - b) / 12)) + 0.5), 1, 65535), P(0) = 32768.
+    import math
+    want = [32768] + [min(65535, max(1, math.floor(65536 / (1 + math.exp((128 - b) / 12)) + 0.5)))
+                      for b in range(1, 256)]
+    assert packfile.PROB_LUT.tolist() == want
+    assert packfile.PROB_LUT.min() >= 1 and packfile.PROB_LUT.max() <= 65535

@@ -6,7 +6,8 @@ gardens, fences and hedges, parking lots, parks with ponds and paths. Figures:
 
 - pack time, against parsing the same GeoJSON text with ``json.loads`` (a floor
   any compiler pays);
-- packed file size against the same GeoJSON compressed with gzip at level 9. The
+- packed file size (and its parts: header, tile index, probability model, tiles)
+  against the same GeoJSON compressed with gzip at level 9. The
   GeoJSON is written the way exports of open vector map data come: one feature
   per object (each tree and lamp its own point), an id per feature, a few
   descriptive tags beside the ones the rules read, traced positions (cm noise, a
@@ -25,6 +26,7 @@ import json
 import math
 import os
 import statistics
+import struct
 import tempfile
 import time
 from pathlib import Path
@@ -236,6 +238,10 @@ def run(args) -> dict:
         json.loads(src.read_text())
         parse_s = time.perf_counter() - t0
         size = os.path.getsize(out)
+        with open(out, "rb") as fh:
+            head = fh.read(84)
+        (hsize,) = struct.unpack_from("<I", head, 12)
+        (ntiles, model_size) = struct.unpack_from("<II", head, 76)
 
         with PackedMap.open(out, cache_bytes=1 << 30) as pm:
             m = pm.meta
@@ -261,7 +267,9 @@ def run(args) -> dict:
         "site_m": size_m, "res_m": res, "tile": prm.tile, "levels": prm.levels, "features": rep.features, "cells": rep.rows * rep.cols,
         "pack_s": round(pack_s, 3), "json_parse_s": round(parse_s, 3),
         "pack_vs_parse": round(pack_s / parse_s, 1),
-        "packed_bytes": size, "geojson_bytes": len(text), "geojson_gzip9_bytes": len(gz),
+        "packed_bytes": size, "header_bytes": hsize, "index_bytes": 8 * ntiles + 4, "model_bytes": model_size + 4,
+        "tile_bytes": size - hsize - 8 * ntiles - 8 - model_size,
+        "geojson_bytes": len(text), "geojson_gzip9_bytes": len(gz),
         "packed_vs_gzip": round(size / len(gz), 3), "goal_packed_le_gzip": size <= len(gz),
         "geojson_lean_gzip9_bytes": len(gz_lean), "packed_vs_lean_gzip": round(size / len(gz_lean), 3),
         "window_m": win_m, "window_cells": n, "tiles_per_window_max": tiles_per_window,

@@ -407,7 +407,8 @@ def _walk(mode, vals, kind, part, probs, counts, buf, st, blk, taken, qp):
     Parameters
     ----------
     vals : (C, T, T) uint8
-        Coverage levels 0..15; read in modes 0 and 1, written (coded channels only) in mode 2.
+        Coverage levels 0..15; read in modes 0 and 1, written (coded channels only, which must be 0
+        on entry) in mode 2.
     kind : (C,) uint8
         0 channel absent from the tile, 1 full, 2 coded.
     part : (C,) uint8
@@ -426,13 +427,17 @@ def _walk(mode, vals, kind, part, probs, counts, buf, st, blk, taken, qp):
         Scratch: levels of the partition channels already walked, summed per cell (zeroed here).
     qp : (T + 2, T + 4) uint8
         Scratch: neighbour states of the walked cells of the current channel, with a border of 2 that
-        stays 0 (cells outside the tile count as empty).
+        stays 0 (cells outside the tile count as empty); zeroed here.
     """
     nch = vals.shape[0]
     t = vals.shape[1]
+    nb = (t + BLOCK - 1) // BLOCK
     for i in range(t):
         for j in range(t):
             taken[i, j] = 0
+    for i in range(t + 2):
+        for j in range(t + 4):
+            qp[i, j] = 0
     for c in range(nch):
         k = kind[c]
         if k == 1 and part[c] == 1:
@@ -441,9 +446,6 @@ def _walk(mode, vals, kind, part, probs, counts, buf, st, blk, taken, qp):
                     taken[i, j] += 15
         if k != 2:
             continue
-        for i in range(t + 2):
-            for j in range(t + 4):
-                qp[i, j] = 0
         base = c * NCTX
         for i in range(t):
             bi = i // BLOCK
@@ -504,10 +506,17 @@ def _walk(mode, vals, kind, part, probs, counts, buf, st, blk, taken, qp):
                     if mode == 2:
                         vals[c, i, j] = v
                     qp[i + 2, j + 2] = _q3(v)
-        if part[c] == 1:
-            for i in range(t):
-                for j in range(t):
-                    taken[i, j] += vals[c, i, j]
+        # Only blocks that are not empty hold anything: add them to the partition's sum, and clear their
+        # neighbour states for the next channel.
+        for bi in range(nb):
+            for bj in range(nb):
+                if blk[c, bi, bj] == 0:
+                    continue
+                for i in range(bi * BLOCK, min(bi * BLOCK + BLOCK, t)):
+                    for j in range(bj * BLOCK, min(bj * BLOCK + BLOCK, t)):
+                        if part[c] == 1:
+                            taken[i, j] += vals[c, i, j]
+                        qp[i + 2, j + 2] = 0
 
 
 @njit(**JIT)
@@ -586,11 +595,10 @@ def _block_state(mode, vals, c, i0, j0, probs, counts, buf, st, blk, qp):
         for i in range(i0, i1):
             for j in range(j0, j1):
                 qp[i + 2, j + 2] = 2
-    if mode == 2 and state != 2:
-        fill = 15 if state == 1 else 0
+    if mode == 2 and state == 1:  # (the wrapper hands coded channels over as zeros)
         for i in range(i0, i1):
             for j in range(j0, j1):
-                vals[c, i, j] = fill
+                vals[c, i, j] = 15
 
 
 @njit(**JIT)

@@ -35,7 +35,9 @@ class PackParams:
     res_m : float
         Cell size (m).
     tile : int
-        Tile side (cells); a window read touches a few tiles.
+        Tile side (cells); a window read touches a few tiles. 128 (64 m at 0.5 m): a 128 m window
+        touches at most 9 tiles; larger tiles make smaller files (fewer tile edges, where the coding
+        starts afresh) and slower first reads.
     margin_m : float
         Empty border around the mapped features (m).
     max_side_m : float
@@ -51,7 +53,7 @@ class PackParams:
     """
 
     res_m: float = 0.5
-    tile: int = 64
+    tile: int = 128
     margin_m: float = 4.0
     max_side_m: float = 20000.0
     surface_order: tuple = (BUILDING, WATER, ROAD, PARKING, SIDEWALK, GRASS)

@@ -55,6 +55,7 @@ CODING_CONTEXT = 1
 FLAG_PARTITION = 1          # class table entry flag: the channel belongs to the ground partition
 NCTX = _kernels.NCTX        # model bytes per channel
 PROB_SCALE = 12.0           # model byte k -> probability 1 / (1 + exp((128 - k) / PROB_SCALE))
+PRUNE_BITS = 8.0            # a model byte costs about this much in the file
 # Hard limits (the decoder refuses anything beyond them before allocating).
 MAX_HEADER = 65536
 MAX_SIDE = 1 << 18          # cells per side (131 km at 0.5 m)
@@ -80,12 +81,19 @@ PROB_LUT = _prob_table()
 
 
 def model_from_counts(counts: np.ndarray) -> np.ndarray:
-    """Decision counts (n_ctx, 2) -> model bytes (n_ctx,) uint8: the rounded logit of each context's
-    estimated probability of a 1 (Krichevsky-Trofimov estimate, (n1 + 1/2) / (n + 1)); 0 when unused."""
+    """Decision counts (n_ctx, 2) -> model bytes (n_ctx,) uint8.
+
+    Each used context gets the rounded logit of its estimated probability of a 1 (Krichevsky-Trofimov
+    estimate, (n1 + 1/2) / (n + 1)). A context whose byte would cost more than it saves (fewer than
+    ``PRUNE_BITS`` bits gained over coding its decisions at 1/2) is left 0, which reads as 1/2.
+    """
     n = counts.sum(axis=1)
     p1 = (counts[:, 1] + 0.5) / (n + 1.0)
     k = np.clip(np.rint(128.0 + PROB_SCALE * np.log(p1 / (1.0 - p1))), 1, 255)
-    return np.where(n > 0, k, 0).astype(np.uint8)
+    p = PROB_LUT[k.astype(np.uint8)] / 65536.0
+    coded_bits = -(counts[:, 1] * np.log2(p) + counts[:, 0] * np.log2(1.0 - p))
+    keep = (n > 0) & (n - coded_bits > PRUNE_BITS)
+    return np.where(keep, k, 0).astype(np.uint8)
 
 
 def _mask_bytes(n_channels: int) -> int:
