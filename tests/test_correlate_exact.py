@@ -170,3 +170,16 @@ def test_tracking_volume_equals_exact_volume(rng):
                 ref = vol[aa, i, js[0]:js[-1] + 1]
                 got = trk.volume[t, u, js[0] - trk.col0:js[-1] - trk.col0 + 1]
                 assert np.max(np.abs(ref - got)) <= tol
+
+
+def test_two_threads_give_the_same_volume(rng):
+    win = rng.uniform(size=(NUM_MAP_CLASSES, 40, 40)).astype(np.float32)
+    bev = random_bev(rng, (16, 16), (8.0, 0.0))
+    vols = []
+    for threads in (1, 2):
+        corr = Correlator(CorrelatorParams(**{**SMALL.__dict__, "threads": threads}))
+        corr.set_map(win)
+        v = np.zeros((16, 40, 40), np.float32)
+        res = corr.search(bev, volume=v)
+        vols.append((v, res.best.copy()))
+    assert np.array_equal(vols[0][0], vols[1][0]) and np.array_equal(vols[0][1], vols[1][1])

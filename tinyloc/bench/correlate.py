@@ -175,6 +175,14 @@ def run(args) -> dict:
     track_ms = median_ms(lambda: corr.track(bev, a_true[1], a_true[2], a_true[0]), repeat=15)
     track_exact_ms = median_ms(lambda: corr.track(bev, a_true[1], a_true[2], a_true[0], exact=True), repeat=5)
     fast_best = corr.search_fast(bev).modes[0].cell
+    # The same searches with two threads (two lanes of per-quarter buffers).
+    corr2 = Correlator(CorrelatorParams(threads=2))
+    corr2.set_map(win)
+    corr2.warm_up(("exact", "fast"))
+    fast2_ms = median_ms(lambda: corr2.search_fast(bev), repeat=rep + 2)
+    exact2_ms = median_ms(lambda: corr2.search(bev), repeat=rep)
+    same2 = corr2.search_fast(bev).modes[0].cell == fast_best
+    del corr2
     # Allocation in repeated calls (numpy buffers and Python objects, as tracemalloc sees them).
     tracemalloc.start()
     corr.search_fast(bev)
@@ -200,6 +208,10 @@ def run(args) -> dict:
         "speedup_same": base_same_ms / fast_ms,
         "speedup_exact": base_ms / exact_ms,
         "speedup_exact_same": base_same_ms / exact_ms,
+        "tinyloc_2threads_ms": fast2_ms,
+        "exact_2threads_ms": exact2_ms,
+        "speedup_2threads": base_ms / fast2_ms,
+        "two_threads_same_best": bool(same2),
         "fast_equals_exact_best": bool(abs(fast_best[1] - a_true[1]) <= 1 and abs(fast_best[2] - a_true[2]) <= 1
                                        and min((fast_best[0] - a_true[0]) % p.n_headings,
                                                (a_true[0] - fast_best[0]) % p.n_headings) <= 1),

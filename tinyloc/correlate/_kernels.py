@@ -383,3 +383,14 @@ def sparse_scores(uv, vals, n, G, rows, cols, out):
                 for f in range(F):
                     acc += vals[k, f] * G[f, gi, gj]
         out[m] = acc
+
+
+@njit(**JIT)
+def merge_best(best, best_a, other, other_a):
+    """Per-cell max of two heading-max profiles (lanes of a threaded search)."""
+    H, W = best.shape
+    for i in range(H):
+        for j in range(W):
+            if other[i, j] > best[i, j]:
+                best[i, j] = other[i, j]
+                best_a[i, j] = other_a[i, j]

@@ -74,6 +74,9 @@ class CorrelatorParams:
         Headings each side of the prior in tracking; 15 = +-21 deg at A = 256.
     track_refine : int
         Modes of the coarse tracking volume refined at full resolution.
+    threads : int
+        Threads of the full searches (1 or 2); each extra thread adds one set of
+        per-quarter buffers.
     """
 
     n_headings: int = 256
@@ -91,6 +94,7 @@ class CorrelatorParams:
     track_radius_cells: int = 20
     track_half_headings: int = 15
     track_refine: int = 2
+    threads: int = 1
 
     def __post_init__(self):
         A = self.n_headings
@@ -104,6 +108,8 @@ class CorrelatorParams:
             raise InputError(f"res_m must be > 0, got {self.res_m}")
         if self.track_radius_cells < 1 or self.track_half_headings < 0 or self.track_half_headings * 2 + 1 > A:
             raise InputError("tracking window: radius >= 1 cell and 2 * half_headings + 1 <= n_headings")
+        if self.threads not in (1, 2):
+            raise InputError(f"threads must be 1 or 2, got {self.threads}")
         if self.coarse_heading_step not in (1, 2):
             raise InputError(f"coarse_heading_step must be 1 or 2, got {self.coarse_heading_step}")
         if min(self.n_modes, self.coarse_top_k, self.coarse_climb, self.track_refine) < 1:
@@ -227,7 +233,7 @@ class _CircleEngine:
     the map spectra, the largest buffer, are kept in single precision.
     """
 
-    def __init__(self, F, H, W, bev_shape, origin_row, origin_col, A):
+    def __init__(self, F, H, W, bev_shape, origin_row, origin_col, A, threads=1):
         self.F, self.H, self.W, self.A = F, H, W, A
         self.origin = (float(origin_row), float(origin_col))
         self.reach = template_reach(bev_shape, origin_row, origin_col)
@@ -242,18 +248,14 @@ class _CircleEngine:
         self.SU = int((b[:, 1] - b[:, 0]).max()) + 1
         self.SV = int((b[:, 3] - b[:, 2]).max()) + 1
         L = max(H, W)
-        self.canvas = np.zeros((F, self.SU, N), np.float64)  # columns >= SV stay 0
-        self._canvas_v = self.canvas[:, :, :self.SV]
-        self.trow = np.zeros((F, self.SU, Kh), np.complex128)
-        self.Tin = np.zeros((F, Kh, N), np.complex128)  # rows >= SU (last axis) stay 0
-        self.T = np.zeros((F, Kh, N), np.complex128)
         self.G4 = np.zeros((4, F, Kh, N), np.complex64)  # stored single: halves the largest buffer
-        self.P4 = np.zeros((4, Kh, N), np.complex128)
-        self.Q = np.zeros((Kh, N), np.complex128)
-        self.Qr = np.zeros((L, Kh), np.complex128)
-        self.buf = np.zeros((L, N), np.float64)
-        self.best = np.zeros((H, W), np.float32)
-        self.best_a = np.zeros((H, W), np.int16)
+        self.lanes = [_Lane(F, self.SU, self.SV, Kh, N, L, H, W) for _ in range(threads)]
+        self.best, self.best_a = self.lanes[0].best, self.lanes[0].best_a
+        self._pool = None
+        if threads > 1:
+            from concurrent.futures import ThreadPoolExecutor
+            # numpy's FFT and the nogil kernels release the GIL, so a second lane runs on the other core.
+            self._pool = ThreadPoolExecutor(max_workers=threads - 1, thread_name_prefix="tinyloc-correlate")
         self.head_max = np.zeros(A, np.float32)
         self.head_arg = np.zeros(A, np.int32)
         self._dummy_vol = np.zeros((1, 1, 1), np.float32)
@@ -269,8 +271,7 @@ class _CircleEngine:
 
     @property
     def nbytes(self) -> int:
-        return sum(a.nbytes for a in (self.canvas, self.trow, self.Tin, self.T, self.G4, self.P4, self.Q, self.Qr,
-                                      self.buf, self.best, self.best_a, self.head_max, self.head_arg))
+        return sum(ln.nbytes for ln in self.lanes) + self.G4.nbytes + self.head_max.nbytes + self.head_arg.nbytes
 
     def set_map(self, G):
         """Transform the map features G (F, H, W) float32, for the four quarter turns."""
@@ -287,23 +288,57 @@ class _CircleEngine:
     def run(self, feat, inv_temp, vol):
         write_vol = vol is not None
         v = vol if write_vol else self._dummy_vol
-        self.best.fill(-np.inf)
+        n = len(self.lanes)
+        if n == 1:
+            self._run_lane(self.lanes[0], 0, 1, feat, inv_temp, v, write_vol)
+            return
+        futs = [self._pool.submit(self._run_lane, self.lanes[w], w, n, feat, inv_temp, v, write_vol)
+                for w in range(1, n)]
+        self._run_lane(self.lanes[0], 0, n, feat, inv_temp, v, write_vol)
+        for w, fu in enumerate(futs, start=1):
+            fu.result()
+            K.merge_best(self.best, self.best_a, self.lanes[w].best, self.lanes[w].best_a)
+
+    def _run_lane(self, ln, first, step, feat, inv_temp, v, write_vol):
+        ln.best.fill(-np.inf)
         N, q = self.N, self.A // 4
         orow, ocol = self.origin
-        for qi in range(q):
-            K.rotate_into(feat, self.cos[qi], self.sin[qi], orow, ocol, self.lo_u[qi], self.lo_v[qi], self._canvas_v)
-            np.fft.rfft(self.canvas, axis=2, out=self.trow)
-            K.transpose_rows(self.trow, self.Tin)
-            np.fft.fft(self.Tin, axis=2, out=self.T)
-            K.spectra_mac4(self.G4, self.T, self.P4)
+        for qi in range(first, q, step):
+            K.rotate_into(feat, self.cos[qi], self.sin[qi], orow, ocol, self.lo_u[qi], self.lo_v[qi], ln.canvas_v)
+            np.fft.rfft(ln.canvas, axis=2, out=ln.trow)
+            K.transpose_rows(ln.trow, ln.Tin)
+            np.fft.fft(ln.Tin, axis=2, out=ln.T)
+            K.spectra_mac4(self.G4, ln.T, ln.P4)
             su, sv = int(self.lo_u[qi]), int(self.lo_v[qi])
             for k in range(4):
-                np.fft.ifft(self.P4[k], axis=1, out=self.Q)
+                np.fft.ifft(ln.P4[k], axis=1, out=ln.Q)
                 r0, L = self.rows[k, qi]
-                K.gather_rows_t(self.Q, r0, L, N, self.Qr)
-                np.fft.irfft(self.Qr[:L], n=N, axis=1, out=self.buf[:L])
-                K.readout_tiled(self.buf, k, su, sv, inv_temp, qi + k * q, self.best, self.best_a, self.head_max,
+                K.gather_rows_t(ln.Q, r0, L, N, ln.Qr)
+                np.fft.irfft(ln.Qr[:L], n=N, axis=1, out=ln.buf[:L])
+                K.readout_tiled(ln.buf, k, su, sv, inv_temp, qi + k * q, ln.best, ln.best_a, self.head_max,
                                 self.head_arg, v, write_vol, self.modtab)
+
+
+class _Lane:
+    """The per-thread working buffers of a circle engine (one quarter heading at a time)."""
+
+    def __init__(self, F, SU, SV, Kh, N, L, H, W):
+        self.canvas = np.zeros((F, SU, N), np.float64)  # columns >= SV stay 0
+        self.canvas_v = self.canvas[:, :, :SV]
+        self.trow = np.zeros((F, SU, Kh), np.complex128)
+        self.Tin = np.zeros((F, Kh, N), np.complex128)  # entries >= SU (last axis) stay 0
+        self.T = np.zeros((F, Kh, N), np.complex128)
+        self.P4 = np.zeros((4, Kh, N), np.complex128)
+        self.Q = np.zeros((Kh, N), np.complex128)
+        self.Qr = np.zeros((L, Kh), np.complex128)
+        self.buf = np.zeros((L, N), np.float64)
+        self.best = np.zeros((H, W), np.float32)
+        self.best_a = np.zeros((H, W), np.int16)
+
+    @property
+    def nbytes(self) -> int:
+        return sum(a.nbytes for a in (self.canvas, self.trow, self.Tin, self.T, self.P4, self.Q, self.Qr, self.buf,
+                                      self.best, self.best_a))
 
 
 class _PatchEngine:
@@ -417,7 +452,7 @@ class Correlator:
         if self._fine is None:
             p = self.params
             self._fine = _CircleEngine(self.model.n_features, *p.window_shape, p.bev_shape, p.origin_row,
-                                       p.origin_col, p.n_headings)
+                                       p.origin_col, p.n_headings, p.threads)
             if self._have_map:
                 self._fine.set_map(self._G)
         return self._fine
@@ -428,7 +463,7 @@ class Correlator:
             H, W = p.window_shape
             h, w = p.bev_shape
             self._coarse = _CircleEngine(self.model.n_features, H // 2, W // 2, (h // 2, w // 2), p.origin_row / 2,
-                                         p.origin_col / 2, p.n_headings // p.coarse_heading_step)
+                                         p.origin_col / 2, p.n_headings // p.coarse_heading_step, p.threads)
             if self._have_map:
                 self._coarse.set_map(self._Gc)
         return self._coarse
