@@ -8,7 +8,11 @@ For each seed: ``tinyloc sim site --seed S`` (map errors on, the simulator's def
 
 - ``segmenter``: tinyloc's own classical segmenter (the full product);
 - ``labels``: the renderer's true class labels fed in as an external segmenter's output
-  (``loop.external_labels``), which isolates tracking and matching from segmentation errors.
+  (``loop.external_labels``), which isolates tracking and matching from segmentation errors;
+- ``mapcut``: bird's-eye evidence cut out of the packed map itself at the true pose (with noise
+  and dropout, ``tinyloc.correlate.synth.cut_bev``): no segmentation, no projection and no map
+  errors, but the run's own odometry, IMU and satellite fixes, the real correlator and tracker.
+  It shows what the loop does with evidence that agrees with the map.
 
 Figures per run (definitions in tinyloc/runtime/summary.py): recall within 1 m and 3 deg after
 the first 30 m, median position and heading error, the satellite receiver's median error on
@@ -55,13 +59,40 @@ def _fresh_map(site: Path) -> Path:
     return tlm
 
 
-def evaluate(run: Path, site_map: Path, overrides, skip_m: float):
+class _MapCut:
+    """Stand-in perception: the packed map's own evidence at the true pose of each frame."""
+
+    def __init__(self, pm, truth):
+        import numpy as np
+
+        self.pm, self.truth = pm, truth
+        self.full = pm.read_all()
+        self.rng = np.random.default_rng(0)
+        self.i = 0
+
+    def perceive(self, image, gravity, labels=None):
+        from tinyloc.correlate.synth import cut_bev
+
+        x, y, yaw = self.truth[self.i]
+        r, c = self.pm.cell_of(x, y)
+        return cut_bev(self.full, r, c, yaw, self.rng, noise=0.15, dropout=0.2)
+
+
+def evaluate(run: Path, site_map: Path, overrides, skip_m: float, mode: str = "segmenter"):
+    from tinyloc.maps.packfile import PackedMap
+
     cfg = load_config(None, overrides)
     src = RunFolderSource(run, labels=cfg.loop.external_labels)
-    loc = Localizer.from_files(site_map, src.camera, cfg)
-    truth = src.truth_xy(loc.frame_enu)
+    pm = PackedMap.open(site_map)
+    truth = src.truth_xy(pm.frame)
+    perc = _MapCut(pm, truth) if mode == "mapcut" else None
+    loc = Localizer(pm, src.camera, cfg, perceiver=perc)
     gnss = gnss_at_frames(src.rf, loc.frame_enu)
-    poses = [loc.step(f) for f in src]
+    poses = []
+    for f in src:
+        if perc is not None:
+            perc.i = f.index
+        poses.append(loc.step(f))
     loc.close()
     s = summarize(poses, truth, gnss, skip_m=skip_m)
     s["gnss_ratio"] = s["gnss_median_error_m"] / s["median_error_m"] if s["median_error_m"] > 0 else math.nan
@@ -75,7 +106,7 @@ def main(argv=None) -> int:
     ap.add_argument("--size", default="demo", help="site size for tinyloc sim site (demo, small, town)")
     ap.add_argument("--work", default="/tmp/tinyloc-acc")
     ap.add_argument("--skip-m", type=float, default=30.0)
-    ap.add_argument("--modes", nargs="+", default=["segmenter", "labels"])
+    ap.add_argument("--modes", nargs="+", default=["segmenter", "labels", "mapcut"])
     ap.add_argument("--set", action="append", default=[])
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args(argv)
@@ -92,7 +123,7 @@ def main(argv=None) -> int:
         for mode in a.modes:
             ov = list(a.set) + (["loop.external_labels=true"] if mode == "labels" else [])
             try:
-                s = evaluate(run, _fresh_map(site), ov, a.skip_m)
+                s = evaluate(run, _fresh_map(site), ov, a.skip_m, mode)
             except Exception as e:  # one bad seed must not hide the others
                 print(f"seed {seed} {mode}: failed: {type(e).__name__}: {e}", file=sys.stderr, flush=True)
                 continue
