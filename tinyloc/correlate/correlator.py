@@ -342,9 +342,14 @@ class _Lane:
 
 
 class _PatchEngine:
-    """Exact FFT correlation over a few headings and an (Ho, Ho) block of cells, at full resolution."""
+    """Exact FFT correlation over a few headings and an (Ho, Ho) block of cells.
 
-    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col):
+    Headings can be transformed in batches of ``batch`` (fewer, larger FFT calls); measured
+    slower than one at a time at the tracking sizes (the larger working set leaves the cache),
+    so the correlator uses 1.
+    """
+
+    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col, batch=1):
         self.F, self.Ho, self.n_head = F, Ho, n_head
         self.origin = (float(origin_row), float(origin_col))
         self.bev_shape = bev_shape
@@ -358,20 +363,22 @@ class _PatchEngine:
             lu, hu, lv, hv = template_bounds(bev_shape, origin_row, origin_col, 2 * math.pi * a / 64)
             SU, SV = max(SU, hu - lu + 2), max(SV, hv - lv + 2)
         self.SU, self.SV = SU, SV
-        self.canvas = np.zeros((F, SU, N), np.float64)
-        self._canvas_v = self.canvas[:, :, :SV]
-        self.trow = np.zeros((F, SU, Kh), np.complex128)
-        self.Tin = np.zeros((F, Kh, N), np.complex128)
-        self.T = np.zeros((F, Kh, N), np.complex128)
+        self.B = B = max(1, min(batch, n_head))
+        self.canvas = np.zeros((B, F, SU, N), np.float64)  # columns >= SV stay 0
+        self._canvas_v = [self.canvas[b, :, :, :SV] for b in range(B)]
+        self.trow = np.zeros((B, F, SU, Kh), np.complex128)
+        self.Tin = np.zeros((B, F, Kh, N), np.complex128)  # entries >= SU (last axis) stay 0
+        self.T = np.zeros((B, F, Kh, N), np.complex128)
         self.patch = np.zeros((F, N, N), np.float64)
         self.grow = np.zeros((F, N, Kh), np.complex128)
         self.Gin = np.zeros((F, Kh, N), np.complex128)
         self.Gs = np.zeros((F, Kh, N), np.complex128)
-        self.P = np.zeros((Kh, N), np.complex128)
-        self.Q = np.zeros((Kh, N), np.complex128)
-        self.Qr = np.zeros((Ho, Kh), np.complex128)
-        self.buf = np.zeros((Ho, N), np.float64)
+        self.P = np.zeros((B, Kh, N), np.complex128)
+        self.Q = np.zeros((B, Kh, N), np.complex128)
+        self.Qr = np.zeros((B, Ho, Kh), np.complex128)
+        self.buf = np.zeros((B, Ho, N), np.float64)
         self.vol = np.zeros((n_head, Ho, Ho), np.float32)
+        self._shift = np.zeros((B, 2), np.int64)
 
     @property
     def nbytes(self) -> int:
@@ -380,7 +387,7 @@ class _PatchEngine:
 
     def run(self, feat, G, row0, col0, a0, A, inv_temp):
         """Fill self.vol for headings a0..a0+n_head-1 and cells (row0 + u, col0 + v) of the window G."""
-        F, Ho, N, Pr = self.F, self.Ho, self.N, self.reach
+        F, Ho, N, Pr, B = self.F, self.Ho, self.N, self.reach, self.B
         H, W = G.shape[1], G.shape[2]
         self.patch.fill(0.0)
         # Patch cell (r, c) = window cell (row0 - Pr + r, col0 - Pr + c); outside the window stays 0.
@@ -393,21 +400,25 @@ class _PatchEngine:
         K.transpose_rows(self.grow, self.Gin)
         np.fft.fft(self.Gin, axis=2, out=self.Gs)
         orow, ocol = self.origin
-        for t in range(self.n_head):
-            a = (a0 + t) % A
-            yaw = 2.0 * math.pi * a / A
-            lu, _, lv, _ = template_bounds(self.bev_shape, orow, ocol, yaw)
-            K.rotate_into(feat, math.cos(yaw), math.sin(yaw), orow, ocol, lu, lv, self._canvas_v)
-            np.fft.rfft(self.canvas, axis=2, out=self.trow)
-            K.transpose_rows(self.trow, self.Tin)
-            np.fft.fft(self.Tin, axis=2, out=self.T)
-            K.spectra_mac1(self.Gs, self.T, self.P)
-            np.fft.ifft(self.P, axis=1, out=self.Q)
-            # Output cell u sits at patch index u + Pr; the canvas shift adds (lu, lv).
-            r0, c0 = Pr + lu, Pr + lv
-            K.gather_rows_t(self.Q, r0, Ho, N, self.Qr)
-            np.fft.irfft(self.Qr, n=N, axis=1, out=self.buf)
-            K.readout_patch(self.buf, 0, c0, inv_temp, self.vol[t])
+        for t0 in range(0, self.n_head, B):
+            nb = min(B, self.n_head - t0)
+            for b in range(nb):
+                yaw = 2.0 * math.pi * ((a0 + t0 + b) % A) / A
+                lu, _, lv, _ = template_bounds(self.bev_shape, orow, ocol, yaw)
+                K.rotate_into(feat, math.cos(yaw), math.sin(yaw), orow, ocol, lu, lv, self._canvas_v[b])
+                # Output cell u sits at patch index u + Pr; the canvas shift adds (lu, lv).
+                self._shift[b, 0], self._shift[b, 1] = Pr + lu, Pr + lv
+            np.fft.rfft(self.canvas[:nb], axis=3, out=self.trow[:nb])
+            K.transpose_rows(self.trow[:nb].reshape(nb * F, self.SU, -1), self.Tin[:nb].reshape(nb * F, -1, N))
+            np.fft.fft(self.Tin[:nb], axis=3, out=self.T[:nb])
+            for b in range(nb):
+                K.spectra_mac1(self.Gs, self.T[b], self.P[b])
+            np.fft.ifft(self.P[:nb], axis=2, out=self.Q[:nb])
+            for b in range(nb):
+                K.gather_rows_t(self.Q[b], self._shift[b, 0], Ho, N, self.Qr[b])
+            np.fft.irfft(self.Qr[:nb], n=N, axis=2, out=self.buf[:nb])
+            for b in range(nb):
+                K.readout_patch(self.buf[b], 0, self._shift[b, 1], inv_temp, self.vol[t0 + b])
 
 
 class Correlator:
