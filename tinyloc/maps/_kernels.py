@@ -1,8 +1,9 @@
-"""Numba kernels of the map compiler: exact polygon coverage, line strokes, point disks, ring checks.
+"""Numba kernels of the maps stage: exact polygon coverage, line strokes, point disks, ring checks, and
+the context coder of packed-map tiles (count, encode, decode).
 
 Kernels take prepared contiguous arrays and output buffers only; they never
-validate, allocate or log (the wrappers in :mod:`tinyloc.maps.raster` and
-:mod:`tinyloc.maps.geojson` do that).
+validate, allocate or log (the wrappers in :mod:`tinyloc.maps.raster`,
+:mod:`tinyloc.maps.geojson` and :mod:`tinyloc.maps.packfile` do that).
 
 Coordinates are continuous cell coordinates: x = column, y = row (row 0 at the
 north edge), cell (r, c) spans [c, c+1) x [r, r+1).
