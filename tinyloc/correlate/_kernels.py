@@ -369,9 +369,12 @@ def compact_canvas(canvas, lo_u, lo_v, uv, vals):
 
 @njit(**JIT)
 def sparse_scores(uv, vals, n, G, rows, cols, out):
-    """Exact scores at robot cells from a compacted rotated grid: sum_n sum_f vals[n, f] G[f, i + du, j + dv]."""
+    """Exact scores at robot cells from a compacted rotated grid: sum_n sum_f vals[n, f] G[i + du, j + dv, f].
+
+    ``G`` is the map features in (H, W, F) layout, so the F values of a cell are adjacent.
+    """
     F = vals.shape[1]
-    H, W = G.shape[1], G.shape[2]
+    H, W = G.shape[0], G.shape[1]
     for m in range(rows.shape[0]):
         i = rows[m]
         j = cols[m]
@@ -381,7 +384,7 @@ def sparse_scores(uv, vals, n, G, rows, cols, out):
             gj = j + uv[k, 1]
             if gi >= 0 and gi < H and gj >= 0 and gj < W:
                 for f in range(F):
-                    acc += vals[k, f] * G[f, gi, gj]
+                    acc += vals[k, f] * G[gi, gj, f]
         out[m] = acc
 
 

@@ -447,6 +447,7 @@ class Correlator:
         self._feat = np.zeros((F, h, w), np.float32)
         self._feat_c = np.zeros((F, h // 2, w // 2), np.float32)
         self._G = np.zeros((F, H, W), np.float32)
+        self._G_hwf = np.zeros((H, W, F), np.float32)  # the same, cell-major, for the direct sums
         self._Gc = np.zeros((F, H // 2, W // 2), np.float32)
         self._scratch = np.zeros((H, W), np.float32)
         self._inv_temp = 1.0 / self.model.temperature
@@ -503,7 +504,7 @@ class Correlator:
 
     def workspace_report(self) -> dict:
         """Bytes per part of the workspace: shared buffers, and each engine allocated so far."""
-        shared = sum(a.nbytes for a in (self._feat, self._feat_c, self._G, self._Gc, self._scratch))
+        shared = sum(a.nbytes for a in (self._feat, self._feat_c, self._G, self._G_hwf, self._Gc, self._scratch))
         shared += self._pw_fine.nbytes + self._pw_coarse.nbytes + self._pw_track.nbytes + self._pw_track_c.nbytes
         shared += self._refiner.nbytes
         out = {"shared": shared}
@@ -528,6 +529,7 @@ class Correlator:
             raise InputError("map window: values must be finite")
         self.model.map_features(window, out=self._G, scratch=self._scratch)
         K.downsample2(self._G, self._Gc)
+        self._G_hwf[...] = self._G.transpose(1, 2, 0)
         if self._fine is not None:
             self._fine.set_map(self._G)
         if self._coarse is not None:
@@ -592,7 +594,7 @@ class Correlator:
         self._refiner.reset()
         modes = find_modes(e.best, e.best_a, self._pw_fine, 1, p.n_modes, p.mode_radius_cells,
                            p.mode_radius_headings, p.n_headings)
-        modes = [self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=False) for m in modes]
+        modes = [self._refiner.refine(self._feat, self._G_hwf, m, self._inv_temp, hill_climb=False) for m in modes]
         modes.sort(key=lambda m: -m.cell_loglik)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, volume=volume)
 
@@ -615,10 +617,10 @@ class Correlator:
         cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, p.coarse_top_k, max(1, p.mode_radius_cells // 2),
                            max(1, p.mode_radius_headings // p.coarse_heading_step),
                            p.n_headings // p.coarse_heading_step)
-        starts = [coarse_start(self._refiner, self._feat, self._G, m, self._inv_temp, p, p.coarse_heading_step)
+        starts = [coarse_start(self._refiner, self._feat, self._G_hwf, m, self._inv_temp, p, p.coarse_heading_step)
                   for m in cands]
         starts.sort(key=lambda m: -m.cell_loglik)
-        fine = [self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=True)
+        fine = [self._refiner.refine(self._feat, self._G_hwf, m, self._inv_temp, hill_climb=True)
                 for m in starts[:p.coarse_climb]]
         modes = _distinct(fine, p, p.n_modes)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, scale=2,
@@ -664,8 +666,8 @@ class Correlator:
         e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, self._inv_temp)
         cands = modes_of_volume(e.vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
                                 max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // 2))
-        starts = [coarse_start(self._refiner, self._feat, self._G, m, self._inv_temp, p) for m in cands]
-        modes = _distinct([self._refiner.refine(self._feat, self._G, m, self._inv_temp, hill_climb=True)
+        starts = [coarse_start(self._refiner, self._feat, self._G_hwf, m, self._inv_temp, p) for m in cands]
+        modes = _distinct([self._refiner.refine(self._feat, self._G_hwf, m, self._inv_temp, hill_climb=True)
                            for m in starts], p, p.n_modes)
         return TrackResult(e.vol, row0, col0, a0, modes=modes, scale=2)
 
@@ -730,9 +732,11 @@ class _Refiner:
         s = self.next_slot
         self.next_slot = (s + 1) % self.SLOTS
         yaw = 2.0 * math.pi * a / p.n_headings
-        lu, _, lv, _ = template_bounds(p.bev_shape, p.origin_row, p.origin_col, yaw)
-        K.rotate_into(feat, math.cos(yaw), math.sin(yaw), p.origin_row, p.origin_col, lu, lv, self.canvas)
-        self.count[s] = K.compact_canvas(self.canvas, lu, lv, self.uv[s], self.vals[s])
+        lu, hu, lv, hv = template_bounds(p.bev_shape, p.origin_row, p.origin_col, yaw)
+        # Only this heading's own bounding box (up to half the cells of the largest one).
+        box = self.canvas[:, :hu - lu + 1, :hv - lv + 1]
+        K.rotate_into(feat, math.cos(yaw), math.sin(yaw), p.origin_row, p.origin_col, lu, lv, box)
+        self.count[s] = K.compact_canvas(box, lu, lv, self.uv[s], self.vals[s])
         self.slot_heading[s] = a
         return s
 
