@@ -184,3 +184,16 @@ def test_scoring_model_round_trip_and_rejects_bad_files(tmp_path):
     with pytest.raises(InputError, match="not a tinyloc-scoring version 1 file"):
         ScoringModel.load(p)
     assert "temperature" in m.provenance and m.provenance["temperature"].get("trials", 0) >= 20
+
+
+def test_accepts_the_perception_bev_grid(corr, site):
+    """The perception stage's BevGrid (docs/interfaces.md) goes straight in, as the synthetic grid does."""
+    from tinyloc.perception.overhead import BevGrid
+    win = np.ascontiguousarray(site[:, 0:256, 0:256])
+    corr.set_map(win)
+    syn = synth.cut_bev(win, 120.5, 130.5, 1.0, np.random.default_rng(4), noise=0.05)
+    grid = BevGrid(syn.evidence, syn.free, syn.visible, 0.5, 32.0, 0.0, "ok")
+    a = corr.search_fast(grid).modes[0]
+    b = corr.search_fast(syn).modes[0]
+    assert a.cell == b.cell and a.loglik == b.loglik
+    assert not corr.search_fast(BevGrid(syn.evidence, syn.free, syn.visible)).ok  # default status "empty"
