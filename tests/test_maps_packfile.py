@@ -511,17 +511,21 @@ def test_random_damage_anywhere_never_crashes(packed, tmp_path):
     assert in_tiles >= 75  # damage confined to tile data always leaves the map readable
 
 
+@pytest.mark.parametrize("levels", [256, 16])
 @pytest.mark.parametrize("tile,ok", [(packfile.MIN_TILE, True), (packfile.MIN_TILE - 1, False),
                                      (packfile.MAX_TILE, True), (packfile.MAX_TILE + 1, False)])
-def test_tile_size_limits(tmp_path, tile, ok):
+def test_tile_size_limits(tmp_path, tile, ok, levels):
     m = meta(rows=20, cols=20, tile=tile, names=("grass",))
     cov = np.zeros((1, 20, 20), dtype=np.float32)
     cov[0, 3:9, 4:12] = 0.5
     q = tmp_path / "t.tlm"
     if ok:
-        write_packed(q, m, cov)
+        write_packed(q, m, cov, levels=levels)
         with PackedMap.open(q) as pm:
-            assert pm.read_all()[0, 5, 5] == pytest.approx(128 / 255)
+            pm.warmup()
+            got = pm.read_all()
+            assert got[0, 5, 5] == pytest.approx((128 if levels == 256 else 8 * 17) / 255)
+            assert np.array_equal(got, quantize(cov, levels) * np.float32(1 / 255))
     else:
         with pytest.raises(MapFormatError, match=r"tile size"):
             write_packed(q, m, cov)

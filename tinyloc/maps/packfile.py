@@ -528,6 +528,22 @@ class PackedMap:
             self._decode(k, blob, crc)
         return len(self._damaged)
 
+    def warmup(self) -> None:
+        """Load (or, on a first run, compile) the context-tile decoder now rather than at the first read.
+
+        The live loop's first window read should not pay for it. Decodes a tiny synthetic tile; the map
+        itself is not read.
+        """
+        kinds = np.array([2], dtype=np.uint8)
+        probs = np.full(NCTX, 32768, dtype=np.uint16)
+        levels = np.zeros((1, MIN_TILE, MIN_TILE), dtype=np.uint8)
+        st = np.array([0, 0xFFFFFFFF, 0, 0, 4, 0, 0, 0, 0], dtype=np.int64)
+        nb = -(-MIN_TILE // _kernels.BLOCK)
+        _kernels.decode_tile(levels, kinds, np.zeros(1, dtype=np.uint8), probs, self._nocounts,
+                             np.zeros(1, dtype=np.uint8), st, np.zeros((1, nb, nb), dtype=np.uint8),
+                             np.zeros((MIN_TILE, MIN_TILE), dtype=np.int64),
+                             np.zeros((MIN_TILE + 2, MIN_TILE + 4), dtype=np.uint8))
+
     def clear_cache(self) -> None:
         """Forget every decoded tile (the next reads are cold)."""
         with self._lock:
