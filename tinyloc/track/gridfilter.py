@@ -170,6 +170,10 @@ class TrackParams:
         A pose elsewhere scoring within this (tempered log units) of the best near the estimate in
         two global checks in a row makes the output ambiguous: quality "degraded", the competing
         pose among the modes and in the covariance, until a later check clears it [0.5].
+    model_sigma_m, model_sigma_deg : float
+        Error the likelihood cannot show (map survey errors of open vector map data, calibration,
+        the ground not being flat), added to the reported covariance as an independent term after
+        the quality decision: the output never claims better than this [0.5, 0.5].
     gnss : GnssParams
         Robust satellite-fix prior.
     """
@@ -204,6 +208,8 @@ class TrackParams:
     switch_margin: float = 4.0
     switch_votes: int = 2
     ambiguity_margin: float = 0.5
+    model_sigma_m: float = 0.5
+    model_sigma_deg: float = 0.5
     gnss: GnssParams = field(default_factory=GnssParams)
 
     def __post_init__(self):
@@ -1010,4 +1016,8 @@ class Tracker:
         if est is None:
             nan = math.nan
             return TrackOutput(t, nan, nan, nan, np.full((3, 3), np.nan), quality, [], status, surprise, was_global)
-        return TrackOutput(t, est.x, est.y, est.yaw, est.cov, quality, est.modes, status, surprise, was_global)
+        cov = est.cov.copy()
+        cov[0, 0] += self.p.model_sigma_m ** 2
+        cov[1, 1] += self.p.model_sigma_m ** 2
+        cov[2, 2] += math.radians(self.p.model_sigma_deg) ** 2
+        return TrackOutput(t, est.x, est.y, est.yaw, cov, quality, est.modes, status, surprise, was_global)
