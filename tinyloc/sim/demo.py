@@ -57,6 +57,11 @@ def write_demo(data_dir, maps_dir=None, *, progress=None, run_seed: int = RUN_SE
     params = replace(params, drive=replace(params.drive, stop_prob=0.25), cloud_cover=(0.3, 0.4),
                      saturation=(0.85, 0.9))
     summary = make_run(site.world, run_dir, seed=run_seed, params=params, progress=progress, name="demo_park-1")
+    # Name the map in run.json so `tinyloc replay RUN` finds it without --map.
+    meta_path = run_dir / "run.json"
+    meta = json.loads(meta_path.read_text(encoding="utf-8"))
+    meta["map"] = "../demo_park.tlm"
+    meta_path.write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
     if maps_dir is not None:
         maps_dir = Path(maps_dir)
         maps_dir.mkdir(parents=True, exist_ok=True)
