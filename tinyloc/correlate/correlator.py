@@ -612,7 +612,8 @@ class Correlator:
             return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, scale=2,
                                 heading_scale=p.coarse_heading_step, ok=False, status=status)
         K.downsample2(self._feat, self._feat_c)
-        e.run(self._feat_c, self._inv_temp, None)
+        # x4: a 2x2 block-mean score sums 4x fewer cells; this puts it on the full-resolution scale.
+        e.run(self._feat_c, 4.0 * self._inv_temp, None)
         self._refiner.reset()
         cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, p.coarse_top_k, max(1, p.mode_radius_cells // 2),
                            max(1, p.mode_radius_headings // p.coarse_heading_step),
@@ -663,7 +664,7 @@ class Correlator:
                                     p.mode_radius_cells, p.mode_radius_headings)
             return TrackResult(e.vol, row0, col0, a0, modes=modes)
         K.downsample2(self._feat, self._feat_c)
-        e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, self._inv_temp)
+        e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, 4.0 * self._inv_temp)
         cands = modes_of_volume(e.vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
                                 max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // 2))
         starts = [coarse_start(self._refiner, self._feat, self._G_hwf, m, self._inv_temp, p) for m in cands]
