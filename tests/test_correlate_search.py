@@ -197,3 +197,28 @@ def test_accepts_the_perception_bev_grid(corr, site):
     b = corr.search_fast(syn).modes[0]
     assert a.cell == b.cell and a.loglik == b.loglik
     assert not corr.search_fast(BevGrid(syn.evidence, syn.free, syn.visible)).ok  # default status "empty"
+
+
+def test_coarse_loglik_is_on_the_full_resolution_scale(corr, site):
+    win = np.ascontiguousarray(site[:, 40:296, 20:276])
+    corr.set_map(win)
+    bev = synth.cut_bev(win, 128.5, 128.5, 2.0, np.random.default_rng(8), noise=0.1)
+    fine_max = float(corr.search(bev).best.max())
+    coarse_max = float(corr.search_fast(bev).best.max())
+    assert 0.7 <= coarse_max / fine_max <= 1.1  # block means lose a little contrast: under-, never over-confident
+
+
+def test_temperature_fit_recovers_a_known_temperature():
+    """Temperature scaling (maximum likelihood of the true class under softmax(logits / T), common practice):
+    truths drawn from softmax(v / T0) must give back about T0."""
+    from tinyloc.correlate.scoring import calibrate_temperature
+    rng = np.random.default_rng(21)
+    t0 = 3.0
+    data = []
+    for _ in range(300):
+        v = rng.normal(0.0, 6.0, size=(4, 5, 5))
+        p = np.exp(v.ravel() / t0 - np.max(v / t0))
+        k = rng.choice(v.size, p=p / p.sum())
+        data.append((v, np.unravel_index(k, v.shape)))
+    t, info = calibrate_temperature(data, grid=np.geomspace(0.5, 20.0, 60))
+    assert 2.4 <= t <= 3.7, t
