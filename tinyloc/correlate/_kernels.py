@@ -397,3 +397,55 @@ def merge_best(best, best_a, other, other_a):
             if other[i, j] > best[i, j]:
                 best[i, j] = other[i, j]
                 best_a[i, j] = other_a[i, j]
+
+
+@njit(**JIT)
+def rotate_compact(feat_hwf, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, nu, nv, uv, vals):
+    """:func:`rotate_into` + :func:`compact_canvas` in one pass, from cell-major features (h, w, F).
+
+    Lists the map offsets (du, dv) = (u + lo_u, v + lo_v), u < nu, v < nv, whose rotated
+    sample is nonzero in any feature; returns their number.
+    """
+    h, w, F = feat_hwf.shape
+    n = 0
+    for u in range(nu):
+        dy = -(u + lo_u) * 1.0
+        for v in range(nv):
+            dx = (v + lo_v) * 1.0
+            xf = cos_t * dx + sin_t * dy
+            yl = -sin_t * dx + cos_t * dy
+            rr = origin_row - yl - 0.5
+            cc = origin_col + xf - 0.5
+            if rr <= -1.0 or cc <= -1.0 or rr >= h or cc >= w:
+                continue
+            r0 = int(math.floor(rr))
+            c0 = int(math.floor(cc))
+            fr = rr - r0
+            fc = cc - c0
+            w00 = (1.0 - fr) * (1.0 - fc)
+            w01 = (1.0 - fr) * fc
+            w10 = fr * (1.0 - fc)
+            w11 = fr * fc
+            ok_r0 = r0 >= 0
+            ok_r1 = r0 + 1 < h
+            ok_c0 = c0 >= 0
+            ok_c1 = c0 + 1 < w
+            nz = False
+            for f in range(F):
+                acc = 0.0
+                if ok_r0 and ok_c0:
+                    acc += w00 * feat_hwf[r0, c0, f]
+                if ok_r0 and ok_c1:
+                    acc += w01 * feat_hwf[r0, c0 + 1, f]
+                if ok_r1 and ok_c0:
+                    acc += w10 * feat_hwf[r0 + 1, c0, f]
+                if ok_r1 and ok_c1:
+                    acc += w11 * feat_hwf[r0 + 1, c0 + 1, f]
+                vals[n, f] = acc
+                if acc != 0.0:
+                    nz = True
+            if nz:
+                uv[n, 0] = u + lo_u
+                uv[n, 1] = v + lo_v
+                n += 1
+    return n

@@ -710,7 +710,8 @@ class _Refiner:
         for a in range(64):
             lu, hu, lv, hv = template_bounds(p.bev_shape, p.origin_row, p.origin_col, 2 * math.pi * a / 64)
             SU, SV = max(SU, hu - lu + 2), max(SV, hv - lv + 2)
-        self.canvas = np.zeros((F, SU, SV), np.float32)
+        self.feat_hwf = np.zeros(tuple(p.bev_shape) + (F,), np.float32)
+        self._feat_frame = None
         self.uv = np.zeros((self.SLOTS, SU * SV, 2), np.int16)  # offsets are within +-reach
         self.vals = np.zeros((self.SLOTS, SU * SV, F), np.float32)
         self.count = np.zeros(self.SLOTS, np.int64)
@@ -722,7 +723,7 @@ class _Refiner:
 
     @property
     def nbytes(self) -> int:
-        return sum(a.nbytes for a in (self.canvas, self.uv, self.vals, self.count, self.rows, self.cols, self.out))
+        return sum(a.nbytes for a in (self.feat_hwf, self.uv, self.vals, self.count, self.rows, self.cols, self.out))
 
     def _slot(self, feat, a):
         p = self.p
@@ -734,16 +735,19 @@ class _Refiner:
         self.next_slot = (s + 1) % self.SLOTS
         yaw = 2.0 * math.pi * a / p.n_headings
         lu, hu, lv, hv = template_bounds(p.bev_shape, p.origin_row, p.origin_col, yaw)
+        if self._feat_frame is not feat:
+            self.feat_hwf[...] = feat.transpose(1, 2, 0)  # once per frame: taps of all features adjacent
+            self._feat_frame = feat
         # Only this heading's own bounding box (up to half the cells of the largest one).
-        box = self.canvas[:, :hu - lu + 1, :hv - lv + 1]
-        K.rotate_into(feat, math.cos(yaw), math.sin(yaw), p.origin_row, p.origin_col, lu, lv, box)
-        self.count[s] = K.compact_canvas(box, lu, lv, self.uv[s], self.vals[s])
+        self.count[s] = K.rotate_compact(self.feat_hwf, math.cos(yaw), math.sin(yaw), p.origin_row, p.origin_col,
+                                         lu, lv, hu - lu + 1, hv - lv + 1, self.uv[s], self.vals[s])
         self.slot_heading[s] = a
         return s
 
     def reset(self):
         """Forget the cached grids (a new frame)."""
         self.slot_heading.fill(-1)
+        self._feat_frame = None
 
     def scores(self, feat, G, a, cells, inv_temp):
         """Exact tempered log-likelihoods of heading a at the given (row, col) window cells."""
