@@ -84,98 +84,12 @@ def rotate_into(feat, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, out):
 
 
 @njit(**JIT)
-def spectra_mac(G, T, P):
-    """P = sum_f G[f] * conj(T[f]) on interleaved (re, im) float32 spectra of shape (F, N, 2K).
-
-    With T the spectrum of the template canvas and G that of the map, the inverse
-    transform of P is the cross-correlation sum_u T(u) G(p + u).
-    """
-    F, N, K2 = G.shape
-    for r in range(N):
-        for k in range(0, K2, 2):
-            pr = 0.0
-            pi = 0.0
-            for f in range(F):
-                gr = G[f, r, k]
-                gi = G[f, r, k + 1]
-                tr = T[f, r, k]
-                ti = T[f, r, k + 1]
-                pr += gr * tr + gi * ti
-                pi += gi * tr - gr * ti
-            P[r, k] = pr
-            P[r, k + 1] = pi
-
-
-@njit(**JIT)
-def readout(buf, quarter, su, sv, inv_temp, a, best, best_a, head_max, head_arg, vol, write_vol):
-    """Read one heading's correlation out of the cyclic buffer into the reduced forms (and the volume).
-
-    Window cell (i, j) sits at cyclic index rho^quarter(i, j) + (su, sv), where
-    rho(i, j) = (j, -i) is the exact quarter turn of the map about index 0.
-    """
-    N = buf.shape[0]
-    H, W = best.shape
-    hm = -np.inf
-    harg = 0
-    for i in range(H):
-        for j in range(W):
-            if quarter == 0:
-                pr = i + su
-                pc = j + sv
-            elif quarter == 1:
-                pr = j + su
-                pc = -i + sv
-            elif quarter == 2:
-                pr = -i + su
-                pc = -j + sv
-            else:
-                pr = -j + su
-                pc = i + sv
-            pr %= N
-            pc %= N
-            v = buf[pr, pc] * inv_temp
-            if write_vol:
-                vol[a, i, j] = v
-            if v > best[i, j]:
-                best[i, j] = v
-                best_a[i, j] = a
-            if v > hm:
-                hm = v
-                harg = i * W + j
-    head_max[a] = hm
-    head_arg[a] = harg
-
-
-@njit(**JIT)
 def readout_patch(buf, r0, c0, inv_temp, out_slice):
     """Copy a tempered (Ho, Wo) block of a cyclic correlation buffer starting at (r0, c0)."""
     Ho, Wo = out_slice.shape
     for i in range(Ho):
         for j in range(Wo):
             out_slice[i, j] = buf[r0 + i, c0 + j] * inv_temp
-
-
-@njit(**JIT)
-def direct_scores(canvas, lo_u, lo_v, G, rows, cols, out):
-    """Exact scores at given robot cells by direct sums: out[n] = sum canvas[f,u,v] G[f, i+u+lo_u, j+v+lo_v].
-
-    Map cells outside G count as zero (unknown), as in the FFT path.
-    """
-    F, SU, SV = canvas.shape
-    H, W = G.shape[1], G.shape[2]
-    for n in range(rows.shape[0]):
-        i0 = rows[n] + lo_u
-        j0 = cols[n] + lo_v
-        u_lo = max(0, -i0)
-        u_hi = min(SU, H - i0)
-        v_lo = max(0, -j0)
-        v_hi = min(SV, W - j0)
-        acc = 0.0
-        for f in range(F):
-            for u in range(u_lo, u_hi):
-                for v in range(v_lo, v_hi):
-                    acc += canvas[f, u, v] * G[f, i0 + u, j0 + v]
-        out[n] = acc
 
 
 @njit(**JIT)
@@ -307,7 +221,11 @@ def spectra_mac1(G, T, P):
 
 @njit(**JIT)
 def readout_tiled(buf, quarter, su, sv, inv_temp, a, best, best_a, head_max, head_arg, vol, write_vol, modtab):
-    """As :func:`readout`, in 32 x 32 tiles so both the cyclic buffer and the outputs stay in cache.
+    """Read one heading's correlation into the reduced forms (and the volume), in 32 x 32 tiles.
+
+    Window cell (i, j) sits at cyclic index rho^quarter(i, j) + (su, sv), where
+    rho(i, j) = (j, -i) is the exact quarter turn of the map about index 0; tiles keep
+    both the buffer and the outputs in cache.
 
     ``buf`` holds rows in gathered order: buffer row l is cyclic row (r0 + l) mod N, where the
     caller chose r0 so that row index l = i (quarters 0, 2 read rows +-i) or l = j (quarters 1, 3).
@@ -347,27 +265,6 @@ def readout_tiled(buf, quarter, su, sv, inv_temp, a, best, best_a, head_max, hea
 
 
 @njit(**JIT)
-def compact_canvas(canvas, lo_u, lo_v, uv, vals):
-    """List the canvas cells with any nonzero feature: uv[n] = map offset (du, dv), vals[n, f]; returns n."""
-    F, SU, SV = canvas.shape
-    n = 0
-    for u in range(SU):
-        for v in range(SV):
-            nz = False
-            for f in range(F):
-                if canvas[f, u, v] != 0.0:
-                    nz = True
-                    break
-            if nz:
-                uv[n, 0] = u + lo_u
-                uv[n, 1] = v + lo_v
-                for f in range(F):
-                    vals[n, f] = canvas[f, u, v]
-                n += 1
-    return n
-
-
-@njit(**JIT)
 def sparse_scores(uv, vals, n, G, rows, cols, out):
     """Exact scores at robot cells from a compacted rotated grid: sum_n sum_f vals[n, f] G[i + du, j + dv, f].
 
@@ -401,7 +298,7 @@ def merge_best(best, best_a, other, other_a):
 
 @njit(**JIT)
 def rotate_compact(feat_hwf, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, nu, nv, uv, vals):
-    """:func:`rotate_into` + :func:`compact_canvas` in one pass, from cell-major features (h, w, F).
+    """:func:`rotate_into` and a compaction in one pass, from cell-major features (h, w, F).
 
     Lists the map offsets (du, dv) = (u + lo_u, v + lo_v), u < nu, v < nv, whose rotated
     sample is nonzero in any feature; returns their number.
