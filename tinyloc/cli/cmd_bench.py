@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import importlib
 import json
 import pkgutil
@@ -28,7 +29,8 @@ def register(parser):
 
     sub = group(parser, "stage")
     for mod in _stages():
-        p = sub.add_parser(mod.NAME, help=mod.HELP, description=getattr(mod, "DESCRIPTION", mod.HELP))
+        p = sub.add_parser(mod.NAME, help=mod.HELP, description=getattr(mod, "DESCRIPTION", mod.HELP),
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
         p.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
         if hasattr(mod, "add_arguments"):
             mod.add_arguments(p)
