@@ -474,6 +474,45 @@ def check_run(path) -> list[str]:
     return list(rf.warnings)
 
 
+def _cut_torn_line(p: Path) -> None:
+    """Cut a CSV after its last newline (a row without one was being written when the writer died)."""
+    if not p.is_file():
+        return
+    size = p.stat().st_size
+    with open(p, "rb+") as fh:
+        back = min(size, MAX_LINE_CHARS + 1)
+        fh.seek(size - back)
+        tail = fh.read(back)
+        k = tail.rfind(b"\n")
+        keep = size - back + k + 1 if k >= 0 else (0 if size <= MAX_LINE_CHARS else size)
+        if keep != size:
+            fh.truncate(keep)
+
+
+def _drop_bad_last_frame(root: Path) -> int:
+    """Drop the last frames.csv row if its file is missing or does not decode; the number of rows left."""
+    import cv2
+
+    p = root / "frames.csv"
+    if not p.is_file():
+        return 0
+    raw = p.read_bytes()
+    lines = raw.split(b"\n")[:-1] if raw.endswith(b"\n") else raw.split(b"\n")
+    data = [k for k, ln in enumerate(lines) if ln.strip() and not ln.lstrip().startswith(b"#")][1:]
+    if not data:
+        return 0
+    last = lines[data[-1]].decode("utf-8", "replace").split(",")
+    f = root / last[-1].strip() if len(last) >= 2 else None
+    ok = False
+    if f is not None and f.is_file() and 0 < f.stat().st_size <= MAX_IMAGE_BYTES:
+        ok = cv2.imdecode(np.fromfile(f, dtype=np.uint8), cv2.IMREAD_UNCHANGED) is not None
+    if ok:
+        return len(data)
+    with open(p, "rb+") as fh:
+        fh.truncate(sum(len(ln) + 1 for ln in lines[: data[-1]]))
+    return len(data) - 1
+
+
 def _fmt(v: float) -> str:
     # repr() is the shortest text that reads back to the identical float.
     return repr(float(v))
@@ -528,7 +567,98 @@ class RunWriter:
         self._open("frames", FRAME_COLUMNS)
         self._n_frames = 0
         self._last_frame_t = -math.inf
+        self.last_t: dict[str, float] = {}
         self._closed = False
+
+    @classmethod
+    def resume(cls, path, *, image_ext: str | None = None, jpeg_quality: int = 90) -> "RunWriter":
+        """Reopen an incomplete run folder for appending (append mode).
+
+        A torn last CSV line (no newline: the writer was killed mid-row) is cut off; a last
+        frame whose file is missing or does not decode loses its ``frames.csv`` row; frame files
+        not listed in ``frames.csv`` are deleted. What is left is then read back with
+        ``RunFolder.open(strict=False)``; any other fault refuses the resume.
+
+        Parameters
+        ----------
+        path : str or Path
+            The run folder; its run.json must say ``"complete": false``.
+        image_ext : {".png", ".jpg"} or None
+            Type of frames written by :meth:`add_frame`; None keeps the last frame's type (else PNG).
+        jpeg_quality : int
+            As in the constructor.
+
+        Returns
+        -------
+        RunWriter
+            Writing after what the folder holds: ``len(writer)`` frames so far, ``writer.last_t``
+            the time (s) of the last row of each CSV (name without ``.csv``, ``"frames"`` included).
+
+        Raises
+        ------
+        InputError
+            Not a run folder, already complete, or holding rows the reader rejects (one line).
+        """
+        self = cls.__new__(cls)
+        self.path = Path(path)
+        p = self.path / "run.json"
+        if not p.is_file():
+            raise InputError(f"{self.path}: no run.json (not a run folder; nothing to resume)")
+        try:
+            meta = json.loads(p.read_text(encoding="utf-8"))
+        except (UnicodeDecodeError, json.JSONDecodeError) as e:
+            raise InputError(f"{p}: unreadable ({e}); cannot resume") from None
+        if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
+            raise InputError(f"{p}: not a tinyloc run folder; cannot resume")
+        if meta.get("complete") is not False:
+            raise InputError(f"{self.path}: run.json says the run is complete; nothing to resume")
+        self._meta = meta
+        for name in ("frames",) + tuple(TABLES):
+            csv = self.path / f"{name}.csv"
+            _cut_torn_line(csv)
+            if csv.is_file() and csv.stat().st_size == 0:  # died before the header reached the disk
+                csv.write_text(",".join(FRAME_COLUMNS if name == "frames" else TABLES[name][0]) + "\n",
+                               encoding="utf-8")
+        n_rows = _drop_bad_last_frame(self.path)
+        try:
+            rf = RunFolder.open(self.path, strict=False)
+        except RunFolderError as e:
+            raise InputError(f"cannot resume: {e}") from None
+        faults = [w for w in rf.warnings if not (w.startswith("run.json:") or w.endswith("(the run has no such samples)"))]
+        if faults or len(rf) != n_rows:
+            why = faults[0] if faults else f"frames.csv lists {n_rows} frames, {len(rf)} are readable"
+            raise InputError(f"cannot resume {self.path}: {why}")
+        self.camera = rf.camera
+        if image_ext is None:
+            image_ext = Path(rf.frame_files[-1]).suffix if rf.frame_files else ".png"
+            image_ext = ".jpg" if image_ext in (".jpg", ".jpeg") else ".png"
+        if image_ext not in (".png", ".jpg"):
+            raise InputError(f"image_ext must be '.png' or '.jpg', got {image_ext!r}")
+        self.image_ext = image_ext
+        self.jpeg_quality = int(jpeg_quality)
+        self._n_frames = len(rf)
+        self._last_frame_t = float(rf.frame_t[-1]) if len(rf) else -math.inf
+        self.last_t = {"frames": self._last_frame_t} if len(rf) else {}
+        for name in TABLES:
+            arr = rf.truth if name == "truth" else getattr(rf, name)
+            if arr is not None and len(arr):
+                self.last_t[name] = float(arr[-1, 0])
+        listed = set(rf.frame_files)
+        for f in (self.path / "frames").iterdir() if (self.path / "frames").is_dir() else ():
+            if f"frames/{f.name}" not in listed and f.is_file():
+                f.unlink()  # a frame written before its row, or after a dropped row: rewritten on the way
+        (self.path / "frames").mkdir(exist_ok=True)
+        self._files = {}
+        for name in ("frames",) + tuple(TABLES):
+            if (self.path / f"{name}.csv").is_file():
+                self._open(name, FRAME_COLUMNS if name == "frames" else TABLES[name][0], append=True)
+        if "frames" not in self._files:
+            self._open("frames", FRAME_COLUMNS)
+        self._closed = False
+        return self
+
+    def __len__(self) -> int:
+        return self._n_frames
 
     def _write_meta(self):
         p = self.path / "run.json"
@@ -536,15 +666,18 @@ class RunWriter:
         tmp.write_text(json.dumps(self._meta, indent=2) + "\n", encoding="utf-8")
         tmp.replace(p)
 
-    def _open(self, name: str, cols):
-        f = open(self.path / f"{name}.csv", "w", encoding="utf-8", newline="\n")
-        f.write(",".join(cols) + "\n")
+    def _open(self, name: str, cols, append: bool = False):
+        p = self.path / f"{name}.csv"
+        f = open(p, "a" if append else "w", encoding="utf-8", newline="\n")
+        if not append or p.stat().st_size == 0:
+            f.write(",".join(cols) + "\n")
         self._files[name] = f
         return f
 
     def _row(self, name: str, vals):
         f = self._files.get(name) or self._open(name, TABLES[name][0])
         f.write(",".join(_fmt(v) for v in vals) + "\n")
+        self.last_t[name] = float(vals[0])
 
     def add_frame(self, t: float, image: np.ndarray, *, label: np.ndarray | None = None) -> str:
         """Write one frame (BGR or gray uint8) and optionally its class-index label; returns its file name."""
@@ -570,10 +703,39 @@ class RunWriter:
             (self.path / "labels").mkdir(exist_ok=True)
             ok, lb = cv2.imencode(".png", np.ascontiguousarray(label, dtype=np.uint8))
             lb.tofile(self.path / "labels" / f"{self._n_frames:06d}.png")
+        self._frame_row(t, rel)
+        return rel
+
+    def add_frame_bytes(self, t: float, data: bytes, ext: str) -> str:
+        """Write one already-encoded frame (PNG or JPEG bytes, stored unchanged); returns its file name.
+
+        Parameters
+        ----------
+        t : float
+            Frame time (s); must increase from frame to frame.
+        data : bytes
+            The encoded image; it is not decoded here (the reader checks it when loading).
+        ext : {".png", ".jpg"}
+            File extension matching the bytes.
+        """
+        if self._closed:
+            raise InputError("RunWriter is closed")
+        if ext not in (".png", ".jpg"):
+            raise InputError(f"frame extension must be '.png' or '.jpg', got {ext!r}")
+        t = float(t)
+        if not t > self._last_frame_t:
+            raise InputError(f"frame time {t!r} s does not increase (previous {self._last_frame_t!r} s)")
+        rel = f"frames/{self._n_frames:06d}{ext}"
+        (self.path / rel).write_bytes(data)
+        self._frame_row(t, rel)
+        return rel
+
+    def _frame_row(self, t: float, rel: str) -> None:
+        # The file is whole before its row is written: a row never names a frame still being written.
         self._files["frames"].write(f"{_fmt(t)},{rel}\n")
         self._n_frames += 1
         self._last_frame_t = t
-        return rel
+        self.last_t["frames"] = t
 
     def add_imu(self, t, fx, fy, fz):
         """Accelerometer specific force in the FLU base frame (m/s^2); level at rest reads (0, 0, +9.81)."""

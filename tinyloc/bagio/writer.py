@@ -7,7 +7,6 @@ from collections import deque
 
 import numpy as np
 
-from ..errors import InputError
 from ..runfolder import RunWriter
 from .decode import BadMessage
 
@@ -17,15 +16,7 @@ class BagRunWriter(RunWriter):
 
     def add_encoded_frame(self, t: float, data: bytes, ext: str) -> str:
         """Write an already-encoded frame (``ext`` '.jpg' or '.png'); returns its file name."""
-        t = float(t)
-        if not t > self._last_frame_t:
-            raise InputError(f"frame time {t!r} s does not increase (previous {self._last_frame_t!r} s)")
-        rel = f"frames/{self._n_frames:06d}{ext}"
-        (self.path / rel).write_bytes(data)
-        self._files["frames"].write(f"{t!r},{rel}\n")  # repr: the float read back exactly
-        self._n_frames += 1
-        self._last_frame_t = t
-        return rel
+        return self.add_frame_bytes(t, data, ext)
 
 
 def png_bytes(img: np.ndarray) -> tuple[bytes, str]:
