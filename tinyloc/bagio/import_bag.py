@@ -32,6 +32,7 @@ from ..camera.model import CameraModel, load_camera
 from ..errors import InputError
 from ..geo import LocalFrame
 from ._rosbags import rosbags, stamp_ns, typestore
+from .fingerprint import bag_fingerprint, differing, options_record
 from .decode import (COV_UNKNOWN, NAVSAT_NO_FIX, BadMessage, TransformTree, camera_from_info, check_compressed,
                      horizontal_sigma_m, mount_from_transform, quat_to_yaw, raw_image_to_bgr)
 from .progress import Progress
@@ -233,6 +234,9 @@ class _Rows:
         self.counts = {"frames": 0, "imu": 0, "odometry": 0, "gnss": 0, "truth": 0}
         self.gnss_skip = {"no fix": 0, "unknown covariance": 0}
         self.kept_frames = 0
+        # True while replaying messages the folder already holds (a resumed import): every check
+        # and count runs as before, nothing is written.
+        self.dry = False
 
     def add(self, kind: str, msgtype: str, msg, t: float, topic: str, index: int) -> None:
         getattr(self, "_" + kind)(msgtype, msg, t, topic, index)
@@ -244,12 +248,18 @@ class _Rows:
         cam = self.camera
         if msgtype == COMPRESSED:
             data = msg.data.tobytes() if hasattr(msg.data, "tobytes") else bytes(msg.data)
+            if self.dry:
+                self.frames.skip(topic, index, lambda d=data: check_compressed(d, cam.width, cam.height))
+                return
             self.frames.put(t, topic, index, lambda d=data: (d, check_compressed(d, cam.width, cam.height)[0]))
             return
         img = raw_image_to_bgr(msg.height, msg.width, msg.encoding, msg.step, msg.data)
         if img.shape[0] != cam.height or img.shape[1] != cam.width:
             raise BadMessage(f"image is {img.shape[1]}x{img.shape[0]}, the camera calibration says "
                              f"{cam.width}x{cam.height}")
+        if self.dry:
+            self.frames.skip(topic, index)
+            return
         self.frames.put(t, topic, index, lambda im=img: png_bytes(im))
 
     def _imu(self, msgtype, msg, t, topic, index):
@@ -259,7 +269,8 @@ class _Rows:
         f = self.r_base_imu @ np.array([a.x, a.y, a.z], dtype=np.float64)
         if not np.all(np.isfinite(f)):
             raise BadMessage("non-finite linear acceleration")
-        self.writer.add_imu(t, f[0], f[1], f[2])
+        if not self.dry:
+            self.writer.add_imu(t, f[0], f[1], f[2])
         self.counts["imu"] += 1
 
     def _odom(self, msgtype, msg, t, topic, index):
@@ -267,7 +278,8 @@ class _Rows:
         yaw = quat_to_yaw(q.x, q.y, q.z, q.w)
         if not all(math.isfinite(v) for v in (p.x, p.y, yaw)):
             raise BadMessage("non-finite odometry pose")
-        self.writer.add_odometry(t, p.x, p.y, yaw)
+        if not self.dry:
+            self.writer.add_odometry(t, p.x, p.y, yaw)
         self.counts["odometry"] += 1
 
     def _gnss(self, msgtype, msg, t, topic, index):
@@ -286,7 +298,8 @@ class _Rows:
         lat, lon, h = float(msg.latitude), float(msg.longitude), float(msg.altitude)
         if not (math.isfinite(lat) and math.isfinite(lon) and abs(lat) <= 90 and abs(lon) <= 180):
             raise BadMessage(f"latitude/longitude ({lat}, {lon}) not valid")
-        self.writer.add_gnss(t, lat, lon, h if math.isfinite(h) else 0.0, acc)
+        if not self.dry:
+            self.writer.add_gnss(t, lat, lon, h if math.isfinite(h) else 0.0, acc)
         self.counts["gnss"] += 1
 
     def _truth(self, msgtype, msg, t, topic, index):
@@ -296,12 +309,17 @@ class _Rows:
         if not all(math.isfinite(v) for v in (p.x, p.y, yaw)):
             raise BadMessage("non-finite truth pose")
         lat, lon = self.frame.to_latlon(p.x, p.y)
-        self.writer.add_truth(t, lat, lon, yaw, p.x, p.y)
+        if not self.dry:
+            self.writer.add_truth(t, lat, lon, yaw, p.x, p.y)
         self.counts["truth"] += 1
 
 
+# stream -> run-folder file (without .csv)
+_STREAM_TABLE = {"camera": "frames", "imu": "imu", "odom": "odometry", "gnss": "gnss", "truth": "truth"}
+
+
 class _Importer:
-    def __init__(self, bag, out, opts: ImportOptions):
+    def __init__(self, bag, out, opts: ImportOptions, resume: bool = False):
         if opts.every < 1:
             raise InputError(f"--every {opts.every}: must be a positive whole number")
         if opts.start_s is not None and opts.start_s < 0:
@@ -313,6 +331,7 @@ class _Importer:
         self.bag = Path(bag)
         self.out = Path(out)
         self.opts = opts
+        self.resume = resume
         self.notes: list[str] = []
         self.bad: dict[str, list] = {}
         self.bad_count: dict[str, int] = {}
@@ -424,7 +443,35 @@ class _Importer:
             raise InputError(f"{self.bag}: camera mount from {TF_STATIC} is unusable: {e}; "
                              "pass --base-frame or --camera camera.toml") from None
 
+    def _check_resume(self, fingerprint: dict, options: dict) -> dict:
+        """The stopped import's run.json ``"import"`` entry, if ``self.out`` may be resumed with this bag."""
+        out = self.out
+        p = out / "run.json"
+        if not p.is_file():
+            raise InputError(f"{out}: no run.json, nothing to resume (run without --resume to start an import)")
+        try:
+            meta = json.loads(p.read_text(encoding="utf-8"))
+        except (UnicodeDecodeError, json.JSONDecodeError) as e:
+            raise InputError(f"{p}: unreadable ({e}); cannot resume") from None
+        prev = meta.get("import") if isinstance(meta, dict) else None
+        if meta.get("complete") is not False:
+            raise InputError(f"{out}: the import is complete (run.json \"complete\": true); nothing to resume")
+        if not isinstance(prev, dict) or "bag_fingerprint" not in prev or "options" not in prev:
+            raise InputError(f"{out}: not written by a resumable 'tinyloc import bag' (no bag fingerprint in "
+                             "run.json); import again into a new folder")
+        if prev["bag_fingerprint"] != fingerprint:
+            raise InputError(f"{out} was imported from {prev.get('bag', 'another bag')}, and {self.bag} is not that "
+                             "bag as it was (size, modification time or contents differ); cannot resume")
+        diff = differing(prev["options"], options)
+        if diff:
+            raise InputError(f"{out} was imported with other options ({', '.join(diff)} differ); resume with the "
+                             "same options, or import into a new folder")
+        return prev
+
     def run(self) -> ImportResult:
+        self.fingerprint = bag_fingerprint(self.bag) if self.bag.exists() else None
+        self.options = options_record(self.opts)
+        self.prev = self._check_resume(self.fingerprint, self.options) if self.resume else None
         reader = open_bag(self.bag)
         try:
             return self._run(reader)
@@ -508,14 +555,26 @@ class _Importer:
         conns = [c for c in reader.connections if c.topic in streams]
         info = {"bag": str(self.bag), "topics": {k: v for k, v in chosen.items() if v},
                 "time_base_ns": int(base_ns), "time_source": "record" if opts.record_time else "header",
-                "every": opts.every, "window_s": [opts.start_s, opts.end_s], "state": "running"}
+                "every": opts.every, "window_s": [opts.start_s, opts.end_s], "state": "running",
+                "bag_fingerprint": self.fingerprint, "options": self.options}
         if getattr(reader, "note", None):
             info["salvaged"] = reader.note
         extra = {"import": info, "time_base_ns": int(base_ns)}
         if origin is not None:
             extra["origin_source"] = origin_note
-        writer = BagRunWriter(self.out, camera=camera, origin=origin, name=self.out.name,
-                              source=f"bag {self.bag.name}", extra=extra)
+        skip: dict[str, float] = {}
+        if self.prev is not None:
+            if self.prev.get("time_base_ns") != int(base_ns):
+                raise InputError(f"{self.out}: time base {self.prev.get('time_base_ns')} ns in run.json, the bag "
+                                 f"gives {int(base_ns)} ns; cannot resume")
+            writer = BagRunWriter.resume(self.out)
+            skip = {k: writer.last_t[f] for k, f in _STREAM_TABLE.items() if f in writer.last_t}
+            info["resumed"] = int(self.prev.get("resumed", 0)) + 1
+            self.notes.append("resumed: " + (", ".join(f"{_STREAM_TABLE[k]} up to t = {v!r} s" for k, v in skip.items())
+                                             or "nothing written yet") + " already in the folder")
+        else:
+            writer = BagRunWriter(self.out, camera=camera, origin=origin, name=self.out.name,
+                                  source=f"bag {self.bag.name}", extra=extra)
         workers = opts.workers if opts.workers > 0 else min(4, os.cpu_count() or 1)
         frames = FrameQueue(writer, workers, self._drop)
         rows_out = _Rows(writer, frames, camera, r_base_imu,
@@ -556,8 +615,11 @@ class _Importer:
                                        "pass --record-time to use the bag's record time instead")
                         break
                     continue
+                kind = streams[topic]
+                t = (stamp - base_ns) / NS
+                rows_out.dry = t <= skip.get(kind, -math.inf)
                 try:
-                    rows_out.add(streams[topic], conn.msgtype, msg, (stamp - base_ns) / NS, topic, i)
+                    rows_out.add(kind, conn.msgtype, msg, t, topic, i)
                 except (BadMessage, AttributeError, TypeError, ValueError) as e:
                     self._drop(topic, i, str(e))
                 except OSError as e:  # the run folder cannot be written (disk full, permissions)
@@ -614,7 +676,7 @@ class _Importer:
         return out
 
 
-def import_bag(bag, out, opts: ImportOptions | None = None) -> ImportResult:
+def import_bag(bag, out, opts: ImportOptions | None = None, *, resume: bool = False) -> ImportResult:
     """Convert ``bag`` into the run folder ``out`` (which must not exist or be empty).
 
     Parameters
@@ -625,6 +687,11 @@ def import_bag(bag, out, opts: ImportOptions | None = None) -> ImportResult:
         Run folder to write.
     opts : ImportOptions
         Topic choices and options (defaults pick topics by message type).
+    resume : bool
+        Continue the stopped import in ``out`` (run.json ``"complete": false``), which must have been
+        written from the same bag, unchanged, with the same options. The bag is read again from the
+        start; messages at or before the last row (frame) of their stream in the folder are checked
+        and counted but not written again; the rest is appended.
 
     Returns
     -------
@@ -639,4 +706,4 @@ def import_bag(bag, out, opts: ImportOptions | None = None) -> ImportResult:
         The bag broke off part-way: the run folder holds what came before, with
         ``"complete": false`` and the reason in run.json.
     """
-    return _Importer(bag, out, opts or ImportOptions()).run()
+    return _Importer(bag, out, opts or ImportOptions(), resume=resume).run()

@@ -71,6 +71,16 @@ class FrameQueue:
         self.writer.add_encoded_frame(t, data, ext)
         self.written += 1
 
+    def skip(self, topic: str, index: int, check=None) -> None:
+        """Count a frame the folder already holds (a resumed import); ``check`` re-runs its check only."""
+        if check is not None:
+            try:
+                check()
+            except BadMessage as e:
+                self.on_drop(topic, index, str(e))
+                return
+        self.written += 1
+
     def close(self, *, flush: bool) -> None:
         """Write the frames still waiting (``flush``) or forget them; stop the workers."""
         try:

@@ -30,13 +30,15 @@ are reported (and stored in run.json). The camera mount comes from /tf_static
 
 A recording cut short (recorder killed: an MCAP file without its footer, a ROS 1 .bag.active
 without its index) is read up to the cut, and the output says so. An import that stops early
-(damaged bag, Ctrl-C) leaves run.json with "complete": false; it is not resumed: run it again.
+(damaged bag, Ctrl-C) leaves run.json with "complete": false; --resume continues it (same bag,
+same options: both are checked), appending what is missing without duplicating anything.
 
 examples:
   tinyloc import bag drive.mcap --list
   tinyloc import bag drive_2031/ -o runs/drive-2031
   tinyloc import bag old.bag -o runs/old --camera camera.toml --every 3
-  tinyloc import bag drive.mcap -o runs/d --truth-topic /ins/pose --origin 12.3456,-45.6789,20"""
+  tinyloc import bag drive.mcap -o runs/d --truth-topic /ins/pose --origin 12.3456,-45.6789,20
+  tinyloc import bag drive.mcap -o runs/d --truth-topic /ins/pose --origin 12.3456,-45.6789,20 --resume"""
 
 
 def register(parser):
@@ -48,6 +50,8 @@ def register(parser):
     p.add_argument("bag", metavar="BAG", help="ROS 1 .bag file, ROS 2 bag folder, or a .db3 / .mcap file")
     p.add_argument("-o", "--out", metavar="RUN", help="run folder to write (new or empty)")
     p.add_argument("--list", action="store_true", help="show topics, types, counts and the topics that would be used")
+    p.add_argument("--resume", action="store_true",
+                   help="continue a stopped import in RUN (same bag and same options as before; both are checked)")
     g = p.add_argument_group("topics (default: picked by message type; 'none' leaves a stream out)")
     g.add_argument("--camera-topic", metavar="T", help="sensor_msgs Image or CompressedImage")
     g.add_argument("--camera-info-topic", metavar="T", help="sensor_msgs CameraInfo (default: beside the images)")
@@ -93,6 +97,6 @@ def _run_bag(args) -> int:
         return 0
     if not args.out:
         raise InputError("import bag: give the run folder to write with -o RUN (or --list to look first)")
-    res = import_bag(args.bag, args.out, opts)
+    res = import_bag(args.bag, args.out, opts, resume=args.resume)
     print("\n".join(res.lines))
     return 0 if res.counts["frames"] else 1
