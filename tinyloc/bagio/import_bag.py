@@ -627,11 +627,15 @@ class _Importer:
                     break
             complete = stop_reason is None
         finally:
+            late = None  # Ctrl-C while the last frames are flushed: the run is not complete after all
             try:
                 frames.close(flush=True)
             except OSError as e:
                 complete = False
                 stop_reason = stop_reason or f"{self.out}: cannot write ({e.strerror or e})"
+            except BaseException as e:
+                complete = False
+                late = e
             finally:
                 rows_out.counts["frames"] = frames.written
                 progress.done()
@@ -646,6 +650,8 @@ class _Importer:
                 _update_meta(self.out, {"import": info})
             except OSError:
                 pass
+            if late is not None:
+                raise late
         lines = self._lines(trackers, rows_out.counts, rows_out.gnss_skip, stop_reason)
         if stop_reason:
             raise StopImport(f"{stop_reason}; {self.out} holds what came before and is marked incomplete")

@@ -49,10 +49,17 @@ class FrameQueue:
         self.pending: deque = deque()
         self.on_drop = on_drop
         self.written = 0
+        # Set when a frame was lost to an exception (Ctrl-C while waiting for it, a write error): the
+        # frames after it must not be flushed, or the folder would have a hole a resume cannot see.
+        self.broken = False
 
     def put(self, t: float, topic: str, index: int, job) -> None:
         if self.pool is None:
-            self._write(t, topic, index, job)
+            try:
+                self._write(t, topic, index, job)
+            except BaseException:
+                self.broken = True
+                raise
             return
         self.pending.append((t, topic, index, self.pool.submit(job)))
         while len(self.pending) > self.limit:
@@ -60,7 +67,11 @@ class FrameQueue:
 
     def _pop(self) -> None:
         t, topic, index, fut = self.pending.popleft()
-        self._write(t, topic, index, fut.result)
+        try:
+            self._write(t, topic, index, fut.result)
+        except BaseException:
+            self.broken = True
+            raise
 
     def _write(self, t, topic, index, get) -> None:
         try:
@@ -82,9 +93,10 @@ class FrameQueue:
         self.written += 1
 
     def close(self, *, flush: bool) -> None:
-        """Write the frames still waiting (``flush``) or forget them; stop the workers."""
+        """Write the frames still waiting (``flush``, unless a frame was lost before them) or forget them;
+        stop the workers."""
         try:
-            while flush and self.pending:
+            while flush and self.pending and not self.broken:
                 self._pop()
         finally:
             self.pending.clear()
