@@ -20,9 +20,13 @@ class PerceptionAdapter:
     """Segment + project one frame into a bird's-eye grid owned here (reused every frame)."""
 
     def __init__(self, camera, cfg, geom):
-        from ..perception.pipeline import Perception
+        from ..perception.overhead import OverheadParams
+        from ..perception.pipeline import Perception, PerceptionParams
+        from ..perception.segment import preset
 
-        self.perc = Perception(camera, warm_up=cfg.loop.warmup)
+        # The grid's cell must be the map's cell; the preset fits where the robot drives.
+        params = PerceptionParams(segment=preset(cfg.loop.segment_preset), overhead=OverheadParams(res_m=geom.res_m))
+        self.perc = Perception(camera, params, warm_up=cfg.loop.warmup)
         self.grid = self.perc.new_grid()
         self.status = "ok"
         self.external = bool(cfg.loop.external_labels)

@@ -73,6 +73,9 @@ class LoopParams:
     external_labels : bool
         Take each frame's class labels from another segmenter (a run folder's ``labels/``, class
         indices of tinyloc's table, 255 = unlabelled) instead of tinyloc's own segmenter [False].
+    segment_preset : str
+        tinyloc's segmenter parameter set (docs/perception.md): "sidewalk" for a robot driving on
+        footways, "street" for one on the carriageway, "park" for paths through green ["sidewalk"].
     """
 
     realtime: bool = False
@@ -83,6 +86,14 @@ class LoopParams:
     status_every_s: float = 1.0
     warmup: bool = True
     external_labels: bool = False
+    segment_preset: str = "sidewalk"
+
+    def __post_init__(self):
+        from ..perception.segment import PRESETS
+
+        if self.segment_preset not in PRESETS:
+            raise InputError(f"loop.segment_preset: unknown preset {self.segment_preset!r}; "
+                             f"known: {', '.join(PRESETS)}")
 
 
 @dataclass(frozen=True)
