@@ -190,7 +190,7 @@ def test_resume_refused_for_other_options(bags, stopped):
     with pytest.raises(InputError) as e:
         import_bag(bags["raw"], stopped, _opts(every=2, gnss_topic="none"), resume=True)
     msg = str(e.value)
-    assert "\n" not in msg and "(every, gnss_topic differ)" in msg
+    assert "\n" not in msg and "(changed: every, gnss_topic)" in msg
     assert _snapshot(stopped) == before
 
 

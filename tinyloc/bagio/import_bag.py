@@ -14,6 +14,9 @@ repeated stamp or going back in time are dropped and reported (topic, message in
 
 Interrupted or failed imports close the folder with ``"complete": false`` and the
 reason in run.json's ``"import"`` entry; a run folder is never silently truncated.
+``import_bag(..., resume=True)`` continues such a folder when the bag (fingerprint) and
+the options match what run.json recorded: every message is checked again, those the
+folder already holds are counted but not written, the rest is appended.
 """
 
 from __future__ import annotations
@@ -464,7 +467,7 @@ class _Importer:
                              "bag as it was (size, modification time or contents differ); cannot resume")
         diff = differing(prev["options"], options)
         if diff:
-            raise InputError(f"{out} was imported with other options ({', '.join(diff)} differ); resume with the "
+            raise InputError(f"{out} was imported with other options (changed: {', '.join(diff)}); resume with the "
                              "same options, or import into a new folder")
         return prev
 
