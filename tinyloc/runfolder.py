@@ -624,7 +624,8 @@ class RunWriter:
             rf = RunFolder.open(self.path, strict=False)
         except RunFolderError as e:
             raise InputError(f"cannot resume: {e}") from None
-        faults = [w for w in rf.warnings if not (w.startswith("run.json:") or w.endswith("(the run has no such samples)"))]
+        faults = [w for w in rf.warnings
+                  if not (w.startswith("run.json:") or w.endswith("(the run has no such samples)"))]
         if faults or len(rf) != n_rows:
             why = faults[0] if faults else f"frames.csv lists {n_rows} frames, {len(rf)} are readable"
             raise InputError(f"cannot resume {self.path}: {why}")

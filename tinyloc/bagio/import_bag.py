@@ -456,7 +456,9 @@ class _Importer:
             meta = json.loads(p.read_text(encoding="utf-8"))
         except (UnicodeDecodeError, json.JSONDecodeError) as e:
             raise InputError(f"{p}: unreadable ({e}); cannot resume") from None
-        prev = meta.get("import") if isinstance(meta, dict) else None
+        if not isinstance(meta, dict):
+            raise InputError(f"{p}: not a run folder's run.json; cannot resume")
+        prev = meta.get("import")
         if meta.get("complete") is not False:
             raise InputError(f"{out}: the import is complete (run.json \"complete\": true); nothing to resume")
         if not isinstance(prev, dict) or "bag_fingerprint" not in prev or "options" not in prev:
@@ -472,7 +474,9 @@ class _Importer:
         return prev
 
     def run(self) -> ImportResult:
-        self.fingerprint = bag_fingerprint(self.bag) if self.bag.exists() else None
+        if not self.bag.exists():
+            raise InputError(f"{self.bag}: no such bag file or folder")
+        self.fingerprint = bag_fingerprint(self.bag)
         self.options = options_record(self.opts)
         self.prev = self._check_resume(self.fingerprint, self.options) if self.resume else None
         reader = open_bag(self.bag)
