@@ -129,6 +129,11 @@ class UdpEndpoint(Endpoint):
             c.bad_message += 1
             return False
         self._seq = (self._seq + 1) & 0xFFFF
+        return self.send_bytes(data)
+
+    def send_bytes(self, data: bytes) -> bool:
+        """Send one raw datagram to the peer (also used by the NMEA output); False if dropped."""
+        c = self.counters
         if self._peer is None:
             c.dropped_down += 1
             return False
@@ -139,21 +144,6 @@ class UdpEndpoint(Endpoint):
             return False
         except OSError:
             # Nobody listening (ICMP port unreachable) or the network is down: UDP keeps no state.
-            c.dropped_down += 1
-            return False
-        c.frames_out += 1
-        c.bytes_out += len(data)
-        return True
-
-    def send_bytes(self, data: bytes) -> bool:
-        """Send one raw datagram to the peer (used by the NMEA output); False if dropped."""
-        c = self.counters
-        if self._peer is None:
-            c.dropped_down += 1
-            return False
-        try:
-            self._sock.sendto(data, self._peer)
-        except OSError:
             c.dropped_down += 1
             return False
         c.frames_out += 1
