@@ -105,3 +105,17 @@ def test_cli_help_and_one_line_errors(tmp_path):
     assert r.returncode == 0 and "COMMAND" in r.stdout
     r = subprocess.run([sys.executable, "-m", "tinyloc", "--version"], capture_output=True, text=True)
     assert r.returncode == 0 and r.stdout.startswith("tinyloc ")
+
+
+def test_negative_coordinates_need_no_equals_sign():
+    from tinyloc.cli.main import join_signed_values
+
+    assert join_signed_values(["locate", "im.png", "--near", "-34.5,-166.9,60"]) == \
+        ["locate", "im.png", "--near=-34.5,-166.9,60"]
+    assert join_signed_values(["look", "--gravity", "-0.1,0.2,9.8"]) == ["look", "--gravity=-0.1,0.2,9.8"]
+    # other options and positive values are left alone
+    assert join_signed_values(["--near", "34.5,10", "-o", "x"]) == ["--near", "34.5,10", "-o", "x"]
+    r = subprocess.run([sys.executable, "-m", "tinyloc", "map", "info", "nonexistent.tlm", "--at", "-34.5,-166.9"],
+                       capture_output=True, text=True)
+    assert r.returncode == 2 and "expected one argument" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1, r.stderr

@@ -6,6 +6,7 @@ import argparse
 import importlib
 import os
 import pkgutil
+import re
 import sys
 
 from .. import __version__
@@ -50,10 +51,35 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+# Options whose value is a comma-separated list of numbers that may start with a minus sign
+# (a southern latitude, a western longitude, a gravity component).
+_SIGNED_LIST_OPTIONS = frozenset({"--near", "--at", "--center", "--origin", "--gravity"})
+_NEGATIVE_LIST = re.compile(r"^-[0-9.]")
+
+
+def join_signed_values(argv: list[str]) -> list[str]:
+    """Turn ``--near -34.5,-166.9`` into ``--near=-34.5,-166.9``.
+
+    argparse takes a value starting with '-' for an option unless it looks like one plain negative
+    number, so coordinate lists in the southern or western hemisphere would need ``=``.
+    """
+    out: list[str] = []
+    i = 0
+    while i < len(argv):
+        a = argv[i]
+        if a in _SIGNED_LIST_OPTIONS and i + 1 < len(argv) and _NEGATIVE_LIST.match(argv[i + 1]):
+            out.append(f"{a}={argv[i + 1]}")
+            i += 2
+            continue
+        out.append(a)
+        i += 1
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the CLI; returns the process exit status (0 ok, 1 job failed, 2 bad input)."""
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_args(join_signed_values(sys.argv[1:] if argv is None else list(argv)))
     func = getattr(args, "func", None)
     if func is None:
         # A group given without its sub-command: show that group's help.
