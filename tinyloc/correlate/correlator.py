@@ -344,39 +344,57 @@ class _Lane:
 class _PatchEngine:
     """Exact FFT correlation over a few headings and an (Ho, Ho) block of cells.
 
+    The map patch of a call covers only the union of the offset boxes of that call's
+    headings (``template_bounds``) around the (Ho, Ho) block, not the full reach of
+    every rotation; the FFT size is fixed at construction as the largest such patch
+    over every run of ``n_head`` consecutive headings of the circle (150 instead of
+    189 at the defaults: the forward transforms, most of the cost, shrink by about
+    0.6). Nothing wraps: every read of a patch index stays below the patch size.
+
     Headings can be transformed in batches of ``batch`` (fewer, larger FFT calls); measured
     slower than one at a time at the tracking sizes (the larger working set leaves the cache),
     so the correlator uses 1.
     """
 
-    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col, batch=1):
-        self.F, self.Ho, self.n_head = F, Ho, n_head
+    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col, A, batch=1):
+        self.F, self.Ho, self.n_head, self.A = F, Ho, n_head, A
         self.origin = (float(origin_row), float(origin_col))
         self.bev_shape = bev_shape
-        self.reach = P = template_reach(bev_shape, origin_row, origin_col)
-        # Map patch covers [i0 - P, i0 + Ho + P); all reads stay inside it, so N >= Ho + 2P avoids wrap.
-        self.M = Ho + 2 * P
-        self.N = N = _good_size(self.M)
-        Kh = N // 2 + 1
-        SU = SV = 0
-        for a in range(64):
-            lu, hu, lv, hv = template_bounds(bev_shape, origin_row, origin_col, 2 * math.pi * a / 64)
-            SU, SV = max(SU, hu - lu + 2), max(SV, hv - lv + 2)
+        self.reach = template_reach(bev_shape, origin_row, origin_col)
+        b = np.array([template_bounds(bev_shape, origin_row, origin_col, 2.0 * math.pi * a / A)
+                      for a in range(A)], np.int64)
+        self.bounds = b  # (A, 4): lo_u, hi_u, lo_v, hi_v per heading
+        self.cos = np.cos(2.0 * math.pi * np.arange(A) / A)
+        self.sin = np.sin(2.0 * math.pi * np.arange(A) / A)
+        # Largest union box over any n_head consecutive headings: the patch of any call fits in it.
+        UU = UV = 0
+        for a0 in range(A):
+            idx = (a0 + np.arange(n_head)) % A
+            UU = max(UU, int(b[idx, 1].max() - b[idx, 0].min()) + 1)
+            UV = max(UV, int(b[idx, 3].max() - b[idx, 2].min()) + 1)
+        SU = int((b[:, 1] - b[:, 0]).max()) + 1
+        SV = int((b[:, 3] - b[:, 2]).max()) + 1
+        self.Mr, self.Mc = Ho + UU - 1, Ho + UV - 1
+        self.Nr = _good_size(self.Mr)
+        self.Nc = _good_size(self.Mc)
+        self.N = max(self.Nr, self.Nc)
+        Nr, Nc = self.Nr, self.Nc
+        Kh = Nc // 2 + 1
         self.SU, self.SV = SU, SV
         self.B = B = max(1, min(batch, n_head))
-        self.canvas = np.zeros((B, F, SU, N), np.float64)  # columns >= SV stay 0
-        self._canvas_v = [self.canvas[b, :, :, :SV] for b in range(B)]
+        self.canvas = np.zeros((B, F, SU, Nc), np.float64)  # columns >= SV stay 0
+        self._canvas_v = [self.canvas[b_, :, :, :SV] for b_ in range(B)]
         self.trow = np.zeros((B, F, SU, Kh), np.complex128)
-        self.Tin = np.zeros((B, F, Kh, N), np.complex128)  # entries >= SU (last axis) stay 0
-        self.T = np.zeros((B, F, Kh, N), np.complex128)
-        self.patch = np.zeros((F, N, N), np.float64)
-        self.grow = np.zeros((F, N, Kh), np.complex128)
-        self.Gin = np.zeros((F, Kh, N), np.complex128)
-        self.Gs = np.zeros((F, Kh, N), np.complex128)
-        self.P = np.zeros((B, Kh, N), np.complex128)
-        self.Q = np.zeros((B, Kh, N), np.complex128)
+        self.Tin = np.zeros((B, F, Kh, Nr), np.complex128)  # entries >= SU (last axis) stay 0
+        self.T = np.zeros((B, F, Kh, Nr), np.complex128)
+        self.patch = np.zeros((F, Nr, Nc), np.float64)
+        self.grow = np.zeros((F, Nr, Kh), np.complex128)
+        self.Gin = np.zeros((F, Kh, Nr), np.complex128)
+        self.Gs = np.zeros((F, Kh, Nr), np.complex128)
+        self.P = np.zeros((B, Kh, Nr), np.complex128)
+        self.Q = np.zeros((B, Kh, Nr), np.complex128)
         self.Qr = np.zeros((B, Ho, Kh), np.complex128)
-        self.buf = np.zeros((B, Ho, N), np.float64)
+        self.buf = np.zeros((B, Ho, Nc), np.float64)
         self.vol = np.zeros((n_head, Ho, Ho), np.float32)
         self._shift = np.zeros((B, 2), np.int64)
 
@@ -387,13 +405,20 @@ class _PatchEngine:
 
     def run(self, feat, G, row0, col0, a0, A, inv_temp):
         """Fill self.vol for headings a0..a0+n_head-1 and cells (row0 + u, col0 + v) of the window G."""
-        F, Ho, N, Pr, B = self.F, self.Ho, self.N, self.reach, self.B
+        F, Ho, Nr, Nc, B = self.F, self.Ho, self.Nr, self.Nc, self.B
         H, W = G.shape[1], G.shape[2]
+        bd = self.bounds
+        LU, LV = 1 << 30, 1 << 30
+        HU, HV = -(1 << 30), -(1 << 30)
+        for t in range(self.n_head):
+            a = (a0 + t) % A
+            LU, HU = min(LU, int(bd[a, 0])), max(HU, int(bd[a, 1]))
+            LV, HV = min(LV, int(bd[a, 2])), max(HV, int(bd[a, 3]))
         self.patch.fill(0.0)
-        # Patch cell (r, c) = window cell (row0 - Pr + r, col0 - Pr + c); outside the window stays 0.
-        r_lo, c_lo = row0 - Pr, col0 - Pr
-        wr0, wr1 = max(0, r_lo), min(H, r_lo + self.M)
-        wc0, wc1 = max(0, c_lo), min(W, c_lo + self.M)
+        # Patch cell (r, c) = window cell (row0 + LU + r, col0 + LV + c); outside the window stays 0.
+        r_lo, c_lo = row0 + LU, col0 + LV
+        wr0, wr1 = max(0, r_lo), min(H, row0 + Ho + HU)
+        wc0, wc1 = max(0, c_lo), min(W, col0 + Ho + HV)
         if wr1 > wr0 and wc1 > wc0:
             self.patch[:, wr0 - r_lo:wr1 - r_lo, wc0 - c_lo:wc1 - c_lo] = G[:, wr0:wr1, wc0:wc1]
         np.fft.rfft(self.patch, axis=2, out=self.grow)
@@ -403,20 +428,20 @@ class _PatchEngine:
         for t0 in range(0, self.n_head, B):
             nb = min(B, self.n_head - t0)
             for b in range(nb):
-                yaw = 2.0 * math.pi * ((a0 + t0 + b) % A) / A
-                lu, _, lv, _ = template_bounds(self.bev_shape, orow, ocol, yaw)
-                K.rotate_into(feat, math.cos(yaw), math.sin(yaw), orow, ocol, lu, lv, self._canvas_v[b])
-                # Output cell u sits at patch index u + Pr; the canvas shift adds (lu, lv).
-                self._shift[b, 0], self._shift[b, 1] = Pr + lu, Pr + lv
+                a = (a0 + t0 + b) % A
+                lu, lv = int(bd[a, 0]), int(bd[a, 2])
+                K.rotate_into(feat, self.cos[a], self.sin[a], orow, ocol, lu, lv, self._canvas_v[b])
+                # Output cell u, canvas row t read patch index u + (lu - LU) + t (<= Ho - 1 + HU - LU).
+                self._shift[b, 0], self._shift[b, 1] = lu - LU, lv - LV
             np.fft.rfft(self.canvas[:nb], axis=3, out=self.trow[:nb])
-            K.transpose_rows(self.trow[:nb].reshape(nb * F, self.SU, -1), self.Tin[:nb].reshape(nb * F, -1, N))
+            K.transpose_rows(self.trow[:nb].reshape(nb * F, self.SU, -1), self.Tin[:nb].reshape(nb * F, -1, Nr))
             np.fft.fft(self.Tin[:nb], axis=3, out=self.T[:nb])
             for b in range(nb):
                 K.spectra_mac1(self.Gs, self.T[b], self.P[b])
             np.fft.ifft(self.P[:nb], axis=2, out=self.Q[:nb])
             for b in range(nb):
-                K.gather_rows_t(self.Q[b], self._shift[b, 0], Ho, N, self.Qr[b])
-            np.fft.irfft(self.Qr[:nb], n=N, axis=2, out=self.buf[:nb])
+                K.gather_rows_t(self.Q[b], self._shift[b, 0], Ho, Nr, self.Qr[b])
+            np.fft.irfft(self.Qr[:nb], n=Nc, axis=2, out=self.buf[:nb])
             for b in range(nb):
                 K.readout_patch(self.buf[b], 0, self._shift[b, 1], inv_temp, self.vol[t0 + b])
 
@@ -484,7 +509,8 @@ class Correlator:
         if self._track is None:
             p = self.params
             self._track = _PatchEngine(self.model.n_features, 2 * p.track_radius_cells + 1,
-                                       2 * p.track_half_headings + 1, p.bev_shape, p.origin_row, p.origin_col)
+                                       2 * p.track_half_headings + 1, p.bev_shape, p.origin_row, p.origin_col,
+                                       p.n_headings)
         return self._track
 
     def _track_engine_coarse(self) -> "_PatchEngine":
@@ -493,7 +519,7 @@ class Correlator:
             h, w = p.bev_shape
             self._track_c = _PatchEngine(self.model.n_features, 2 * ((p.track_radius_cells + 1) // 2) + 1,
                                          2 * ((p.track_half_headings + 1) // 2) + 1, (h // 2, w // 2),
-                                         p.origin_row / 2, p.origin_col / 2)
+                                         p.origin_row / 2, p.origin_col / 2, p.n_headings // 2)
         return self._track_c
 
     # -- set-up ----------------------------------------------------------------------------
