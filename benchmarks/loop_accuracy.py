@@ -96,7 +96,31 @@ def evaluate(run: Path, site_map: Path, overrides, skip_m: float, mode: str = "s
     loc.close()
     s = summarize(poses, truth, gnss, skip_m=skip_m)
     s["gnss_ratio"] = s["gnss_median_error_m"] / s["median_error_m"] if s["median_error_m"] > 0 else math.nan
+    s["tracking_wrong"] = _tracking_wrong(poses, truth, skip_m)
     return s
+
+
+def _tracking_wrong(poses, truth, skip_m: float) -> float:
+    """Share of counted frames flagged "tracking" whose estimate is NOT within 1 m and 3 deg (the dangerous case)."""
+    import numpy as np
+
+    from tinyloc.frames import wrap_angle
+
+    n = len(poses)
+    t = np.asarray(truth, dtype=np.float64)[:n]
+    step = np.zeros(n)
+    if n > 1:
+        d = np.hypot(np.diff(t[:, 0]), np.diff(t[:, 1]))
+        step[1:] = np.where(np.isfinite(d), d, 0.0)
+    counted = np.all(np.isfinite(t), axis=1) & (np.cumsum(step) >= skip_m)
+    if not counted.any():
+        return math.nan
+    est = np.array([[p.x, p.y, p.yaw] for p in poses], dtype=np.float64).reshape(-1, 3)
+    with np.errstate(invalid="ignore"):
+        good = (np.hypot(est[:, 0] - t[:, 0], est[:, 1] - t[:, 1]) <= 1.0) & \
+            (np.degrees(np.abs(wrap_angle(est[:, 2] - t[:, 2]))) <= 3.0)
+    trk = np.array([p.quality == "tracking" for p in poses])
+    return float(np.sum(counted & trk & ~good) / counted.sum())
 
 
 def main(argv=None) -> int:
@@ -131,19 +155,20 @@ def main(argv=None) -> int:
             rows.append(s)
             print(f"seed {seed} {mode:<9} recall {s['recall_1m_3deg']:.2f}  median {s['median_error_m']:.2f} m "
                   f"{s['median_heading_error_deg']:.2f} deg  gnss {s['gnss_median_error_m']:.2f} m "
-                  f"({s['gnss_ratio']:.1f}x)  in95 {s['inside_95_ellipse']:.2f}  {s['frame_ms_median']:.0f} ms  "
+                  f"({s['gnss_ratio']:.1f}x)  in95 {s['inside_95_ellipse']:.2f}  wrong-tracking {s['tracking_wrong']:.2f}  "
+                  f"{s['frame_ms_median']:.0f} ms  "
                   f"[{s['frames_counted']}/{s['frames']} frames counted, {s['distance_m']:.0f} m]",
                   file=sys.stderr, flush=True)
     if a.json:
         print(json.dumps(rows, default=lambda v: None))
         return 0
     print("| seed | perception | recall 1 m/3 deg | median error | median heading error | GNSS-only median | "
-          "GNSS / tinyloc | inside 95 % ellipse | frame ms |")
-    print("|---|---|---|---|---|---|---|---|---|")
+          "GNSS / tinyloc | inside 95 % ellipse | wrong while tracking | frame ms |")
+    print("|---|---|---|---|---|---|---|---|---|---|")
     for s in rows:
         print(f"| {s['seed']} | {s['mode']} | {100 * s['recall_1m_3deg']:.0f} % | {s['median_error_m']:.2f} m | "
               f"{s['median_heading_error_deg']:.2f} deg | {s['gnss_median_error_m']:.2f} m | {s['gnss_ratio']:.1f}x | "
-              f"{100 * s['inside_95_ellipse']:.0f} % | {s['frame_ms_median']:.0f} |")
+              f"{100 * s['inside_95_ellipse']:.0f} % | {100 * s['tracking_wrong']:.0f} % | {s['frame_ms_median']:.0f} |")
     return 0
 
 

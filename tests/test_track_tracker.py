@@ -83,7 +83,7 @@ def _params(**kw):
 
 
 def drive(rng, n, *, speed=1.0, dt=0.1, turn=0.05, matcher=None, kidnap_at=None, kidnap_m=50.0,
-          bad_frames=(), gnss_off=(), odo_jump_at=None, params=None, gnss_sigma=3.0, odo_noise=False):
+          bad_frames=(), gnss_off=(), odo_jump_at=None, params=None, gnss_sigma=3.0, odo_noise=False, gnss_bias_at=()):
     """Drive a curvy path; returns per-frame (truth, output) pairs.
 
     With ``odo_noise`` the odometry increments get random errors with exactly the variance the
@@ -120,7 +120,8 @@ def drive(rng, n, *, speed=1.0, dt=0.1, turn=0.05, matcher=None, kidnap_at=None,
         m.truth = (x, y, yaw)
         gnss = None
         if k not in gnss_off:
-            gnss = (x + rng.normal(0, gnss_sigma), y + rng.normal(0, gnss_sigma), 1.0, t)
+            bx = 7.0 if k in gnss_bias_at else 0.0
+            gnss = (x + bx + rng.normal(0, gnss_sigma), y + rng.normal(0, gnss_sigma), 1.0, t)
         o = _frame(tr, m, t, inc, gnss, usable=k not in bad_frames)
         out.append(((x, y, yaw), o))
     return tr, out
@@ -219,6 +220,18 @@ def test_odometry_jump_is_ignored_and_said(rng):
     assert tr.counters["odometry_jumps"] == 1
     assert _err(*out[81])[0] < 1.0
     assert out[-1][1].quality == "tracking"
+
+
+def test_fixes_offset_from_a_confident_estimate_degrade_the_flag_only(rng):
+    # the fixes sit 7 m east for 10 s (below the disagreement test's 10 m): the pose cannot tell
+    # which of the two is wrong, so it must not claim "tracking"; the estimate itself stays put
+    tr, out = drive(rng, 320, gnss_bias_at=set(range(100, 200)))
+    q = [o.quality for _, o in out]
+    assert q[99] == "tracking"
+    assert q[150:200].count("degraded") >= 45
+    assert any("satellite fixes" in o.status and "m off" in o.status for _, o in out[100:200])
+    assert max(_err(t, o)[0] for t, o in out[100:200]) < 1.0
+    assert q[-1] == "tracking"
 
 
 def test_gnss_outage_keeps_tracking(rng):

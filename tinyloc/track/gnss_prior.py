@@ -45,6 +45,13 @@ class GnssParams:
         A fix farther than ``max(disagree_m, 3 * scale)`` from the estimate disagrees with it (m).
     disagree_s : float
         Sustained disagreement for this long asks for a global check (s).
+    offset_degrade_m : float
+        While tracking, when the fixes sit on average (exponential average over about
+        ``1 / offset_alpha`` fixes) farther than this from the estimate, the output is "degraded":
+        the belief may be confidently wrong along a street that matches the map at several places.
+        Only the flag changes, not the estimate (m; 0 turns it off).
+    offset_alpha : float
+        Weight of a new fix in that average.
     gate_m : float
         Global-search candidates farther than ``max(gate_m, 5 * scale)`` from a fresh fix are not
         considered (the pose near the current estimate always is) (m).
@@ -60,6 +67,8 @@ class GnssParams:
     disagree_m: float = 10.0
     disagree_s: float = 4.0
     gate_m: float = 30.0
+    offset_degrade_m: float = 4.0
+    offset_alpha: float = 0.1
 
 
 def effective_sigma_m(acc_m: float, p: GnssParams) -> float:

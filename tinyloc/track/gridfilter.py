@@ -170,6 +170,18 @@ class TrackParams:
         A pose elsewhere scoring within this (tempered log units) of the best near the estimate in
         two global checks in a row makes the output ambiguous: quality "degraded", the competing
         pose among the modes and in the covariance, until a later check clears it [0.5].
+    course_span_m : float
+        Odometry path over which the satellite track and the odometry track are compared for the
+        robot's heading (tinyloc/track/course.py); 0 turns the check off [15.0].
+    course_sigma_deg : float
+        Smallest 1-sigma of that heading (deg) [8.0].
+    course_weight : float
+        Tempering of the heading prior from that check, per frame while searching [0.3].
+    course_veto_deg : float
+        While tracking, an estimate whose heading differs from the checked heading by more than
+        ``max(course_veto_deg, 3 sigma)`` for ``course_veto_frames`` frames in a row is lost [40.0].
+    course_veto_frames : int
+        See ``course_veto_deg`` [5].
     model_sigma_m, model_sigma_deg : float
         Error the likelihood cannot show (map survey errors of open vector map data, calibration,
         the ground not being flat), added to the reported covariance as an independent term after
@@ -208,6 +220,11 @@ class TrackParams:
     switch_margin: float = 4.0
     switch_votes: int = 2
     ambiguity_margin: float = 0.5
+    course_span_m: float = 15.0
+    course_sigma_deg: float = 8.0
+    course_weight: float = 0.3
+    course_veto_deg: float = 40.0
+    course_veto_frames: int = 5
     model_sigma_m: float = 0.5
     model_sigma_deg: float = 0.5
     gnss: GnssParams = field(default_factory=GnssParams)
@@ -474,6 +491,23 @@ class GridFilter:
                            sigma_m / self.geom.res_m, float(nu), float(weight), self.active)
         self.normalise()
 
+    def update_heading(self, yaw_rad: float, sigma_rad: float, *, nu: float, weight: float) -> None:
+        """Multiply by a robust (1D Student-t) heading likelihood centred at ``yaw_rad``; every layer active after."""
+        self.activate_all()
+        w = self._tmp_a
+        np.add(self._layer_index(), self.hoff, out=w)
+        w *= self.dyaw
+        w -= yaw_rad
+        np.sin(w * 0.5, out=w)  # wrap-safe: 2 sin(d / 2) ~ d near 0, no jump at +-pi
+        w *= 2.0 / sigma_rad
+        np.square(w, out=w)
+        w /= nu
+        np.log1p(w, out=w)
+        w *= -0.5 * (nu + 1.0) * weight
+        np.exp(w, out=w)
+        self.bel *= w.astype(np.float32)[:, None, None]
+        self.normalise()
+
     def add_floor(self) -> None:
         """Mix the uniform floor in (keeps the belief able to recover)."""
         if self.p.floor > 0:
@@ -668,6 +702,9 @@ class Tracker:
         from .gnss_prior import DisagreementClock
 
         self._clock = DisagreementClock(params.gnss)
+        from .course import CourseCheck
+
+        self.course = CourseCheck(max(params.course_span_m, 1.0), params.course_sigma_deg)
         self.reset_state()
 
     def reset_state(self) -> None:
@@ -691,6 +728,11 @@ class Tracker:
         self._was_global = False
         self.last = None
         self._clock.reset()
+        self.course.reset()
+        self._course = None  # (yaw, sigma) of the current frame, or None
+        self._course_off = 0
+        self._off_e = self._off_n = math.nan  # average (estimate - fix) over recent fixes (m)
+        self._off_t = -math.inf
         self.counters = {"global_searches": 0, "lost": 0, "recovered": 0, "odometry_jumps": 0,
                          "no_odometry": 0, "frames_without_likelihood": 0}
 
@@ -768,6 +810,9 @@ class Tracker:
             return
         self._predict(odo, notes)
         if g is not None and g[3] > self._fix_used_t:
+            self.course.fix(g[0], g[1])
+        self._course = self.course.heading() if p.course_span_m > 0 else None
+        if g is not None and g[3] > self._fix_used_t:
             self._fix_used_t = g[3]
             w = p.gnss.weight_search if self.state == "searching" else p.gnss.weight_track
             if self.state == "searching" and self._far_from_window(g[0], g[1]):
@@ -802,6 +847,8 @@ class Tracker:
             msg = ["waiting for a fix or a frame"] + ([frame_status] if frame_status != "ok" else [])
             return self._output(t, "no-fix", msg)
         surprise = 0.0
+        if self._course is not None and self.state == "searching" and p.course_weight > 0:
+            f.update_heading(self._course[0], self._course[1], nu=p.gnss.nu, weight=p.course_weight)
         if vol is not None:
             surprise = f.update(vol)
             self._no_update = 0
@@ -815,6 +862,14 @@ class Tracker:
         est = f.estimate()
         if g is not None:
             self._gnss_disagree_s = self._clock.observe(t, math.hypot(est.x - g[0], est.y - g[1]), g[2])
+            if g[3] > self._off_t:
+                self._off_t = g[3]
+                a = p.gnss.offset_alpha
+                if math.isnan(self._off_e):
+                    self._off_e, self._off_n = est.x - g[0], est.y - g[1]
+                else:
+                    self._off_e += a * (est.x - g[0] - self._off_e)
+                    self._off_n += a * (est.y - g[1] - self._off_n)
         self._decide(est, notes)
         if self.state == "tracking" or self.state == "degraded":
             r, c = self.geom.cell_of(est.x, est.y)
@@ -854,15 +909,18 @@ class Tracker:
         if odo is None or not all(math.isfinite(v) for v in odo):
             self.counters["no_odometry"] += 1
             notes.append("no odometry")
+            self.course.reset()
             f.add_noise(p.q_no_odometry_m2, p.q_no_odometry_rad2)
             return
         d_fwd, d_left, d_yaw = odo
         if math.hypot(d_fwd, d_left) > p.max_step_m or abs(d_yaw) > p.max_turn_rad:
             self.counters["odometry_jumps"] += 1
             notes.append("odometry jump ignored")
+            self.course.reset()
             f.add_noise(p.q_no_odometry_m2 + (p.q_xy_per_m * math.hypot(d_fwd, d_left)),
                         p.q_no_odometry_rad2)
             return
+        self.course.odometry(d_fwd, d_left, d_yaw)
         f.predict(d_fwd, d_left, d_yaw)
 
     def _global_decision(self, ev: "GlobalEvidence", g, notes) -> tuple[float, float, float]:
@@ -895,6 +953,11 @@ class Tracker:
         if self.state == "searching" or self.last is None:
             if gated is not None and not gated.all():
                 score[gated] = -np.inf
+            if self._course is not None and ev.best_yaw is not None:
+                # candidates that drive another way than the fixes and odometry say are less likely
+                cy, cs = self._course
+                d = np.sin(0.5 * (ev.best_yaw - cy)) * (2.0 / cs)
+                score += np.log1p(d * d / p.gnss.nu) * (-0.5 * (p.gnss.nu + 1.0))
             k = int(np.argmax(score))
             bx, by, byaw = pose_at(*divmod(k, W))
             if self._far_from_window(bx, by):
@@ -978,6 +1041,7 @@ class Tracker:
         self._surprised = 0
         self._ambig = None
         self._ambig_seen = 0
+        self._off_e = self._off_n = math.nan
         notes.append(f"lost: {why}")
 
     def _decide(self, est: FilterEstimate, notes) -> None:
@@ -997,13 +1061,26 @@ class Tracker:
         if self._surprised >= p.lost_frames:
             self._lose(notes, f"{self._surprised} frames disagree with the belief")
             return
+        if self._course is not None:
+            dh = abs(math.degrees(wrap_angle(est.yaw - self._course[0])))
+            off = dh > max(p.course_veto_deg, 3.0 * math.degrees(self._course[1]))
+            self._course_off = self._course_off + 1 if off else 0
+            if self._course_off >= p.course_veto_frames:
+                self._course_off = 0
+                self._lose(notes, f"heading {dh:.0f} deg off the satellite track")
+                return
+        else:
+            self._course_off = 0
+        off = math.hypot(self._off_e, self._off_n)
+        offset = p.gnss.offset_degrade_m > 0 and off > p.gnss.offset_degrade_m  # NaN (no fix yet) is False
         degraded = (not ok_sigma or self._no_update >= p.degraded_frames
-                    or self._gnss_disagree_s >= p.gnss.disagree_s or self._ambig is not None)
+                    or self._gnss_disagree_s >= p.gnss.disagree_s or self._ambig is not None or offset)
         if degraded:
             if self.state != "degraded":
                 why = ("uncertainty grew" if not ok_sigma else
                        "no usable frames" if self._no_update >= p.degraded_frames else
-                       "ambiguous" if self._ambig is not None else "satellite fix disagrees")
+                       "ambiguous" if self._ambig is not None else
+                       f"satellite fixes {off:.1f} m off" if offset else "satellite fix disagrees")
                 notes.append(f"degraded: {why}")
             self.state = "degraded"
         else:
