@@ -67,7 +67,7 @@ class GnssParams:
     disagree_m: float = 10.0
     disagree_s: float = 4.0
     gate_m: float = 30.0
-    offset_degrade_m: float = 4.0
+    offset_degrade_m: float = 3.0
     offset_alpha: float = 0.1
 
 
