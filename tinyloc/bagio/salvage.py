@@ -73,7 +73,19 @@ def _decompress(kind: str, data: bytes, size: int) -> bytes:
     raise InputError(f"MCAP chunk compression '{kind}' is not supported")
 
 
-class SalvagedMcap:
+class _TopicCounts:
+    """``topics`` for a salvage reader: message counts per topic from its ``connections`` and ``counts``."""
+
+    @property
+    def topics(self) -> dict[str, TopicInfo]:
+        out: dict[str, TopicInfo] = {}
+        for c in self.connections:
+            prev = out.get(c.topic)
+            out[c.topic] = TopicInfo(c.msgtype, (prev.msgcount if prev else 0) + self.counts.get(c.id, 0))
+        return out
+
+
+class SalvagedMcap(_TopicCounts):
     """Records of a cut-short MCAP file, readable like a (small) rosbags AnyReader.
 
     Parameters
@@ -248,14 +260,7 @@ class SalvagedMcap:
             store.register(typs)
         self.store = store
 
-    # -- the reader interface used by the importer
-    @property
-    def topics(self) -> dict[str, TopicInfo]:
-        out: dict[str, TopicInfo] = {}
-        for c in self.connections:
-            prev = out.get(c.topic)
-            out[c.topic] = TopicInfo(c.msgtype, (prev.msgcount if prev else 0) + self.counts.get(c.id, 0))
-        return out
+    # -- the reader interface used by the importer (topics: from _TopicCounts)
 
     def messages(self, connections=(), start=None, stop=None):
         """Yield (Conn, record time ns, raw CDR bytes) in file order."""
@@ -310,7 +315,7 @@ def _r1_type(name: str) -> str:
     return f"{pkg}/msg/{typ}" if typ and "/msg/" not in name else name
 
 
-class SalvagedRos1:
+class SalvagedRos1(_TopicCounts):
     """Records of a ROS 1 bag whose index was never written (a recorder killed mid-write, ``.bag.active``).
 
     Walks the records of the ROS bag 2.0 format (u32 header length, header fields, u32 data
@@ -476,13 +481,6 @@ class SalvagedRos1:
             store.register(typs)
         self.store = store
 
-    @property
-    def topics(self) -> dict[str, TopicInfo]:
-        out: dict[str, TopicInfo] = {}
-        for c in self.connections:
-            prev = out.get(c.topic)
-            out[c.topic] = TopicInfo(c.msgtype, (prev.msgcount if prev else 0) + self.counts.get(c.id, 0))
-        return out
 
     def messages(self, connections=(), start=None, stop=None):
         """Yield (Conn, record time ns, raw ROS 1 bytes) in file order."""
