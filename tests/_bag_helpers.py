@@ -261,3 +261,32 @@ def bag_from_run(rf: RunFolder, path, storage: str, **kw):
 def bag_name(tmp_path, storage: str, stem: str = "drive") -> Path:
     """Bag path for a storage kind: ROS 1 file ``.bag``, ROS 2 folder."""
     return tmp_path / (f"{stem}.bag" if storage == "ros1" else f"{stem}_{storage}")
+
+
+def reader_failing_after(n_messages: int):
+    """A stand-in for the importer's ``_Importer._run`` whose bag reader raises an I/O error mid-way.
+
+    The main pass (the call asking for more than three connections, not the look-ahead) fails
+    after ``n_messages`` messages, as a disk or network read would.
+    """
+    from tinyloc.bagio import import_bag as ib
+
+    real = ib._Importer._run
+
+    def failing(self, reader):
+        orig = reader.messages
+
+        def messages(*a, **k):
+            gen = orig(*a, **k)
+            if k.get("connections") and len(k["connections"]) > 3:
+                for i, item in enumerate(gen):
+                    if i == n_messages:
+                        raise OSError("Input/output error")
+                    yield item
+            else:
+                yield from gen
+
+        reader.messages = messages
+        return real(self, reader)
+
+    return failing

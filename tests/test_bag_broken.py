@@ -8,7 +8,8 @@ import json
 import numpy as np
 import pytest
 
-from _bag_helpers import CAMERA, NS, STAMP_BASE_NS, _Msgs, bag_from_run, bag_name, make_run, run_messages, write_bag
+from _bag_helpers import (CAMERA, NS, STAMP_BASE_NS, _Msgs, bag_from_run, bag_name, make_run, reader_failing_after,
+                          run_messages, write_bag)
 from tinyloc.bagio import import_bag as ib
 from tinyloc.bagio.import_bag import ImportOptions, StopImport, import_bag
 from tinyloc.errors import InputError
@@ -179,23 +180,7 @@ def test_damaged_message_is_dropped_rest_kept(run, tmp_path):
 
 def test_reader_failing_midway_leaves_incomplete_run(run, tmp_path, monkeypatch):
     bag = _bag(run, tmp_path)
-    real = ib._Importer._run
-
-    def failing(self, reader):
-        orig = reader.messages
-
-        def messages(*a, **k):
-            gen = orig(*a, **k)
-            if k.get("connections") and len(k["connections"]) > 3:  # the main pass, not the look-ahead
-                for n, item in enumerate(gen):
-                    if n == 40:
-                        raise OSError("Input/output error")
-                    yield item
-            else:
-                yield from gen
-
-        reader.messages = messages
-        return real(self, reader)
+    failing = reader_failing_after(40)
 
     monkeypatch.setattr(ib._Importer, "_run", failing)
     with pytest.raises(StopImport) as e:

@@ -11,7 +11,7 @@ import os
 import numpy as np
 import pytest
 
-from _bag_helpers import bag_from_run, bag_name, make_run, ORIGIN
+from _bag_helpers import bag_from_run, bag_name, make_run, ORIGIN, reader_failing_after
 from tinyloc.bagio import import_bag as ib
 from tinyloc.bagio.import_bag import ImportOptions, StopImport, import_bag
 from tinyloc.cli.main import main
@@ -97,23 +97,7 @@ def test_interrupted_then_resumed_equals_uninterrupted(bags, tmp_path, monkeypat
 def test_reader_failure_then_resume(bags, tmp_path, monkeypatch):
     bag = bags["raw"]
     ref_res = import_bag(bag, tmp_path / "ref", _opts(workers=2))
-    real = ib._Importer._run
-
-    def failing(self, reader):
-        orig = reader.messages
-
-        def messages(*a, **k):
-            gen = orig(*a, **k)
-            if k.get("connections") and len(k["connections"]) > 3:  # the main pass, not the look-ahead
-                for i, item in enumerate(gen):
-                    if i == 60:
-                        raise OSError("Input/output error")
-                    yield item
-            else:
-                yield from gen
-
-        reader.messages = messages
-        return real(self, reader)
+    failing = reader_failing_after(60)
 
     with monkeypatch.context() as mp:
         mp.setattr(ib._Importer, "_run", failing)
