@@ -65,12 +65,17 @@ def _decompress(kind: str, data: bytes, size: int) -> bytes:
             from backports import zstd
         return zstd.decompress(data)
     if kind == "lz4":
-        try:
-            import lz4.frame
-        except ImportError:
-            raise InputError("MCAP chunk compressed with lz4: install the 'lz4' package to read it") from None
-        return lz4.frame.decompress(data)
+        return _lz4_decompress(data, "MCAP")
     raise InputError(f"MCAP chunk compression '{kind}' is not supported")
+
+
+def _lz4_decompress(data: bytes, fmt: str) -> bytes:
+    """lz4-frame chunks, for either format; lz4 is optional (few bags use it)."""
+    try:
+        import lz4.frame
+    except ImportError:
+        raise InputError(f"{fmt} chunk compressed with lz4: install the 'lz4' package to read it") from None
+    return lz4.frame.decompress(data)
 
 
 class _TopicCounts:
@@ -458,11 +463,7 @@ class SalvagedRos1(_TopicCounts):
 
             return bz2.decompress(data)
         if kind == "lz4":
-            try:
-                import lz4.frame
-            except ImportError:
-                raise InputError("ROS 1 chunk compressed with lz4: install the 'lz4' package to read it") from None
-            return lz4.frame.decompress(data)
+            return _lz4_decompress(data, "ROS 1")
         raise InputError(f"ROS 1 chunk compression '{kind}' is not supported")
 
     def _typestore(self):
