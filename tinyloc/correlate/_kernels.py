@@ -265,75 +265,6 @@ def readout_tiled(buf, quarter, su, sv, inv_temp, a, best, best_a, head_max, hea
 
 
 @njit(**JIT)
-def sparse_scores(uv, vals, n, G, rows, cols, out):
-    """Exact scores at robot cells from a compacted rotated grid: sum_n sum_f vals[n, f] G[i + du, j + dv, f].
-
-    ``G`` is the map features in (H, W, F) layout, so the F values of a cell are adjacent.
-    Cells whose whole footprint lies inside the window are scored four at a time
-    (four independent accumulators hide the add latency; each cell keeps the same
-    order of additions as the one-cell loop, so the scores are the same to the bit).
-    """
-    F = vals.shape[1]
-    H, W = G.shape[0], G.shape[1]
-    umin = 1 << 30
-    vmin = 1 << 30
-    umax = -(1 << 30)
-    vmax = -(1 << 30)
-    for k in range(n):
-        du = np.int64(uv[k, 0])
-        dv = np.int64(uv[k, 1])
-        umin = min(umin, du)
-        umax = max(umax, du)
-        vmin = min(vmin, dv)
-        vmax = max(vmax, dv)
-    M = rows.shape[0]
-    m = 0
-    while m < M:
-        if m + 4 <= M:
-            inside = True
-            for q in range(4):
-                i = rows[m + q]
-                j = cols[m + q]
-                if i + umin < 0 or i + umax >= H or j + vmin < 0 or j + vmax >= W:
-                    inside = False
-            if inside:
-                i0, j0 = rows[m], cols[m]
-                i1, j1 = rows[m + 1], cols[m + 1]
-                i2, j2 = rows[m + 2], cols[m + 2]
-                i3, j3 = rows[m + 3], cols[m + 3]
-                a0 = 0.0
-                a1 = 0.0
-                a2 = 0.0
-                a3 = 0.0
-                for k in range(n):
-                    du = np.int64(uv[k, 0])
-                    dv = np.int64(uv[k, 1])
-                    for f in range(F):
-                        w = vals[k, f]
-                        a0 += w * G[i0 + du, j0 + dv, f]
-                        a1 += w * G[i1 + du, j1 + dv, f]
-                        a2 += w * G[i2 + du, j2 + dv, f]
-                        a3 += w * G[i3 + du, j3 + dv, f]
-                out[m] = a0
-                out[m + 1] = a1
-                out[m + 2] = a2
-                out[m + 3] = a3
-                m += 4
-                continue
-        i = rows[m]
-        j = cols[m]
-        acc = 0.0
-        for k in range(n):
-            gi = i + uv[k, 0]
-            gj = j + uv[k, 1]
-            if gi >= 0 and gi < H and gj >= 0 and gj < W:
-                for f in range(F):
-                    acc += vals[k, f] * G[gi, gj, f]
-        out[m] = acc
-        m += 1
-
-
-@njit(**JIT)
 def merge_best(best, best_a, other, other_a):
     """Per-cell max of two heading-max profiles (lanes of a threaded search)."""
     H, W = best.shape
@@ -345,17 +276,78 @@ def merge_best(best, best_a, other, other_a):
 
 
 @njit(**JIT)
-def rotate_compact(feat_hwf, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, nu, nv, uv, vals):
-    """:func:`rotate_into` and a compaction in one pass, from cell-major features (h, w, F).
+def features_hwf(feat, colmin, colmax, out):
+    """out[r, c, f] = feat[f, r, c] (zero-padded lanes); colmin/colmax[r]: columns of row r with any
+    nonzero feature (colmin = w, colmax = -1 for an empty row)."""
+    F, h, w = feat.shape
+    FP = out.shape[2]
+    for r in range(h):
+        lo = w
+        hi = -1
+        for c in range(w):
+            nz = False
+            for f in range(F):
+                v = feat[f, r, c]
+                out[r, c, f] = v
+                if v != 0.0:
+                    nz = True
+            for f in range(F, FP):
+                out[r, c, f] = 0.0
+            if nz:
+                lo = min(lo, c)
+                hi = max(hi, c)
+        colmin[r] = lo
+        colmax[r] = hi
 
-    Lists the map offsets (du, dv) = (u + lo_u, v + lo_v), u < nu, v < nv, whose rotated
-    sample is nonzero in any feature; returns their number.
+
+@njit(**JIT)
+def map_hwf(G, out):
+    """out[i, j, f] = G[f, i, j], zero-padded lanes."""
+    F, H, W = G.shape
+    FP = out.shape[2]
+    for i in range(H):
+        for j in range(W):
+            for f in range(F):
+                out[i, j, f] = G[f, i, j]
+            for f in range(F, FP):
+                out[i, j, f] = 0.0
+
+
+@njit(**JIT)
+def rotate_compact_rows(feat_hwf, colmin, colmax, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, nu, nv, uv,
+                        vals):
+    """:func:`rotate_into` and a compaction in one pass (same samples, same arithmetic).
+
+    Lists the map offsets (du, dv) = (u + lo_u, v + lo_v), u < nu, v < nv, whose rotated sample
+    is nonzero in any feature; returns their number. Each canvas row visits only the columns
+    whose sample falls inside the grid (a line through a rectangle), and samples whose four taps
+    lie where the grid is empty (``colmin``/``colmax`` per grid row) are skipped: they are zero.
+    ``vals`` needs one spare row past the last nonzero sample.
     """
-    h, w, F = feat_hwf.shape
+    h, w, FP = feat_hwf.shape
     n = 0
     for u in range(nu):
         dy = -(u + lo_u) * 1.0
-        for v in range(nv):
+        # rr(v) = rr0 + sin_t * v, cc(v) = cc0 + cos_t * v (v = canvas column)
+        rr0 = origin_row - (-sin_t * (lo_v * 1.0) + cos_t * dy) - 0.5
+        cc0 = origin_col + (cos_t * (lo_v * 1.0) + sin_t * dy) - 0.5
+        vlo = 0.0
+        vhi = nv - 1.0
+        for k in range(2):
+            a0 = rr0 if k == 0 else cc0
+            sl = sin_t if k == 0 else cos_t
+            top = h if k == 0 else w
+            if abs(sl) < 1e-12:
+                if a0 <= -1.0 or a0 >= top:
+                    vhi = -1.0
+            else:
+                t1 = (-1.0 - a0) / sl
+                t2 = (top - a0) / sl
+                vlo = max(vlo, min(t1, t2))
+                vhi = min(vhi, max(t1, t2))
+        v0 = max(0, int(math.floor(vlo)) - 1)
+        v1 = min(nv - 1, int(math.ceil(vhi)) + 1)
+        for v in range(v0, v1 + 1):
             dx = (v + lo_v) * 1.0
             xf = cos_t * dx + sin_t * dy
             yl = -sin_t * dx + cos_t * dy
@@ -365,32 +357,323 @@ def rotate_compact(feat_hwf, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, n
                 continue
             r0 = int(math.floor(rr))
             c0 = int(math.floor(cc))
+            empty = True
+            for r in (r0, r0 + 1):
+                if r >= 0 and r < h and c0 + 1 >= colmin[r] and c0 <= colmax[r]:
+                    empty = False
+            if empty:
+                continue
             fr = rr - r0
             fc = cc - c0
             w00 = (1.0 - fr) * (1.0 - fc)
             w01 = (1.0 - fr) * fc
             w10 = fr * (1.0 - fc)
             w11 = fr * fc
-            ok_r0 = r0 >= 0
-            ok_r1 = r0 + 1 < h
-            ok_c0 = c0 >= 0
-            ok_c1 = c0 + 1 < w
             nz = False
-            for f in range(F):
-                acc = 0.0
-                if ok_r0 and ok_c0:
+            if r0 >= 0 and r0 + 1 < h and c0 >= 0 and c0 + 1 < w:
+                for f in range(FP):
+                    acc = 0.0
                     acc += w00 * feat_hwf[r0, c0, f]
-                if ok_r0 and ok_c1:
                     acc += w01 * feat_hwf[r0, c0 + 1, f]
-                if ok_r1 and ok_c0:
                     acc += w10 * feat_hwf[r0 + 1, c0, f]
-                if ok_r1 and ok_c1:
                     acc += w11 * feat_hwf[r0 + 1, c0 + 1, f]
-                vals[n, f] = acc
-                if acc != 0.0:
+                    vals[n, f] = acc
+            else:
+                ok_r0 = r0 >= 0
+                ok_r1 = r0 + 1 < h
+                ok_c0 = c0 >= 0
+                ok_c1 = c0 + 1 < w
+                for f in range(FP):
+                    acc = 0.0
+                    if ok_r0 and ok_c0:
+                        acc += w00 * feat_hwf[r0, c0, f]
+                    if ok_r0 and ok_c1:
+                        acc += w01 * feat_hwf[r0, c0 + 1, f]
+                    if ok_r1 and ok_c0:
+                        acc += w10 * feat_hwf[r0 + 1, c0, f]
+                    if ok_r1 and ok_c1:
+                        acc += w11 * feat_hwf[r0 + 1, c0 + 1, f]
+                    vals[n, f] = acc
+            for f in range(FP):
+                if vals[n, f] != 0.0:
                     nz = True
             if nz:
                 uv[n, 0] = u + lo_u
                 uv[n, 1] = v + lo_v
                 n += 1
     return n
+
+
+@njit(**JIT)
+def ensure_base(b, fr, uv_pool, vals_pool, count, bnd, valid):
+    """Rotate and compact the grid of base heading ``b`` into its pool slot, once per frame.
+
+    ``fr`` = (feat_hwf, colmin, colmax, cos_b, sin_b, box, origin_row, origin_col), the frame's
+    grid and the base headings' geometry; ``box[b]`` = (lo_u, hi_u, lo_v, hi_v) of the heading's
+    offsets; ``bnd[b]`` gets the bounds actually occupied (umin, umax, vmin, vmax).
+    """
+    if valid[b]:
+        return
+    feat_hwf, colmin, colmax, cos_b, sin_b, box, origin_row, origin_col = fr
+    lu, hu, lv, hv = box[b, 0], box[b, 1], box[b, 2], box[b, 3]
+    n = rotate_compact_rows(feat_hwf, colmin, colmax, cos_b[b], sin_b[b], origin_row, origin_col, lu, lv,
+                            hu - lu + 1, hv - lv + 1, uv_pool[b], vals_pool[b])
+    count[b] = n
+    umin = 1 << 30
+    vmin = 1 << 30
+    umax = -(1 << 30)
+    vmax = -(1 << 30)
+    for k in range(n):
+        du = np.int64(uv_pool[b, k, 0])
+        dv = np.int64(uv_pool[b, k, 1])
+        umin = min(umin, du)
+        umax = max(umax, du)
+        vmin = min(vmin, dv)
+        vmax = max(vmax, dv)
+    bnd[b, 0], bnd[b, 1], bnd[b, 2], bnd[b, 3] = umin, umax, vmin, vmax
+    valid[b] = True
+
+
+@njit(**JIT)
+def pose_score(uv, vals, n, quarter, bnd, G, i, j, acc8):
+    """Exact (untempered) score of the robot at window cell (i, j) for a base grid turned by ``quarter``.
+
+    ``G`` is the map features (H, W, FP), zero outside the window. Returns -inf for a cell
+    outside the window (not a pose of this window). ``acc8`` (FP,) float64 is scratch: one
+    accumulator per lane, summed at the end.
+    """
+    FP = vals.shape[1]
+    H, W = G.shape[0], G.shape[1]
+    if i < 0 or i >= H or j < 0 or j >= W:
+        return -np.inf
+    # (du, dv) -> (m00 du + m01 dv, m10 du + m11 dv): the quarter turn without a branch per entry.
+    m00, m01, m10, m11 = 1, 0, 0, 1
+    if quarter == 1:
+        m00, m01, m10, m11 = 0, -1, 1, 0
+    elif quarter == 2:
+        m00, m01, m10, m11 = -1, 0, 0, -1
+    elif quarter == 3:
+        m00, m01, m10, m11 = 0, 1, -1, 0
+    u0 = m00 * bnd[0] + m01 * bnd[2]
+    u1 = m00 * bnd[1] + m01 * bnd[3]
+    v0 = m10 * bnd[0] + m11 * bnd[2]
+    v1 = m10 * bnd[1] + m11 * bnd[3]
+    umin, umax = min(u0, u1), max(u0, u1)
+    vmin, vmax = min(v0, v1), max(v0, v1)
+    for f in range(FP):
+        acc8[f] = 0.0
+    if FP == 8 and n > 0 and i + umin >= 0 and i + umax < H and j + vmin >= 0 and j + vmax < W:
+        # Eight scalar accumulators stay in registers (the SLP vectorizer packs them).
+        s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
+        for k in range(n):
+            du0 = np.int64(uv[k, 0])
+            dv0 = np.int64(uv[k, 1])
+            gi = i + m00 * du0 + m01 * dv0
+            gj = j + m10 * du0 + m11 * dv0
+            s0 += vals[k, 0] * G[gi, gj, 0]
+            s1 += vals[k, 1] * G[gi, gj, 1]
+            s2 += vals[k, 2] * G[gi, gj, 2]
+            s3 += vals[k, 3] * G[gi, gj, 3]
+            s4 += vals[k, 4] * G[gi, gj, 4]
+            s5 += vals[k, 5] * G[gi, gj, 5]
+            s6 += vals[k, 6] * G[gi, gj, 6]
+            s7 += vals[k, 7] * G[gi, gj, 7]
+        acc8[0], acc8[1], acc8[2], acc8[3] = s0, s1, s2, s3
+        acc8[4], acc8[5], acc8[6], acc8[7] = s4, s5, s6, s7
+    elif n > 0 and i + umin >= 0 and i + umax < H and j + vmin >= 0 and j + vmax < W:
+        for k in range(n):
+            du0 = np.int64(uv[k, 0])
+            dv0 = np.int64(uv[k, 1])
+            gi = i + m00 * du0 + m01 * dv0
+            gj = j + m10 * du0 + m11 * dv0
+            for f in range(FP):
+                acc8[f] += vals[k, f] * G[gi, gj, f]
+    else:
+        for k in range(n):
+            du0 = np.int64(uv[k, 0])
+            dv0 = np.int64(uv[k, 1])
+            gi = i + m00 * du0 + m01 * dv0
+            gj = j + m10 * du0 + m11 * dv0
+            if gi >= 0 and gi < H and gj >= 0 and gj < W:
+                for f in range(FP):
+                    acc8[f] += vals[k, f] * G[gi, gj, f]
+    acc = 0.0
+    for f in range(FP):
+        acc += acc8[f]
+    return acc
+
+
+@njit(**JIT)
+def _cached_score(a, i, j, a_c, i_c, j_c, cache, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8):
+    """Score of pose (a, i, j) through a cube cache centred on (a_c, i_c, j_c) (NaN = not yet scored)."""
+    Q = A // 4
+    RH = (cache.shape[0] - 1) // 2
+    R = (cache.shape[1] - 1) // 2
+    da = (a - a_c + A + A // 2) % A - A // 2
+    di = i - i_c
+    dj = j - j_c
+    inside = abs(da) <= RH and abs(di) <= R and abs(dj) <= R
+    if inside:
+        v = cache[da + RH, di + R, dj + R]
+        if v == v:
+            return v
+    aa = a % A
+    b = aa % Q
+    ensure_base(b, fr, uv_pool, vals_pool, count, bnd, valid)
+    v = pose_score(uv_pool[b], vals_pool[b], count[b], aa // Q, bnd[b], G, i, j, acc8)
+    if inside:
+        cache[da + RH, di + R, dj + R] = v
+    return v
+
+
+@njit(**JIT)
+def climb_poses(starts, max_steps, rh, A, fr, uv_pool, vals_pool, count, bnd, valid, G, cache, acc8, out_cell,
+                out_nb):
+    """Hill-climb exact scores from each start (a, i, j) to a local maximum.
+
+    A step moves to the best pose of the neighbourhood (headings a - rh .. a + rh) x
+    (3 x 3 cells) if it beats the centre; at most ``max_steps`` steps (0: no move).
+    ``out_cell[m]`` = final (a, i, j); ``out_nb[m]`` = untempered scores at the final cell:
+    centre, row -1, row +1, col -1, col +1, heading -1, heading +1 (for sub-step parabolas).
+    ``cache`` (2 RH + 1, 2 R + 1, 2 R + 1) float64 is scratch, reset per start.
+    """
+    for m in range(starts.shape[0]):
+        a_c = starts[m, 0] % A
+        i_c = starts[m, 1]
+        j_c = starts[m, 2]
+        for x in range(cache.shape[0]):
+            for y in range(cache.shape[1]):
+                for z in range(cache.shape[2]):
+                    cache[x, y, z] = np.nan
+        a, i, j = a_c, i_c, j_c
+        cur = _cached_score(a, i, j, a_c, i_c, j_c, cache, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8)
+        for _step in range(max_steps):
+            ba, bi, bj, bv = a, i, j, cur
+            for t in range(-rh, rh + 1):
+                for di in range(-1, 2):
+                    for dj in range(-1, 2):
+                        if t == 0 and di == 0 and dj == 0:
+                            continue
+                        v = _cached_score((a + t + A) % A, i + di, j + dj, a_c, i_c, j_c, cache, A, fr, uv_pool,
+                                          vals_pool, count, bnd, valid, G, acc8)
+                        if v > bv:
+                            ba, bi, bj, bv = (a + t + A) % A, i + di, j + dj, v
+            if bv <= cur:
+                break
+            a, i, j, cur = ba, bi, bj, bv
+        out_cell[m, 0], out_cell[m, 1], out_cell[m, 2] = a, i, j
+        out_nb[m, 0] = cur
+        k = 1
+        for da, di, dj in ((0, -1, 0), (0, 1, 0), (0, 0, -1), (0, 0, 1), (-1, 0, 0), (1, 0, 0)):
+            out_nb[m, k] = _cached_score((a + da + A) % A, i + di, j + dj, a_c, i_c, j_c, cache, A, fr, uv_pool,
+                                         vals_pool, count, bnd, valid, G, acc8)
+            k += 1
+
+
+@njit(**JIT)
+def best_under(cands, hs, s, nh, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8, out_cell, out_score):
+    """Best exact full-resolution pose under each coarse hypothesis (a, i, j).
+
+    Scores the s x s cells (s i .. s i + s - 1, s j .. s j + s - 1) at the headings
+    hs a - nh .. hs a + nh; ``out_cell[m]``, ``out_score[m]`` get the best (untempered).
+    """
+    Q = A // 4
+    H, W = G.shape[0], G.shape[1]
+    for m in range(cands.shape[0]):
+        bv = -np.inf
+        ba, bi, bj = (hs * cands[m, 0]) % A, s * cands[m, 1], s * cands[m, 2]
+        for tt in range(2 * nh + 1):
+            t = (tt + 1) // 2 if tt % 2 else -(tt // 2)  # 0, +1, -1, +2, -2: ties go to the centre heading
+            aa = (hs * cands[m, 0] + t + A) % A
+            b = aa % Q
+            ensure_base(b, fr, uv_pool, vals_pool, count, bnd, valid)
+            for di in range(s):
+                for dj in range(s):
+                    i = s * cands[m, 1] + di
+                    j = s * cands[m, 2] + dj
+                    if i >= H or j >= W:
+                        continue
+                    v = pose_score(uv_pool[b], vals_pool[b], count[b], aa // Q, bnd[b], G, i, j, acc8)
+                    if v > bv:
+                        ba, bi, bj, bv = aa, i, j, v
+        out_cell[m, 0], out_cell[m, 1], out_cell[m, 2] = ba, bi, bj
+        out_score[m] = bv
+
+
+@njit(**JIT)
+def readout_native(buf, L, M, c0, inv_temp, a, nat, nat_a, head_max, head_arg):
+    """Read one heading's correlation into the per-quarter maxima, in the buffer's own orientation.
+
+    ``nat[l, m]`` vs ``buf[l, (c0 + m) mod N]`` for l < L, m < M: rows and columns run along
+    contiguous memory (no transposed reads); :func:`merge_native` turns the four quarters
+    into window orientation once per search. ``head_arg[a]`` gets the flat (l * M + m) of the
+    heading's max (converted by the caller's quarter).
+    """
+    N = buf.shape[1]
+    s = c0 % N
+    m1 = min(M, N - s)
+    hm = -np.inf
+    harg = 0
+    for l in range(L):
+        for m in range(m1):
+            v = buf[l, s + m] * inv_temp
+            if v > nat[l, m]:
+                nat[l, m] = v
+                nat_a[l, m] = a
+            if v > hm:
+                hm = v
+                harg = l * M + m
+        for m in range(m1, M):
+            v = buf[l, m - m1] * inv_temp
+            if v > nat[l, m]:
+                nat[l, m] = v
+                nat_a[l, m] = a
+            if v > hm:
+                hm = v
+                harg = l * M + m
+    head_max[a] = hm
+    head_arg[a] = harg
+
+
+@njit(**JIT)
+def merge_native(nat, nat_a, head_arg, q, first, step, best, best_a):
+    """Per-cell max over the four quarters' maxima (window orientation), and heading argmax cells.
+
+    Quarter k holds window cell (i, j) at (l, m) = (i, j), (j, H-1-i), (H-1-i, W-1-j), (W-1-j, i)
+    for k = 0..3; ties go to the lower quarter. ``head_arg`` of this lane's headings k q + t
+    (t = first, first + step, ...) are turned from (l * M + m) into flat window cells i * W + j.
+    """
+    H, W = best.shape
+    for i in range(H):
+        for j in range(W):
+            bv = nat[0, i, j]
+            ba = nat_a[0, i, j]
+            v = nat[1, j, H - 1 - i]
+            if v > bv:
+                bv = v
+                ba = nat_a[1, j, H - 1 - i]
+            v = nat[2, H - 1 - i, W - 1 - j]
+            if v > bv:
+                bv = v
+                ba = nat_a[2, H - 1 - i, W - 1 - j]
+            v = nat[3, W - 1 - j, i]
+            if v > bv:
+                bv = v
+                ba = nat_a[3, W - 1 - j, i]
+            best[i, j] = bv
+            best_a[i, j] = ba
+    for k in range(4):
+        M = W if k % 2 == 0 else H
+        for t in range(first, q, step):
+            a = k * q + t
+            l = head_arg[a] // M
+            m = head_arg[a] % M
+            if k == 0:
+                i, j = l, m
+            elif k == 1:
+                i, j = H - 1 - m, l
+            elif k == 2:
+                i, j = H - 1 - l, W - 1 - m
+            else:
+                i, j = m, W - 1 - l
+            head_arg[a] = i * W + j

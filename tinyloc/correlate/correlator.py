@@ -38,7 +38,7 @@ from ..classes import NUM_MAP_CLASSES
 from ..errors import InputError
 from ..frames import wrap_angle
 from . import _kernels as K
-from .peaks import Mode, PeakWork, coarse_start, find_modes, modes_of_volume, refine_mode
+from .peaks import Mode, PeakWork, parabola, find_modes, modes_of_volume
 from .scoring import ScoringModel
 
 
@@ -67,7 +67,7 @@ class CorrelatorParams:
     coarse_climb : int
         Of those, the best (by the exact score under them) climbed to a local maximum.
     coarse_heading_step : int
-        Heading step of the coarse full search, in full steps (1 or 2).
+        Heading step of the coarse full search, in full steps (1, 2 or 4).
     track_radius_cells : int
         Half size of the tracking window (cells); 20 = +-10 m at 0.5 m.
     track_half_headings : int
@@ -77,6 +77,9 @@ class CorrelatorParams:
     threads : int
         Threads of the full searches (1 or 2); each extra thread adds one set of
         per-quarter buffers.
+    climb_heading_radius : int
+        Headings each side of the current pose that a climb step of the exact
+        refinement looks at (cells: +-1 each axis).
     """
 
     n_headings: int = 256
@@ -95,6 +98,7 @@ class CorrelatorParams:
     track_half_headings: int = 15
     track_refine: int = 2
     threads: int = 1
+    climb_heading_radius: int = 1
 
     def __post_init__(self):
         A = self.n_headings
@@ -110,8 +114,10 @@ class CorrelatorParams:
             raise InputError("tracking window: radius >= 1 cell and 2 * half_headings + 1 <= n_headings")
         if self.threads not in (1, 2):
             raise InputError(f"threads must be 1 or 2, got {self.threads}")
-        if self.coarse_heading_step not in (1, 2):
-            raise InputError(f"coarse_heading_step must be 1 or 2, got {self.coarse_heading_step}")
+        if self.coarse_heading_step not in (1, 2, 4):
+            raise InputError(f"coarse_heading_step must be 1, 2 or 4, got {self.coarse_heading_step}")
+        if self.climb_heading_radius not in (1, 2, 3):
+            raise InputError(f"climb_heading_radius must be 1, 2 or 3, got {self.climb_heading_radius}")
         if min(self.n_modes, self.coarse_top_k, self.coarse_climb, self.track_refine) < 1:
             raise InputError("n_modes, coarse_top_k, coarse_climb and track_refine must be >= 1")
 
@@ -251,6 +257,7 @@ class _CircleEngine:
         self.G4 = np.zeros((4, F, Kh, N), np.complex64)  # stored single: halves the largest buffer
         self.lanes = [_Lane(F, self.SU, self.SV, Kh, N, L, H, W) for _ in range(threads)]
         self.best, self.best_a = self.lanes[0].best, self.lanes[0].best_a
+        self.native = True  # reduced forms through per-quarter maxima (readout_native) when no volume is asked
         self._pool = None
         if threads > 1:
             from concurrent.futures import ThreadPoolExecutor
@@ -301,8 +308,11 @@ class _CircleEngine:
 
     def _run_lane(self, ln, first, step, feat, inv_temp, v, write_vol):
         ln.best.fill(-np.inf)
+        ln.nat.fill(-np.inf)
         N, q = self.N, self.A // 4
+        H, W = self.H, self.W
         orow, ocol = self.origin
+        native = self.native and not write_vol
         for qi in range(first, q, step):
             K.rotate_into(feat, self.cos[qi], self.sin[qi], orow, ocol, self.lo_u[qi], self.lo_v[qi], ln.canvas_v)
             np.fft.rfft(ln.canvas, axis=2, out=ln.trow)
@@ -315,8 +325,16 @@ class _CircleEngine:
                 r0, L = self.rows[k, qi]
                 K.gather_rows_t(ln.Q, r0, L, N, ln.Qr)
                 np.fft.irfft(ln.Qr[:L], n=N, axis=1, out=ln.buf[:L])
-                K.readout_tiled(ln.buf, k, su, sv, inv_temp, qi + k * q, ln.best, ln.best_a, self.head_max,
-                                self.head_arg, v, write_vol, self.modtab)
+                if native:
+                    M = W if k in (0, 2) else H
+                    c0 = sv if k in (0, 3) else sv - M + 1
+                    K.readout_native(ln.buf, L, M, c0, inv_temp, qi + k * q, ln.nat[k, :L, :M],
+                                     ln.nat_a[k, :L, :M], self.head_max, self.head_arg)
+                else:
+                    K.readout_tiled(ln.buf, k, su, sv, inv_temp, qi + k * q, ln.best, ln.best_a, self.head_max,
+                                    self.head_arg, v, write_vol, self.modtab)
+        if native:
+            K.merge_native(ln.nat, ln.nat_a, self.head_arg, q, first, step, ln.best, ln.best_a)
 
 
 class _Lane:
@@ -334,11 +352,14 @@ class _Lane:
         self.buf = np.zeros((L, N), np.float64)
         self.best = np.zeros((H, W), np.float32)
         self.best_a = np.zeros((H, W), np.int16)
+        # Per-quarter maxima in the inverse buffers' own orientation (see readout_native).
+        self.nat = np.zeros((4, L, L), np.float32)
+        self.nat_a = np.zeros((4, L, L), np.int16)
 
     @property
     def nbytes(self) -> int:
         return sum(a.nbytes for a in (self.canvas, self.trow, self.Tin, self.T, self.P4, self.Q, self.Qr, self.buf,
-                                      self.best, self.best_a))
+                                      self.best, self.best_a, self.nat, self.nat_a))
 
 
 class _PatchEngine:
@@ -472,12 +493,12 @@ class Correlator:
         self._feat = np.zeros((F, h, w), np.float32)
         self._feat_c = np.zeros((F, h // 2, w // 2), np.float32)
         self._G = np.zeros((F, H, W), np.float32)
-        self._G_hwf = np.zeros((H, W, F), np.float32)  # the same, cell-major, for the direct sums
         self._Gc = np.zeros((F, H // 2, W // 2), np.float32)
         self._scratch = np.zeros((H, W), np.float32)
         self._inv_temp = 1.0 / self.model.temperature
         self._fine = self._coarse = self._track = self._track_c = None  # allocated at first use (or warm_up)
-        self._refiner = _Refiner(F, p)
+        self._scorer = _PoseScorer(F, p)
+        self._G_hwf8 = np.zeros((H, W, self._scorer.FP), np.float32)  # cell-major map features, for direct sums
         self._pw_fine = PeakWork(p.window_shape)
         self._pw_coarse = PeakWork((H // 2, W // 2))
         self._pw_track = PeakWork((2 * p.track_half_headings + 1,) + (2 * p.track_radius_cells + 1,) * 2)
@@ -530,9 +551,9 @@ class Correlator:
 
     def workspace_report(self) -> dict:
         """Bytes per part of the workspace: shared buffers, and each engine allocated so far."""
-        shared = sum(a.nbytes for a in (self._feat, self._feat_c, self._G, self._G_hwf, self._Gc, self._scratch))
+        shared = sum(a.nbytes for a in (self._feat, self._feat_c, self._G, self._G_hwf8, self._Gc, self._scratch))
         shared += self._pw_fine.nbytes + self._pw_coarse.nbytes + self._pw_track.nbytes + self._pw_track_c.nbytes
-        shared += self._refiner.nbytes
+        shared += self._scorer.nbytes
         out = {"shared": shared}
         for name, e in (("exact", self._fine), ("coarse", self._coarse), ("track_exact", self._track),
                         ("track", self._track_c)):
@@ -555,7 +576,7 @@ class Correlator:
             raise InputError("map window: values must be finite")
         self.model.map_features(window, out=self._G, scratch=self._scratch)
         K.downsample2(self._G, self._Gc)
-        self._G_hwf[...] = self._G.transpose(1, 2, 0)
+        K.map_hwf(self._G, self._G_hwf8)
         if self._fine is not None:
             self._fine.set_map(self._G)
         if self._coarse is not None:
@@ -617,10 +638,10 @@ class Correlator:
                                    or not volume.flags.c_contiguous):
             raise InputError(f"volume buffer: expected C-contiguous float32 {(p.n_headings,) + p.window_shape}")
         e.run(self._feat, self._inv_temp, volume)
-        self._refiner.reset()
         modes = find_modes(e.best, e.best_a, self._pw_fine, 1, p.n_modes, p.mode_radius_cells,
                            p.mode_radius_headings, p.n_headings)
-        modes = [self._refiner.refine(self._feat, self._G_hwf, m, self._inv_temp, hill_climb=False) for m in modes]
+        self._scorer.new_frame(self._feat)
+        modes = self._scorer.climb(self._G_hwf8, modes, self._inv_temp, max_steps=0)
         modes.sort(key=lambda m: -m.cell_loglik)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, volume=volume)
 
@@ -640,15 +661,16 @@ class Correlator:
         K.downsample2(self._feat, self._feat_c)
         # x4: a 2x2 block-mean score sums 4x fewer cells; this puts it on the full-resolution scale.
         e.run(self._feat_c, 4.0 * self._inv_temp, None)
-        self._refiner.reset()
         cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, p.coarse_top_k, max(1, p.mode_radius_cells // 2),
                            max(1, p.mode_radius_headings // p.coarse_heading_step),
                            p.n_headings // p.coarse_heading_step)
-        starts = [coarse_start(self._refiner, self._feat, self._G_hwf, m, self._inv_temp, p, p.coarse_heading_step)
-                  for m in cands]
+        sc = self._scorer
+        sc.new_frame(self._feat)
+        starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=p.coarse_heading_step,
+                               heading_reach=max(1, p.coarse_heading_step // 2))
         starts.sort(key=lambda m: -m.cell_loglik)
-        fine = [self._refiner.refine(self._feat, self._G_hwf, m, self._inv_temp, hill_climb=True)
-                for m in starts[:p.coarse_climb]]
+        fine = sc.climb(self._G_hwf8, starts[:p.coarse_climb], self._inv_temp, max_steps=16,
+                        heading_radius=p.climb_heading_radius)
         modes = _distinct(fine, p, p.n_modes)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, scale=2,
                             heading_scale=p.coarse_heading_step)
@@ -683,7 +705,6 @@ class Correlator:
         status = self._prepare(bev)
         if status != "ok":
             return TrackResult(e.vol, row0, col0, a0, scale=1 if exact else 2, ok=False, status=status)
-        self._refiner.reset()
         if exact:
             e.run(self._feat, self._G, row0, col0, a0, p.n_headings, self._inv_temp)
             modes = modes_of_volume(e.vol, row0, col0, a0, p.n_headings, self._pw_track, p.n_modes,
@@ -693,9 +714,11 @@ class Correlator:
         e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, 4.0 * self._inv_temp)
         cands = modes_of_volume(e.vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
                                 max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // 2))
-        starts = [coarse_start(self._refiner, self._feat, self._G_hwf, m, self._inv_temp, p) for m in cands]
-        modes = _distinct([self._refiner.refine(self._feat, self._G_hwf, m, self._inv_temp, hill_climb=True)
-                           for m in starts], p, p.n_modes)
+        sc = self._scorer
+        sc.new_frame(self._feat)
+        starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=2)
+        modes = _distinct(sc.climb(self._G_hwf8, starts, self._inv_temp, max_steps=16,
+                                   heading_radius=p.climb_heading_radius), p, p.n_modes)
         return TrackResult(e.vol, row0, col0, a0, modes=modes, scale=2)
 
     def pose_of(self, mode: Mode) -> tuple[float, float, float]:
@@ -720,69 +743,106 @@ def _near(m, o, p) -> bool:
         and dh <= p.mode_radius_headings
 
 
-class _Refiner:
-    """Exact scores at chosen poses by direct sums over a heading's rotated grid.
+class _PoseScorer:
+    """Exact scores at chosen poses by direct sums (numba), for the refinement of modes.
 
-    The rotated grid of each heading asked for is computed once per frame and kept
-    compacted (only cells with nonzero evidence: the camera's visible wedge), in a
-    small round-robin cache of slots.
+    Only A/4 rotated grids are ever sampled: the grid of heading a is the grid of the
+    base heading ``a mod A/4`` turned by exact quarter turns (the identity the FFT engines
+    use). Each base grid is rotated and compacted (only cells with evidence: the
+    camera's visible wedge) at most once per frame, on first use, into a fixed pool
+    sized for a fully visible grid. Climbs and the scoring under coarse hypotheses run
+    inside one kernel call each. Features are padded to ``FP`` lanes (a multiple of 8).
     """
 
-    SLOTS = 48
+    CUBE_CELLS = 8  # half size of the per-climb score cache (cells) ...
+    CUBE_HEADINGS = 8  # ... and headings
 
-    def __init__(self, F, p: CorrelatorParams):
+    def __init__(self, F, p: CorrelatorParams, kmax: int = 512):
+        self.FP = 8 * ((F + 7) // 8)  # lanes: 8 for the shipped model (F = 6)
         self.p = p
-        SU = SV = 0
-        for a in range(64):
-            lu, hu, lv, hv = template_bounds(p.bev_shape, p.origin_row, p.origin_col, 2 * math.pi * a / 64)
-            SU, SV = max(SU, hu - lu + 2), max(SV, hv - lv + 2)
-        self.feat_hwf = np.zeros(tuple(p.bev_shape) + (F,), np.float32)
-        self._feat_frame = None
-        self.uv = np.zeros((self.SLOTS, SU * SV, 2), np.int16)  # offsets are within +-reach
-        self.vals = np.zeros((self.SLOTS, SU * SV, F), np.float32)
-        self.count = np.zeros(self.SLOTS, np.int64)
-        self.slot_heading = np.full(self.SLOTS, -1, np.int64)
-        self.next_slot = 0
-        self.rows = np.zeros(64, np.int64)
-        self.cols = np.zeros(64, np.int64)
-        self.out = np.zeros(64, np.float64)
+        A = p.n_headings
+        Q = A // 4
+        h, w = p.bev_shape
+        yaws = [2.0 * math.pi * b / A for b in range(Q)]
+        self.cos_b = np.cos(yaws)
+        self.sin_b = np.sin(yaws)
+        self.box = np.array([template_bounds(p.bev_shape, p.origin_row, p.origin_col, y) for y in yaws], np.int64)
+        self.feat_hwf = np.zeros((h, w, self.FP), np.float32)
+        self.colmin = np.zeros(h, np.int64)
+        self.colmax = np.zeros(h, np.int64)
+        # Pool capacity: the support of a grid of ones contains the support of any grid.
+        ones = np.ones((h, w, self.FP), np.float32)
+        full_lo, full_hi = np.zeros(h, np.int64), np.full(h, w - 1, np.int64)
+        cap = 1
+        for b in range(Q):
+            lu, hu, lv, hv = (int(x) for x in self.box[b])
+            n = (hu - lu + 1) * (hv - lv + 1)
+            cap = max(cap, 1 + K.rotate_compact_rows(ones, full_lo, full_hi, self.cos_b[b], self.sin_b[b],
+                                                     p.origin_row, p.origin_col, lu, lv, hu - lu + 1, hv - lv + 1,
+                                                     np.zeros((n + 1, 2), np.int16),
+                                                     np.zeros((n + 1, self.FP), np.float32)))
+        self.uv = np.zeros((Q, cap, 2), np.int16)  # offsets are within +-reach
+        self.vals = np.zeros((Q, cap, self.FP), np.float32)
+        self.count = np.zeros(Q, np.int64)
+        self.bnd = np.zeros((Q, 4), np.int64)
+        self.valid = np.zeros(Q, np.bool_)
+        self.fr = (self.feat_hwf, self.colmin, self.colmax, self.cos_b, self.sin_b, self.box, float(p.origin_row),
+                   float(p.origin_col))
+        self.acc8 = np.zeros(self.FP, np.float64)
+        self.cube = np.zeros((2 * self.CUBE_HEADINGS + 1,) + (2 * self.CUBE_CELLS + 1,) * 2, np.float64)
+        self.kmax = kmax
+        self.cells_in = np.zeros((kmax, 3), np.int64)
+        self.cells_out = np.zeros((kmax, 3), np.int64)
+        self.score_out = np.zeros(kmax, np.float64)
+        self.nb = np.zeros((kmax, 7), np.float64)
 
     @property
     def nbytes(self) -> int:
-        return sum(a.nbytes for a in (self.feat_hwf, self.uv, self.vals, self.count, self.rows, self.cols, self.out))
+        return sum(a.nbytes for a in (self.uv, self.vals, self.count, self.bnd, self.valid, self.feat_hwf, self.cube,
+                                      self.cells_in, self.cells_out, self.score_out, self.nb, self.colmin,
+                                      self.colmax))
 
-    def _slot(self, feat, a):
-        p = self.p
-        a %= p.n_headings
-        for s in range(self.SLOTS):
-            if self.slot_heading[s] == a:
-                return s
-        s = self.next_slot
-        self.next_slot = (s + 1) % self.SLOTS
-        yaw = 2.0 * math.pi * a / p.n_headings
-        lu, hu, lv, hv = template_bounds(p.bev_shape, p.origin_row, p.origin_col, yaw)
-        if self._feat_frame is not feat:
-            self.feat_hwf[...] = feat.transpose(1, 2, 0)  # once per frame: taps of all features adjacent
-            self._feat_frame = feat
-        # Only this heading's own bounding box (up to half the cells of the largest one).
-        self.count[s] = K.rotate_compact(self.feat_hwf, math.cos(yaw), math.sin(yaw), p.origin_row, p.origin_col,
-                                         lu, lv, hu - lu + 1, hv - lv + 1, self.uv[s], self.vals[s])
-        self.slot_heading[s] = a
-        return s
+    def new_frame(self, feat) -> None:
+        """Take this frame's bird's-eye features (F, h, w); forget the rotated grids of the last one."""
+        K.features_hwf(feat, self.colmin, self.colmax, self.feat_hwf)
+        self.valid.fill(False)
 
-    def reset(self):
-        """Forget the cached grids (a new frame)."""
-        self.slot_heading.fill(-1)
-        self._feat_frame = None
-
-    def scores(self, feat, G, a, cells, inv_temp):
-        """Exact tempered log-likelihoods of heading a at the given (row, col) window cells."""
-        s = self._slot(feat, a)
-        n = min(len(cells), self.rows.shape[0])
+    def _load(self, modes) -> int:
+        n = min(len(modes), self.kmax)
         for k in range(n):
-            self.rows[k], self.cols[k] = cells[k]
-        K.sparse_scores(self.uv[s], self.vals[s], self.count[s], G, self.rows[:n], self.cols[:n], self.out[:n])
-        return [float(self.out[k]) * inv_temp for k in range(n)]
+            self.cells_in[k] = modes[k].cell
+        return n
 
-    def refine(self, feat, G, m: Mode, inv_temp, *, hill_climb: bool, heading_scale: int = 2) -> Mode:
-        return refine_mode(self, feat, G, m, inv_temp, self.p, hill_climb=hill_climb, heading_scale=heading_scale)
+    def best_under(self, G, modes, inv_temp, *, scale: int, heading_scale: int, heading_reach: int = 1) -> list:
+        """For each coarse mode, the best exact full-resolution pose under it (a full-resolution Mode).
+
+        ``G`` is the map features in (H, W, FP) layout.
+        """
+        n = self._load(modes)
+        K.best_under(self.cells_in[:n], heading_scale, scale, heading_reach, self.p.n_headings, self.fr, self.uv,
+                     self.vals, self.count, self.bnd, self.valid, G, self.acc8, self.cells_out[:n],
+                     self.score_out[:n])
+        out = []
+        for k in range(n):
+            a, i, j = (int(x) for x in self.cells_out[k])
+            v = float(self.score_out[k]) * inv_temp
+            out.append(Mode(float(i), float(j), float(a), v, (a, i, j), v))
+        return out
+
+    def climb(self, G, modes, inv_temp, *, max_steps: int, heading_radius: int = 1) -> list:
+        """Climb each mode's cell to a local maximum of the exact score (``max_steps = 0``: stay), then
+        refine below a cell and a heading step by parabolas through the neighbours."""
+        A = self.p.n_headings
+        n = self._load(modes)
+        K.climb_poses(self.cells_in[:n], max_steps, max(1, heading_radius), A, self.fr, self.uv, self.vals,
+                      self.count, self.bnd, self.valid, G, self.cube, self.acc8, self.cells_out[:n], self.nb[:n])
+        out = []
+        for k in range(n):
+            a, i, j = (int(x) for x in self.cells_out[k])
+            s0, rm, rp, cm, cp, hm, hp = (float(x) * inv_temp for x in self.nb[k])
+            dr, vr = parabola(rm, s0, rp)
+            dc, vc = parabola(cm, s0, cp)
+            dh, vh = parabola(hm, s0, hp)
+            peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
+            out.append(Mode(i + dr, j + dc, float((a + dh) % A), float(peak), (a, i, j), s0))
+        return out

@@ -1,4 +1,4 @@
-"""Pose extraction: modes by non-maximum suppression, and sub-cell / sub-heading refinement.
+"""Pose extraction: modes by non-maximum suppression, and sub-cell / sub-heading parabolas.
 
 A :class:`Mode` is in window terms: ``row``, ``col`` are continuous window cell
 indices of the robot origin's cell (the robot sits at the centre of cell
@@ -70,7 +70,7 @@ def find_modes(best, best_a, pw: PeakWork, scale: int, k: int, radius_cells: int
                  (int(pw.a[m]), int(pw.i[m]), int(pw.j[m])), float(pw.v[m])) for m in range(n)]
 
 
-def _parabola(sm, s0, sp):
+def parabola(sm, s0, sp):
     """Vertex offset (in steps, clipped to +-0.5) and value of the parabola through three samples."""
     den = sm - 2.0 * s0 + sp
     if not np.isfinite(den) or den >= 0.0:
@@ -78,84 +78,6 @@ def _parabola(sm, s0, sp):
     off = 0.5 * (sm - sp) / den
     off = max(-0.5, min(0.5, off))
     return off, s0 - 0.25 * (sm - sp) * off
-
-
-def coarse_start(refiner, feat, G, m: Mode, inv_temp, p, heading_scale: int = 2) -> Mode:
-    """Best exact full-resolution pose among the 4 cells x 3 headings under a coarse mode.
-
-    Returns a full-resolution Mode (integer cell, its exact score) to climb from.
-    """
-    A = p.n_headings
-    H, W = p.window_shape
-    a0, i0, j0 = m.cell
-    a0, i0, j0 = heading_scale * a0, 2 * i0, 2 * j0
-    cells = [(i, j) for i in (i0, i0 + 1) for j in (j0, j0 + 1) if 0 <= i < H and 0 <= j < W]
-    best, best_v = (a0 % A, i0, j0), -np.inf
-    for da in (-1, 0, 1):
-        vals = refiner.scores(feat, G, a0 + da, cells, inv_temp)
-        for (i, j), v in zip(cells, vals):
-            if v > best_v:
-                best, best_v = ((a0 + da) % A, i, j), v
-    return Mode(float(best[1]), float(best[2]), float(best[0]), best_v, best, best_v)
-
-
-def refine_mode(refiner, feat, G, m: Mode, inv_temp, p, *, hill_climb: bool, heading_scale: int = 2) -> Mode:
-    """Exact full-resolution refinement of a mode.
-
-    With ``hill_climb`` the mode is a full-resolution start (see :func:`coarse_start`)
-    that climbs the 3 x 3 x 3 neighbourhood (exact scores) to a local maximum.
-    Finally a parabola through the neighbours in row, col and heading gives the
-    sub-cell, sub-step pose.
-    """
-    A = p.n_headings
-    H, W = p.window_shape
-    cache = {}
-
-    def score(a, i, j):
-        a %= A
-        key = (a, i, j)
-        if key not in cache:
-            if 0 <= i < H and 0 <= j < W:
-                cache[key] = refiner.scores(feat, G, a, [(i, j)], inv_temp)[0]
-            else:
-                cache[key] = -np.inf
-        return cache[key]
-
-    def score_block(a, cells):
-        a %= A
-        todo = [(i, j) for i, j in cells if (a, i, j) not in cache and 0 <= i < H and 0 <= j < W]
-        if todo:
-            vals = refiner.scores(feat, G, a, todo, inv_temp)
-            for (i, j), v in zip(todo, vals):
-                cache[(a, i, j)] = v
-
-    a0, i0, j0 = m.cell
-    if hill_climb:
-        cur, best_v = (a0 % A, i0, j0), m.cell_loglik
-        cache[cur] = best_v
-        for _ in range(12):
-            a, i, j = cur
-            nb = [(i + di, j + dj) for di in (-1, 0, 1) for dj in (-1, 0, 1)]
-            for da in (-1, 0, 1):
-                score_block(a + da, nb)
-            nxt, nv = cur, best_v
-            for da in (-1, 0, 1):
-                for ii, jj in nb:
-                    v = score(a + da, ii, jj)
-                    if v > nv:
-                        nxt, nv = ((a + da) % A, ii, jj), v
-            if nxt == cur:
-                break
-            cur, best_v = nxt, nv
-        a0, i0, j0 = cur
-    else:
-        score_block(a0, [(i0 - 1, j0), (i0 + 1, j0), (i0, j0 - 1), (i0, j0 + 1), (i0, j0)])
-    s0 = score(a0, i0, j0)
-    dr, vr = _parabola(score(a0, i0 - 1, j0), s0, score(a0, i0 + 1, j0))
-    dc, vc = _parabola(score(a0, i0, j0 - 1), s0, score(a0, i0, j0 + 1))
-    dh, vh = _parabola(score(a0 - 1, i0, j0), s0, score(a0 + 1, i0, j0))
-    peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
-    return Mode(i0 + dr, j0 + dc, float((a0 + dh) % A), float(peak), (int(a0 % A), int(i0), int(j0)), float(s0))
 
 
 def modes_of_volume(vol, row0, col0, a0, A, pw: PeakWork, k, radius_cells, radius_headings) -> list[Mode]:
@@ -173,9 +95,9 @@ def modes_of_volume(vol, row0, col0, a0, A, pw: PeakWork, k, radius_cells, radiu
                 return float(vol[tt, ii, jj])
             return -np.inf
 
-        dr, vr = _parabola(nb(t, i - 1, j), s0, nb(t, i + 1, j))
-        dc, vc = _parabola(nb(t, i, j - 1), s0, nb(t, i, j + 1))
-        dh, vh = _parabola(nb(t - 1, i, j), s0, nb(t + 1, i, j))
+        dr, vr = parabola(nb(t, i - 1, j), s0, nb(t, i + 1, j))
+        dc, vc = parabola(nb(t, i, j - 1), s0, nb(t, i, j + 1))
+        dh, vh = parabola(nb(t - 1, i, j), s0, nb(t + 1, i, j))
         peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
         out.append(Mode(row0 + i + dr, col0 + j + dc, float((a0 + t + dh) % A), peak,
                         (int((a0 + t) % A), row0 + i, col0 + j), s0))
