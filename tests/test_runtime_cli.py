@@ -22,7 +22,7 @@ from tinyloc.runtime.config import LoopConfig, config_to_dict
 from tinyloc.runtime.loop import Frame, PoseEstimate
 from tinyloc.runtime.runlog import read_runlog
 from tinyloc.runtime.runner import Runner
-from tinyloc.runtime.sinks import open_sink
+from tinyloc.runtime.sinks import Sink, open_sink
 
 ORIGIN = (46.5, 7.25, 500.0)
 CAM = CameraModel(width=160, height=120, fx=110.0, fy=110.0, cx=79.5, cy=59.5)
@@ -163,6 +163,114 @@ def test_serial_port_gone_and_back(tmp_path):
     assert h["sink0_link_reconnects"] >= 1 and h["sink0_link_disconnects"] >= 1
     recs, problems = read_runlog(log)
     assert problems == [] and sum(r["k"] == "pose" for r in recs) == 150
+
+
+class _SignalMidFrame(_StubLocalizer):
+    """Raises a signal against its own process in the middle of frame ``at`` (``times`` times), then finishes it."""
+
+    def __init__(self, sig, at, times=1):
+        super().__init__()
+        self.sig, self.at, self.times = sig, at, times
+
+    def step(self, frame):
+        if self.n + 1 == self.at:
+            for _ in range(self.times):
+                os.kill(os.getpid(), self.sig)
+                time.sleep(0.01)  # the handler runs here, inside the frame
+            time.sleep(0.02)  # ... and the frame goes on after it
+        return super().step(frame)
+
+
+def _endless_frames(pulled):
+    k = 0
+    while True:
+        pulled.append(k)
+        yield Frame(k, 0.1 * k, None)
+        k += 1
+
+
+def test_sigterm_mid_frame_finishes_the_frame_then_stops_cleanly(tmp_path):
+    log = tmp_path / "mid.tlog"
+    loc = _SignalMidFrame(signal.SIGTERM, at=20)
+    pulled = []
+    sent = []
+
+    class Recorder(Sink):
+        def send(self, pose):
+            sent.append(pose.t)
+            return True
+
+    old = signal.getsignal(signal.SIGTERM)
+    summary = Runner(loc, _endless_frames(pulled), [Recorder(), open_sink(f"log:{log}")]).run()
+    assert signal.getsignal(signal.SIGTERM) == old  # handlers restored
+    assert summary["stopped_by"] == "SIGTERM" and not summary["interrupted"]
+    assert summary["frames"] == 20 and loc.n == 20 and len(pulled) == 20  # no frame started after it
+    assert sent[-1] == pytest.approx(1.9)  # the frame in progress was finished and sent
+    recs, problems = read_runlog(log)
+    assert problems == []
+    poses = [r for r in recs if r["k"] == "pose"]
+    assert len(poses) == 20 and poses[-1]["t"] == pytest.approx(1.9)
+    stopping = [r for r in recs if r["k"] == "status" and r["state"] == "stopping"]
+    assert len(stopping) == 1 and stopping[0]["text"] == "SIGTERM" and stopping[0]["frames"] == 20
+    assert recs[-1] == {"k": "event", "text": "stopped: SIGTERM"}
+
+
+def test_second_sigint_stops_at_once_and_still_closes_the_log(tmp_path):
+    log = tmp_path / "int.tlog"
+    loc = _SignalMidFrame(signal.SIGINT, at=7, times=2)
+    pulled = []
+    summary = Runner(loc, _endless_frames(pulled), [open_sink(f"log:{log}")]).run()
+    assert summary["interrupted"] and summary["stopped_by"] == "SIGINT"
+    assert summary["frames"] == 6  # the interrupted frame was abandoned
+    recs, problems = read_runlog(log)
+    assert problems == [] and sum(r["k"] == "pose" for r in recs) == 6
+    assert recs[-1] == {"k": "event", "text": "stopped: SIGINT"}
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="pseudo-terminal tests need Linux ptys")
+def test_serial_pty_unplugged_and_replugged_mid_run(tmp_path):
+    """The firmware's serial cable (a pty pair) is pulled and pushed back while the loop runs."""
+    from _link_helpers import PtyCable
+    from tinyloc.link import open_endpoint
+
+    cable = PtyCable(tmp_path, baud=115200)
+    events = []
+    try:
+        sink = open_sink(str(cable.end_a), backoff_s=(0.02, 0.1), on_event=events.append)
+        mcu = open_endpoint(str(cable.end_b), backoff_s=(0.02, 0.1), on_event=events.append)
+        got = []
+        log = tmp_path / "pty.tlog"
+
+        def frames():
+            for k in range(150):
+                if k == 50:
+                    cable.unplug()
+                if k == 90:
+                    cable.plug()
+                time.sleep(0.01)
+                got.extend(mcu.poll())
+                yield Frame(k, 0.01 * k, None)
+            for _ in range(50):  # let the line drain
+                time.sleep(0.01)
+                got.extend(mcu.poll())
+
+        summary = Runner(_StubLocalizer(), frames(), [sink, open_sink(f"log:{log}")], status_every_s=0.1).run()
+        assert summary["frames"] == 150  # the loop never waited for the cable
+        h = summary["health"]
+        assert h["sink0_link_disconnects"] >= 1 and h["sink0_link_reconnects"] >= 1
+        ts = [round(g.t, 2) for g in got if getattr(g, "NAME", "") == "pose"]
+        assert any(t < 0.5 for t in ts) and any(t >= 0.95 for t in ts)  # poses before the pull and after
+        assert not any(0.55 <= t < 0.89 for t in ts)  # nothing while the cable was out
+        assert any("reconnected after" in e for e in events)
+        recs, problems = read_runlog(log)
+        assert problems == [] and sum(r["k"] == "pose" for r in recs) == 150
+        # the status records say what happened to the link
+        st = [r for r in recs if r["k"] == "status"]
+        assert st[-1]["sink0_link_reconnects"] >= 1 and st[-1]["sink0_link_disconnects"] >= 1
+        sink.close()
+        mcu.close()
+    finally:
+        cable.close()
 
 
 def test_locate_one_image(site_and_run, tmp_path):

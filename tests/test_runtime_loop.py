@@ -282,3 +282,95 @@ def test_kidnapped_mid_run_recovers_within_15_s(site):
     assert back_at is not None and back_at <= 15.0, back_at
     assert loc.health()["track_lost"] >= 1
     print(f"kidnapped 50 m: back within 1 m and tracking {back_at:.1f} s later")
+
+
+class RecordingPerceiver:
+    """Stand-in camera stage that records the gravity vector the loop hands it, and sees no ground."""
+
+    def __init__(self):
+        self.gravity = []
+
+    def perceive(self, image, gravity):
+        self.gravity.append(None if gravity is None else np.array(gravity, dtype=np.float64))
+        return None
+
+
+def test_bad_sensor_rows_are_skipped_counted_and_said(site):
+    path, cov = site
+    pm = PackedMap.open(path)
+    perc = RecordingPerceiver()
+    loc = Localizer(pm, CAM, _cfg(), perceiver=perc)
+    lat, lon = pm.frame.to_latlon(0.0, 0.0)
+    img = np.zeros((4, 4, 3), np.uint8)
+    good_imu = [[0.05, 0.2, -0.1, 9.7], [0.08, 0.4, 0.1, 9.9]]
+    f0 = Frame(0, 0.1, img, "", np.array(good_imu + [[0.09, np.nan, 0.0, 9.8], [0.095, 5e3, 0.0, 9.8]]),
+               np.array([[0.05, 0.0, 0.0, 0.0], [0.09, np.inf, 0.0, 0.0]]),
+               np.array([[0.07, lat, lon, 0.0, 1.5], [0.1, 95.0, lon, 0.0, 1.5]]))
+    p0 = loc.step(f0)
+    assert "2 bad IMU row(s) skipped" in p0.status
+    assert "1 bad odometry row(s) skipped" in p0.status
+    assert "1 bad GNSS row(s) skipped" in p0.status
+    h = loc.health()
+    assert (h["imu_bad_rows"], h["odometry_bad_rows"], h["gnss_bad_rows"]) == (2, 1, 1)
+    # gravity = the mean of the good rows only (the NaN and the 5000 m/s^2 row left out)
+    assert np.max(np.abs(perc.gravity[0] - np.mean(np.array(good_imu)[:, 1:], axis=0))) < 1e-12
+    # the fix that was kept is the good one (at the map origin), not the row at latitude 95
+    fx, fy, acc, tf = loc.sensors.fix
+    assert abs(fx) < 1e-6 and abs(fy) < 1e-6 and tf == 0.07
+    # a clean frame says nothing about sensor rows
+    p1 = loc.step(Frame(1, 0.2, img, "", np.array([[0.15, 0.0, 0.0, 9.81]]), np.array([[0.15, 0.1, 0.0, 0.0]]),
+                        np.zeros((0, 5))))
+    assert "row(s) skipped" not in p1.status
+    # no usable IMU row for longer than loop.imu_timeout_s: the perceiver gets no gravity (fixed mount)
+    t = 0.2 + LoopConfig().loop.imu_timeout_s + 0.5
+    loc.step(Frame(2, t, img, "", np.array([[t, np.nan, np.nan, np.nan]]), np.zeros((0, 4)), np.zeros((0, 5))))
+    assert perc.gravity[1] is not None and perc.gravity[2] is None
+
+
+def test_steady_state_with_the_real_perception_allocates_nothing_that_stays(site):
+    """As above, with tinyloc's segmenter and projector running on a 160 x 120 colour frame every step."""
+    from tinyloc.perception.pipeline import Perception
+
+    path, cov = site
+    pm = PackedMap.open(path)
+    truth = _road_path(cov, 70)
+    x, y, yaw = truth[0]
+    r, c = pm.cell_of(x, y)
+    bev = cut_bev(cov, r, c, yaw, np.random.default_rng(3), noise=0.1, dropout=0.1)
+    cam = CameraModel(width=160, height=120, fx=110.0, fy=110.0, cx=79.5, cy=59.5)
+
+    class Real:
+        def __init__(self):
+            self.perc = Perception(cam)
+            self.grid = self.perc.new_grid()
+            self.status = []
+
+        def perceive(self, image, gravity):
+            self.status.append(self.perc.process(image, gravity, self.grid))
+            return bev  # the map's own evidence, so the loop stays in tracking mode
+
+    perc = Real()
+    loc = Localizer(pm, cam, _cfg("track.verify_every=1000"), perceiver=perc)
+    rng = np.random.default_rng(5)
+    img = np.empty((120, 160, 3), np.uint8)
+    img[:40] = (230, 190, 140)
+    img[40:] = (105, 105, 105)
+    img = np.clip(img.astype(int) + rng.integers(-8, 9, img.shape), 0, 255).astype(np.uint8)
+    lat, lon = pm.frame.to_latlon(x, y)
+    frames = [Frame(k, 0.1 * k, img, "", np.array([[0.1 * k, 0, 0, 9.81]]), np.array([[0.1 * k, 0.0, 0.0, 0.0]]),
+                    np.array([[0.1 * k, lat, lon, 0.0, 1.5]])) for k in range(70)]
+    for f in frames[:20]:
+        p = loc.step(f)
+    assert p.quality == "tracking" and perc.status[-1] == "ok"
+    tracemalloc.start()
+    for f in frames[20:30]:
+        loc.step(f)
+    base, _ = tracemalloc.get_traced_memory()
+    tracemalloc.reset_peak()
+    for f in frames[30:70]:
+        loc.step(f)
+    cur, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert perc.status[-1] == "ok"
+    assert cur - base < 64 * 1024, cur - base
+    assert peak - base < 512 * 1024, peak - base

@@ -95,6 +95,22 @@ class Frame:
     labels: np.ndarray | None = None
 
 
+def _rows(a, k: int) -> list:
+    """Sensor rows as a list of k-float lists (a frame carries a handful: plain Python beats NumPy here)."""
+    if a is None:
+        return []
+    if not (isinstance(a, np.ndarray) and a.ndim == 2 and a.shape[1] == k):
+        a = np.asarray(a, dtype=np.float64).reshape(-1, k)
+    return a.tolist()
+
+
+def _finite(row) -> bool:
+    for v in row:
+        if not math.isfinite(v):
+            return False
+    return True
+
+
 class SensorState:
     """Latest odometry pose, gravity and satellite fix, with their times (fixed size)."""
 
@@ -108,18 +124,26 @@ class SensorState:
         self.gravity_t = -math.inf
         self.fix = None  # (x, y, acc, t)
         self.counters = {"imu_bad_rows": 0, "odometry_bad_rows": 0, "gnss_bad_rows": 0}
+        self.bad_now = [0, 0, 0]  # bad rows in the last frame: imu, odometry, gnss
 
     def take(self, fr, p) -> tuple:
-        """Digest one frame's sensor rows; returns (odometry increment or None, gravity or None, fix or None)."""
+        """Digest one frame's sensor rows; returns (odometry increment or None, gravity or None, fix or None).
+
+        Rows with a NaN or infinite value (and IMU rows above 1000 m/s^2, GNSS rows off the globe)
+        are skipped and counted, in ``counters`` and, for this frame, in ``bad_now``.
+        """
         t = float(fr.t)
-        odo = np.asarray(fr.odometry, dtype=np.float64).reshape(-1, 4) if fr.odometry is not None else None
-        if odo is not None and len(odo):
-            good = np.isfinite(odo).all(axis=1)
-            self.counters["odometry_bad_rows"] += int((~good).sum())
-            if good.any():
-                r = odo[np.flatnonzero(good)[-1]]
-                self.odo_last = (float(r[1]), float(r[2]), float(r[3]))
-                self.odo_t = float(r[0])
+        bad = self.bad_now
+        bad[0] = bad[1] = bad[2] = 0
+        last = None
+        for r in _rows(fr.odometry, 4):
+            if _finite(r):
+                last = r
+            else:
+                bad[1] += 1
+        if last is not None:
+            self.odo_last = (last[1], last[2], last[3])
+            self.odo_t = last[0]
         inc = None
         if self.odo_last is not None and t - self.odo_t <= p.odometry_timeout_s:
             if self.odo_prev is None:
@@ -130,23 +154,44 @@ class SensorState:
         elif self.odo_last is not None:
             # stale odometry: the motion since the previous frame is unknown
             self.odo_prev = None
-        imu = np.asarray(fr.imu, dtype=np.float64).reshape(-1, 4) if fr.imu is not None else None
-        if imu is not None and len(imu):
-            good = np.isfinite(imu).all(axis=1) & (np.abs(imu[:, 1:]).max(axis=1) < 1e3)
-            self.counters["imu_bad_rows"] += int((~good).sum())
-            if good.any():
-                self.gravity[:] = imu[good, 1:4].mean(axis=0)
-                self.gravity_t = float(imu[good, 0][-1])
+        n = 0
+        sx = sy = sz = 0.0
+        tg = None
+        for r in _rows(fr.imu, 4):
+            if _finite(r) and abs(r[1]) < 1e3 and abs(r[2]) < 1e3 and abs(r[3]) < 1e3:
+                sx += r[1]
+                sy += r[2]
+                sz += r[3]
+                n += 1
+                tg = r[0]
+            else:
+                bad[0] += 1
+        if n:
+            g = self.gravity
+            g[0], g[1], g[2] = sx / n, sy / n, sz / n
+            self.gravity_t = tg
         grav = self.gravity if (t - self.gravity_t) <= p.imu_timeout_s else None
-        gn = np.asarray(fr.gnss, dtype=np.float64).reshape(-1, 5) if fr.gnss is not None else None
-        if gn is not None and len(gn) and self.frame is not None:
-            good = np.isfinite(gn[:, :3]).all(axis=1) & (np.abs(gn[:, 1]) <= 90) & (np.abs(gn[:, 2]) <= 180)
-            self.counters["gnss_bad_rows"] += int((~good).sum())
-            if good.any():
-                r = gn[np.flatnonzero(good)[-1]]
-                x, y = self.frame.to_enu_xy(float(r[1]), float(r[2]))
-                self.fix = (float(x), float(y), float(r[4]), float(r[0]))
+        if self.frame is not None:
+            last = None
+            for r in _rows(fr.gnss, 5):
+                if _finite(r[:3]) and abs(r[1]) <= 90.0 and abs(r[2]) <= 180.0:
+                    last = r
+                else:
+                    bad[2] += 1
+            if last is not None:
+                x, y = self.frame.to_enu_xy(last[1], last[2])
+                self.fix = (float(x), float(y), float(last[4]), float(last[0]))
+        c = self.counters
+        c["imu_bad_rows"] += bad[0]
+        c["odometry_bad_rows"] += bad[1]
+        c["gnss_bad_rows"] += bad[2]
         return inc, grav, self.fix
+
+    def notes(self, out: list) -> None:
+        """Say in the pose status which sensor rows of this frame were skipped."""
+        for n, what in zip(self.bad_now, ("IMU", "odometry", "GNSS")):
+            if n:
+                out.append(f"{n} bad {what} row(s) skipped")
 
 
 class Localizer:
@@ -185,7 +230,9 @@ class Localizer:
         self.health_counters = {"frames": 0, "unusable_frames": 0, "global_searches": 0, "overruns": 0,
                                 "map_damaged_tiles": 0}
         self.last_pose: PoseEstimate | None = None
-        self.stage_ms = [0.0, 0.0, 0.0]  # last frame: perceive, match (+ predict), filter update + estimate
+        self._vis_mask = None
+        # last frame (ms): perceive, match (+ predict), filter update + estimate, sensor rows, pose output
+        self.stage_ms = [0.0, 0.0, 0.0, 0.0, 0.0]
         if self.cfg.loop.warmup:
             self.warmup()
 
@@ -227,6 +274,7 @@ class Localizer:
         notes = []
         try:
             inc, grav, fix = self.sensors.take(frame, p.loop)
+            self.sensors.notes(notes)
         except Exception as e:  # malformed sensor rows: carry on without them
             inc, grav, fix = None, None, self.sensors.fix
             notes.append(f"sensor rows unreadable: {type(e).__name__}")
@@ -244,7 +292,7 @@ class Localizer:
                 notes.append(f"perception failed: {type(e).__name__}: {e}"[:120])
             if bev is not None:
                 st = getattr(bev, "status", "ok")
-                nvis = int(np.count_nonzero(bev.visible > 0.5)) if st == "ok" else 0
+                nvis = self._visible_cells(bev.visible) if st == "ok" else 0
                 if st != "ok":
                     notes.append(st)
                     bev = None
@@ -261,7 +309,7 @@ class Localizer:
         t4 = time.perf_counter()
         ms = (t4 - t0) * 1e3
         st = self.stage_ms
-        st[0], st[1], st[2] = (t2 - t1) * 1e3, (t3 - t2) * 1e3, (t4 - t3) * 1e3
+        st[0], st[1], st[2], st[3] = (t2 - t1) * 1e3, (t3 - t2) * 1e3, (t4 - t3) * 1e3, (t1 - t0) * 1e3
         status = out.status
         if notes and vol is not None:
             status = "; ".join(notes + ([status] if status != "ok" else []))
@@ -274,7 +322,16 @@ class Localizer:
             lat = lon = math.nan
         pose = PoseEstimate(t, out.x, out.y, out.yaw, lat, lon, out.cov, out.quality, out.modes, ms, status)
         self.last_pose = pose
+        st[4] = (time.perf_counter() - t4) * 1e3
         return pose
+
+    def _visible_cells(self, visible) -> int:
+        """Cells seen with visibility > 0.5 (into a mask kept between frames: no per-frame array)."""
+        m = self._vis_mask
+        if m is None or m.shape != visible.shape:
+            m = self._vis_mask = np.empty(visible.shape, bool)
+        np.greater(visible, 0.5, out=m)
+        return int(np.count_nonzero(m))
 
     def _match(self, bev, notes):
         """Correlate the bird's-eye grid: a global search first when the tracker asks, then the tracking box."""
