@@ -19,8 +19,7 @@ import time
 
 import numpy as np
 
-from ..errors import InputError
-from ..frames import relative2, wrap_angle
+from ..frames import relative2
 from ..track.gridfilter import LikelihoodVolume, MapGeometry, Tracker
 from .config import LoopConfig
 
