@@ -166,6 +166,7 @@ def main(argv=None) -> int:
     ap.add_argument("--without-scipy", action="store_true",
                     help="hide SciPy from numba, as on a robot install (see the notes)")
     ap.add_argument("--json", action="store_true", help="one JSON object on stdout instead of a table")
+    ap.add_argument("--quiet", action="store_true", help="no progress line on stderr")
     ap.add_argument("--no-prefill", action="store_true",
                     help="do not fill numba's kernel cache in a separate process first")
     a = ap.parse_args(argv)
@@ -219,7 +220,7 @@ def main(argv=None) -> int:
         if k % a.sample_every == 0 or k == a.frames - 1:
             samples[state["ns"]] = (k, rss_mb())
             state["ns"] += 1
-            if not a.json:
+            if not a.quiet:
                 el = time.perf_counter() - state["t0"]
                 print(f"\rframe {k + 1}/{a.frames}  rss {samples[state['ns'] - 1, 1]:.1f} MB  {p.quality:<9} "
                       f"{el / (k + 1) * 1e3:.0f} ms/frame", end="", file=sys.stderr, flush=True)
@@ -231,7 +232,7 @@ def main(argv=None) -> int:
         summary = runner.run()
         log_bytes = os.path.getsize(f"{d}/soak.tlog")
     wall = time.perf_counter() - state["t0"]
-    if not a.json:
+    if not a.quiet:
         print("", file=sys.stderr)
     s = samples[:state["ns"]]
     after = s[s[:, 0] >= a.warmup]
