@@ -82,6 +82,45 @@ def test_default_size_matches_direct_sum_at_sampled_poses(rng):
     assert worst <= 1e-4 * peak, (worst, peak)
 
 
+def test_reduced_forms_and_pose_scores_match_the_references(rng):
+    """Without a volume buffer the reduced forms are read out per quarter turn in the inverse buffers' own
+    orientation: they must equal the volume's own maxima. The direct sums of the refinement (only A/4 base
+    grids, turned by exact quarter turns) must equal the plain-loop reference at cells in every quarter,
+    including cells whose view runs off the window."""
+    from tinyloc.correlate.peaks import Mode
+    model = ScoringModel.default()
+    corr = Correlator(CorrelatorParams(), model)
+    win = rng.uniform(size=(NUM_MAP_CLASSES, 256, 256)).astype(np.float32)
+    corr.set_map(win)
+    bev = random_bev(rng)
+    vol = np.zeros((256, 256, 256), np.float32)
+    corr.search(bev, volume=vol)
+    res = corr.search(bev)
+    assert np.array_equal(res.best, vol.max(axis=0))
+    ii, jj = np.mgrid[0:256, 0:256]
+    # The heading given attains the maximum (equal float32 values at two headings may be listed either way).
+    assert np.array_equal(vol[res.best_heading.astype(np.int64), ii, jj], res.best)
+    assert np.array_equal(res.heading_max, vol.reshape(256, -1).max(axis=1))
+    assert np.array_equal(vol.reshape(256, -1)[np.arange(256), res.heading_argmax], res.heading_max)
+    feat = bev_features(model, bev)
+    G = model.map_features(win).astype(np.float64)
+    P = template_reach((64, 64), 32.0, 0.0)
+    peak = float(np.max(np.abs(vol)))
+    heads = [0, 5, 63, 64, 100, 128, 170, 192, 230, 255]
+    cells = [(0, 0), (255, 255), (128, 5), (3, 250), (140, 120)]
+    sc = corr._scorer
+    sc.new_frame(corr._feat)
+    modes = [Mode(i, j, a, 0.0, (a, i, j)) for a in heads for i, j in cells]
+    got = sc.climb(corr._G_hwf8, modes, 1.0 / model.temperature, max_steps=0)
+    worst = 0.0
+    for m, g in zip(modes, got):
+        a, i, j = m.cell
+        assert g.cell == m.cell
+        ref = direct_score(rotate_template(feat, 2 * math.pi * a / 256, 32.0, 0.0, P), G, i, j) / model.temperature
+        worst = max(worst, abs(ref - g.cell_loglik))
+    assert worst <= 1e-4 * peak, (worst, peak)
+
+
 def opencv_heading(feat, G, yaw, origin_row, origin_col, P):
     """Independent reference: rotate each channel with getRotationMatrix2D + warpAffine, matchTemplate, sum."""
     F = feat.shape[0]

@@ -208,6 +208,24 @@ def test_coarse_loglik_is_on_the_full_resolution_scale(corr, site):
     assert 0.7 <= coarse_max / fine_max <= 1.1  # block means lose a little contrast: under-, never over-confident
 
 
+def test_fast_search_reduced_forms_speak_their_heading_units(corr, site):
+    """best_heading is in steps of heading_scale full headings, heading_max has A / heading_max_scale entries:
+    the per-cell heading at the best mode's coarse cell points at that mode's heading."""
+    win = np.ascontiguousarray(site[:, 10:266, 30:286])
+    corr.set_map(win)
+    bev = synth.cut_bev(win, 120.5, 140.5, -2.3, np.random.default_rng(12), noise=0.05)
+    res = corr.search_fast(bev)
+    p = corr.params
+    assert res.scale == 2 and res.heading_scale == 2 and res.heading_max_scale == p.coarse_heading_step
+    assert res.heading_max.shape == (p.n_headings // p.coarse_heading_step,)
+    m = res.modes[0]
+    i, j = m.cell[1] // 2, m.cell[2] // 2
+    a_full = int(res.best_heading[i, j]) * res.heading_scale
+    assert circ(a_full, m.cell[0]) <= p.coarse_heading_step + 2, (a_full, m.cell)
+    t = int(np.argmax(res.heading_max))
+    assert circ(t * res.heading_max_scale, m.cell[0]) <= p.coarse_heading_step + 2
+
+
 def test_temperature_fit_recovers_a_known_temperature():
     """Temperature scaling (maximum likelihood of the true class under softmax(logits / T), common practice):
     truths drawn from softmax(v / T0) must give back about T0."""

@@ -245,7 +245,8 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
     """Planted-pose trials with noise and map errors: does the coarse-to-fine best equal the exact best?
 
     Strict agreement: the fast search's best mode is within 1 cell (each axis) and 1 heading
-    step of the exact search's best. Tie-tolerant agreement also accepts a fast best whose
+    step of the exact search's best. ``agreement_failures`` lists (trial, score gap in nats,
+    visible cells of the grid, exact best log-likelihood) of each miss. Tie-tolerant agreement also accepts a fast best whose
     exact score is within ``tie_nats`` of the exact maximum (two distinct poses that score the
     same, e.g. along a uniform street, are both "the best"). Also reports how often each
     search's best is within 1 m and 3 deg of the planted pose.
@@ -259,6 +260,7 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
     A = p.n_headings
     from ..classes import BUILDING, TREE
     strict = tol = ex_near = fa_near = n_inf = inf_near = 0
+    n_seen = strict_seen = 0
     gaps, failures = [], []
     maps = {}
     t0 = time.perf_counter()
@@ -284,8 +286,13 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
         gaps.append(gap)
         strict += ok
         tol += ok or gap <= tie_nats
+        # A frame whose grid saw nothing (robot against a wall: every cell shadowed) scores 0 at every
+        # pose; agreement there is only a matter of tie order, so it is also reported without them.
+        seen = float(bev.visible.sum()) > 0.0
+        n_seen += seen
+        strict_seen += ok and seen
         if not ok:
-            failures.append((t, round(float(gap), 4)))
+            failures.append((t, round(float(gap), 4), int(bev.visible.sum()), round(float(exm.cell_loglik), 3)))
         # "Informative": a building corner or a tree in view (at least 4 cells of such evidence).
         informative = float(bev.evidence[BUILDING].sum() + bev.evidence[TREE].sum()) >= 4.0
         n_inf += informative
@@ -304,6 +311,8 @@ def agreement(trials: int, *, seed: int = 11, corr=None, progress=True, tie_nats
     g = np.array(gaps)
     return {"agreement_trials": trials, "agreement_rate": strict / trials, "agreement_rate_tie_tolerant": tol / trials,
             "agreement_tie_nats": tie_nats, "agreement_worst_gap_nats": float(g.max()),
+            "agreement_frames_with_visible_cells": n_seen, "agreement_rate_frames_with_visible_cells":
+                strict_seen / max(1, n_seen),
             "agreement_failures": failures,
             "exact_within_1m_3deg_rate": ex_near / trials, "fast_within_1m_3deg_rate": fa_near / trials,
             "informative_frames": n_inf, "fast_within_1m_3deg_rate_informative": inf_near / max(1, n_inf)}

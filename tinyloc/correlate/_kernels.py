@@ -531,8 +531,10 @@ def climb_poses(starts, max_steps, rh, A, fr, uv_pool, vals_pool, count, bnd, va
                 out_nb):
     """Hill-climb exact scores from each start (a, i, j) to a local maximum.
 
-    A step moves to the best pose of the neighbourhood (headings a - rh .. a + rh) x
-    (3 x 3 cells) if it beats the centre; at most ``max_steps`` steps (0: no move).
+    A step moves to the best pose of the neighbourhood (headings a - 1 .. a + 1) x (3 x 3
+    cells) if it beats the centre; when none does, the headings a - rh .. a + rh are looked
+    at too (the exact score has ripples of a heading step or so in heading: bilinear sampling
+    of a turned grid). At most ``max_steps`` steps (0: no move).
     ``out_cell[m]`` = final (a, i, j); ``out_nb[m]`` = untempered scores at the final cell:
     centre, row -1, row +1, col -1, col +1, heading -1, heading +1 (for sub-step parabolas).
     ``cache`` (2 RH + 1, 2 R + 1, 2 R + 1) float64 is scratch, reset per start.
@@ -549,15 +551,22 @@ def climb_poses(starts, max_steps, rh, A, fr, uv_pool, vals_pool, count, bnd, va
         cur = _cached_score(a, i, j, a_c, i_c, j_c, cache, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8)
         for _step in range(max_steps):
             ba, bi, bj, bv = a, i, j, cur
-            for t in range(-rh, rh + 1):
-                for di in range(-1, 2):
-                    for dj in range(-1, 2):
-                        if t == 0 and di == 0 and dj == 0:
-                            continue
-                        v = _cached_score((a + t + A) % A, i + di, j + dj, a_c, i_c, j_c, cache, A, fr, uv_pool,
-                                          vals_pool, count, bnd, valid, G, acc8)
-                        if v > bv:
-                            ba, bi, bj, bv = (a + t + A) % A, i + di, j + dj, v
+            # The 3 x 3 x 3 neighbourhood first; the wider headings only once that is a local maximum.
+            for wide in range(2):
+                t_lo, t_hi = (-1, 1) if wide == 0 else (-rh, rh)
+                for t in range(t_lo, t_hi + 1):
+                    if wide == 1 and abs(t) <= 1:
+                        continue
+                    for di in range(-1, 2):
+                        for dj in range(-1, 2):
+                            if t == 0 and di == 0 and dj == 0:
+                                continue
+                            v = _cached_score((a + t + A) % A, i + di, j + dj, a_c, i_c, j_c, cache, A, fr,
+                                              uv_pool, vals_pool, count, bnd, valid, G, acc8)
+                            if v > bv:
+                                ba, bi, bj, bv = (a + t + A) % A, i + di, j + dj, v
+                if bv > cur or rh <= 1:
+                    break
             if bv <= cur:
                 break
             a, i, j, cur = ba, bi, bj, bv

@@ -93,12 +93,12 @@ class CorrelatorParams:
     mode_radius_headings: int = 8
     coarse_top_k: int = 32
     coarse_climb: int = 16
-    coarse_heading_step: int = 2
+    coarse_heading_step: int = 4
     track_radius_cells: int = 20
     track_half_headings: int = 15
     track_refine: int = 2
     threads: int = 1
-    climb_heading_radius: int = 1
+    climb_heading_radius: int = 2
 
     def __post_init__(self):
         A = self.n_headings
@@ -136,10 +136,10 @@ class SearchResult:
     best : ndarray (H, W) float32
         Max over heading of the log-likelihood at each window cell (a reduced form of the volume).
     best_heading : ndarray (H, W) int16
-        Heading index of that max.
-    heading_max : ndarray (A,) float32
-        Max over cells of the log-likelihood of each heading (another reduced form).
-    heading_argmax : ndarray (A,) int32
+        Heading index of that max, in steps of ``heading_scale`` full headings.
+    heading_max : ndarray (A / heading_max_scale,) float32
+        Max over cells of the log-likelihood of each heading searched (another reduced form).
+    heading_argmax : ndarray (A / heading_max_scale,) int32
         Flat window cell index (i * W + j) of that max.
     modes : list of Mode
         Top modes, best first, refined to sub-cell and sub-heading precision (exact scores).
@@ -149,8 +149,12 @@ class SearchResult:
         1 for the full-resolution forms; 2 when ``best`` etc. come from the coarse
         level (fast search): coarse cell (i, j) covers full cells (2i..2i+1, 2j..2j+1).
     heading_scale : int
-        Full heading steps per heading index of the reduced forms (coarse heading a is
-        full heading ``heading_scale * a``).
+        Full heading steps per unit of ``best_heading`` (``best_heading`` a is full heading
+        ``heading_scale * a``): 1 for ``search``, 2 for ``search_fast``.
+    heading_max_scale : int
+        Full heading steps per entry of ``heading_max`` / ``heading_argmax`` (entry t is full
+        heading ``heading_max_scale * t``): 1 for ``search``, ``coarse_heading_step`` for
+        ``search_fast``.
     ok : bool
     status : str
     """
@@ -163,6 +167,7 @@ class SearchResult:
     volume: np.ndarray | None = None
     scale: int = 1
     heading_scale: int = 1
+    heading_max_scale: int = 1
     ok: bool = True
     status: str = "ok"
 
@@ -494,6 +499,7 @@ class Correlator:
         self._feat_c = np.zeros((F, h // 2, w // 2), np.float32)
         self._G = np.zeros((F, H, W), np.float32)
         self._Gc = np.zeros((F, H // 2, W // 2), np.float32)
+        self._best_heading_c = np.zeros((H // 2, W // 2), np.int16)  # fast search's per-cell heading, 2-step units
         self._scratch = np.zeros((H, W), np.float32)
         self._inv_temp = 1.0 / self.model.temperature
         self._fine = self._coarse = self._track = self._track_c = None  # allocated at first use (or warm_up)
@@ -551,7 +557,8 @@ class Correlator:
 
     def workspace_report(self) -> dict:
         """Bytes per part of the workspace: shared buffers, and each engine allocated so far."""
-        shared = sum(a.nbytes for a in (self._feat, self._feat_c, self._G, self._G_hwf8, self._Gc, self._scratch))
+        shared = sum(a.nbytes for a in (self._feat, self._feat_c, self._G, self._G_hwf8, self._Gc, self._scratch,
+                                         self._best_heading_c))
         shared += self._pw_fine.nbytes + self._pw_coarse.nbytes + self._pw_track.nbytes + self._pw_track_c.nbytes
         shared += self._scorer.nbytes
         out = {"shared": shared}
@@ -648,32 +655,39 @@ class Correlator:
     def search_fast(self, bev) -> SearchResult:
         """Coarse-to-fine full search.
 
-        The exact search runs at half resolution (1 m cells, A/2 headings); its
-        ``coarse_top_k`` best non-suppressed hypotheses are then climbed to their
-        local best at full resolution with exact scores, and refined below a cell
-        and a heading step. Reduced forms are those of the coarse level (``scale = 2``).
+        The exact search runs at half resolution (1 m cells, A / ``coarse_heading_step``
+        headings); its ``coarse_top_k`` best non-suppressed hypotheses are scored exactly at
+        full resolution under them (4 cells x the full headings around theirs), and the best
+        ``coarse_climb`` of those climb the exact score to a local maximum and are refined
+        below a cell and a heading step. Reduced forms are those of the coarse level
+        (``scale = 2``; ``best_heading`` in steps of 2 full headings).
         """
         p, e = self.params, self._coarse_engine()
+        hs = p.coarse_heading_step
+        mult = max(1, hs // 2)  # coarse heading index -> steps of 2 full headings (1 when hs <= 2)
+        out_hs = hs // mult
+        best_heading = e.best_a if mult == 1 else self._best_heading_c
         status = self._prepare(bev)
         if status != "ok":
-            return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, scale=2,
-                                heading_scale=p.coarse_heading_step, ok=False, status=status)
+            return SearchResult(e.best, best_heading, e.head_max, e.head_arg, scale=2, heading_scale=out_hs,
+                                heading_max_scale=hs, ok=False, status=status)
         K.downsample2(self._feat, self._feat_c)
         # x4: a 2x2 block-mean score sums 4x fewer cells; this puts it on the full-resolution scale.
         e.run(self._feat_c, 4.0 * self._inv_temp, None)
+        if mult != 1:
+            np.multiply(e.best_a, mult, out=best_heading)
         cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, p.coarse_top_k, max(1, p.mode_radius_cells // 2),
-                           max(1, p.mode_radius_headings // p.coarse_heading_step),
-                           p.n_headings // p.coarse_heading_step)
+                           max(1, p.mode_radius_headings // hs), p.n_headings // hs)
         sc = self._scorer
         sc.new_frame(self._feat)
-        starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=p.coarse_heading_step,
-                               heading_reach=max(1, p.coarse_heading_step // 2))
+        starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=hs,
+                               heading_reach=max(1, hs // 2))
         starts.sort(key=lambda m: -m.cell_loglik)
         fine = sc.climb(self._G_hwf8, starts[:p.coarse_climb], self._inv_temp, max_steps=16,
                         heading_radius=p.climb_heading_radius)
         modes = _distinct(fine, p, p.n_modes)
-        return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, scale=2,
-                            heading_scale=p.coarse_heading_step)
+        return SearchResult(e.best, best_heading, e.head_max, e.head_arg, modes=modes, scale=2,
+                            heading_scale=out_hs, heading_max_scale=hs)
 
     def track(self, bev, row: float, col: float, heading_index: int, *, exact: bool = False) -> TrackResult:
         """Tracking update around a prior: +-track_radius_cells and +-track_half_headings.
