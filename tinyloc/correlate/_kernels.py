@@ -37,18 +37,51 @@ def downsample2(src, out):
 
 
 @njit(**JIT)
+def _row_span(rr0, cc0, sin_t, cos_t, h, w, nv):
+    """Canvas columns v0..v1 of one canvas row whose sample may fall inside the grid (a line
+    through a rectangle: rr = rr0 + sin_t v, cc = cc0 + cos_t v, inside for -1 < rr < h,
+    -1 < cc < w), widened by one column each side; the exact test stays per sample."""
+    vlo = 0.0
+    vhi = nv - 1.0
+    for k in range(2):
+        a0 = rr0 if k == 0 else cc0
+        sl = sin_t if k == 0 else cos_t
+        top = h if k == 0 else w
+        if abs(sl) < 1e-12:
+            if a0 <= -1.0 or a0 >= top:
+                vhi = -1.0
+        else:
+            t1 = (-1.0 - a0) / sl
+            t2 = (top - a0) / sl
+            vlo = max(vlo, min(t1, t2))
+            vhi = min(vhi, max(t1, t2))
+    if vhi < vlo:
+        return 0, -1
+    return max(0, int(math.floor(vlo)) - 1), min(nv - 1, int(math.ceil(vhi)) + 1)
+
+
+@njit(**JIT)
 def rotate_into(feat, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, out):
     """Rotate bird's-eye features by +yaw about the robot origin into a map-oriented canvas.
 
     ``out[f, u, v]`` is the bilinear sample of ``feat[f]`` at the body point whose
     map offset from the robot cell is (du, dv) = (u + lo_u, v + lo_v) cells
-    (du along map rows, i.e. south; dv along map columns, i.e. east).
+    (du along map rows, i.e. south; dv along map columns, i.e. east). Each canvas row
+    samples only the columns whose body point can fall inside the grid (the rest is 0).
     """
     F, h, w = feat.shape
     SU, SV = out.shape[1], out.shape[2]
     for u in range(SU):
         dy = -(u + lo_u) * 1.0  # north offset (cells)
-        for v in range(SV):
+        rr0 = origin_row - (-sin_t * (lo_v * 1.0) + cos_t * dy) - 0.5
+        cc0 = origin_col + (cos_t * (lo_v * 1.0) + sin_t * dy) - 0.5
+        v0, v1 = _row_span(rr0, cc0, sin_t, cos_t, h, w, SV)
+        for f in range(F):
+            for v in range(0, min(v0, SV)):
+                out[f, u, v] = 0.0
+            for v in range(max(v1 + 1, 0), SV):
+                out[f, u, v] = 0.0
+        for v in range(v0, v1 + 1):
             dx = (v + lo_v) * 1.0  # east offset (cells)
             xf = cos_t * dx + sin_t * dy
             yl = -sin_t * dx + cos_t * dy
@@ -331,22 +364,7 @@ def rotate_compact_rows(feat_hwf, colmin, colmax, cos_t, sin_t, origin_row, orig
         # rr(v) = rr0 + sin_t * v, cc(v) = cc0 + cos_t * v (v = canvas column)
         rr0 = origin_row - (-sin_t * (lo_v * 1.0) + cos_t * dy) - 0.5
         cc0 = origin_col + (cos_t * (lo_v * 1.0) + sin_t * dy) - 0.5
-        vlo = 0.0
-        vhi = nv - 1.0
-        for k in range(2):
-            a0 = rr0 if k == 0 else cc0
-            sl = sin_t if k == 0 else cos_t
-            top = h if k == 0 else w
-            if abs(sl) < 1e-12:
-                if a0 <= -1.0 or a0 >= top:
-                    vhi = -1.0
-            else:
-                t1 = (-1.0 - a0) / sl
-                t2 = (top - a0) / sl
-                vlo = max(vlo, min(t1, t2))
-                vhi = min(vhi, max(t1, t2))
-        v0 = max(0, int(math.floor(vlo)) - 1)
-        v1 = min(nv - 1, int(math.ceil(vhi)) + 1)
+        v0, v1 = _row_span(rr0, cc0, sin_t, cos_t, h, w, nv)
         for v in range(v0, v1 + 1):
             dx = (v + lo_v) * 1.0
             xf = cos_t * dx + sin_t * dy
@@ -686,3 +704,4 @@ def merge_native(nat, nat_a, head_arg, q, first, step, best, best_a):
             else:
                 i, j = m, W - 1 - l
             head_arg[a] = i * W + j
+
