@@ -374,3 +374,30 @@ def test_steady_state_with_the_real_perception_allocates_nothing_that_stays(site
     assert perc.status[-1] == "ok"
     assert cur - base < 64 * 1024, cur - base
     assert peak - base < 512 * 1024, peak - base
+
+
+def test_map_tile_cache_is_bounded_by_the_loop_config(site, tmp_path):
+    """The loop opens the map with its own small tile cache (loop.map_cache_mb), and a drive that moves the
+    map window across the site never holds more decoded tiles than that."""
+    path, cov = site
+    budget_mb = 0.15  # 4 decoded tiles of this map (9 classes x 64 x 64 cells): less than one window needs
+    truth = _road_path(cov, 90, speed=1.0)
+    truth = [(x - 45.0, y, yaw) for x, y, yaw in truth]  # from x = -75 m to +14 m along the road
+    loc = Localizer.from_files(path, CAM, _cfg(f"loop.map_cache_mb={budget_mb}"), perceiver=Fixed0())
+    perc = MapCutPerceiver(loc.map, cov, truth)
+    loc.perceiver = perc
+    used = []
+    for k, (x, y, yaw) in enumerate(truth):
+        perc.i = k
+        lat, lon = loc.map.frame.to_latlon(x, y)
+        p = loc.step(Frame(k, 0.1 * k, np.zeros((4, 4, 3), np.uint8), "", np.array([[0.1 * k, 0, 0, 9.81]]),
+                           np.array([[0.1 * k, x - truth[0][0], 0.0, 0.0]]), np.array([[0.1 * k, lat, lon, 0.0, 1.5]])))
+        used.append(loc.map.cache_used_bytes)
+    assert loc.matcher.counters["window_moves"] >= 2
+    assert max(used) <= budget_mb * 2 ** 20
+    assert p.quality == "tracking" and _err(p, truth[-1])[0] < 1.0  # tiles evicted and read again: still right
+
+
+class Fixed0:
+    def perceive(self, image, gravity):  # replaced right after the loop is built
+        return None

@@ -76,6 +76,11 @@ class LoopParams:
     segment_preset : str
         tinyloc's segmenter parameter set (docs/perception.md): "sidewalk" for a robot driving on
         footways, "street" for one on the carriageway, "park" for paths through green ["sidewalk"].
+    map_cache_mb : float
+        Bound of the packed map's decoded-tile cache when the loop opens the map (MB). The loop
+        keeps its own map window and re-reads it only when it moves, so a few windows' worth of
+        tiles is enough; the map reader's general default (32 MB) would let resident memory
+        creep up by that much on a large site [4.0; 9 classes x 128 x 128 cells = 0.15 MB a tile].
     """
 
     realtime: bool = False
@@ -87,6 +92,7 @@ class LoopParams:
     warmup: bool = True
     external_labels: bool = False
     segment_preset: str = "sidewalk"
+    map_cache_mb: float = 4.0
 
     def __post_init__(self):
         from ..perception.segment import PRESETS
@@ -94,6 +100,8 @@ class LoopParams:
         if self.segment_preset not in PRESETS:
             raise InputError(f"loop.segment_preset: unknown preset {self.segment_preset!r}; "
                              f"known: {', '.join(PRESETS)}")
+        if not 0.0 <= self.map_cache_mb <= 4096.0:
+            raise InputError(f"loop.map_cache_mb = {self.map_cache_mb}: must be within 0 .. 4096 MB")
 
 
 @dataclass(frozen=True)

@@ -237,13 +237,15 @@ class Localizer:
 
     @classmethod
     def from_files(cls, map_path, camera, config: LoopConfig | None = None, **kw) -> "Localizer":
-        """Open the packed map (path) and the camera (path to camera.toml, or a CameraModel)."""
+        """Open the packed map (path; tile cache bounded by ``loop.map_cache_mb``) and the camera (path to
+        camera.toml, or a CameraModel)."""
         from ..camera.model import CameraModel, load_camera
         from ..maps.packfile import PackedMap
 
         cam = camera if isinstance(camera, CameraModel) else load_camera(camera)
-        pm = PackedMap.open(map_path)
-        return cls(pm, cam, config, **kw)
+        cfg = config or LoopConfig()
+        pm = PackedMap.open(map_path, cache_bytes=int(cfg.loop.map_cache_mb * 2 ** 20))
+        return cls(pm, cam, cfg, **kw)
 
     # ---- start-up -----------------------------------------------------------------------------
     def warmup(self) -> None:
