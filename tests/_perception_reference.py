@@ -11,7 +11,36 @@ import cv2
 import numpy as np
 
 from tinyloc.classes import BUILDING, GRASS, NUM_CLASSES, ROAD, SIDEWALK, SKY, TREE
+from tinyloc.perception.crown_model import load_crown_model
 from tinyloc.perception.features import box_mean, exg_minus_exr, gradient_energy, hsv_saturation_value
+
+
+def crown_features_reference(bgr, g01, s, v, exgr, u, sky):
+    """The crown model's feature planes (crown_model.FEATURES order) from their formulas, with OpenCV's
+    Laplacian (ksize=1, replicated border) and area resize as the independent pieces; ``bgr`` is the
+    full frame (the fine-texture raster is made from it at twice the segmentation size)."""
+    h, w = g01.shape
+    dx = np.zeros_like(g01)
+    dy = np.zeros_like(g01)
+    dx[:, 1:-1] = (g01[:, 2:] - g01[:, :-2]) * 0.5
+    dy[1:-1] = (g01[2:] - g01[:-2]) * 0.5
+    jxx, jyy, jxy, ajxy = (box_mean(a, 9) for a in (dx * dx, dy * dy, dx * dy, np.abs(dx * dy)))
+    tr = jxx + jyy + 1e-6
+    coh = np.sqrt((jxx - jyy) ** 2 + 4 * jxy ** 2) / tr
+    axis = ajxy / tr
+    vert = jxx / tr
+    en = np.sqrt(tr)
+    var9 = np.maximum(box_mean(g01 * g01, 9) - box_mean(g01, 9) ** 2, 0.0)
+    big = cv2.resize(bgr, (2 * w, 2 * h), interpolation=cv2.INTER_AREA).astype(np.float64).sum(axis=2) / 765.0
+    lap = np.abs(cv2.Laplacian(big, cv2.CV_64F, ksize=1, borderType=cv2.BORDER_REPLICATE))
+    fine = box_mean(lap.reshape(h, 2, w, 2).mean(axis=(1, 3)), 5)
+    coarse = box_mean(np.abs(cv2.Laplacian(g01, cv2.CV_64F, ksize=1, borderType=cv2.BORDER_REPLICATE)), 5)
+    fr = fine / (fine + coarse + 1e-3)
+    planes = [v, s, exgr, u, var9, coh, axis, fr, box_mean(exgr, 9), box_mean(s, 9), box_mean(v, 15), box_mean(s, 15),
+              box_mean(s, 31), box_mean(coh, 15), box_mean(coh, 31), box_mean(axis, 15), box_mean(vert, 15),
+              box_mean(fine, 15), box_mean(fr, 15), box_mean(fr, 31), np.log(en + 0.01), box_mean(en, 15),
+              box_mean(1.0 - sky, 9)]
+    return np.stack(planes)
 
 
 def _sig(x):
@@ -51,15 +80,29 @@ def segment_reference(bgr, p, hrow=None):
     smooth = _sig((p.smooth_tex - tex) / p.smooth_w)
     dist = np.abs(lab[..., 0] - ref[0]) * p.ref_l_weight + np.abs(lab[..., 1] - ref[1]) + np.abs(lab[..., 2] - ref[2])
     on = _sig((p.ref_dist - dist) / p.ref_w)
-    crown = _sig((brightmix - p.crown_bright) / 0.05) * _sig((var - p.crown_var) / p.crown_var_w)
+    model = load_crown_model(p.crown_model)
+    if model is None:
+        crown = _sig((brightmix - p.crown_bright) / 0.05) * _sig((var - p.crown_var) / p.crown_var_w)
+    else:
+        tf = crown_features_reference(bgr, g01, s, v, exgr, u, sky)
+        pt = np.maximum(_sig(model.score(np.moveaxis(tf, 0, -1))), green)
+        m = (~sky) & (u > p.crown_u_min)
+        pt = np.where(m, pt, 0.0)
+        num, den = box_mean(pt, p.crown_smooth), box_mean(m.astype(float), p.crown_smooth)
+        crown = np.where(den > 1e-6, num / np.where(den > 1e-6, den, 1.0), 0.0)
     here = below * (1 - green) * (p.here_weight * on * (0.5 + 0.5 * smooth) + p.ground_floor)
     other = below * (1 - green) * (1 - on) * smooth * p.other_weight
     sc = np.zeros((NUM_CLASSES, h, w))
     sc[ROAD], sc[SIDEWALK] = (here, other) if p.robot_on == "road" else (other, here)
     sc[SKY] = np.where(sky, 2.0, 0.0)
     sc[GRASS] = below * green * p.grass_weight
-    sc[BUILDING] = (1 - below) * (1 - green) * p.building_weight * (1 - crown)
-    sc[TREE] = green * p.tree_weight * (1 - below * p.tree_low) + (1 - below) * crown * p.crown_weight
+    if model is None:
+        sc[BUILDING] = (1 - below) * (1 - green) * p.building_weight * (1 - crown)
+        sc[TREE] = green * p.tree_weight * (1 - below * p.tree_low) + (1 - below) * crown * p.crown_weight
+    else:  # tree above the horizon where crown > crown_threshold
+        odds = p.crown_threshold / (1 - p.crown_threshold)
+        sc[BUILDING] = (1 - below) * p.building_weight * (1 - crown)
+        sc[TREE] = (1 - below) * p.building_weight * crown / odds + below * green * p.tree_weight * (1 - p.tree_low)
     labels = sc.argmax(axis=0).astype(np.uint8)
     tot = sc.sum(axis=0)
     probs = np.where(tot > 0, sc / np.where(tot > 0, tot, 1.0), 0.0)
@@ -86,6 +129,13 @@ def segment_reference(bgr, p, hrow=None):
             labels[i, j] = BUILDING
             probs[:, i, j] = 0.0
             probs[BUILDING, i, j] = 1.0
+    # sky seen through crowns: sky pixels whose window is mostly tree
+    if model is not None and p.crown_sky_share > 0:
+        share = box_mean((labels == TREE).astype(float), p.crown_sky_window)
+        gap = (labels == SKY) & (share > p.crown_sky_share)
+        probs[:, gap] = 0.0
+        probs[TREE, gap] = 1.0
+        labels[gap] = TREE
     # poles (thin vertical lines crossing the horizon) and fences (building runs too low for a house)
     def runs(col_mask):
         i = h - 1

@@ -89,7 +89,7 @@ def test_external_labels(perc, tmp_path):
     lut = load_label_map(path)
     assert lut[0] == 9 and lut[1] == BUILDING and lut[3] == ROAD and lut[7] == 255 and lut[200] == 255
     lab = np.zeros((240, 320), np.uint8)
-    lab[80:130] = 1
+    lab[:130] = 1  # a facade 4.4 m away leaving the picture at the top (a band from row 80 would be a 0.9 m wall)
     lab[130:] = 3
     grid = perc.new_grid()
     assert perc.process_labels(lab, None, grid, lut) == "ok"

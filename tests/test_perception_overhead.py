@@ -136,33 +136,88 @@ def test_ground_gather_kernel_vs_reference(rng):
     assert np.array_equal(grid.visible, vis)
 
 
-def test_vertical_contact_range():
-    """A wall whose foot is at row 80 in every column lands where the ray through the row edge meets the ground."""
-    cam = _cam()
-    p = OverheadParams(building_depth_m=0.0)
-    proj = OverheadProjector(cam, p)
+def _wall_scene(cam, top, cols=None):
+    """Labels/probs of a road with a wall whose foot is at row 80 and whose top is at row ``top``."""
     h, w = cam.height, cam.width
     labels = np.full((h, w), ROAD, np.uint8)
-    labels[40:81] = BUILDING
+    sl = slice(None) if cols is None else cols
+    labels[top:81, sl] = BUILDING
     probs = np.zeros((NUM_CLASSES, h, w), np.float32)
     probs[BUILDING][labels == BUILDING] = 1.0
     probs[ROAD][labels == ROAD] = 1.0
+    return probs, labels
+
+
+def _expected_cells(proj, grid, cols, d_m):
+    """Cells hit by the foot points of ``cols`` moved ``d_m`` metres further along their horizontal ray."""
+    gp = proj.pixel_to_ground(np.stack([cols, np.full(len(cols), 80.5)], 1))
+    cam_xy = proj.camera.mount.base_from_camera()[1][:2]
+    u = gp - cam_xy
+    u /= np.linalg.norm(u, axis=1, keepdims=True)
+    gp = gp + d_m * u
+    rows, cc = grid.cell_of(gp[:, 0], gp[:, 1])
+    expect = np.zeros(grid.shape, bool)
+    for r, c in zip(np.floor(rows).astype(int), np.floor(cc).astype(int)):
+        if 0 <= r < grid.shape[0] and 0 <= c < grid.shape[1]:
+            expect[r, c] = True
+    return expect
+
+
+@pytest.mark.parametrize("start_m", [0.0, 0.25])
+def test_vertical_contact_range(start_m):
+    """A facade whose foot is at row 80 in every column lands where the ray through the row edge meets the
+    ground (moved ``building_start_m`` further along the ray)."""
+    cam = _cam()
+    p = OverheadParams(building_depth_m=0.0, building_start_m=start_m)
+    proj = OverheadProjector(cam, p)
+    w = cam.width
+    probs, labels = _wall_scene(cam, 0)  # leaves the picture at the top: tall enough
     grid = p.new_grid()
     hrow = proj.horizon(np.eye(3))
     feet = proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert feet == w  # every column finds the wall's foot within range
     # The foot: halfway between pixel centres 80 and 81 (one-hot probabilities cross 0.5 there).
-    gp = proj.pixel_to_ground(np.stack([np.arange(w), np.full(w, 80.5)], 1))
-    rows, cols = grid.cell_of(gp[:, 0], gp[:, 1])
-    expect = np.zeros((p.rows, p.cols), bool)
-    for r, c in zip(np.floor(rows).astype(int), np.floor(cols).astype(int)):
-        if 0 <= r < p.rows and 0 <= c < p.cols:
-            expect[r, c] = True
+    expect = _expected_cells(proj, grid, np.arange(w), start_m)
     got = grid.evidence[BUILDING] > 0
     assert np.array_equal(got, expect)
     assert np.all(grid.free[got] == 0) and np.all(grid.visible[got] == 1)
     # Nothing is seen behind the wall.
     assert grid.evidence[TREE].sum() == 0 and grid.evidence[SIDEWALK].sum() == 0
+
+
+def test_low_and_narrow_buildings():
+    """Size checks: a building run topping out below the camera (row 40 is under this camera's horizon,
+    row 38.2) is too low for a house and is not placed; a tall run 4 columns wide (about 0.2 m at the
+    foot's 6 m) is placed as a tree trunk; with both checks off the low wall is placed as building."""
+    cam = _cam()
+    p = OverheadParams(building_depth_m=0.0, building_start_m=0.0)
+    proj = OverheadProjector(cam, p)
+    hrow = proj.horizon(np.eye(3))
+    assert 38.0 < hrow[80] < 38.5
+    grid = p.new_grid()
+    probs, labels = _wall_scene(cam, 40)
+    assert proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False) == 0
+    assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[TREE].sum() == 0
+    p_off = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=0.0,
+                           min_building_width_m=0.0)
+    assert OverheadProjector(cam, p_off).project(probs, labels, np.eye(3), hrow, grid, tilted=False) == cam.width
+    assert grid.evidence[BUILDING].sum() > 0
+    # Height just at the limit: the top pixel's ray at the foot's range, computed here in NumPy.
+    gp = proj.pixel_to_ground([[80.0, 80.5]])[0]
+    t, d = cam.pixel_rays_base(np.array([[80.0, 10.0]]))
+    cam_xy = cam.mount.base_from_camera()[1]
+    top_h = cam_xy[2] + d[0, 2] * np.hypot(*(gp - cam_xy[:2])) / np.hypot(d[0, 0], d[0, 1])
+    probs, labels = _wall_scene(cam, 10)
+    for lim, placed in ((top_h - 0.05, True), (top_h + 0.05, False)):
+        pp = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=float(lim))
+        n = OverheadProjector(cam, pp).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+        assert (grid.evidence[BUILDING, :, :].sum() > 0) == placed, (lim, n)
+    # A narrow tall run: a trunk.
+    probs, labels = _wall_scene(cam, 0, cols=slice(78, 82))
+    assert proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False) == 4
+    assert grid.evidence[BUILDING].sum() == 0
+    assert np.array_equal(grid.evidence[TREE] > 0, _expected_cells(proj, grid, np.arange(78, 82), 0.0) |
+                          _expected_cells(proj, grid, np.arange(78, 82), p.object_depth_m))
 
 
 def test_horizon_kernel_vs_reference():

@@ -20,7 +20,9 @@ def _frames():
 
 
 CASES = {**{n: preset(n) for n in PRESETS},
-         "poles and fences on": SegmentParams(pole_contrast=0.05, pole_run=0.1, fence_top=0.08)}
+         "poles and fences on": SegmentParams(pole_contrast=0.05, pole_run=0.1, fence_top=0.08, crown_model=""),
+         "crown model on": SegmentParams(crown_model="default"),
+         "crown model off": SegmentParams(crown_model="")}
 
 
 @pytest.mark.parametrize("name", list(CASES))
@@ -40,6 +42,8 @@ def test_kernels_match_reference(name):
         seen |= set(np.unique(labels).tolist())
     if name == "poles and fences on":
         assert {5, 6} <= seen  # both optional rules fired on these frames, so they were compared
+    if name == "crown model on":
+        assert {0, 4} <= seen  # the crown model split building from tree on these frames
 
 
 def test_probabilities_are_valid():

@@ -3,7 +3,9 @@
 tinyloc's path (``perception_ms``): ``Perception.process`` on a BGR frame with a gravity vector, i.e.
 area resize to 160 x 120, colour conversion, features, scores, sky flood fill, horizon, per-frame
 cell lookup (the gravity tilts the base), ground gather and object-foot scatter into a 64 x 64 grid.
-Also timed apart: the segmentation alone (``segment_ms``) and the projection alone (``project_ms``).
+Also timed apart: the segmentation alone (``segment_ms``) and the projection alone (``project_ms``),
+and the whole path with the crown model off (``rule_crown_ms``: the bright-mix crown rule instead of
+the linear texture score, which costs the crown features' box means).
 
 Baseline, same run (``baseline_ms``): the classic inverse-perspective warp, a plain
 ``cv2.warpPerspective`` of the full-resolution frame onto the ground plane at 5 cm per pixel
@@ -32,6 +34,7 @@ DESCRIPTION = __doc__
 def add_arguments(p):
     p.add_argument("--repeat", type=int, default=50, help="timed repetitions (median; default 50)")
     p.add_argument("--width", type=int, default=160, help="segmentation width in pixels (default 160)")
+    p.add_argument("--preset", default="street", help="segmentation preset (default street)")
 
 
 def _median_cpu_ms(fn, repeat, warmup=3):
@@ -78,15 +81,21 @@ def run(args) -> dict:
     import cv2
 
     from ..perception.pipeline import Perception, PerceptionParams
-    from ..perception.segment import SegmentParams
+    import dataclasses
+
+    from ..perception.segment import preset
 
     cam = _camera()
-    perc = Perception(cam, PerceptionParams(segment=SegmentParams(width=int(args.width))))
+    sp = dataclasses.replace(preset(args.preset), width=int(args.width))
+    perc = Perception(cam, PerceptionParams(segment=sp))
+    perc_rule = Perception(cam, PerceptionParams(segment=dataclasses.replace(sp, crown_model="")))
     grid = perc.new_grid()
     frame, source = _frame(cam)
     g = (0.25, -0.1, 9.80)
     st = perc.process(frame, g, grid)
     t_all = median_ms(lambda: perc.process(frame, g, grid), repeat=args.repeat, warmup=3)
+    t_rule = median_ms(lambda: perc_rule.process(frame, g, grid), repeat=args.repeat, warmup=3)
+    perc.process(frame, g, grid)
     t_seg = median_ms(lambda: perc.segmenter.run(frame, perc.horizon), repeat=args.repeat, warmup=3)
     level = perc._level
     t_proj = median_ms(lambda: perc.projector.project(perc.probs, perc.labels, level, perc.horizon, grid),
@@ -106,6 +115,7 @@ def run(args) -> dict:
                               args.repeat)
     return {"frame": f"{cam.width}x{cam.height} ({source})", "segment_raster": "x".join(map(str, perc.segmenter.size)),
             "grid": f"{grid.shape[0]}x{grid.shape[1]} @ {grid.res_m} m", "status": st,
-            "perception_ms": t_all, "segment_ms": t_seg, "project_ms": t_proj, "baseline_ms": t_base,
+            "preset": args.preset, "crown_model": sp.crown_model or "off",
+            "perception_ms": t_all, "rule_crown_ms": t_rule, "segment_ms": t_seg, "project_ms": t_proj, "baseline_ms": t_base,
             "speedup": t_base / t_all if t_all > 0 else math.nan, "perception_cpu_ms": cpu_all,
             "baseline_cpu_ms": cpu_base, "goal_ms": 8.0}

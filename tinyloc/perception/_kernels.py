@@ -22,8 +22,8 @@ NF = 10
 (P_SKY_TEX, P_SKY_V, P_SKY_S, P_SKY_BLUE, P_SKY_V2, P_SKY_BELOW, P_GREEN0, P_GREEN_W, P_G_U0, P_G_W,
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
  P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND,
- P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP) = range(33)
-NP = 33
+ P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T) = range(35)
+NP = 35
 
 # Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
 BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
@@ -187,10 +187,13 @@ def sky_candidates(feat, tex, prm, bright, cand):
 
 
 @njit(**JIT)
-def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, labels):
+def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, crown_in, ref, prm, scores, labels):
     """Per-class scores, normalised to probabilities (sum 1 per pixel), and the arg-max label.
 
     feat (NF, h, w) f32; lab (h, w, 3) u8; tex, brightmix, gmean, g2mean (h, w) f32; sky (h, w) u8;
+    crown_in (h, w) f32: the crown model's smoothed tree probability; when prm[P_CROWN_MODEL] > 0.5 it
+    alone splits tree from building above the horizon (tree where crown_in > prm[P_CROWN_T]), instead
+    of the vegetation index and the bright-mix crown rule;
     ref (3,) Lab of the surface under the robot; prm (NP,) f64; scores (C, h, w) f32; labels (h, w) u8.
     Only the scored classes' planes (building, road, sidewalk, grass, tree, sky) are written; the
     caller keeps the other planes at zero. Ties go to the lower class index.
@@ -206,6 +209,8 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, 
     grass_w, bld_w, tree_w, mix_w, tree_low = prm[P_GRASS_W], prm[P_BLD_W], prm[P_TREE_W], prm[P_MIX_W], \
         prm[P_TREE_LOW]
     r0, r1, r2 = ref[0], ref[1], ref[2]
+    use_model = prm[P_CROWN_MODEL] > 0.5
+    codds = prm[P_CROWN_T] / (1.0 - prm[P_CROWN_T])  # tree wins where crown > crown_threshold
     for i in range(h):
         for j in range(w):
             u = feat[F_U, i, j]
@@ -221,7 +226,9 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, 
                 s_here = below * (1.0 - green) * (road_w * on * (0.5 + 0.5 * smooth) + floor)
                 s_other = below * (1.0 - green) * (1.0 - on) * smooth * side_w
             crown = 0.0
-            if below < 1.0:
+            if use_model:
+                crown = crown_in[i, j]
+            elif below < 1.0:
                 var = g2mean[i, j] - gmean[i, j] * gmean[i, j]
                 if var < 0.0:
                     var = 0.0
@@ -232,8 +239,13 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, ref, prm, scores, 
                 s_road, s_side = s_other, s_here
             s_sky = 2.0 if sky[i, j] else 0.0
             s_grass = below * green * grass_w
-            s_bld = (1.0 - below) * (1.0 - green) * bld_w * (1.0 - crown)
-            s_tree = green * tree_w * (1.0 - below * tree_low) + (1.0 - below) * crown * mix_w
+            if use_model:
+                # above the horizon the crown model alone splits tree from building (green is in it)
+                s_bld = (1.0 - below) * bld_w * (1.0 - crown)
+                s_tree = (1.0 - below) * bld_w * crown / codds + below * green * tree_w * (1.0 - tree_low)
+            else:
+                s_bld = (1.0 - below) * (1.0 - green) * bld_w * (1.0 - crown)
+                s_tree = green * tree_w * (1.0 - below * tree_low) + (1.0 - below) * crown * mix_w
             best = BUILDING
             bv = s_bld
             if s_road > bv:
@@ -467,11 +479,8 @@ def ground_gather(probs, labels, pu, pv, cell_range, max_range, is_ground, to_ma
 
 
 @njit(**JIT)
-def _deposit_foot(labels, probs, rays, level, cam, j, i, k, val, to_map, max_range, depth_m, res_m, origin_row,
-                  origin_col, evidence, free, visible):  # depth_m: of this class
-    """Place the foot of class k between rows i (object) and i + 1 (ground) of column j; 1 if placed."""
-    gh, gw = visible.shape
-    m = to_map[k]
+def _foot_ray(probs, rays, level, j, i, k, out3):
+    """Levelled ray (out3) through the foot of class k between rows i (object) and i + 1 (ground), column j."""
     pa = probs[k, i, j]
     pb = probs[k, i + 1, j]
     t = 0.5
@@ -481,22 +490,30 @@ def _deposit_foot(labels, probs, rays, level, cam, j, i, k, val, to_map, max_ran
     dx = rays[i, j, 0] + t * (rays[i + 1, j, 0] - rays[i, j, 0])
     dy = rays[i, j, 1] + t * (rays[i + 1, j, 1] - rays[i, j, 1])
     dz = rays[i, j, 2] + t * (rays[i + 1, j, 2] - rays[i, j, 2])
-    lx = level[0, 0] * dx + level[0, 1] * dy + level[0, 2] * dz
-    ly = level[1, 0] * dx + level[1, 1] * dy + level[1, 2] * dz
-    lz = level[2, 0] * dx + level[2, 1] * dy + level[2, 2] * dz
-    if lz >= -1e-9:
-        return 0
-    s = -cam[2] / lz
-    gx = cam[0] + s * lx
-    gy = cam[1] + s * ly
-    if gx * gx + gy * gy > max_range * max_range:
-        return 0
+    out3[0] = level[0, 0] * dx + level[0, 1] * dy + level[0, 2] * dz
+    out3[1] = level[1, 0] * dx + level[1, 1] * dy + level[1, 2] * dz
+    out3[2] = level[2, 0] * dx + level[2, 1] * dy + level[2, 2] * dz
+
+
+@njit(**JIT)
+def _height_at(rays, level, cam, i, j, dh):
+    """Height above the ground (m) where the levelled ray of pixel (i, j) is ``dh`` metres away horizontally."""
+    lx = level[0, 0] * rays[i, j, 0] + level[0, 1] * rays[i, j, 1] + level[0, 2] * rays[i, j, 2]
+    ly = level[1, 0] * rays[i, j, 0] + level[1, 1] * rays[i, j, 1] + level[1, 2] * rays[i, j, 2]
+    lz = level[2, 0] * rays[i, j, 0] + level[2, 1] * rays[i, j, 1] + level[2, 2] * rays[i, j, 2]
     hn = math.sqrt(lx * lx + ly * ly)
-    ux = lx / hn if hn > 1e-12 else 0.0  # a ray straight down has no "behind": deposit at the foot only
-    uy = ly / hn if hn > 1e-12 else 0.0
+    if hn < 1e-12:
+        return 1e9 if lz > 0.0 else -1e9
+    return cam[2] + lz * dh / hn
+
+
+@njit(**JIT)
+def _write_along(gx, gy, ux, uy, d0, depth_m, m, val, res_m, origin_row, origin_col, evidence, free, visible):
+    """Write class evidence (map channel m; -1: none) on the ray from (gx, gy) + d0 to + d0 + depth_m (half-cell steps)."""
+    gh, gw = visible.shape
     nstep = int(depth_m / (0.5 * res_m)) + 1
     for q in range(nstep):
-        d = q * 0.5 * res_m
+        d = d0 + q * 0.5 * res_m
         cc = int(math.floor(origin_col + (gx + ux * d) / res_m))
         rr = int(math.floor(origin_row - (gy + uy * d) / res_m))
         if 0 <= rr < gh and 0 <= cc < gw:
@@ -504,13 +521,13 @@ def _deposit_foot(labels, probs, rays, level, cam, j, i, k, val, to_map, max_ran
             free[rr, cc] = 0.0
             if m >= 0 and evidence[m, rr, cc] < val:
                 evidence[m, rr, cc] = val
-    return 1
 
 
 @njit(**JIT)
 def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_ground, to_map, min_run, max_range,
-                      depth_m, res_m, origin_row, origin_col, evidence, free, visible):
-    # depth_m: (256,) float64, metres of evidence behind the foot, per class
+                      depth_m, start_m, geom, res_m, origin_row, origin_col, ray3, evidence, free, visible):
+    # depth_m, start_m: (256,) float64, metres of evidence behind the foot and where it starts, per class
+    # geom: (min_building_height_m, min_building_width_m, fx of the segmentation raster (px), thin_class)
     """Deposit vertical classes at their ground contacts, column by column.
 
     Scanning each image column up from the bottom row to the horizon, every place where a ground pixel
@@ -519,10 +536,19 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
     on another object (a house behind a hedge) or on the image's bottom edge has no visible foot and is
     not placed. The foot is refined to where the class probability crosses 0.5 between the two rows;
     the levelled ray through it meets the ground at the object's range. The class evidence (the run's
-    mean probability) is written there and ``depth_m[k]`` further along the ray, where free space is
-    cleared (an object stands there). Returns the number of feet placed.
+    mean probability) is written from ``start_m[k]`` to ``start_m[k] + depth_m[k]`` further along the
+    ray, where free space is cleared (an object stands there).
+
+    Buildings are checked against their size: the run's top (the highest building pixel above the foot,
+    gaps of up to 2 pixels of other non-sky classes bridged) must stand at least ``geom[0]`` metres
+    above the ground at the foot's range, unless it reaches the image's top edge, and the run of
+    building pixels across the horizon row (or the run's top or foot, when the run lies wholly below or
+    above it) at least ``geom[1]`` metres wide at the foot's range. A building too low (a
+    vehicle, a fence, a hedge) is not placed; one too narrow but tall enough (a trunk, a pole) is
+    placed as class ``geom[3]`` with that class's depth. Returns the number of feet placed.
     """
     nc, h, w = probs.shape
+    min_h, min_w, fx, thin = geom[0], geom[1], geom[2], int(geom[3])
     count = 0
     for j in range(w):
         top = int(math.floor(hrow[j])) + 1
@@ -541,9 +567,54 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                     run += 1
                     ii -= 1
                 if run >= min_run:
-                    count += _deposit_foot(labels, probs, rays, level, cam, j, i, k, psum / min_run, to_map,
-                                           max_range, depth_m[k], res_m, origin_row, origin_col, evidence, free,
-                                           visible)
+                    _foot_ray(probs, rays, level, j, i, k, ray3)
+                    lx, ly, lz = ray3[0], ray3[1], ray3[2]
+                    if lz < -1e-9:
+                        s = -cam[2] / lz
+                        gx = cam[0] + s * lx
+                        gy = cam[1] + s * ly
+                        hn = math.sqrt(lx * lx + ly * ly)
+                        if gx * gx + gy * gy <= max_range * max_range:
+                            kk = k
+                            if k == BUILDING and (min_h > 0.0 or min_w > 0.0):
+                                # top of the building: bridge short gaps of non-sky classes
+                                q = ii
+                                topi = ii + 1
+                                gap = 0
+                                while q >= 0:
+                                    lq = labels[q, j]
+                                    if lq == BUILDING:
+                                        topi = q
+                                        gap = 0
+                                    elif lq == SKY:
+                                        break
+                                    else:
+                                        gap += 1
+                                        if gap > 2:
+                                            break
+                                    q -= 1
+                                dh = s * hn
+                                tall = topi == 0 or _height_at(rays, level, cam, topi, j, dh) >= min_h
+                                # width where the run crosses the horizon (the foot row wanders
+                                # between columns on an oblique or ragged foot)
+                                wr = min(max(int(math.floor(hrow[j])), topi), i)
+                                a = j
+                                while a > 0 and labels[wr, a - 1] == BUILDING:
+                                    a -= 1
+                                b = j
+                                while b < w - 1 and labels[wr, b + 1] == BUILDING:
+                                    b += 1
+                                wide = (b - a + 1) * dh / fx >= min_w
+                                if not tall:
+                                    kk = -1
+                                elif not wide:
+                                    kk = thin
+                            if kk >= 0:
+                                ux = lx / hn if hn > 1e-12 else 0.0  # a ray straight down: foot only
+                                uy = ly / hn if hn > 1e-12 else 0.0
+                                _write_along(gx, gy, ux, uy, start_m[kk], depth_m[kk], to_map[kk], psum / min_run,
+                                             res_m, origin_row, origin_col, evidence, free, visible)
+                                count += 1
                 i = ii
             else:
                 i -= 1
@@ -566,3 +637,148 @@ def frame_stats(small):
                 sat += 1
     n = h * w
     return acc / (255.0 * n), sat / n
+
+
+# --- crown model: texture features and the linear tree-vs-building score --------------------------------
+# Feature planes of tfeat[NT, h, w], in the order of the model's weight vector (crown_model.py names them).
+(T_V, T_S, T_EXGR, T_U, T_VAR9, T_COH9, T_AXIS9, T_FR, T_EXGR9, T_S9, T_V15, T_S15, T_S31, T_COH15, T_COH31,
+ T_AXIS15, T_VERT15, T_FINE15, T_FR15, T_FR31, T_LOGEN9, T_EN15, T_NONSKY9) = range(23)
+NT = 23
+
+
+@njit(**JIT)
+def gray_mean(bgr, out):
+    """Grey level (B + G + R) / 765 (0..1) of a BGR uint8 image; out (h, w) float32."""
+    h, w = bgr.shape[0], bgr.shape[1]
+    for i in range(h):
+        for j in range(w):
+            out[i, j] = (float(bgr[i, j, 0]) + float(bgr[i, j, 1]) + float(bgr[i, j, 2])) / 765.0
+
+
+@njit(**JIT)
+def abs_laplacian(g, out):
+    """|4 c - n - s - e - w| of a float32 image, edge pixels repeated beyond the border (OpenCV's 3x3
+    Laplacian with ksize=1 and BORDER_REPLICATE)."""
+    h, w = g.shape
+    for i in range(h):
+        iu = max(i - 1, 0)
+        idn = min(i + 1, h - 1)
+        for j in range(w):
+            jl = max(j - 1, 0)
+            jr = min(j + 1, w - 1)
+            out[i, j] = abs(4.0 * g[i, j] - g[iu, j] - g[idn, j] - g[i, jl] - g[i, jr])
+
+
+@njit(**JIT)
+def pool2(src, dst):
+    """dst[i, j] = mean of the 2 x 2 block src[2i:2i+2, 2j:2j+2]; src (2h, 2w), dst (h, w) float32."""
+    h, w = dst.shape
+    for i in range(h):
+        for j in range(w):
+            dst[i, j] = 0.25 * (src[2 * i, 2 * j] + src[2 * i, 2 * j + 1] + src[2 * i + 1, 2 * j] +
+                                src[2 * i + 1, 2 * j + 1])
+
+
+@njit(**JIT)
+def gradient_products(g, dx2, dy2, dxy, adxy):
+    """Signed central differences dx, dy of g (0 on the border rows/columns) and their products
+    dx^2, dy^2, dx dy, |dx dy| (the structure tensor's entries before averaging)."""
+    h, w = g.shape
+    for i in range(h):
+        for j in range(w):
+            dx = (g[i, j + 1] - g[i, j - 1]) * 0.5 if 0 < j < w - 1 else 0.0
+            dy = (g[i + 1, j] - g[i - 1, j]) * 0.5 if 0 < i < h - 1 else 0.0
+            dx2[i, j] = dx * dx
+            dy2[i, j] = dy * dy
+            dxy[i, j] = dx * dy
+            adxy[i, j] = abs(dx * dy)
+
+
+@njit(**JIT)
+def tensor_shape(jxx, jyy, jxy, ajxy, coh, axis, vert, logen, en):
+    """Orientation structure of window-averaged gradient products (tr = jxx + jyy + 1e-6):
+    coherence sqrt((jxx - jyy)^2 + 4 jxy^2) / tr (1: one orientation, 0: isotropic), axis share
+    mean|dx dy| / tr (0 for horizontal and vertical edges, 1/pi for isotropic texture, 1/2 diagonal),
+    vertical-edge share jxx / tr, energy en = sqrt(tr) and log(en + 0.01)."""
+    h, w = jxx.shape
+    for i in range(h):
+        for j in range(w):
+            a = jxx[i, j]
+            b = jyy[i, j]
+            c = jxy[i, j]
+            tr = a + b + 1e-6
+            coh[i, j] = math.sqrt((a - b) * (a - b) + 4.0 * c * c) / tr
+            axis[i, j] = ajxy[i, j] / tr
+            vert[i, j] = a / tr
+            e = math.sqrt(tr)
+            en[i, j] = e
+            logen[i, j] = math.log(e + 0.01)
+
+
+@njit(**JIT)
+def fine_ratio(fine, coarse, out):
+    """fine / (fine + coarse + 1e-3): the share of texture energy finer than the segmentation raster."""
+    h, w = fine.shape
+    for i in range(h):
+        for j in range(w):
+            out[i, j] = fine[i, j] / (fine[i, j] + coarse[i, j] + 1e-3)
+
+
+@njit(**JIT)
+def crown_prob(tfeat, wts, bias, feat, sky, green0, igreen, u_min, p_out, m_out):
+    """Tree probability of each pixel from the linear crown model, and the mask it applies to.
+
+    p = sig(bias + sum_k wts[k] tfeat[k]) raised to the vegetation score sig((ExG-ExR - green0) / w)
+    where that is larger (green is tree whatever its texture); only pixels that are not sky and lie
+    above ``u_min`` (image heights relative to the horizon) take part (m_out = 1), others get p = 0.
+    """
+    nt, h, w = tfeat.shape
+    for i in range(h):
+        for j in range(w):
+            if sky[i, j] or feat[F_U, i, j] <= u_min:
+                p_out[i, j] = 0.0
+                m_out[i, j] = 0.0
+                continue
+            z = bias
+            for k in range(nt):
+                z += wts[k] * tfeat[k, i, j]
+            p = _sig(z)
+            g = _sig((feat[F_EXGR, i, j] - green0) * igreen)
+            p_out[i, j] = max(p, g)
+            m_out[i, j] = 1.0
+
+
+@njit(**JIT)
+def masked_ratio(num, den, out):
+    """out = num / den where den > 1e-6, else 0 (a masked box mean from two box means)."""
+    h, w = num.shape
+    for i in range(h):
+        for j in range(w):
+            d = den[i, j]
+            out[i, j] = num[i, j] / d if d > 1e-6 else 0.0
+
+
+@njit(**JIT)
+def class_indicator(labels, k, out):
+    """out = 1.0 where labels == k, else 0.0 (float32)."""
+    h, w = labels.shape
+    for i in range(h):
+        for j in range(w):
+            out[i, j] = 1.0 if labels[i, j] == k else 0.0
+
+
+@njit(**JIT)
+def sky_in_crowns(tree_share, share, probs, labels):
+    """Sky pixels whose window holds more than ``share`` tree pixels are the gaps of a crown: tree.
+
+    The sky seen through a bare or open crown belongs to the tree in a map-maker's eyes (and in hand
+    labels); tree_share is the window mean of the tree indicator. Returns the number relabelled.
+    """
+    h, w = labels.shape
+    n = 0
+    for i in range(h):
+        for j in range(w):
+            if labels[i, j] == SKY and tree_share[i, j] > share:
+                _set_class(probs, labels, i, j, TREE)
+                n += 1
+    return n

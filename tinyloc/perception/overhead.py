@@ -32,7 +32,7 @@ import math
 
 import numpy as np
 
-from ..classes import BUILDING, CLASSES, DYNAMIC, NUM_MAP_CLASSES
+from ..classes import BUILDING, CLASSES, DYNAMIC, NUM_MAP_CLASSES, TREE
 from ..errors import InputError
 from . import _kernels as K
 
@@ -115,6 +115,18 @@ class OverheadParams:
         footprint behind it, and the map holds footprints.
     object_depth_m : float
         The same for thin objects (fence, tree trunk, pole; also where vehicles and people stand).
+    building_start_m : float
+        Where a building's evidence starts behind its foot along the ray (m): the facade is a plane at
+        the foot's range, and the grid cell holding that line lies about half in front of it, so the
+        evidence starts half a cell (of the default grid) behind the foot.
+    min_building_height_m : float
+        A building run must reach this high above the ground at its foot's range (m) or leave the
+        picture at the top: lower things with a building's colours (vehicles, fences, hedges, walls;
+        the camera cannot tell a low wall from a car) are not placed. 0 turns the check off.
+    min_building_width_m : float
+        ... and be at least this wide across its foot row (m, as seen at the foot's range): a taller but
+        narrower run is a trunk or a pole and is placed as a tree trunk (``object_depth_m`` deep).
+        0 turns the check off.
     min_run_px : int
         A vertical class must cover this many pixels upward from its foot to count (segmentation pixels).
     """
@@ -127,6 +139,9 @@ class OverheadParams:
     max_range_m: float = 20.0
     building_depth_m: float = 2.0
     object_depth_m: float = 0.5
+    building_start_m: float = 0.25
+    min_building_height_m: float = 3.0
+    min_building_width_m: float = 1.0
     min_run_px: int = 3
 
     def __post_init__(self):
@@ -136,7 +151,8 @@ class OverheadParams:
             raise InputError(f"bird's-eye resolution {self.res_m} m is out of range (0.01 .. 10 m)")
         if not (math.isfinite(self.max_range_m) and self.max_range_m > 0):
             raise InputError("max_range_m must be a positive number of metres")
-        for name in ("building_depth_m", "object_depth_m"):
+        for name in ("building_depth_m", "object_depth_m", "building_start_m", "min_building_height_m",
+                     "min_building_width_m"):
             v = getattr(self, name)
             if not (math.isfinite(v) and 0.0 <= v <= 20.0):
                 raise InputError(f"{name} must be within 0 .. 20 m")
@@ -212,9 +228,13 @@ class OverheadProjector:
         self.hrow = np.empty(w)
         self._lut_for(np.eye(3), self.lut_u, self.lut_v)
         self.depth = np.zeros(256)
+        self.start = np.zeros(256)
         for c in CLASSES:
             if c.vertical:
                 self.depth[c.index] = params.building_depth_m if c.index == BUILDING else params.object_depth_m
+        self.start[BUILDING] = params.building_start_m
+        self._geom = np.array([params.min_building_height_m, params.min_building_width_m, cam.fx, TREE], np.float64)
+        self._ray3 = np.empty(3)
         self.hrow_level = np.empty(w)
         K.horizon_rows(self.rays, np.eye(3), self.hrow_level)
 
@@ -248,8 +268,8 @@ class OverheadProjector:
                         out.evidence, out.free, out.visible)
         np.matmul(level, self._t_base, out=self._cam_l)
         return K.vertical_contacts(labels, probs, self.rays, level, self._cam_l, hrow, IS_VERTICAL, IS_GROUND, TO_MAP,
-                                   int(p.min_run_px), p.max_range_m, self.depth, p.res_m, p.origin_row,
-                                   p.origin_col, out.evidence, out.free, out.visible)
+                                   int(p.min_run_px), p.max_range_m, self.depth, self.start, self._geom, p.res_m,
+                                   p.origin_row, p.origin_col, self._ray3, out.evidence, out.free, out.visible)
 
     def pixel_to_ground(self, uv_seg, level: np.ndarray | None = None) -> np.ndarray:
         """Ground points (N, 2) body (xf, yl) metres under segmentation pixels (N, 2); NaN above the horizon.

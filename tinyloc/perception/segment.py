@@ -38,6 +38,7 @@ import numpy as np
 from ..classes import CLASSES, NUM_CLASSES
 from ..errors import InputError
 from . import _kernels as K
+from .crown_model import load_crown_model
 
 
 @dataclass(frozen=True)
@@ -86,6 +87,12 @@ class SegmentParams:
     pole_run: float = 0.15  # ... at least this long (image heights), crossing the horizon
     fence_top: float = 0.0  # building runs ending less than this above the horizon are fences (0: off)
     robot_on: str = "road"  # surface under the robot: "road" or "sidewalk"
+    crown_model: str = "default"  # linear crown score (crown_model.py): "default", a file path, or "" (rule)
+    crown_u_min: float = -0.05  # the crown score applies above this height (image heights) rel. to the horizon
+    crown_threshold: float = 0.65  # above the horizon, tree where the smoothed crown probability exceeds this
+    crown_smooth: int = 5  # window of the masked mean of the crown probability (px)
+    crown_sky_share: float = 0.5  # sky pixels whose window holds more tree than this are crown gaps (0: off)
+    crown_sky_window: int = 5  # ... window (px)
 
     def __post_init__(self):
         if not 32 <= int(self.width) <= 1024:
@@ -100,6 +107,11 @@ class SegmentParams:
             raise InputError("tree_low must be within 0 .. 1")
         if self.tex_window % 2 == 0 or self.mix_window % 2 == 0:
             raise InputError("tex_window and mix_window must be odd")
+        if not 0.05 <= self.crown_threshold <= 0.95:
+            raise InputError("crown_threshold must be within 0.05 .. 0.95")
+        if self.crown_smooth % 2 == 0 or self.crown_sky_window % 2 == 0 or self.crown_smooth < 1 \
+                or self.crown_sky_window < 1:
+            raise InputError("crown_smooth and crown_sky_window must be odd and positive")
 
     def vector(self) -> np.ndarray:
         """The kernel's parameter vector (layout in _kernels.P_*)."""
@@ -118,6 +130,8 @@ class SegmentParams:
         v[K.P_ON_ROAD] = 1.0 if self.robot_on == "road" else 0.0
         v[K.P_WALL_DIST], v[K.P_WALL_EDGE], v[K.P_WALL_GROUND] = self.wall_dist, self.wall_edge, self.wall_ground
         v[K.P_POLE_CONTRAST], v[K.P_POLE_RUN], v[K.P_FENCE_TOP] = self.pole_contrast, self.pole_run, self.fence_top
+        v[K.P_CROWN_MODEL] = 1.0 if self.crown_model not in ("", "off") else 0.0
+        v[K.P_CROWN_T] = self.crown_threshold
         return v
 
 
@@ -128,9 +142,9 @@ class SegmentParams:
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
-    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0),
+    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, crown_model=""),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
-                          grass_weight=0.7),
+                          grass_weight=0.7, crown_model=""),
 }
 
 
@@ -180,6 +194,15 @@ class Segmenter:
         self.gmean = np.zeros((h, w), f32)
         self.g2mean = np.zeros((h, w), f32)
         self.queue = np.zeros(h * w, np.int32)
+        self.crown_model = load_crown_model(params.crown_model)
+        if self.crown_model is not None:
+            self._cw, self._cb = self.crown_model.folded()
+        self.tfeat = np.zeros((K.NT, h, w), f32)  # crown-model features (zero when the model is off)
+        self.small2 = np.zeros((2 * h, 2 * w, 3), np.uint8)
+        self.g2x = np.zeros((2 * h, 2 * w), f32)
+        self.lap2x = np.zeros((2 * h, 2 * w), f32)
+        self._t = np.zeros((12, h, w), f32)  # scratch planes of the crown features
+        self.crown = np.zeros((h, w), f32)
         self.hist = np.zeros((3, 256), np.int64)
         self.ref = np.zeros(3, np.float64)
         self.probs = np.zeros((NUM_CLASSES, h, w), f32)
@@ -234,11 +257,81 @@ class Segmenter:
         K.box_mean(self.feat[K.F_G2], rm, self.tmp, self.g2mean)
         r0, r1, c0, c1 = self._patch
         K.patch_median_lab(self.lab, r0, r1, c0, c1, self.hist, self.ref)
-        K.seg_scores(self.feat, self.lab, self.tex, self.sky, self.brightmix, self.gmean, self.g2mean, self.ref,
-                     self._prm, self.probs, self.labels)
+        if self.crown_model is not None:
+            self.crown_features(self.small if (w, h) == self.frame_size else bgr)
+            self._crown_prob()
+        K.seg_scores(self.feat, self.lab, self.tex, self.sky, self.brightmix, self.gmean, self.g2mean, self.crown,
+                     self.ref, self._prm, self.probs, self.labels)
         K.extend_walls(self.feat, self.lab, hrow, self.ref, self._prm, _IS_GROUND, self.probs, self.labels)
+        if self.crown_model is not None and p.crown_sky_share > 0.0:
+            t = self._t
+            K.class_indicator(self.labels, K.TREE, t[0])
+            K.box_mean(t[0], p.crown_sky_window // 2, self.tmp, t[1])
+            K.sky_in_crowns(t[1], p.crown_sky_share, self.probs, self.labels)
         K.thin_and_low(self.feat, hrow, self._prm, self.probs, self.labels, self.cand)
         return self.probs, self.labels
+
+
+    def crown_features(self, bgr: np.ndarray) -> np.ndarray:
+        """Fill and return ``tfeat`` (planes ``_kernels.T_*``, names ``crown_model.FEATURES``) for the frame
+        just segmented by :meth:`run` (``bgr`` is that frame). Called by :meth:`run` when a crown model is
+        set; callable after :meth:`run` otherwise (to collect features for fitting a model)."""
+        f, tf, t, tmp = self.feat, self.tfeat, self._t, self.tmp
+        w, h = self.size
+        for dst, src in ((K.T_V, K.F_V), (K.T_S, K.F_S), (K.T_EXGR, K.F_EXGR), (K.T_U, K.F_U)):
+            tf[dst] = f[src]
+        g = f[K.F_GRAY]
+        # structure tensor over 9 x 9: coherence, axis share, vertical-edge share, energy
+        K.gradient_products(g, t[0], t[1], t[2], t[3])
+        for q in range(4):
+            _blur(t[q], 4, t[4 + q])
+        K.tensor_shape(t[4], t[5], t[6], t[7], tf[K.T_COH9], tf[K.T_AXIS9], t[8], tf[K.T_LOGEN9], t[9])
+        # grey-level variance over 9 x 9
+        _blur(g, 4, t[0])
+        _blur(f[K.F_G2], 4, t[1])
+        np.multiply(t[0], t[0], out=t[2])
+        np.subtract(t[1], t[2], out=tf[K.T_VAR9])
+        np.maximum(tf[K.T_VAR9], 0.0, out=tf[K.T_VAR9])
+        # fine texture: |Laplacian| at twice the raster's resolution pooled down, against the raster's own
+        cv2.resize(bgr, (2 * w, 2 * h), dst=self.small2, interpolation=cv2.INTER_AREA)
+        K.gray_mean(self.small2, self.g2x)
+        K.abs_laplacian(self.g2x, self.lap2x)
+        K.pool2(self.lap2x, t[0])
+        _blur(t[0], 2, t[10])  # fine energy, 5 x 5
+        K.abs_laplacian(g, t[0])
+        _blur(t[0], 2, t[1])  # coarse energy, 5 x 5
+        K.fine_ratio(t[10], t[1], tf[K.T_FR])
+        # region statistics
+        _blur(f[K.F_EXGR], 4, tf[K.T_EXGR9])
+        _blur(f[K.F_S], 4, tf[K.T_S9])
+        _blur(f[K.F_V], 7, tf[K.T_V15])
+        _blur(f[K.F_S], 7, tf[K.T_S15])
+        _blur(f[K.F_S], 15, tf[K.T_S31])
+        _blur(tf[K.T_COH9], 7, tf[K.T_COH15])
+        _blur(tf[K.T_COH9], 15, tf[K.T_COH31])
+        _blur(tf[K.T_AXIS9], 7, tf[K.T_AXIS15])
+        _blur(t[8], 7, tf[K.T_VERT15])
+        _blur(t[10], 7, tf[K.T_FINE15])
+        _blur(tf[K.T_FR], 7, tf[K.T_FR15])
+        _blur(tf[K.T_FR], 15, tf[K.T_FR31])
+        _blur(t[9], 7, tf[K.T_EN15])
+        K.class_indicator(self.sky, 0, t[0])  # 1 where not sky (a uint8 -> float ufunc would allocate)
+        _blur(t[0], 4, tf[K.T_NONSKY9])
+        return tf
+
+    def _crown_prob(self) -> None:
+        """Tree probability of the crown model, averaged over the pixels it applies to, into ``crown``."""
+        p, f, tf, t, tmp = self.params, self.feat, self.tfeat, self._t, self.tmp
+        K.crown_prob(tf, self._cw, self._cb, f, self.sky, p.green0, 1.0 / p.green_w, p.crown_u_min, t[0], t[1])
+        r = p.crown_smooth // 2
+        _blur(t[0], r, t[2])
+        _blur(t[1], r, t[3])
+        K.masked_ratio(t[2], t[3], self.crown)
+
+
+def _blur(src: np.ndarray, r: int, dst: np.ndarray) -> None:
+    """Mean over a (2r+1)^2 window, edge pixels repeated (OpenCV's box filter; same result as K.box_mean)."""
+    cv2.blur(src, (2 * r + 1, 2 * r + 1), dst=dst, borderType=cv2.BORDER_REPLICATE)
 
 
 _IS_GROUND = np.zeros(256, np.uint8)

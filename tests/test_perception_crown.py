@@ -1,0 +1,82 @@
+"""The crown model (linear tree-vs-building score): file format, folding, and the fit.
+
+Outside reference for the fit: SciPy's BFGS minimiser (scipy.optimize.minimize) on the same
+L2-penalised, weighted logistic log-likelihood; the data are seeded random samples of a planted model.
+"""
+
+import json
+
+import numpy as np
+import pytest
+from scipy.optimize import minimize
+
+from tinyloc.errors import InputError
+from tinyloc.perception import _kernels as K
+from tinyloc.perception.crown_model import DEFAULT_PATH, FEATURES, CrownModel, fit_crown_model, load_crown_model
+
+
+def _planted(rng, n=4000):
+    x = rng.normal(0.0, 1.0, (n, K.NT)) * rng.uniform(0.5, 3.0, K.NT) + rng.uniform(-2, 2, K.NT)
+    w_true = np.zeros(K.NT)
+    w_true[[1, 5, 7, 12]] = [1.5, -2.0, 0.8, 1.0]
+    z = (x - x.mean(0)) / x.std(0) @ w_true + 0.3
+    y = rng.random(n) < 1.0 / (1.0 + np.exp(-z))
+    return x, y
+
+
+def test_fit_matches_scipy_minimiser():
+    rng = np.random.default_rng(11)
+    x, y = _planted(rng)
+    sw = np.where(y, 0.5 / y.mean(), 0.5 / (1 - y.mean()))
+    m = fit_crown_model(x, y, sw, l2=1e-2)
+    zs = (x - m.mean) / m.scale
+
+    def nll(th):
+        z = zs @ th[:-1] + th[-1]
+        return np.sum(sw * (np.logaddexp(0.0, z) - y * z)) + 0.5e-2 * np.sum(th[:-1] ** 2)
+
+    ref = minimize(nll, np.zeros(K.NT + 1), method="BFGS", options={"gtol": 1e-8, "maxiter": 2000}).x
+    assert np.max(np.abs(m.weights - ref[:-1])) < 1e-3 and abs(m.bias - ref[-1]) < 1e-3
+    # the planted non-zero weights are found, the zero ones stay small
+    assert np.all(np.abs(m.weights[[1, 5, 7, 12]]) > 0.5) and np.max(np.abs(np.delete(m.weights, [1, 5, 7, 12]))) < 0.2
+
+
+def test_folded_weights_give_the_same_score(tmp_path):
+    rng = np.random.default_rng(3)
+    x, y = _planted(rng, 500)
+    m = fit_crown_model(x, y, provenance={"data": "seeded test"})
+    w, b = m.folded()
+    assert np.max(np.abs((b + x @ w) - m.score(x))) < 1e-9
+    p = tmp_path / "crown.json"
+    m.save(p)
+    back = CrownModel.load(p)
+    assert np.array_equal(back.weights, m.weights) and back.bias == m.bias and back.provenance == {"data": "seeded test"}
+
+
+def test_shipped_model_loads_with_provenance():
+    m = load_crown_model("default")
+    assert m is not None and load_crown_model("") is None and load_crown_model("off") is None
+    prov = m.provenance
+    assert "image_folder" in prov and prov["image_folder"]["ids"] == "even"  # the odd ids stay unseen
+    assert json.loads(DEFAULT_PATH.read_text())["features"] == list(FEATURES)
+
+
+def test_bad_model_files(tmp_path):
+    bad = tmp_path / "bad.json"
+    bad.write_text("{not json")
+    with pytest.raises(InputError, match="not valid JSON"):
+        CrownModel.load(bad)
+    d = json.loads(DEFAULT_PATH.read_text())
+    d["features"] = d["features"][::-1]
+    bad.write_text(json.dumps(d))
+    with pytest.raises(InputError, match="feature list"):
+        CrownModel.load(bad)
+    d = json.loads(DEFAULT_PATH.read_text())
+    d["scale"][0] = 0.0
+    bad.write_text(json.dumps(d))
+    with pytest.raises(InputError, match="scales"):
+        CrownModel.load(bad)
+    with pytest.raises(InputError, match="cannot read"):
+        CrownModel.load(tmp_path / "missing.json")
+    with pytest.raises(InputError, match="expected"):
+        fit_crown_model(np.zeros((5, 3)), np.zeros(5, bool))

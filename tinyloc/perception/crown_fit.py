@@ -1,0 +1,190 @@
+"""Fit the crown model (crown_model.py) on labelled frames: a developer tool, not on the robot's path.
+
+    python -m tinyloc.perception.crown_fit --images DIR --labels DIR --label-map MAP.toml [--ids even]
+        [--run RUN ...] [--run-every 10] [--run-share 0.3] -o crown.json
+
+Two kinds of labelled data, each optional:
+
+- a folder of images with hand-made label images of the same names (``--images``, ``--labels``; ids
+  mapped to tinyloc classes by a ``tinyloc-label-map`` file, docs/perception.md), segmented without a
+  camera model (horizon at ``horizon_frac``); ``--ids even`` / ``odd`` / ``all`` picks files by the
+  number in their name, so the other half stays unseen for evaluation;
+- run folders with ``labels/`` (docs/run-folder.md; for example simulated drives), segmented with their
+  camera and IMU gravity, every ``--run-every``-th frame.
+
+Samples are the segmentation pixels at or above the crown model's height limit that the classical
+rules (crown model off) call building or tree and whose label is building or tree; the regression
+learns which of those are trees. Within each kind of data both classes weigh equally; the run folders
+together weigh ``--run-share`` of the total. Every 2nd pixel in each direction is used. The written
+file carries the sources, the split and the settings as its provenance.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import datetime
+import re
+import sys
+from pathlib import Path
+
+import cv2
+import numpy as np
+
+from ..classes import BUILDING, TREE
+from ..errors import InputError
+from . import _kernels as K
+from .crown_model import fit_crown_model
+from .segment import Segmenter, preset
+
+
+def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None):
+    seg.run(bgr, hrow)
+    tf = seg.crown_features(bgr)
+    lab = seg.labels
+    m = (seg.feat[K.F_U] > seg.params.crown_u_min) & np.isin(lab, (BUILDING, TREE)) & \
+        np.isin(truth_small, (BUILDING, TREE))
+    m[1::2, :] = False
+    m[:, 1::2] = False
+    return tf[:, m].T.astype(np.float64), truth_small[m] == TREE
+
+
+def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, params, *, progress=None):
+    """(x, y, names) from an image folder with label images of the same names (see the module docstring)."""
+    files = sorted(p for p in Path(images).iterdir() if p.suffix.lower() in (".png", ".jpg", ".jpeg"))
+    xs, ys, used = [], [], []
+    seg = None
+    for p in files:
+        num = re.findall(r"\d+", p.stem)
+        k = int(num[-1]) if num else 0
+        if (ids == "even" and k % 2) or (ids == "odd" and k % 2 == 0):
+            continue
+        img = cv2.imread(str(p), cv2.IMREAD_COLOR)
+        lp = Path(labels) / (p.stem + ".png")
+        raw = cv2.imread(str(lp), cv2.IMREAD_GRAYSCALE)
+        if img is None or raw is None:
+            raise InputError(f"{p if img is None else lp}: unreadable image")
+        if seg is None or seg.frame_size != (img.shape[1], img.shape[0]):
+            seg = Segmenter((img.shape[1], img.shape[0]), params)
+        truth = cv2.resize(lut[raw], seg.size, interpolation=cv2.INTER_NEAREST)
+        x, y = _samples(seg, img, truth)
+        xs.append(x)
+        ys.append(y)
+        used.append(p.name)
+        if progress:
+            progress(f"{p.name}: {len(y)} samples")
+    if not xs:
+        raise InputError(f"{images}: no images selected")
+    return np.concatenate(xs), np.concatenate(ys), used
+
+
+def samples_from_run(run: Path, every: int, params, *, progress=None):
+    """(x, y, n_frames) from a run folder with labels/, segmented with its camera and IMU gravity."""
+    from ..runfolder import RunFolder
+    from .pipeline import Perception, PerceptionParams
+
+    rf = RunFolder.open(run)
+    perc = Perception(rf.camera, PerceptionParams(segment=params), warm_up=False)
+    grid = perc.new_grid()
+    xs, ys = [], []
+    n = 0
+    for i in range(0, len(rf), every):
+        lab = rf.load_label(i)
+        if lab is None:
+            continue
+        img = rf.load_frame(i)
+        g = None
+        if len(rf.imu):
+            g = rf.imu[int(np.argmin(np.abs(rf.imu[:, 0] - rf.frame_t[i]))), 1:4]
+        if perc.process(img, g, grid) != "ok":
+            continue
+        seg = perc.segmenter
+        truth = cv2.resize(lab, seg.size, interpolation=cv2.INTER_NEAREST)
+        x, y = _samples(seg, img, truth, perc.horizon.copy())
+        xs.append(x)
+        ys.append(y)
+        n += 1
+    if progress:
+        progress(f"{run}: {n} frames")
+    if not xs:
+        raise InputError(f"{run}: no labelled frames")
+    return np.concatenate(xs), np.concatenate(ys), n
+
+
+def _balanced(y: np.ndarray, share: float) -> np.ndarray:
+    w = np.zeros(len(y))
+    for c in (False, True):
+        k = y == c
+        if k.any():
+            w[k] = share * 0.5 / k.sum()
+    return w
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(prog="python -m tinyloc.perception.crown_fit", description=__doc__,
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--images", type=Path, help="folder of frames (PNG/JPEG)")
+    ap.add_argument("--labels", type=Path, help="folder of label images with the frames' names (PNG)")
+    ap.add_argument("--label-map", type=Path, help="tinyloc-label-map file for the label ids")
+    ap.add_argument("--ids", choices=("even", "odd", "all"), default="even",
+                    help="which frames of --images to use, by the number in the file name (default even)")
+    ap.add_argument("--preset", default="street", help="segmentation preset for --images (default street)")
+    ap.add_argument("--run", type=Path, nargs="*", default=[], help="run folders with labels/")
+    ap.add_argument("--run-preset", default="sidewalk", help="segmentation preset for the runs (default sidewalk)")
+    ap.add_argument("--run-every", type=int, default=10, help="use every N-th frame of a run (default 10)")
+    ap.add_argument("--run-share", type=float, default=0.3, help="total weight of the runs, 0..1 (default 0.3)")
+    ap.add_argument("-o", "--out", type=Path, required=True, help="model file to write (JSON)")
+    a = ap.parse_args(argv)
+
+    def say(msg):
+        print(msg, file=sys.stderr)
+
+    try:
+        parts, prov = [], {"fitted": datetime.date.today().isoformat(), "method": "logistic regression, IRLS, L2 1e-2",
+                           "samples": "pixels labelled building or tree by both the rules and the truth, every 2nd "
+                                      "pixel in each direction, above crown_u_min"}
+        share_img = 1.0 - a.run_share if a.run else 1.0
+        if a.images:
+            from .labels_in import load_label_map
+
+            if not (a.labels and a.label_map):
+                raise InputError("--images needs --labels and --label-map")
+            p = dataclasses.replace(preset(a.preset), crown_model="")
+            x, y, used = samples_from_folder(a.images, a.labels, load_label_map(a.label_map), a.ids, p,
+                                             progress=None)
+            parts.append((x, y, _balanced(y, share_img)))
+            prov["image_folder"] = {"ids": a.ids, "frames": len(used), "first": used[0], "last": used[-1],
+                                    "preset": a.preset, "samples": int(len(y)), "tree_share": float(y.mean()),
+                                    "weight": share_img}
+        if a.run:
+            p = dataclasses.replace(preset(a.run_preset), crown_model="")
+            rx, ry, info = [], [], []
+            for r in a.run:
+                x, y, n = samples_from_run(r, a.run_every, p, progress=say)
+                rx.append(x)
+                ry.append(y)
+                info.append({"run": Path(r).name, "frames": n, "every": a.run_every})
+            x, y = np.concatenate(rx), np.concatenate(ry)
+            parts.append((x, y, _balanced(y, a.run_share if a.images else 1.0)))
+            prov["runs"] = {"folders": info, "preset": a.run_preset, "samples": int(len(y)),
+                            "tree_share": float(y.mean()), "weight": a.run_share if a.images else 1.0}
+        if not parts:
+            raise InputError("nothing to fit: give --images and/or --run")
+        x = np.concatenate([q[0] for q in parts])
+        y = np.concatenate([q[1] for q in parts])
+        w = np.concatenate([q[2] for q in parts]) * len(y)
+        model = fit_crown_model(x, y, w, provenance=prov)
+        z = model.score(x)
+        acc_t = float(np.average(z[y] > 0, weights=w[y]))
+        acc_b = float(np.average(z[~y] <= 0, weights=w[~y]))
+        prov["fit_recall"] = {"tree": round(acc_t, 3), "building": round(acc_b, 3)}
+        dataclasses.replace(model, provenance=prov).save(a.out)
+        say(f"wrote {a.out}: {len(y)} samples, recall on the fitted samples: tree {acc_t:.3f}, building {acc_b:.3f}")
+    except InputError as e:
+        print(f"error: {e}", file=sys.stderr)
+        return 2
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

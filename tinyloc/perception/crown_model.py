@@ -1,0 +1,157 @@
+"""The crown model: a small linear score telling tree crowns from facades by texture, fitted once.
+
+Above the horizon the classical rules see "not sky, not green" and must still choose between a
+building and a tree: bare or dark crowns are neither green nor bluish. Hand-crafted texture and
+colour features (``FEATURES``, computed by the segmenter's kernels, formulas in
+``_kernels.tensor_shape`` and neighbours) separate them: crowns and branches have fine, isotropic
+texture (low orientation coherence, a high share of diagonal gradient energy, much energy lost when
+the image is reduced), facades long horizontal and vertical edges, flat colour patches and more
+saturated colour. The score is ``z = bias + sum_k w_k (f_k - mean_k) / scale_k`` and the tree
+probability ``sig(z)``; the weights are a logistic regression fitted by iteratively reweighted least
+squares (Newton's method) on a stated split of labelled frames and stored with their provenance in
+``crown_default.json`` beside this module, as the correlator stores its scoring model.
+
+File format (JSON, ours): ``{"format": "tinyloc-crown-model", "version": 1, "features": [names],
+"mean": [...], "scale": [...], "weights": [...], "bias": b, "provenance": {...}}``; the feature
+names must equal ``FEATURES`` in order.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+from . import _kernels as K
+
+FORMAT = "tinyloc-crown-model"
+DEFAULT_PATH = Path(__file__).with_name("crown_default.json")
+
+#: Feature planes in kernel order (``_kernels.T_*``); "N" in a name is the box-mean window (pixels of
+#: the segmentation raster), "fr" the fine-texture ratio, "en" the gradient energy.
+FEATURES = ("v", "s", "exgr", "u", "var9", "coh9", "axis9", "fr", "exgr9", "s9", "v15", "s15", "s31", "coh15",
+            "coh31", "axis15", "vert15", "fine15", "fr15", "fr31", "logen9", "en15", "nonsky9")
+if len(FEATURES) != K.NT:
+    raise RuntimeError("crown model: feature list and kernel planes disagree")
+
+
+@dataclass(frozen=True)
+class CrownModel:
+    """Weights of the linear crown score (see the module docstring).
+
+    Attributes
+    ----------
+    mean, scale, weights : ndarray (NT,) float64
+        Standardisation and weights per feature.
+    bias : float
+    provenance : dict
+        Data, split and fit settings the numbers came from.
+    """
+
+    mean: np.ndarray
+    scale: np.ndarray
+    weights: np.ndarray
+    bias: float
+    provenance: dict = field(default_factory=dict, compare=False)
+
+    def __post_init__(self):
+        for name in ("mean", "scale", "weights"):
+            a = np.asarray(getattr(self, name), np.float64)
+            if a.shape != (K.NT,) or not np.all(np.isfinite(a)):
+                raise InputError(f"crown model: {name} must be {K.NT} finite numbers")
+            object.__setattr__(self, name, a)
+        if np.any(self.scale <= 0):
+            raise InputError("crown model: scales must be > 0")
+        if not math.isfinite(self.bias):
+            raise InputError("crown model: bias must be finite")
+
+    def folded(self) -> tuple[np.ndarray, float]:
+        """(w', b') with the standardisation folded in: z = b' + sum_k w'_k f_k (what the kernel uses)."""
+        w = self.weights / self.scale
+        return np.ascontiguousarray(w), float(self.bias - np.dot(w, self.mean))
+
+    def score(self, tfeat: np.ndarray) -> np.ndarray:
+        """z for feature vectors (..., NT) (plain NumPy; tools and tests)."""
+        return self.bias + ((np.asarray(tfeat, np.float64) - self.mean) / self.scale) @ self.weights
+
+    def to_dict(self) -> dict:
+        return {"format": FORMAT, "version": 1, "features": list(FEATURES), "mean": self.mean.tolist(),
+                "scale": self.scale.tolist(), "weights": self.weights.tolist(), "bias": self.bias,
+                "provenance": self.provenance}
+
+    def save(self, path) -> None:
+        Path(path).write_text(json.dumps(self.to_dict(), indent=1) + "\n")
+
+    @classmethod
+    def load(cls, path) -> "CrownModel":
+        try:
+            d = json.loads(Path(path).read_text())
+        except OSError as e:
+            raise InputError(f"{path}: cannot read the crown model ({e.strerror})") from None
+        except json.JSONDecodeError as e:
+            raise InputError(f"{path}: not valid JSON (line {e.lineno})") from None
+        if not isinstance(d, dict) or d.get("format") != FORMAT or d.get("version") != 1:
+            raise InputError(f"{path}: not a {FORMAT} version 1 file")
+        if d.get("features") != list(FEATURES):
+            raise InputError(f"{path}: feature list does not match this build's ({', '.join(FEATURES)})")
+        try:
+            return cls(np.array(d["mean"], float), np.array(d["scale"], float), np.array(d["weights"], float),
+                       float(d["bias"]), dict(d.get("provenance", {})))
+        except (KeyError, TypeError, ValueError) as e:
+            raise InputError(f"{path}: bad crown model: {e}") from None
+
+
+_CACHE: dict[str, CrownModel] = {}
+
+
+def load_crown_model(name: str) -> CrownModel | None:
+    """``"default"``: the shipped model; ``""`` or ``"off"``: None (the bright-mix crown rule); else a path."""
+    if name in ("", "off"):
+        return None
+    path = str(DEFAULT_PATH if name == "default" else Path(name))
+    if path not in _CACHE:
+        _CACHE[path] = CrownModel.load(path)
+    return _CACHE[path]
+
+
+def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarray | None = None, *,
+                    l2: float = 1e-2, iterations: int = 25, provenance: dict | None = None) -> CrownModel:
+    """Logistic regression of ``is_tree`` on the features by Newton's method (IRLS), L2-regularised.
+
+    Parameters
+    ----------
+    x : ndarray (n, NT)
+        Feature vectors (``Segmenter.tfeat`` planes at the sampled pixels).
+    is_tree : ndarray (n,) bool
+    sample_weight : ndarray (n,), optional
+        Per-sample weights (e.g. to balance classes and data sources).
+    l2 : float
+        Ridge penalty on the standardised weights (not on the bias).
+    """
+    x = np.asarray(x, np.float64)
+    y = np.asarray(is_tree, np.float64)
+    if x.ndim != 2 or x.shape[1] != K.NT or len(y) != len(x) or len(x) < 10:
+        raise InputError(f"crown model fit: expected (n, {K.NT}) features and n labels, got {x.shape}, {y.shape}")
+    sw = np.ones(len(y)) if sample_weight is None else np.asarray(sample_weight, np.float64)
+    mean = np.average(x, axis=0, weights=sw)
+    scale = np.sqrt(np.average((x - mean) ** 2, axis=0, weights=sw)) + 1e-9
+    a = np.hstack([(x - mean) / scale, np.ones((len(x), 1))])
+    th = np.zeros(a.shape[1])
+    reg = l2 * np.eye(a.shape[1])
+    reg[-1, -1] = 0.0
+    for _ in range(iterations):
+        p = 1.0 / (1.0 + np.exp(-np.clip(a @ th, -40, 40)))
+        g = a.T @ (sw * (p - y)) + reg @ th
+        hess = (a * (sw * p * (1 - p))[:, None]).T @ a + reg + 1e-9 * np.eye(a.shape[1])
+        step = np.linalg.solve(hess, g)
+        th -= step
+        if np.max(np.abs(step)) < 1e-8:
+            break
+    return CrownModel(mean, scale, th[:-1], float(th[-1]), dict(provenance or {}))
+
+
+__all__ = ["CrownModel", "FEATURES", "load_crown_model", "fit_crown_model", "DEFAULT_PATH"]
