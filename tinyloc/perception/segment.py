@@ -90,9 +90,9 @@ class SegmentParams:
     crown_model: str = "default"  # linear crown score (crown_model.py): "default", a file path, or "" (rule)
     crown_u_min: float = -0.05  # the crown score applies above this height (image heights) rel. to the horizon
     crown_threshold: float = 0.65  # above the horizon, tree where the smoothed crown probability exceeds this
-    crown_smooth: int = 5  # window of the masked mean of the crown probability (px)
-    crown_sky_share: float = 0.5  # sky pixels whose window holds more tree than this are crown gaps (0: off)
-    crown_sky_window: int = 5  # ... window (px)
+    crown_smooth: int = 9  # window of the masked mean of the crown probability (px)
+    crown_sky_share: float = 0.3  # sky pixels whose window holds more tree than this are crown gaps (0: off)
+    crown_sky_window: int = 9  # ... window (px)
 
     def __post_init__(self):
         if not 32 <= int(self.width) <= 1024:
