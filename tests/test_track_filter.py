@@ -69,6 +69,35 @@ def test_likelihood_weight_tempers(rng):
     assert np.max(np.abs(f.bel - ref / ref.sum())) < 1e-6
 
 
+@pytest.mark.parametrize("fill", ["mean", "min"])
+def test_poses_the_volume_does_not_cover_get_the_chosen_fill(rng, fill):
+    # the volume covers only the west half of the window and headings 0..3 of 8: the rest is
+    # "not seen" by this frame; with "mean" it keeps the volume's average log-likelihood (no
+    # information), with "min" the worst value (the old behaviour, which starved a true pose
+    # outside the tracking box)
+    f = _filter(n=12, A=8, outside_fill=fill)
+    prior = rng.random((8, 12, 12)).astype(np.float32)
+    prior /= prior.sum()
+    f.bel[:] = prior
+    L = (rng.standard_normal((4, 12, 6)) * 3).astype(np.float32)
+    f.update(LikelihoodVolume(L, f.row0, f.col0, 0.0, 2 * math.pi / 8))
+    lout = float(L.mean(dtype=np.float64)) if fill == "mean" else float(L.min())
+    Lf = np.full((8, 12, 12), lout)
+    Lf[:4, :, :6] = L
+    ref = prior.astype(np.float64) * np.exp(Lf - L.max())
+    ref /= ref.sum()
+    assert np.max(np.abs(f.bel - ref)) < 1e-6
+
+
+def test_outside_fill_is_validated():
+    from tinyloc.errors import InputError
+
+    with pytest.raises(InputError, match="outside_fill"):
+        TrackParams(outside_fill="median")
+    with pytest.raises(InputError, match="fallback_weight"):
+        TrackParams(fallback_weight=1.5)
+
+
 # ---------------------------------------------------------------------------------------------
 # Predict on a grid: mass is conserved, the shift is exact, the diffusion matches a
 # hand-computed convolution and the reference libraries.

@@ -234,6 +234,28 @@ def test_fixes_offset_from_a_confident_estimate_degrade_the_flag_only(rng):
     assert q[-1] == "tracking"
 
 
+def test_degraded_covariance_covers_the_pose_the_fixes_give(rng):
+    # the same 7 m offset with a steadier receiver (0.5 m noise per fix): while degraded the
+    # reported covariance holds the fix as a competing pose (weight fallback_weight = 0.25:
+    # w (S + d d^T), the second moment of a two-pose mixture), so the position the receiver gives
+    # lies inside the reported 95 % ellipse (chi-square 5.991, 2 dof) instead of ~20 sigma out;
+    # while tracking the term is absent
+    tr, out = drive(rng, 320, gnss_bias_at=set(range(100, 200)), gnss_sigma=0.5)
+    deg = [(t, o) for t, o in out[150:200] if o.quality == "degraded"]
+    assert len(deg) >= 45
+    for (x, y, _), o in deg:
+        d = np.array([x + 7.0 - o.x, y - o.y])
+        assert d @ np.linalg.solve(o.cov[:2, :2], d) < 5.991
+    assert max(_err(t, o)[0] for t, o in out[100:200]) < 1.0  # the estimate itself did not move
+    for _, o in out[60:99]:
+        assert o.quality == "tracking" and math.sqrt(o.cov[0, 0]) < 1.0
+    off = drive(np.random.default_rng(12345), 320, gnss_bias_at=set(range(100, 200)), gnss_sigma=0.5,
+                params=_params(fallback_weight=0.0))[1]
+    d = np.array([[t[0] + 7.0 - o.x, t[1] - o.y] for t, o in off[150:200]])
+    m2 = [v @ np.linalg.solve(o.cov[:2, :2], v) for v, (_, o) in zip(d, off[150:200])]
+    assert np.median(m2) > 50.0  # without the term the same frames claim a tight ellipse
+
+
 def test_gnss_outage_keeps_tracking(rng):
     tr, out = drive(rng, 200, gnss_off=set(range(60, 200)))
     q = [o.quality for _, o in out[60:]]

@@ -131,6 +131,10 @@ class TrackParams:
         raise it if the correlator's temperature is calibrated.
     loglik_clip : float
         Dynamic range kept below the frame's best log-likelihood [40].
+    outside_fill : str
+        Log-likelihood given to poses the frame's volume does not cover (outside its box in
+        position or heading, and the inactive heading layers): "min" (the volume's worst value) or
+        "mean" (its average: the frame says nothing about them) ["mean"].
     q_xy_m2, q_xy_per_m : float
         Position diffusion variance per frame (m^2) and per metre driven (m^2/m) [1e-4, 4e-3].
     q_yaw_rad2, q_yaw_per_m, q_yaw_per_rad : float
@@ -186,6 +190,12 @@ class TrackParams:
         Error the likelihood cannot show (map survey errors of open vector map data, calibration,
         the ground not being flat), added to the reported covariance as an independent term after
         the quality decision: the output never claims better than this [0.5, 0.5].
+    fallback_weight : float
+        While not tracking (searching, degraded), the reported covariance also holds the satellite
+        fix of the frame as a competing pose with this weight: ``w (S + d d^T)`` with S the fix's
+        scale squared (isotropic) and d the fix minus the estimate, the second moment of a two-pose
+        mixture about the estimate. The flag says the filter's mode is in doubt, so its covariance
+        must cover the pose the receiver gives; 0 turns it off [0.25].
     gnss : GnssParams
         Robust satellite-fix prior.
     """
@@ -195,6 +205,7 @@ class TrackParams:
     floor: float = 1e-4
     likelihood_weight: float = 0.1
     loglik_clip: float = 40.0
+    outside_fill: str = "mean"
     q_xy_m2: float = 1e-4
     q_xy_per_m: float = 4e-3
     q_yaw_rad2: float = 1e-6
@@ -227,6 +238,7 @@ class TrackParams:
     course_veto_frames: int = 5
     model_sigma_m: float = 0.5
     model_sigma_deg: float = 0.5
+    fallback_weight: float = 0.25
     gnss: GnssParams = field(default_factory=GnssParams)
 
     def __post_init__(self):
@@ -236,6 +248,10 @@ class TrackParams:
             raise InputError(f"track.headings = {self.headings}: must be in 4..4096")
         if not 0.0 <= self.floor < 0.5:
             raise InputError(f"track.floor = {self.floor}: must be in [0, 0.5)")
+        if not 0.0 <= self.fallback_weight <= 1.0:
+            raise InputError(f"track.fallback_weight = {self.fallback_weight}: must be in [0, 1]")
+        if self.outside_fill not in ("min", "mean"):
+            raise InputError(f"track.outside_fill = {self.outside_fill!r}: must be \"min\" or \"mean\"")
         if not 0.0 < self.likelihood_weight <= 10.0:
             raise InputError(f"track.likelihood_weight = {self.likelihood_weight}: must be in (0, 10]")
         for k in ("q_xy_m2", "q_xy_per_m", "q_yaw_rad2", "q_yaw_per_m", "q_yaw_per_rad",
@@ -471,7 +487,7 @@ class GridFilter:
         """
         L = vol.loglik
         lmax = float(L.max())
-        lout = float(L.min())
+        lout = float(L.min()) if self.p.outside_fill == "min" else float(L.mean(dtype=np.float64))
         w = self.p.likelihood_weight if weight is None else weight
         s = K.sample_update(self.bel, self.dr, self.dc, self.hoff, self.dyaw, L,
                             float(self.row0 - vol.row0), float(self.col0 - vol.col0), float(vol.scale),
@@ -1097,4 +1113,12 @@ class Tracker:
         cov[0, 0] += self.p.model_sigma_m ** 2
         cov[1, 1] += self.p.model_sigma_m ** 2
         cov[2, 2] += math.radians(self.p.model_sigma_deg) ** 2
+        g = self._g
+        if quality != "tracking" and g is not None and self.p.fallback_weight > 0:
+            w = self.p.fallback_weight
+            dx, dy = g[0] - est.x, g[1] - est.y
+            cov[0, 0] += w * (g[2] * g[2] + dx * dx)
+            cov[1, 1] += w * (g[2] * g[2] + dy * dy)
+            cov[0, 1] += w * dx * dy
+            cov[1, 0] += w * dx * dy
         return TrackOutput(t, est.x, est.y, est.yaw, cov, quality, est.modes, status, surprise, was_global)
