@@ -76,6 +76,22 @@ def test_fast_tracking_agrees_with_exact_tracking(corr, site):
         assert abs(ex[1] - fa[1]) <= 1 and abs(ex[2] - fa[2]) <= 1 and circ(ex[0], fa[0]) <= 1
 
 
+def test_tracking_modes_are_worked_out_when_read_and_only_before_the_next_call(corr, site):
+    win = np.ascontiguousarray(site[:, 20:276, 30:286])
+    corr.set_map(win)
+    bev = synth.cut_bev(win, 120.0, 130.0, 0.7, np.random.default_rng(2), noise=0.1)
+    a = int(round(0.7 / corr.params.dyaw))
+    for exact in (False, True):
+        trk = corr.track(bev, 121, 128, a + 3, exact=exact)
+        m = trk.modes[0]
+        assert trk.modes[0] is m  # worked out once
+        assert abs(m.row - 119.5) <= 1.5 and abs(m.col - 129.5) <= 1.5 and circ(m.cell[0], a) <= 2, m
+        stale = corr.track(bev, 121, 128, a + 3, exact=exact)
+        corr.search_fast(bev)
+        with pytest.raises(InputError, match="read it before the next call"):
+            stale.modes
+
+
 def test_planted_pose_recovered_with_subcell_refinement(corr, site):
     """Clean grid cut at a planted pose between cells and headings: the refined mode is near the truth."""
     rng = np.random.default_rng(9)

@@ -172,7 +172,6 @@ class SearchResult:
     status: str = "ok"
 
 
-@dataclass
 class TrackResult:
     """Result of a tracking update: the log-likelihood volume over the small window around the prior.
 
@@ -183,16 +182,36 @@ class TrackResult:
     ``volume[t, u, v]`` is heading ``2 (a0 + t) mod A`` with the robot at continuous
     window coordinates ``(2 (row0 + u) + 1, 2 (col0 + v) + 1)``. ``modes`` are always
     exact and at full resolution. Arrays are views of the workspace.
+
+    ``modes`` are worked out when first read (a filter that takes only the volume does not
+    pay for their exact refinement); like the volume they come from the workspace, so read
+    them before the correlator's next call (a later read raises ``InputError``).
     """
 
-    volume: np.ndarray
-    row0: int
-    col0: int
-    a0: int
-    modes: list = field(default_factory=list)
-    scale: int = 1
-    ok: bool = True
-    status: str = "ok"
+    __slots__ = ("volume", "row0", "col0", "a0", "scale", "ok", "status", "_modes", "_make", "_owner", "_call")
+
+    def __init__(self, volume, row0, col0, a0, modes=None, scale=1, ok=True, status="ok", *, _make=None,
+                 _owner=None):
+        self.volume, self.row0, self.col0, self.a0 = volume, row0, col0, a0
+        self.scale, self.ok, self.status = scale, ok, status
+        self._modes = None if modes is None and _make is not None else list(modes or [])
+        self._make, self._owner = _make, _owner
+        self._call = _owner._calls if _owner is not None else 0
+
+    @property
+    def modes(self) -> list:
+        """Top modes, best first (exact scores, full resolution)."""
+        if self._modes is None:
+            if self._owner._calls != self._call:
+                raise InputError("TrackResult.modes read after a later correlator call: read it before the next "
+                                 "call (results are views of the correlator's workspace)")
+            self._modes = self._make()
+            self._make = None
+        return self._modes
+
+    def __repr__(self) -> str:
+        return (f"TrackResult(volume={self.volume.shape}, row0={self.row0}, col0={self.col0}, a0={self.a0}, "
+                f"scale={self.scale}, ok={self.ok}, status={self.status!r})")
 
 
 def _good_size(n: int) -> int:
@@ -511,6 +530,7 @@ class Correlator:
         self._pw_track_c = PeakWork((2 * ((p.track_half_headings + 1) // 2) + 1,)
                                     + (2 * ((p.track_radius_cells + 1) // 2) + 1,) * 2)
         self._have_map = False
+        self._calls = 0
 
     def _fine_engine(self) -> "_CircleEngine":
         if self._fine is None:
@@ -581,6 +601,7 @@ class Correlator:
         window = np.ascontiguousarray(window, np.float32)
         if not np.all(np.isfinite(window)):
             raise InputError("map window: values must be finite")
+        self._calls += 1  # results of earlier calls are stale now
         self.model.map_features(window, out=self._G, scratch=self._scratch)
         K.downsample2(self._G, self._Gc)
         K.map_hwf(self._G, self._G_hwf8)
@@ -605,14 +626,15 @@ class Correlator:
         if "fast" in modes:
             self.search_fast(bev)
         if "track" in modes:
-            self.track(bev, p.window_shape[0] // 2, p.window_shape[1] // 2, 0)
+            self.track(bev, p.window_shape[0] // 2, p.window_shape[1] // 2, 0).modes  # noqa: B018 (compiles them)
         if "track_exact" in modes:
-            self.track(bev, p.window_shape[0] // 2, p.window_shape[1] // 2, 0, exact=True)
+            self.track(bev, p.window_shape[0] // 2, p.window_shape[1] // 2, 0, exact=True).modes  # noqa: B018
         self._have_map = had
 
     # -- per frame -------------------------------------------------------------------------
     def _prepare(self, bev) -> str:
         p = self.params
+        self._calls += 1  # every per-frame call; lazily computed results check it
         if not self._have_map:
             return "no map window set"
         if getattr(bev, "status", "ok") != "ok":
@@ -721,19 +743,27 @@ class Correlator:
             return TrackResult(e.vol, row0, col0, a0, scale=1 if exact else 2, ok=False, status=status)
         if exact:
             e.run(self._feat, self._G, row0, col0, a0, p.n_headings, self._inv_temp)
-            modes = modes_of_volume(e.vol, row0, col0, a0, p.n_headings, self._pw_track, p.n_modes,
-                                    p.mode_radius_cells, p.mode_radius_headings)
-            return TrackResult(e.vol, row0, col0, a0, modes=modes)
+            return TrackResult(e.vol, row0, col0, a0, _make=lambda: self._track_modes(e, row0, col0, a0, True),
+                               _owner=self)
         K.downsample2(self._feat, self._feat_c)
         e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, 4.0 * self._inv_temp)
+        return TrackResult(e.vol, row0, col0, a0, scale=2, _make=lambda: self._track_modes(e, row0, col0, a0, False),
+                           _owner=self)
+
+    def _track_modes(self, e, row0, col0, a0, exact: bool) -> list:
+        """Modes of the last tracking volume: its own maxima (exact), or the best ``track_refine`` coarse
+        maxima climbed to local maxima of the exact full-resolution score."""
+        p = self.params
+        if exact:
+            return modes_of_volume(e.vol, row0, col0, a0, p.n_headings, self._pw_track, p.n_modes,
+                                   p.mode_radius_cells, p.mode_radius_headings)
         cands = modes_of_volume(e.vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
                                 max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // 2))
         sc = self._scorer
         sc.new_frame(self._feat)
         starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=2)
-        modes = _distinct(sc.climb(self._G_hwf8, starts, self._inv_temp, max_steps=16,
-                                   heading_radius=p.climb_heading_radius), p, p.n_modes)
-        return TrackResult(e.vol, row0, col0, a0, modes=modes, scale=2)
+        return _distinct(sc.climb(self._G_hwf8, starts, self._inv_temp, max_steps=16,
+                                  heading_radius=p.climb_heading_radius), p, p.n_modes)
 
     def pose_of(self, mode: Mode) -> tuple[float, float, float]:
         """(row, col, yaw_rad) of a mode: continuous window cell of the robot origin and its yaw."""
