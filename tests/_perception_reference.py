@@ -136,6 +136,16 @@ def segment_reference(bgr, p, hrow=None):
         probs[:, gap] = 0.0
         probs[TREE, gap] = 1.0
         labels[gap] = TREE
+    # sky-gap model: remaining sky pixels near a crown whose gap score is high enough are tree
+    gaps = load_crown_model(p.gap_model, gaps=True) if model is not None else None
+    if gaps is not None:
+        istree = (labels == TREE).astype(float)
+        f = np.concatenate([tf, np.stack([box_mean(istree, 9), box_mean(istree, 15), tex, crown])])
+        z = gaps.score(np.moveaxis(f, 0, -1))
+        gap = (labels == SKY) & (z > math.log(p.gap_threshold / (1 - p.gap_threshold))) & (f[-3] >= p.gap_near)
+        probs[:, gap] = 0.0
+        probs[TREE, gap] = 1.0
+        labels[gap] = TREE
     # poles (thin vertical lines crossing the horizon) and fences (building runs too low for a house)
     def runs(col_mask):
         i = h - 1

@@ -12,7 +12,8 @@ from scipy.optimize import minimize
 
 from tinyloc.errors import InputError
 from tinyloc.perception import _kernels as K
-from tinyloc.perception.crown_model import DEFAULT_PATH, FEATURES, CrownModel, fit_crown_model, load_crown_model
+from tinyloc.perception.crown_model import (DEFAULT_PATH, FEATURES, GAP_FEATURES, GAP_PATH, CrownModel, fit_crown_model,
+                                            load_crown_model)
 
 
 def _planted(rng, n=4000):
@@ -59,6 +60,10 @@ def test_shipped_model_loads_with_provenance():
     prov = m.provenance
     assert "image_folder" in prov and prov["image_folder"]["ids"] == "even"  # the odd ids stay unseen
     assert json.loads(DEFAULT_PATH.read_text())["features"] == list(FEATURES)
+    g = load_crown_model("default", gaps=True)
+    assert g.features == GAP_FEATURES and g.provenance["stage"] == "gaps" and g.provenance["image_folder"]["ids"] == "even"
+    with pytest.raises(InputError, match="feature list"):
+        CrownModel.load(GAP_PATH)  # a sky-gap file is not a crown model
 
 
 def test_bad_model_files(tmp_path):

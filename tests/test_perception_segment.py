@@ -21,7 +21,11 @@ def _frames():
 
 CASES = {**{n: preset(n) for n in PRESETS},
          "poles and fences on": SegmentParams(pole_contrast=0.05, pole_run=0.1, fence_top=0.08, crown_model=""),
-         "crown model on": SegmentParams(crown_model="default"),
+         "crown model on": SegmentParams(crown_model="default", gap_model=""),
+         "crown and sky-gap models on": SegmentParams(crown_model="default", gap_model="default"),
+         # a low gap threshold and no nearness condition make the sky-gap model fire on the street-like
+         # frame's sky, so it is compared
+         "sky-gap model, low threshold": SegmentParams(gap_threshold=0.5, gap_near=0.0),
          "crown model off": SegmentParams(crown_model="")}
 
 
@@ -44,6 +48,13 @@ def test_kernels_match_reference(name):
         assert {5, 6} <= seen  # both optional rules fired on these frames, so they were compared
     if name == "crown model on":
         assert {0, 4} <= seen  # the crown model split building from tree on these frames
+    if name == "sky-gap model, low threshold":
+        seg = Segmenter((480, 360), p)
+        img = next(_frames())[1]
+        hrow = np.linspace(0.45, 0.6, seg.size[0]) * seg.size[1]
+        _, lab = seg.run(img, hrow)
+        off = Segmenter((480, 360), SegmentParams(gap_model="")).run(img, hrow)[1]
+        assert np.sum(lab != off) > 500  # the gap model relabelled sky, and the result matched the reference
 
 
 def test_probabilities_are_valid():

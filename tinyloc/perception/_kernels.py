@@ -782,3 +782,30 @@ def sky_in_crowns(tree_share, share, probs, labels):
                 _set_class(probs, labels, i, j, TREE)
                 n += 1
     return n
+
+
+@njit(**JIT)
+def sky_gaps(tfeat, extra, wts, bias, zmin, near, probs, labels):
+    """Sky pixels near a crown whose sky-gap score z = bias + sum_k wts[k] f_k exceeds ``zmin`` become tree.
+
+    f = the crown features (tfeat, NT planes) followed by the ``extra`` planes (tree share 9 x 9 and
+    15 x 15, gradient energy, smoothed crown probability). Near a crown: the 15 x 15 tree share is at
+    least ``near`` (a gap lies within a crown; open sky far from trees is never relabelled, whatever its
+    colour). Returns the number relabelled.
+    """
+    nt, h, w = tfeat.shape
+    ne = extra.shape[0]
+    n = 0
+    for i in range(h):
+        for j in range(w):
+            if labels[i, j] != SKY or extra[1, i, j] < near:
+                continue
+            z = bias
+            for k in range(nt):
+                z += wts[k] * tfeat[k, i, j]
+            for k in range(ne):
+                z += wts[nt + k] * extra[k, i, j]
+            if z > zmin:
+                _set_class(probs, labels, i, j, TREE)
+                n += 1
+    return n

@@ -31,25 +31,30 @@ from pathlib import Path
 import cv2
 import numpy as np
 
-from ..classes import BUILDING, TREE
+from ..classes import BUILDING, SKY, TREE
 from ..errors import InputError
 from . import _kernels as K
-from .crown_model import fit_crown_model
+from .crown_model import FEATURES, GAP_FEATURES, fit_crown_model
 from .segment import Segmenter, preset
 
 
-def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None):
+def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None, gaps: bool = False):
     seg.run(bgr, hrow)
-    tf = seg.crown_features(bgr)
+    tf = seg.crown_features(bgr) if seg.crown_model is None else seg.tfeat
     lab = seg.labels
-    m = (seg.feat[K.F_U] > seg.params.crown_u_min) & np.isin(lab, (BUILDING, TREE)) & \
-        np.isin(truth_small, (BUILDING, TREE))
+    if gaps:  # sky-gap stage: pixels the segmenter (crown model on, gap model off) calls sky
+        tf = np.concatenate([tf, seg.gap_features()])
+        m = (lab == SKY) & np.isin(truth_small, (SKY, TREE))
+    else:
+        m = (seg.feat[K.F_U] > seg.params.crown_u_min) & np.isin(lab, (BUILDING, TREE)) & \
+            np.isin(truth_small, (BUILDING, TREE))
     m[1::2, :] = False
     m[:, 1::2] = False
     return tf[:, m].T.astype(np.float64), truth_small[m] == TREE
 
 
-def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, params, *, progress=None):
+def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, params, *, progress=None,
+                        gaps: bool = False):
     """(x, y, names) from an image folder with label images of the same names (see the module docstring)."""
     files = sorted(p for p in Path(images).iterdir() if p.suffix.lower() in (".png", ".jpg", ".jpeg"))
     xs, ys, used = [], [], []
@@ -67,7 +72,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
         if seg is None or seg.frame_size != (img.shape[1], img.shape[0]):
             seg = Segmenter((img.shape[1], img.shape[0]), params)
         truth = cv2.resize(lut[raw], seg.size, interpolation=cv2.INTER_NEAREST)
-        x, y = _samples(seg, img, truth)
+        x, y = _samples(seg, img, truth, gaps=gaps)
         xs.append(x)
         ys.append(y)
         used.append(p.name)
@@ -78,7 +83,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
     return np.concatenate(xs), np.concatenate(ys), used
 
 
-def samples_from_run(run: Path, every: int, params, *, progress=None):
+def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool = False):
     """(x, y, n_frames) from a run folder with labels/, segmented with its camera and IMU gravity."""
     from ..runfolder import RunFolder
     from .pipeline import Perception, PerceptionParams
@@ -100,7 +105,7 @@ def samples_from_run(run: Path, every: int, params, *, progress=None):
             continue
         seg = perc.segmenter
         truth = cv2.resize(lab, seg.size, interpolation=cv2.INTER_NEAREST)
-        x, y = _samples(seg, img, truth, perc.horizon.copy())
+        x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps)
         xs.append(x)
         ys.append(y)
         n += 1
@@ -133,34 +138,41 @@ def main(argv=None) -> int:
     ap.add_argument("--run-preset", default="sidewalk", help="segmentation preset for the runs (default sidewalk)")
     ap.add_argument("--run-every", type=int, default=10, help="use every N-th frame of a run (default 10)")
     ap.add_argument("--run-share", type=float, default=0.3, help="total weight of the runs, 0..1 (default 0.3)")
+    ap.add_argument("--stage", choices=("crown", "gaps"), default="crown",
+                    help="crown: the tree-vs-building score (crown model off while sampling); gaps: the sky-gap "
+                         "score, sampled with --crown on (default crown)")
+    ap.add_argument("--crown", default="default", help="crown model used by the gaps stage (default: shipped)")
     ap.add_argument("-o", "--out", type=Path, required=True, help="model file to write (JSON)")
     a = ap.parse_args(argv)
 
     def say(msg):
         print(msg, file=sys.stderr)
 
+    gaps = a.stage == "gaps"
+    crown = a.crown if gaps else ""
+    what = ("pixels the segmenter (crown model on, gap model off) labels sky and the truth sky or tree" if gaps else
+            "pixels labelled building or tree by both the rules and the truth, above crown_u_min")
     try:
         parts, prov = [], {"fitted": datetime.date.today().isoformat(), "method": "logistic regression, IRLS, L2 1e-2",
-                           "samples": "pixels labelled building or tree by both the rules and the truth, every 2nd "
-                                      "pixel in each direction, above crown_u_min"}
+                           "stage": a.stage, "samples": what + ", every 2nd pixel in each direction"}
         share_img = 1.0 - a.run_share if a.run else 1.0
         if a.images:
             from .labels_in import load_label_map
 
             if not (a.labels and a.label_map):
                 raise InputError("--images needs --labels and --label-map")
-            p = dataclasses.replace(preset(a.preset), crown_model="")
+            p = dataclasses.replace(preset(a.preset), crown_model=crown, gap_model="")
             x, y, used = samples_from_folder(a.images, a.labels, load_label_map(a.label_map), a.ids, p,
-                                             progress=None)
+                                             progress=None, gaps=gaps)
             parts.append((x, y, _balanced(y, share_img)))
             prov["image_folder"] = {"ids": a.ids, "frames": len(used), "first": used[0], "last": used[-1],
                                     "preset": a.preset, "samples": int(len(y)), "tree_share": float(y.mean()),
                                     "weight": share_img}
         if a.run:
-            p = dataclasses.replace(preset(a.run_preset), crown_model="")
+            p = dataclasses.replace(preset(a.run_preset), crown_model=crown, gap_model="")
             rx, ry, info = [], [], []
             for r in a.run:
-                x, y, n = samples_from_run(r, a.run_every, p, progress=say)
+                x, y, n = samples_from_run(r, a.run_every, p, progress=say, gaps=gaps)
                 rx.append(x)
                 ry.append(y)
                 info.append({"run": Path(r).name, "frames": n, "every": a.run_every})
@@ -173,13 +185,13 @@ def main(argv=None) -> int:
         x = np.concatenate([q[0] for q in parts])
         y = np.concatenate([q[1] for q in parts])
         w = np.concatenate([q[2] for q in parts]) * len(y)
-        model = fit_crown_model(x, y, w, provenance=prov)
+        model = fit_crown_model(x, y, w, provenance=prov, features=GAP_FEATURES if gaps else FEATURES)
         z = model.score(x)
         acc_t = float(np.average(z[y] > 0, weights=w[y]))
         acc_b = float(np.average(z[~y] <= 0, weights=w[~y]))
-        prov["fit_recall"] = {"tree": round(acc_t, 3), "building": round(acc_b, 3)}
+        prov["fit_recall"] = {"tree": round(acc_t, 3), "other": round(acc_b, 3)}
         dataclasses.replace(model, provenance=prov).save(a.out)
-        say(f"wrote {a.out}: {len(y)} samples, recall on the fitted samples: tree {acc_t:.3f}, building {acc_b:.3f}")
+        say(f"wrote {a.out}: {len(y)} samples, recall on the fitted samples: tree {acc_t:.3f}, other {acc_b:.3f}")
     except InputError as e:
         print(f"error: {e}", file=sys.stderr)
         return 2

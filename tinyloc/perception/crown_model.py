@@ -37,6 +37,11 @@ FEATURES = ("v", "s", "exgr", "u", "var9", "coh9", "axis9", "fr", "exgr9", "s9",
             "coh31", "axis15", "vert15", "fine15", "fr15", "fr31", "logen9", "en15", "nonsky9")
 if len(FEATURES) != K.NT:
     raise RuntimeError("crown model: feature list and kernel planes disagree")
+#: The sky-gap model's features: the crown features plus, from the labels after the crown model, the
+#: share of tree pixels in 9 x 9 and 15 x 15 windows, the gradient energy ``tex`` and the smoothed crown
+#: probability (planes of ``Segmenter.gfeat`` beyond ``tfeat``).
+GAP_FEATURES = FEATURES + ("tree9", "tree15", "tex", "crown")
+GAP_PATH = Path(__file__).with_name("crown_gaps_default.json")
 
 
 @dataclass(frozen=True)
@@ -57,12 +62,14 @@ class CrownModel:
     weights: np.ndarray
     bias: float
     provenance: dict = field(default_factory=dict, compare=False)
+    features: tuple = FEATURES
 
     def __post_init__(self):
+        n = len(self.features)
         for name in ("mean", "scale", "weights"):
             a = np.asarray(getattr(self, name), np.float64)
-            if a.shape != (K.NT,) or not np.all(np.isfinite(a)):
-                raise InputError(f"crown model: {name} must be {K.NT} finite numbers")
+            if a.shape != (n,) or not np.all(np.isfinite(a)):
+                raise InputError(f"crown model: {name} must be {n} finite numbers")
             object.__setattr__(self, name, a)
         if np.any(self.scale <= 0):
             raise InputError("crown model: scales must be > 0")
@@ -79,7 +86,7 @@ class CrownModel:
         return self.bias + ((np.asarray(tfeat, np.float64) - self.mean) / self.scale) @ self.weights
 
     def to_dict(self) -> dict:
-        return {"format": FORMAT, "version": 1, "features": list(FEATURES), "mean": self.mean.tolist(),
+        return {"format": FORMAT, "version": 1, "features": list(self.features), "mean": self.mean.tolist(),
                 "scale": self.scale.tolist(), "weights": self.weights.tolist(), "bias": self.bias,
                 "provenance": self.provenance}
 
@@ -87,7 +94,7 @@ class CrownModel:
         Path(path).write_text(json.dumps(self.to_dict(), indent=1) + "\n")
 
     @classmethod
-    def load(cls, path) -> "CrownModel":
+    def load(cls, path, features: tuple = FEATURES) -> "CrownModel":
         try:
             d = json.loads(Path(path).read_text())
         except OSError as e:
@@ -96,11 +103,11 @@ class CrownModel:
             raise InputError(f"{path}: not valid JSON (line {e.lineno})") from None
         if not isinstance(d, dict) or d.get("format") != FORMAT or d.get("version") != 1:
             raise InputError(f"{path}: not a {FORMAT} version 1 file")
-        if d.get("features") != list(FEATURES):
-            raise InputError(f"{path}: feature list does not match this build's ({', '.join(FEATURES)})")
+        if d.get("features") != list(features):
+            raise InputError(f"{path}: feature list does not match this build's ({', '.join(features)})")
         try:
             return cls(np.array(d["mean"], float), np.array(d["scale"], float), np.array(d["weights"], float),
-                       float(d["bias"]), dict(d.get("provenance", {})))
+                       float(d["bias"]), dict(d.get("provenance", {})), tuple(features))
         except (KeyError, TypeError, ValueError) as e:
             raise InputError(f"{path}: bad crown model: {e}") from None
 
@@ -108,24 +115,26 @@ class CrownModel:
 _CACHE: dict[str, CrownModel] = {}
 
 
-def load_crown_model(name: str) -> CrownModel | None:
-    """``"default"``: the shipped model; ``""`` or ``"off"``: None (the bright-mix crown rule); else a path."""
+def load_crown_model(name: str, *, gaps: bool = False) -> CrownModel | None:
+    """``"default"``: the shipped model; ``""`` or ``"off"``: None (the bright-mix crown rule, or no sky-gap
+    model); else a path. ``gaps`` selects the sky-gap model (``GAP_FEATURES``) instead of the crown model."""
     if name in ("", "off"):
         return None
-    path = str(DEFAULT_PATH if name == "default" else Path(name))
+    path = str((GAP_PATH if gaps else DEFAULT_PATH) if name == "default" else Path(name))
     if path not in _CACHE:
-        _CACHE[path] = CrownModel.load(path)
+        _CACHE[path] = CrownModel.load(path, GAP_FEATURES if gaps else FEATURES)
     return _CACHE[path]
 
 
 def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarray | None = None, *,
-                    l2: float = 1e-2, iterations: int = 25, provenance: dict | None = None) -> CrownModel:
+                    l2: float = 1e-2, iterations: int = 25, provenance: dict | None = None,
+                    features: tuple = FEATURES) -> CrownModel:
     """Logistic regression of ``is_tree`` on the features by Newton's method (IRLS), L2-regularised.
 
     Parameters
     ----------
-    x : ndarray (n, NT)
-        Feature vectors (``Segmenter.tfeat`` planes at the sampled pixels).
+    x : ndarray (n, len(features))
+        Feature vectors (``Segmenter.tfeat`` / ``gfeat`` planes at the sampled pixels).
     is_tree : ndarray (n,) bool
     sample_weight : ndarray (n,), optional
         Per-sample weights (e.g. to balance classes and data sources).
@@ -134,8 +143,9 @@ def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarra
     """
     x = np.asarray(x, np.float64)
     y = np.asarray(is_tree, np.float64)
-    if x.ndim != 2 or x.shape[1] != K.NT or len(y) != len(x) or len(x) < 10:
-        raise InputError(f"crown model fit: expected (n, {K.NT}) features and n labels, got {x.shape}, {y.shape}")
+    nf = len(features)
+    if x.ndim != 2 or x.shape[1] != nf or len(y) != len(x) or len(x) < 10:
+        raise InputError(f"crown model fit: expected (n, {nf}) features and n labels, got {x.shape}, {y.shape}")
     sw = np.ones(len(y)) if sample_weight is None else np.asarray(sample_weight, np.float64)
     mean = np.average(x, axis=0, weights=sw)
     scale = np.sqrt(np.average((x - mean) ** 2, axis=0, weights=sw)) + 1e-9
@@ -151,7 +161,7 @@ def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarra
         th -= step
         if np.max(np.abs(step)) < 1e-8:
             break
-    return CrownModel(mean, scale, th[:-1], float(th[-1]), dict(provenance or {}))
+    return CrownModel(mean, scale, th[:-1], float(th[-1]), dict(provenance or {}), tuple(features))
 
 
-__all__ = ["CrownModel", "FEATURES", "load_crown_model", "fit_crown_model", "DEFAULT_PATH"]
+__all__ = ["CrownModel", "FEATURES", "GAP_FEATURES", "load_crown_model", "fit_crown_model", "DEFAULT_PATH", "GAP_PATH"]

@@ -93,6 +93,10 @@ class SegmentParams:
     crown_smooth: int = 9  # window of the masked mean of the crown probability (px)
     crown_sky_share: float = 0.3  # sky pixels whose window holds more tree than this are crown gaps (0: off)
     crown_sky_window: int = 9  # ... window (px)
+    gap_model: str = "default"  # sky-gap score (crown_model.GAP_FEATURES): "default", a path, or "" (off);
+    #                             needs the crown model
+    gap_threshold: float = 0.85  # a sky pixel whose gap probability exceeds this is tree ...
+    gap_near: float = 0.02  # ... when at least this share of its 15 x 15 window is tree (near a crown)
 
     def __post_init__(self):
         if not 32 <= int(self.width) <= 1024:
@@ -109,6 +113,10 @@ class SegmentParams:
             raise InputError("tex_window and mix_window must be odd")
         if not 0.05 <= self.crown_threshold <= 0.95:
             raise InputError("crown_threshold must be within 0.05 .. 0.95")
+        if not 0.05 <= self.gap_threshold <= 0.995:
+            raise InputError("gap_threshold must be within 0.05 .. 0.995")
+        if not 0.0 <= self.gap_near <= 1.0:
+            raise InputError("gap_near must be within 0 .. 1")
         if self.crown_smooth % 2 == 0 or self.crown_sky_window % 2 == 0 or self.crown_smooth < 1 \
                 or self.crown_sky_window < 1:
             raise InputError("crown_smooth and crown_sky_window must be odd and positive")
@@ -142,9 +150,10 @@ class SegmentParams:
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
-    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, crown_model=""),
+    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, crown_model="",
+                              gap_model=""),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
-                          grass_weight=0.7, crown_model=""),
+                          grass_weight=0.7, crown_model="", gap_model=""),
 }
 
 
@@ -197,6 +206,11 @@ class Segmenter:
         self.crown_model = load_crown_model(params.crown_model)
         if self.crown_model is not None:
             self._cw, self._cb = self.crown_model.folded()
+        self.gap_model = load_crown_model(params.gap_model, gaps=True) if self.crown_model is not None else None
+        if self.gap_model is not None:
+            self._gw, self._gb = self.gap_model.folded()
+            self._gz = float(np.log(params.gap_threshold / (1.0 - params.gap_threshold)))
+        self.gextra = np.zeros((4, h, w), f32)  # sky-gap features beyond tfeat (zero when the model is off)
         self.tfeat = np.zeros((K.NT, h, w), f32)  # crown-model features (zero when the model is off)
         self.small2 = np.zeros((2 * h, 2 * w, 3), np.uint8)
         self.g2x = np.zeros((2 * h, 2 * w), f32)
@@ -268,6 +282,9 @@ class Segmenter:
             K.class_indicator(self.labels, K.TREE, t[0])
             K.box_mean(t[0], p.crown_sky_window // 2, self.tmp, t[1])
             K.sky_in_crowns(t[1], p.crown_sky_share, self.probs, self.labels)
+        if self.gap_model is not None:
+            self.gap_features()
+            K.sky_gaps(self.tfeat, self.gextra, self._gw, self._gb, self._gz, p.gap_near, self.probs, self.labels)
         K.thin_and_low(self.feat, hrow, self._prm, self.probs, self.labels, self.cand)
         return self.probs, self.labels
 
@@ -318,6 +335,17 @@ class Segmenter:
         K.class_indicator(self.sky, 0, t[0])  # 1 where not sky (a uint8 -> float ufunc would allocate)
         _blur(t[0], 4, tf[K.T_NONSKY9])
         return tf
+
+    def gap_features(self) -> np.ndarray:
+        """Fill and return ``gextra`` (tree share 9 x 9 and 15 x 15 of the current labels, gradient energy,
+        smoothed crown probability): with ``tfeat``, the sky-gap model's features (``GAP_FEATURES``)."""
+        t, g = self._t, self.gextra
+        K.class_indicator(self.labels, K.TREE, t[0])
+        _blur(t[0], 4, g[0])
+        _blur(t[0], 7, g[1])
+        g[2] = self.tex
+        g[3] = self.crown
+        return g
 
     def _crown_prob(self) -> None:
         """Tree probability of the crown model, averaged over the pixels it applies to, into ``crown``."""
