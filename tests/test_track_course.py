@@ -69,3 +69,41 @@ def test_noisier_fixes_give_a_wider_sigma():
         cc, _, _ = _drive(np.random.default_rng(5), 1.0, gnss_sigma=gs)
         s.append(cc.heading()[1])
     assert s[1] > s[0]
+
+
+def test_residual_and_ring_wrap_match_a_plain_fit():
+    # a ring that has wrapped (capacity 40, 120 fixes): the residual from the closed form
+    # |o|^2 + |g|^2 - 2 |(dot, cross)| equals the explicit one, sum |R o - g|^2 (plain NumPy)
+    rng = np.random.default_rng(6)
+    cc = CourseCheck(span_m=15.0, sigma_floor_deg=0.01, capacity=40)
+    o, g = [], []
+    for _ in range(120):
+        cc.odometry(0.5, 0.0, 0.02)
+        gx, gy = -cc.oy + rng.normal(0, 1.0), cc.ox + rng.normal(0, 1.0)
+        cc.fix(gx, gy)
+        o.append((cc.ox, cc.oy))
+        g.append((gx, gy))
+    yaw, sigma = cc.heading()
+    m = 31
+    oc = np.array(o[-m:]) - np.mean(o[-m:], axis=0)
+    gc = np.array(g[-m:]) - np.mean(g[-m:], axis=0)
+    th = math.atan2(np.sum(oc[:, 0] * gc[:, 1] - oc[:, 1] * gc[:, 0]), np.sum(oc[:, 0] * gc[:, 0] + oc[:, 1] * gc[:, 1]))
+    c, s = math.cos(th), math.sin(th)
+    r = np.stack([c * oc[:, 0] - s * oc[:, 1] - gc[:, 0], s * oc[:, 0] + c * oc[:, 1] - gc[:, 1]], 1)
+    resid = math.sqrt(np.mean(np.sum(r * r, axis=1)))
+    spread = math.sqrt(np.mean(np.sum(oc * oc, axis=1)))
+    assert abs(wrap_angle(yaw - (cc.oyaw + th))) < 1e-9
+    assert abs(sigma - math.atan2(1.5 * resid + 0.5, spread)) < 1e-9
+
+
+def test_heading_check_does_not_allocate_per_call():
+    import tracemalloc
+
+    cc, _, _ = _drive(np.random.default_rng(7), 0.4)
+    cc.heading()
+    tracemalloc.start()
+    for _ in range(200):
+        cc.heading()
+    cur, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert cur < 2048 and peak < 4096  # bytes: array views only, no per-call copies of the ring

@@ -39,6 +39,8 @@ class CourseCheck:
         self._o = np.zeros((self.cap, 2), np.float64)
         self._g = np.zeros((self.cap, 2), np.float64)
         self._path = np.zeros(self.cap, np.float64)
+        self._wo = np.zeros((self.cap, 2), np.float64)
+        self._wg = np.zeros((self.cap, 2), np.float64)
         self.reset()
 
     def reset(self) -> None:
@@ -81,21 +83,31 @@ class CourseCheck:
             k = (k - 1) % self.cap
         else:
             return None
-        idx = [(newest - i) % self.cap for i in range(m)]
-        o = self._o[idx]
-        g = self._g[idx]
-        o = o - o.mean(axis=0)
-        g = g - g.mean(axis=0)
-        spread = math.sqrt(float(np.mean(np.sum(o * o, axis=1))))
+        # the m newest pairs, copied into work buffers (the order does not matter for the fit)
+        o, g = self._wo[:m], self._wg[:m]
+        start = (newest - m + 1) % self.cap
+        k1 = min(m, self.cap - start)
+        o[:k1] = self._o[start:start + k1]
+        g[:k1] = self._g[start:start + k1]
+        if k1 < m:
+            o[k1:] = self._o[:m - k1]
+            g[k1:] = self._g[:m - k1]
+        ox, oy, gx, gy = o[:, 0], o[:, 1], g[:, 0], g[:, 1]
+        ox -= ox.sum() / m
+        oy -= oy.sum() / m
+        gx -= gx.sum() / m
+        gy -= gy.sum() / m
+        oo = float(np.dot(ox, ox) + np.dot(oy, oy))
+        spread = math.sqrt(oo / m)
         if spread < 0.2 * self.span_m:
             return None  # driving back and forth: the rotation is not determined
-        cross = float(np.sum(o[:, 0] * g[:, 1] - o[:, 1] * g[:, 0]))
-        dot = float(np.sum(o[:, 0] * g[:, 0] + o[:, 1] * g[:, 1]))
+        cross = float(np.dot(ox, gy) - np.dot(oy, gx))
+        dot = float(np.dot(ox, gx) + np.dot(oy, gy))
         th = math.atan2(cross, dot)
-        c, s = math.cos(th), math.sin(th)
-        rx = c * o[:, 0] - s * o[:, 1] - g[:, 0]
-        ry = s * o[:, 0] + c * o[:, 1] - g[:, 1]
-        resid = math.sqrt(float(np.mean(rx * rx + ry * ry)))
+        # residual of the best rotation: sum |R o - g|^2 = |o|^2 + |g|^2 - 2 (cos th dot + sin th cross)
+        gg = float(np.dot(gx, gx) + np.dot(gy, gy))
+        r2 = oo + gg - 2.0 * math.hypot(dot, cross)
+        resid = math.sqrt(max(r2, 0.0) / m)
         sigma = max(self.sigma_floor, math.atan2(1.5 * resid + 0.5, spread))
         yaw = math.atan2(math.sin(self.oyaw + th), math.cos(self.oyaw + th))
         return yaw, sigma
