@@ -85,3 +85,38 @@ def test_bad_model_files(tmp_path):
         CrownModel.load(tmp_path / "missing.json")
     with pytest.raises(InputError, match="expected"):
         fit_crown_model(np.zeros((5, 3)), np.zeros(5, bool))
+
+
+def test_fit_tool_on_a_small_labelled_folder(tmp_path):
+    """``python -m tinyloc.perception.crown_fit`` end to end on four synthetic frames with hand-made labels:
+    a flat facade (label building) beside a textured crown (label tree) above the horizon."""
+    import cv2
+
+    from tinyloc.perception.crown_fit import main
+    from tinyloc.perception.labels_in import save_label_map
+
+    rng = np.random.default_rng(7)
+    (tmp_path / "img").mkdir()
+    (tmp_path / "lab").mkdir()
+    for k in range(4):
+        img = np.zeros((240, 320, 3), np.uint8)
+        img[:60] = (235, 225, 215)  # sky
+        img[60:135, :160] = (80 + 10 * k, 95, 130)  # facade, flat
+        crown = rng.integers(30, 120, (75, 160, 3)).astype(np.uint8)  # fine, isotropic texture
+        img[60:135, 160:] = crown
+        img[135:] = (100, 100, 100)  # road
+        lab = np.full((240, 320), 3, np.uint8)
+        lab[:60] = 0
+        lab[60:135, :160] = 1
+        lab[60:135, 160:] = 5
+        cv2.imwrite(str(tmp_path / "img" / f"{k:04d}.png"), img)
+        cv2.imwrite(str(tmp_path / "lab" / f"{k:04d}.png"), lab)
+    save_label_map(tmp_path / "map.toml", {0: "sky", 1: "building", 3: "road", 5: "tree"})
+    out = tmp_path / "crown.json"
+    assert main(["--images", str(tmp_path / "img"), "--labels", str(tmp_path / "lab"), "--label-map",
+                 str(tmp_path / "map.toml"), "--ids", "all", "-o", str(out)]) == 0
+    m = CrownModel.load(out)
+    assert m.provenance["image_folder"]["frames"] == 4 and m.provenance["stage"] == "crown"
+    assert m.provenance["fit_recall"]["tree"] > 0.9 and m.provenance["fit_recall"]["other"] > 0.9
+    # without data: a one-line error and exit status 2
+    assert main(["-o", str(tmp_path / "x.json")]) == 2
