@@ -141,8 +141,12 @@ class PingPongSource:
 PREFILL = """
 import sys
 from tinyloc.runtime import Localizer
-from tinyloc.runfolder import RunFolder
-Localizer.from_files(sys.argv[1], RunFolder.open(sys.argv[2], strict=False).camera).close()
+from tinyloc.runtime.sources import RunFolderSource
+src = RunFolderSource(sys.argv[2], max_frames=60)  # real frames reach kernels the warm-up does not
+loc = Localizer.from_files(sys.argv[1], src.camera)
+for f in src:
+    loc.step(f)
+loc.close()
 """
 
 
