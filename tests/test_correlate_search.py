@@ -165,6 +165,9 @@ def test_bad_parameters_and_windows_raise_one_line_errors():
         CorrelatorParams(n_headings=100)
     with pytest.raises(InputError, match="must be even"):
         CorrelatorParams(window_shape=(255, 256))
+    with pytest.raises(InputError, match="multiple of 4, got 200 / 4"):
+        CorrelatorParams(n_headings=200, coarse_heading_step=4)
+    assert CorrelatorParams(n_headings=200).coarse_step == 2 and CorrelatorParams().coarse_step == 4
     c = Correlator(CorrelatorParams(window_shape=(64, 64), n_headings=32, track_half_headings=4))
     with pytest.raises(InputError, match=r"expected shape \(9, 64, 64\), got \(9, 64, 65\)"):
         c.set_map(np.zeros((NUM_MAP_CLASSES, 64, 65), np.float32))
@@ -232,14 +235,14 @@ def test_fast_search_reduced_forms_speak_their_heading_units(corr, site):
     bev = synth.cut_bev(win, 120.5, 140.5, -2.3, np.random.default_rng(12), noise=0.05)
     res = corr.search_fast(bev)
     p = corr.params
-    assert res.scale == 2 and res.heading_scale == 2 and res.heading_max_scale == p.coarse_heading_step
-    assert res.heading_max.shape == (p.n_headings // p.coarse_heading_step,)
+    assert res.scale == 2 and res.heading_scale == 2 and res.heading_max_scale == p.coarse_step
+    assert res.heading_max.shape == (p.n_headings // p.coarse_step,)
     m = res.modes[0]
     i, j = m.cell[1] // 2, m.cell[2] // 2
     a_full = int(res.best_heading[i, j]) * res.heading_scale
-    assert circ(a_full, m.cell[0]) <= p.coarse_heading_step + 2, (a_full, m.cell)
+    assert circ(a_full, m.cell[0]) <= p.coarse_step + 2, (a_full, m.cell)
     t = int(np.argmax(res.heading_max))
-    assert circ(t * res.heading_max_scale, m.cell[0]) <= p.coarse_heading_step + 2
+    assert circ(t * res.heading_max_scale, m.cell[0]) <= p.coarse_step + 2
 
 
 def test_temperature_fit_recovers_a_known_temperature():

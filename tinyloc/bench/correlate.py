@@ -211,7 +211,7 @@ def run(args) -> dict:
         "tinyloc_ms": fast_ms,
         "exact_ms": exact_ms,
         "tinyloc_coarse_level_ms": fast_engine_ms,
-        "coarse_heading_step": p.coarse_heading_step,
+        "coarse_heading_step": p.coarse_step,
         "tracking_ms": track_ms,
         "tracking_exact_ms": track_exact_ms,
         "tracking_with_modes_ms": track_modes_ms,

@@ -67,7 +67,9 @@ class CorrelatorParams:
     coarse_climb : int
         Of those, the best (by the exact score under them) climbed to a local maximum.
     coarse_heading_step : int
-        Heading step of the coarse full search, in full steps (1, 2 or 4).
+        Heading step of the coarse full search, in full steps (1, 2 or 4), or 0 (default):
+        4 when n_headings is a multiple of 16, else 2 (see ``coarse_step``). The coarse level
+        needs n_headings / step to be a multiple of 4 (its exact quarter turns).
     track_radius_cells : int
         Half size of the tracking window (cells); 20 = +-10 m at 0.5 m.
     track_half_headings : int
@@ -93,7 +95,7 @@ class CorrelatorParams:
     mode_radius_headings: int = 8
     coarse_top_k: int = 32
     coarse_climb: int = 16
-    coarse_heading_step: int = 4
+    coarse_heading_step: int = 0
     track_radius_cells: int = 20
     track_half_headings: int = 15
     track_refine: int = 2
@@ -114,12 +116,22 @@ class CorrelatorParams:
             raise InputError("tracking window: radius >= 1 cell and 2 * half_headings + 1 <= n_headings")
         if self.threads not in (1, 2):
             raise InputError(f"threads must be 1 or 2, got {self.threads}")
-        if self.coarse_heading_step not in (1, 2, 4):
-            raise InputError(f"coarse_heading_step must be 1, 2 or 4, got {self.coarse_heading_step}")
+        if self.coarse_heading_step not in (0, 1, 2, 4):
+            raise InputError(f"coarse_heading_step must be 0 (automatic), 1, 2 or 4, got {self.coarse_heading_step}")
+        if (A // self.coarse_step) % 4:
+            raise InputError(f"n_headings / coarse_heading_step must be a multiple of 4, got {A} / "
+                             f"{self.coarse_heading_step}")
         if self.climb_heading_radius not in (1, 2, 3):
             raise InputError(f"climb_heading_radius must be 1, 2 or 3, got {self.climb_heading_radius}")
         if min(self.n_modes, self.coarse_top_k, self.coarse_climb, self.track_refine) < 1:
             raise InputError("n_modes, coarse_top_k, coarse_climb and track_refine must be >= 1")
+
+    @property
+    def coarse_step(self) -> int:
+        """Heading step of the coarse full search in use (``coarse_heading_step``, or automatic when 0)."""
+        if self.coarse_heading_step:
+            return self.coarse_heading_step
+        return 4 if self.n_headings % 16 == 0 else 2
 
     @property
     def dyaw(self) -> float:
@@ -153,7 +165,7 @@ class SearchResult:
         ``heading_scale * a``): 1 for ``search``, 2 for ``search_fast``.
     heading_max_scale : int
         Full heading steps per entry of ``heading_max`` / ``heading_argmax`` (entry t is full
-        heading ``heading_max_scale * t``): 1 for ``search``, ``coarse_heading_step`` for
+        heading ``heading_max_scale * t``): 1 for ``search``, ``params.coarse_step`` for
         ``search_fast``.
     ok : bool
     status : str
@@ -547,7 +559,7 @@ class Correlator:
             H, W = p.window_shape
             h, w = p.bev_shape
             self._coarse = _CircleEngine(self.model.n_features, H // 2, W // 2, (h // 2, w // 2), p.origin_row / 2,
-                                         p.origin_col / 2, p.n_headings // p.coarse_heading_step, p.threads)
+                                         p.origin_col / 2, p.n_headings // p.coarse_step, p.threads)
             if self._have_map:
                 self._coarse.set_map(self._Gc)
         return self._coarse
@@ -677,7 +689,7 @@ class Correlator:
     def search_fast(self, bev) -> SearchResult:
         """Coarse-to-fine full search.
 
-        The exact search runs at half resolution (1 m cells, A / ``coarse_heading_step``
+        The exact search runs at half resolution (1 m cells, A / ``params.coarse_step``
         headings); its ``coarse_top_k`` best non-suppressed hypotheses are scored exactly at
         full resolution under them (4 cells x the full headings around theirs), and the best
         ``coarse_climb`` of those climb the exact score to a local maximum and are refined
@@ -685,7 +697,7 @@ class Correlator:
         (``scale = 2``; ``best_heading`` in steps of 2 full headings).
         """
         p, e = self.params, self._coarse_engine()
-        hs = p.coarse_heading_step
+        hs = p.coarse_step
         mult = max(1, hs // 2)  # coarse heading index -> steps of 2 full headings (1 when hs <= 2)
         out_hs = hs // mult
         best_heading = e.best_a if mult == 1 else self._best_heading_c
