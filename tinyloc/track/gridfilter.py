@@ -125,10 +125,12 @@ class TrackParams:
         Share of probability mixed back in uniformly after each update [1e-4].
     likelihood_weight : float
         Tempering exponent on each frame's log-likelihood, also applied to global-search scores
-        [0.1]. Successive frames see mostly the same scene, so their likelihoods are far from
-        independent, and the correlator's scores are not yet calibrated (temperature 1.0): at
-        weight 1 one frame decides the belief. 0.1 was chosen on a simulated drive (docs/tracking.md);
-        raise it if the correlator's temperature is calibrated.
+        [0.1]. The correlator's volume is already a calibrated single-frame log-likelihood (its
+        scoring temperature, 15.06 in tinyloc/correlate/scoring_default.json, fitted on generated
+        frames one at a time); this second factor is the share of a frame that is new evidence:
+        at 5 Hz and about 0.25 m per frame successive frames see nearly the same scene, so they are
+        far from independent. The product is 1 / 150 of the raw score. 0.1 was kept after a
+        sweep of 0.05-0.2 on drives not in the reported table (docs/tracking.md).
     loglik_clip : float
         Dynamic range kept below the frame's best log-likelihood [40].
     outside_fill : str
