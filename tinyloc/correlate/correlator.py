@@ -81,7 +81,10 @@ class CorrelatorParams:
         per-quarter buffers.
     climb_heading_radius : int
         Headings each side of the current pose that a climb step of the exact
-        refinement looks at (cells: +-1 each axis).
+        refinement looks at once the 3 x 3 x 3 neighbourhood is a local maximum.
+    start_heading_reach : int
+        Full headings each side of a coarse hypothesis's own that are scored under it to
+        rank the climbs' starts (0: its own heading only; the climbs look further).
     """
 
     n_headings: int = 256
@@ -101,6 +104,7 @@ class CorrelatorParams:
     track_refine: int = 2
     threads: int = 1
     climb_heading_radius: int = 2
+    start_heading_reach: int = 0
 
     def __post_init__(self):
         A = self.n_headings
@@ -121,6 +125,8 @@ class CorrelatorParams:
         if (A // self.coarse_step) % 4:
             raise InputError(f"n_headings / coarse_heading_step must be a multiple of 4, got {A} / "
                              f"{self.coarse_heading_step}")
+        if not 0 <= self.start_heading_reach <= 4:
+            raise InputError(f"start_heading_reach must be 0..4, got {self.start_heading_reach}")
         if self.climb_heading_radius not in (1, 2, 3):
             raise InputError(f"climb_heading_radius must be 1, 2 or 3, got {self.climb_heading_radius}")
         if min(self.n_modes, self.coarse_top_k, self.coarse_climb, self.track_refine) < 1:
@@ -691,7 +697,7 @@ class Correlator:
 
         The exact search runs at half resolution (1 m cells, A / ``params.coarse_step``
         headings); its ``coarse_top_k`` best non-suppressed hypotheses are scored exactly at
-        full resolution under them (4 cells x the full headings around theirs), and the best
+        full resolution under them (4 cells at their heading, +- ``start_heading_reach``), and the best
         ``coarse_climb`` of those climb the exact score to a local maximum and are refined
         below a cell and a heading step. Reduced forms are those of the coarse level
         (``scale = 2``; ``best_heading`` in steps of 2 full headings).
@@ -715,7 +721,7 @@ class Correlator:
         sc = self._scorer
         sc.new_frame(self._feat)
         starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=hs,
-                               heading_reach=max(1, hs // 2))
+                               heading_reach=p.start_heading_reach)
         starts.sort(key=lambda m: -m.cell_loglik)
         fine = sc.climb(self._G_hwf8, starts[:p.coarse_climb], self._inv_temp, max_steps=16,
                         heading_radius=p.climb_heading_radius)
