@@ -401,3 +401,42 @@ def test_map_tile_cache_is_bounded_by_the_loop_config(site, tmp_path):
 class Fixed0:
     def perceive(self, image, gravity):  # replaced right after the loop is built
         return None
+
+
+WARM_CHECK = r"""
+import sys
+from numba.core import dispatcher
+from tinyloc.runtime import Localizer
+from tinyloc.runtime.sources import RunFolderSource
+src = RunFolderSource(sys.argv[2], max_frames=int(sys.argv[3]))
+loc = Localizer.from_files(sys.argv[1], src.camera)
+late = []
+orig = dispatcher.Dispatcher.compile
+def compile_(self, sig):
+    late.append(self.py_func.__module__ + "." + self.py_func.__qualname__)
+    return orig(self, sig)
+dispatcher.Dispatcher.compile = compile_
+qual = [loc.step(f).quality for f in src]
+print("late:", ",".join(sorted(set(late))) or "-", "tracking:", qual.count("tracking"))
+"""
+
+
+def test_warm_up_reaches_every_kernel_a_drive_uses():
+    """After start-up no numba kernel is first met inside a frame (it would load, or after an update compile:
+    seconds and tens of MB in the middle of a drive). Fresh interpreter, the bundled demo map and drive."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    from tinyloc.cli.cmd_demo import DATA
+
+    maps, runs = sorted(DATA.rglob("*.tlm")), sorted(p.parent for p in DATA.rglob("run.json"))
+    if not maps or not runs:
+        pytest.skip(f"bundled demo data not present at {DATA}")
+    root = Path(__file__).resolve().parents[1]
+    r = subprocess.run([sys.executable, "-W", "ignore", "-c", WARM_CHECK, str(maps[0]), str(runs[0]), "80"],
+                       capture_output=True, text=True, timeout=600, cwd=root)
+    assert r.returncode == 0, r.stderr[-600:]
+    line = r.stdout.strip().splitlines()[-1]
+    assert line.startswith("late: - "), line  # names the kernels the warm-up missed
+    assert int(line.split("tracking:")[1]) > 0  # the drive got as far as tracking (both loop modes ran)

@@ -261,6 +261,15 @@ class Localizer:
         vol = LikelihoodVolume(np.zeros((8, n, n), np.float32), tr.filter.row0, tr.filter.col0, 0.0, 2 * math.pi / A)
         tr.step(0.1, (0.1, 0.0, 0.01), vol, is_global=True, gnss=(x, y, 3.0, 0.1))
         tr.step(0.2, (0.1, 0.0, 0.01), vol, gnss=None)
+        # paths the three steps above do not reach (a long gap without odometry, a search after layers
+        # went idle), and the map's tile decoder: a kernel first met mid-run is loaded (or, after an
+        # update, compiled: seconds, and tens of MB that stay) in the middle of a frame
+        tr.filter.add_noise(1.0, 0.01, now=True)
+        tr.filter.active[1:] = 0  # (this tracker is thrown away)
+        tr.filter.activate_all()
+        m = self.map.meta
+        probe = np.zeros((m.n_channels, 1, 1), np.float32)
+        self.map.read_window(m.rows // 2, m.cols // 2, probe)  # a damaged tile is counted, never raised
 
     # ---- one frame ----------------------------------------------------------------------------
     def step(self, frame) -> PoseEstimate:
