@@ -294,7 +294,6 @@ class Segmenter:
         K.thin_and_low(self.feat, hrow, self._prm, self.probs, self.labels, self.cand)
         return self.probs, self.labels
 
-
     def crown_features(self, bgr: np.ndarray) -> np.ndarray:
         """Fill and return ``tfeat`` (planes ``_kernels.T_*``, names ``crown_model.FEATURES``) for the frame
         just segmented by :meth:`run` (``bgr`` is that frame). Called by :meth:`run` when a crown model is
