@@ -65,6 +65,24 @@ def segment_reference(bgr, p, hrow=None):
     u = (hrow[None, :] - np.arange(h)[:, None]) / h
     bright = ((v > p.sky_v) & (s < p.sky_s)) | ((bstar < -p.sky_blue) & (v > p.sky_v2))
     cand = bright & (tex < p.sky_tex) & (u > -p.sky_below)
+    if p.sky_ref_dist > 0:  # overcast skies: the top rows' colour, unless it goes on below the horizon
+        rows = max(1, int(round(p.sky_ref_rows * h)))
+        band = (tex[:rows] < p.sky_tex) & (u[:rows] > 0)
+        if band.any():
+            px = lab[:rows][band]
+            srt = np.sort(px, axis=0)
+            sref = srt[(len(srt) + 1) // 2 - 1]
+            dist_s = 0.5 * np.abs(lab[..., 0] - sref[0]) + np.abs(lab[..., 1] - sref[1]) + np.abs(lab[..., 2] - sref[2])
+            near = dist_s < p.sky_ref_dist
+            r = np.floor(hrow).astype(int) + 1
+            okc = (r >= 0) & (r + 3 <= h)
+            hits = [np.sum(near[r[j]:r[j] + 3, j]) * 2 > 3 for j in range(w) if okc[j]]
+            share_below = np.mean(hits) if hits else 1.0
+            if (band.sum() >= p.sky_ref_share * rows * w and sref[1] - 128 < p.sky_ref_warm
+                    and sref[2] - 128 < p.sky_ref_warm and share_below < p.sky_ref_below):
+                add = near & (tex < p.sky_tex) & (u > -p.sky_below)
+                cand = cand | add
+                bright = bright | add
     n, comp = cv2.connectedComponents(cand.astype(np.uint8), connectivity=4)
     top = np.unique(comp[0][cand[0]])
     sky = np.isin(comp, top[top > 0])

@@ -17,12 +17,16 @@ def _frames():
     yield "noise", noise
     smooth = cv2.GaussianBlur(noise, (0, 0), 6)
     yield "smooth noise", smooth
+    dull = cv2.resize(_street_like(seed=5), (480, 360))
+    dull[:120] = np.clip(rng.normal(0, 1.5, (120, 480, 3)) + (140, 141, 143), 0, 255).astype(np.uint8)
+    yield "overcast", dull  # a grey sky darker than sky_v: only the sky-by-colour rule takes it
 
 
 CASES = {**{n: preset(n) for n in PRESETS},
          "poles and fences on": SegmentParams(pole_contrast=0.05, pole_run=0.1, fence_top=0.08, crown_model=""),
          "crown model on": SegmentParams(crown_model="default", gap_model=""),
          "crown and sky-gap models on": SegmentParams(crown_model="default", gap_model="default"),
+         "sky by colour on": SegmentParams(sky_ref_dist=20.0, crown_model=""),
          # a low gap threshold and no nearness condition make the sky-gap model fire on the street-like
          # frame's sky, so it is compared
          "sky-gap model, low threshold": SegmentParams(gap_threshold=0.5, gap_near=0.0),
@@ -46,6 +50,12 @@ def test_kernels_match_reference(name):
         seen |= set(np.unique(labels).tolist())
     if name == "poles and fences on":
         assert {5, 6} <= seen  # both optional rules fired on these frames, so they were compared
+    if name == "sky by colour on":  # the overcast frame's sky is taken by colour only
+        img = list(_frames())[-1][1]
+        hrow = np.linspace(0.45, 0.6, 160) * 120
+        on = Segmenter((480, 360), p).run(img, hrow)[1]
+        off = Segmenter((480, 360), SegmentParams(crown_model="")).run(img, hrow)[1]
+        assert np.mean(on[:35] == 9) > 0.9 and np.mean(off[:35] == 9) < 0.1
     if name == "crown model on":
         assert {0, 4} <= seen  # the crown model split building from tree on these frames
     if name == "sky-gap model, low threshold":

@@ -809,3 +809,73 @@ def sky_gaps(tfeat, extra, wts, bias, zmin, near, probs, labels):
                 _set_class(probs, labels, i, j, TREE)
                 n += 1
     return n
+
+
+@njit(**JIT)
+def sky_reference(lab, tex, feat, rows, tex_max, hist, ref):
+    """Lower-median Lab of the smooth pixels above the horizon in the top ``rows`` rows (the frame's sky
+    colour when the top of the picture is sky); hist (3, 256) int64 scratch. Returns the pixel count."""
+    h, w = tex.shape
+    for c in range(3):
+        for v in range(256):
+            hist[c, v] = 0
+    n = 0
+    for i in range(min(rows, h)):
+        for j in range(w):
+            if tex[i, j] < tex_max and feat[F_U, i, j] > 0.0:
+                n += 1
+                for c in range(3):
+                    hist[c, lab[i, j, c]] += 1
+    if n == 0:
+        return 0
+    half = (n + 1) // 2
+    for c in range(3):
+        acc = 0
+        for v in range(256):
+            acc += hist[c, v]
+            if acc >= half:
+                ref[c] = v
+                break
+    return n
+
+
+@njit(**JIT)
+def _near_ref(lab, i, j, ref, dist_max):
+    d = 0.5 * abs(float(lab[i, j, 0]) - ref[0]) + abs(float(lab[i, j, 1]) - ref[1]) + \
+        abs(float(lab[i, j, 2]) - ref[2])
+    return d < dist_max
+
+
+@njit(**JIT)
+def sky_colour_below_horizon(lab, hrow, ref, dist_max, depth):
+    """Share of columns whose ``depth`` pixels just below the horizon are mostly (> half) of the sky
+    colour ``ref``: a sky ends at the horizon, a near facade of that colour goes on below it."""
+    h, w = lab.shape[0], lab.shape[1]
+    cols = 0
+    hit = 0
+    for j in range(w):
+        r = int(math.floor(hrow[j])) + 1
+        if r < 0 or r + depth > h:
+            continue
+        cols += 1
+        k = 0
+        for i in range(r, r + depth):
+            if _near_ref(lab, i, j, ref, dist_max):
+                k += 1
+        if 2 * k > depth:
+            hit += 1
+    return hit / cols if cols > 0 else 1.0
+
+
+@njit(**JIT)
+def sky_like_reference(feat, lab, tex, ref, dist_max, tex_max, below, bright, cand):
+    """Add to the sky candidates the smooth pixels near or above the horizon within ``dist_max`` (Lab,
+    L* weighted 0.5) of the frame's sky colour ``ref``; they also count as bright (uint8 0/1 planes)."""
+    h, w = tex.shape
+    for i in range(h):
+        for j in range(w):
+            if cand[i, j] or tex[i, j] >= tex_max or feat[F_U, i, j] <= -below:
+                continue
+            if _near_ref(lab, i, j, ref, dist_max):
+                cand[i, j] = 1
+                bright[i, j] = 1

@@ -93,6 +93,11 @@ class SegmentParams:
     pole_run: float = 0.15  # ... at least this long (image heights), crossing the horizon
     fence_top: float = 0.0  # building runs ending less than this above the horizon are fences (0: off)
     robot_on: str = "road"  # surface under the robot: "road" or "sidewalk"
+    sky_ref_dist: float = 0.0  # also sky: smooth pixels this close (Lab) to the top rows' colour (0: off) ...
+    sky_ref_rows: float = 0.08  # ... taken from this band of top rows (image heights)
+    sky_ref_share: float = 0.5  # ... when this share of the band is smooth and above the horizon,
+    sky_ref_warm: float = 4.0  # ... its a* and b* are below this (grey or bluish),
+    sky_ref_below: float = 0.2  # ... and fewer than this share of columns have that colour just below the horizon
     crown_model: str = "default"  # linear crown score (crown_model.py): "default", a file path, or "" (rule)
     crown_u_min: float = -0.05  # the crown score applies above this height (image heights) rel. to the horizon
     crown_threshold: float = 0.65  # above the horizon, tree where the smoothed crown probability exceeds this
@@ -225,6 +230,7 @@ class Segmenter:
         self.crown = np.zeros((h, w), f32)
         self.hist = np.zeros((3, 256), np.int64)
         self.ref = np.zeros(3, np.float64)
+        self.skyref = np.zeros(3, np.float64)
         self.probs = np.zeros((NUM_CLASSES, h, w), f32)
         self.labels = np.zeros((h, w), np.uint8)
         self.hrow = np.full(w, params.horizon_frac * h - 0.5)
@@ -268,6 +274,8 @@ class Segmenter:
         K.box_mean(self.feat[K.F_GY], rt, self.tmp, self.ty)
         np.add(self.tx, self.ty, out=self.tex)
         K.sky_candidates(self.feat, self.tex, self._prm, self.bright, self.cand)
+        if p.sky_ref_dist > 0.0:
+            self._sky_by_colour(hrow)
         K.flood_from_top(self.cand, self.sky, self.queue)
         np.greater(self.bright, self.sky, out=self.cand)  # bright but not sky (reuses the buffer)
         self.brightf[...] = self.cand
@@ -293,6 +301,23 @@ class Segmenter:
             K.sky_gaps(self.tfeat, self.gextra, self._gw, self._gb, self._gz, p.gap_near, self.probs, self.labels)
         K.thin_and_low(self.feat, hrow, self._prm, self.probs, self.labels, self.cand)
         return self.probs, self.labels
+
+    def _sky_by_colour(self, hrow: np.ndarray) -> bool:
+        """Overcast skies darker than ``sky_v``: take the sky colour from the top rows and add what is
+        close to it as sky candidates, unless that colour goes on below the horizon (then it is a near
+        facade filling the top of the picture, not sky). Returns whether candidates were added."""
+        p = self.params
+        w, h = self.size
+        rows = max(1, int(round(p.sky_ref_rows * h)))
+        n = K.sky_reference(self.lab, self.tex, self.feat, rows, p.sky_tex, self.hist, self.skyref)
+        sr = self.skyref
+        if n < p.sky_ref_share * rows * w or sr[1] - 128.0 >= p.sky_ref_warm or sr[2] - 128.0 >= p.sky_ref_warm:
+            return False
+        if K.sky_colour_below_horizon(self.lab, hrow, sr, p.sky_ref_dist, 3) >= p.sky_ref_below:
+            return False
+        K.sky_like_reference(self.feat, self.lab, self.tex, sr, p.sky_ref_dist, p.sky_tex, p.sky_below, self.bright,
+                             self.cand)
+        return True
 
     def crown_features(self, bgr: np.ndarray) -> np.ndarray:
         """Fill and return ``tfeat`` (planes ``_kernels.T_*``, names ``crown_model.FEATURES``) for the frame
