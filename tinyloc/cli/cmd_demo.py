@@ -79,6 +79,9 @@ def main(args) -> int:
         print(f"tinyloc demo: map {map_path}, run {run_path} ({len(src)} frames); starting the loop",
               file=sys.stderr)
     loc = Localizer.from_files(map_path, src.camera, cfg)
+    if loc.kernels_compiled and not args.quiet:
+        print(f"tinyloc demo: {loc.kernels_compiled} numba kernel(s) compiled at start-up (first run after an "
+              f"install or update): this run's frame times and memory are not the usual ones", file=sys.stderr)
     truth = src.truth_xy(loc.frame_enu)
     gnss = gnss_at_frames(src.rf, loc.frame_enu)
     urls = args.to or ["udp://127.0.0.1:5600"]

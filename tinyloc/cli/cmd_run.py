@@ -125,6 +125,10 @@ def main(args) -> int:
     if not args.map or not args.source:
         raise InputError("tinyloc run needs --map and --source (see tinyloc run --help)")
     loc, src, sinks = build(args, cfg)
+    if loc.kernels_compiled and not args.quiet:
+        print(f"tinyloc run: {loc.kernels_compiled} numba kernel(s) compiled at start-up (first start after an "
+              f"install or update); this process keeps the compiler's memory, restart once for the usual "
+              f"footprint", file=sys.stderr)
     prog = None if args.quiet else Progress(total=len(src) if hasattr(src, "__len__") else None)
     runner = Runner(loc, src, sinks, on_pose=prog, status_every_s=cfg.loop.status_every_s)
     summary = runner.run()
