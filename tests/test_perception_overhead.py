@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from tinyloc.camera.model import CameraModel, Mount
-from tinyloc.classes import BUILDING, NUM_CLASSES, ROAD, SIDEWALK, TREE
+from tinyloc.classes import BUILDING, FENCE, NUM_CLASSES, ROAD, SIDEWALK, TREE
 from tinyloc.frames import rot_x, rot_y
 from tinyloc.perception import _kernels as K
 from tinyloc.perception.gravity import horizon_rows_reference, level_from_base
@@ -168,7 +168,8 @@ def test_vertical_contact_range(start_m):
     """A facade whose foot is at row 80 in every column lands where the ray through the row edge meets the
     ground (moved ``building_start_m`` further along the ray)."""
     cam = _cam()
-    p = OverheadParams(building_depth_m=0.0, building_start_m=start_m)
+    p = OverheadParams(building_depth_m=0.0, building_start_m=start_m, min_building_height_m=3.0,
+                       min_building_width_m=1.0)
     proj = OverheadProjector(cam, p)
     w = cam.width
     probs, labels = _wall_scene(cam, 0)  # leaves the picture at the top: tall enough
@@ -190,7 +191,8 @@ def test_low_and_narrow_buildings():
     row 38.2) is too low for a house and is not placed; a tall run 4 columns wide (about 0.2 m at the
     foot's 6 m) is placed as a tree trunk; with both checks off the low wall is placed as building."""
     cam = _cam()
-    p = OverheadParams(building_depth_m=0.0, building_start_m=0.0)
+    p = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=3.0,
+                       min_building_width_m=1.0)
     proj = OverheadProjector(cam, p)
     hrow = proj.horizon(np.eye(3))
     assert 38.0 < hrow[80] < 38.5
@@ -209,9 +211,15 @@ def test_low_and_narrow_buildings():
     top_h = cam_xy[2] + d[0, 2] * np.hypot(*(gp - cam_xy[:2])) / np.hypot(d[0, 0], d[0, 1])
     probs, labels = _wall_scene(cam, 10)
     for lim, placed in ((top_h - 0.05, True), (top_h + 0.05, False)):
-        pp = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=float(lim))
+        pp = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=float(lim),
+                            min_building_width_m=1.0)
         n = OverheadProjector(cam, pp).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
         assert (grid.evidence[BUILDING, :, :].sum() > 0) == placed, (lim, n)
+    # A low run as a fence when asked: fence evidence object_depth_m deep, no building.
+    pf = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=3.0, low_building_as="fence")
+    probs, labels = _wall_scene(cam, 40)
+    assert OverheadProjector(cam, pf).project(probs, labels, np.eye(3), hrow, grid, tilted=False) == cam.width
+    assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[FENCE].sum() > 0
     # A narrow tall run: a trunk.
     probs, labels = _wall_scene(cam, 0, cols=slice(78, 82))
     assert proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False) == 4

@@ -527,7 +527,8 @@ def _write_along(gx, gy, ux, uy, d0, depth_m, m, val, res_m, origin_row, origin_
 def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_ground, to_map, min_run, max_range,
                       depth_m, start_m, geom, res_m, origin_row, origin_col, ray3, evidence, free, visible):
     # depth_m, start_m: (256,) float64, metres of evidence behind the foot and where it starts, per class
-    # geom: (min_building_height_m, min_building_width_m, fx of the segmentation raster (px), thin_class)
+    # geom: (min_building_height_m, min_building_width_m, fx of the segmentation raster (px), thin_class,
+    #        low_class (-1: not placed))
     """Deposit vertical classes at their ground contacts, column by column.
 
     Scanning each image column up from the bottom row to the horizon, every place where a ground pixel
@@ -544,11 +545,11 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
     above the ground at the foot's range, unless it reaches the image's top edge, and the run of
     building pixels across the horizon row (or the run's top or foot, when the run lies wholly below or
     above it) at least ``geom[1]`` metres wide at the foot's range. A building too low (a
-    vehicle, a fence, a hedge) is not placed; one too narrow but tall enough (a trunk, a pole) is
-    placed as class ``geom[3]`` with that class's depth. Returns the number of feet placed.
+    vehicle, a fence, a hedge) is placed as class ``geom[4]`` (-1: not placed); one too narrow but tall
+    enough (a trunk, a pole) as class ``geom[3]``, each with that class's depth. Returns the number of feet placed.
     """
     nc, h, w = probs.shape
-    min_h, min_w, fx, thin = geom[0], geom[1], geom[2], int(geom[3])
+    min_h, min_w, fx, thin, low = geom[0], geom[1], geom[2], int(geom[3]), int(geom[4])
     count = 0
     for j in range(w):
         top = int(math.floor(hrow[j])) + 1
@@ -606,7 +607,7 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                     b += 1
                                 wide = (b - a + 1) * dh / fx >= min_w
                                 if not tall:
-                                    kk = -1
+                                    kk = low
                                 elif not wide:
                                     kk = thin
                             if kk >= 0:

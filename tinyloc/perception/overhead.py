@@ -34,7 +34,7 @@ import math
 
 import numpy as np
 
-from ..classes import BUILDING, CLASSES, DYNAMIC, NUM_MAP_CLASSES, TREE
+from ..classes import BUILDING, CLASSES, DYNAMIC, FENCE, NUM_MAP_CLASSES, TREE
 from ..errors import InputError
 from . import _kernels as K
 
@@ -119,16 +119,21 @@ class OverheadParams:
         The same for thin objects (fence, tree trunk, pole; also where vehicles and people stand).
     building_start_m : float
         Where a building's evidence starts behind its foot along the ray (m): the facade is a plane at
-        the foot's range, and the grid cell holding that line lies about half in front of it, so the
-        evidence starts half a cell (of the default grid) behind the foot.
+        the foot's range, and the grid cell holding that line lies about half in front of it (0.25 m,
+        half a default cell, in ``CHECKED_BUILDINGS``).
     min_building_height_m : float
         A building run must reach this high above the ground at its foot's range (m) or leave the
         picture at the top: lower things with a building's colours (vehicles, fences, hedges, walls;
-        the camera cannot tell a low wall from a car) are not placed. 0 turns the check off.
+        the camera cannot tell a low wall from a car) are placed as ``low_building_as``. 0 turns the
+        check off.
     min_building_width_m : float
         ... and be at least this wide across its foot row (m, as seen at the foot's range): a taller but
         narrower run is a trunk or a pole and is placed as a tree trunk (``object_depth_m`` deep).
         0 turns the check off.
+    low_building_as : str
+        What a building run too low for a house becomes: "none" (not placed), "fence" (a wall, fence or
+        hedge, ``object_depth_m`` deep) or "dynamic" (an obstacle without map evidence: free space is
+        cleared, no class evidence).
     min_run_px : int
         A vertical class must cover this many pixels upward from its foot to count (segmentation pixels).
     """
@@ -141,9 +146,12 @@ class OverheadParams:
     max_range_m: float = 20.0
     building_depth_m: float = 2.0
     object_depth_m: float = 0.5
-    building_start_m: float = 0.25
-    min_building_height_m: float = 3.0
-    min_building_width_m: float = 1.0
+    # Off by default: they make the bird's-eye buildings far more precise on rendered frames but not the
+    # live loop better (docs/perception.md, "The live loop"); CHECKED_BUILDINGS has the measured values.
+    building_start_m: float = 0.0
+    min_building_height_m: float = 0.0
+    min_building_width_m: float = 0.0
+    low_building_as: str = "none"
     min_run_px: int = 3
 
     def __post_init__(self):
@@ -158,6 +166,8 @@ class OverheadParams:
             v = getattr(self, name)
             if not (math.isfinite(v) and 0.0 <= v <= 20.0):
                 raise InputError(f"{name} must be within 0 .. 20 m")
+        if self.low_building_as not in ("none", "fence", "dynamic"):
+            raise InputError(f"low_building_as must be 'none', 'fence' or 'dynamic', got {self.low_building_as!r}")
         if not 1 <= int(self.min_run_px) <= 100:
             raise InputError("min_run_px must be within 1 .. 100")
 
@@ -166,6 +176,10 @@ class OverheadParams:
         return BevGrid.empty(self.rows, self.cols, res_m=self.res_m, origin_row=self.origin_row,
                              origin_col=self.origin_col)
 
+
+#: The building size checks and start offset as measured in docs/perception.md (pass as
+#: ``OverheadParams(**CHECKED_BUILDINGS, res_m=...)``).
+CHECKED_BUILDINGS = {"building_start_m": 0.25, "min_building_height_m": 3.0, "min_building_width_m": 1.0}
 
 # Ground classes: seen by their surface; vertical classes (and "dynamic") by their foot.
 # Indexed by label value (256 entries so that 255 = "unlabelled" is neither).
@@ -235,7 +249,8 @@ class OverheadProjector:
             if c.vertical:
                 self.depth[c.index] = params.building_depth_m if c.index == BUILDING else params.object_depth_m
         self.start[BUILDING] = params.building_start_m
-        self._geom = np.array([params.min_building_height_m, params.min_building_width_m, cam.fx, TREE], np.float64)
+        low = {"none": -1, "fence": FENCE, "dynamic": DYNAMIC}[params.low_building_as]
+        self._geom = np.array([params.min_building_height_m, params.min_building_width_m, cam.fx, TREE, low], np.float64)
         self._ray3 = np.empty(3)
         self.hrow_level = np.empty(w)
         K.horizon_rows(self.rays, np.eye(3), self.hrow_level)
