@@ -18,9 +18,10 @@ foot (the lowest such run is the nearest object; runs further up stand further a
 the foot (sub-pixel, where the class probability crosses 0.5) meets the ground at the object's range,
 and the evidence is written there and ``building_depth_m`` (``object_depth_m`` for thin objects)
 beyond it along the ray (a building's from ``building_start_m`` behind the foot). An object resting
-on another in the picture (a house behind a hedge) has no visible foot and is not placed. A building
-run lower than ``min_building_height_m`` at its range (a vehicle, a fence) is not placed; one narrower
-than ``min_building_width_m`` (a trunk, a pole) is placed as a tree trunk.
+on another in the picture (a house behind a hedge) has no visible foot and is not placed. Optional
+checks (off by default, ``CHECKED_BUILDINGS``): a building run lower than ``min_building_height_m`` at
+its range (a vehicle, a fence) becomes ``low_building_as``; one narrower than
+``min_building_width_m`` (a trunk, a pole) is placed as a tree trunk.
 
 The lookup (cell centre -> pixel) is computed once per calibration for a level base; a frame
 whose gravity vector tilts the base gets its own lookup, recomputed in place by a kernel
