@@ -123,7 +123,9 @@ class CorrelatorAdapter:
             return None
         self.status = "map window moved" if moved else "ok"
         s = int(res.scale)
-        np.multiply(res.best_heading, self.dyaw * s, out=self._yaw[:res.best.shape[0], :res.best.shape[1]])
+        # best_heading counts heading_scale full steps, which need not equal the spatial scale
+        hs = int(getattr(res, "heading_scale", s))
+        np.multiply(res.best_heading, self.dyaw * hs, out=self._yaw[:res.best.shape[0], :res.best.shape[1]])
         return GlobalEvidence(res.best, self.wrow0, self.wcol0, s, self._yaw[:res.best.shape[0], :res.best.shape[1]])
 
     def track(self, bev, x, y, yaw):
