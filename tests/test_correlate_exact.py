@@ -58,8 +58,11 @@ def test_small_full_volume_equals_direct_sum(rng):
     assert np.array_equal(res.heading_max, vol.reshape(16, -1).max(axis=1))
 
 
-def test_default_size_matches_direct_sum_at_sampled_poses(rng):
-    """Full default problem (256 headings, 256 x 256 window, 64 x 64 grid): sampled cells in every quarter turn."""
+@pytest.fixture(scope="module")
+def default_problem():
+    """The full default problem (256 headings, 256 x 256 window, 64 x 64 grid) on random inputs, its exact volume
+    and the pieces of the direct-sum reference; built once for the tests below (the volume is 64 MB)."""
+    rng = np.random.default_rng(1234)
     model = ScoringModel.default()
     corr = Correlator(CorrelatorParams(), model)
     win = rng.uniform(size=(NUM_MAP_CLASSES, 256, 256)).astype(np.float32)
@@ -70,7 +73,12 @@ def test_default_size_matches_direct_sum_at_sampled_poses(rng):
     feat = bev_features(model, bev)
     G = model.map_features(win).astype(np.float64)
     P = template_reach((64, 64), 32.0, 0.0)
-    peak = float(np.max(np.abs(vol)))
+    return model, corr, bev, vol, feat, G, P, float(np.max(np.abs(vol)))
+
+
+def test_default_size_matches_direct_sum_at_sampled_poses(default_problem):
+    """Full default problem: sampled cells in every quarter turn."""
+    model, corr, bev, vol, feat, G, P, peak = default_problem
     worst = 0.0
     heads = [0, 1, 31, 64, 97, 128, 150, 191, 200, 255]
     cells = [(0, 0), (255, 255), (128, 5), (3, 250), (140, 120)]
@@ -82,19 +90,13 @@ def test_default_size_matches_direct_sum_at_sampled_poses(rng):
     assert worst <= 1e-4 * peak, (worst, peak)
 
 
-def test_reduced_forms_and_pose_scores_match_the_references(rng):
+def test_reduced_forms_and_pose_scores_match_the_references(default_problem):
     """Without a volume buffer the reduced forms are read out per quarter turn in the inverse buffers' own
     orientation: they must equal the volume's own maxima. The direct sums of the refinement (only A/4 base
     grids, turned by exact quarter turns) must equal the plain-loop reference at cells in every quarter,
     including cells whose view runs off the window."""
     from tinyloc.correlate.peaks import Mode
-    model = ScoringModel.default()
-    corr = Correlator(CorrelatorParams(), model)
-    win = rng.uniform(size=(NUM_MAP_CLASSES, 256, 256)).astype(np.float32)
-    corr.set_map(win)
-    bev = random_bev(rng)
-    vol = np.zeros((256, 256, 256), np.float32)
-    corr.search(bev, volume=vol)
+    model, corr, bev, vol, feat, G, P, peak = default_problem
     res = corr.search(bev)
     assert np.array_equal(res.best, vol.max(axis=0))
     ii, jj = np.mgrid[0:256, 0:256]
@@ -102,10 +104,6 @@ def test_reduced_forms_and_pose_scores_match_the_references(rng):
     assert np.array_equal(vol[res.best_heading.astype(np.int64), ii, jj], res.best)
     assert np.array_equal(res.heading_max, vol.reshape(256, -1).max(axis=1))
     assert np.array_equal(vol.reshape(256, -1)[np.arange(256), res.heading_argmax], res.heading_max)
-    feat = bev_features(model, bev)
-    G = model.map_features(win).astype(np.float64)
-    P = template_reach((64, 64), 32.0, 0.0)
-    peak = float(np.max(np.abs(vol)))
     heads = [0, 5, 63, 64, 100, 128, 170, 192, 230, 255]
     cells = [(0, 0), (255, 255), (128, 5), (3, 250), (140, 120)]
     sc = corr._scorer

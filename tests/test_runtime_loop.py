@@ -198,38 +198,52 @@ def test_map_window_at_the_map_edge(site, tmp_path):
     assert inside and max(_err(p, t)[0] for p, t in inside) < 1.0
 
 
-def test_steady_state_allocates_nothing_that_stays(site):
+def _parked_on_the_road(site, n):
+    """The map, the start of an n-frame road path, and the map's own evidence there (the loop stays tracking)."""
     path, cov = site
     pm = PackedMap.open(path)
-    truth = _road_path(cov, 60)
-    x, y, yaw = truth[0]
+    x, y, yaw = _road_path(cov, n)[0]
     r, c = pm.cell_of(x, y)
-    bev = cut_bev(cov, r, c, yaw, np.random.default_rng(3), noise=0.1, dropout=0.1)
+    return pm, x, y, cut_bev(cov, r, c, yaw, np.random.default_rng(3), noise=0.1, dropout=0.1)
+
+
+def _standing_frames(pm, x, y, img, n):
+    """n frames of a robot standing still at (x, y): level gravity, zero odometry, a fix at its place."""
+    lat, lon = pm.frame.to_latlon(x, y)
+    return [Frame(k, 0.1 * k, img, "", np.array([[0.1 * k, 0, 0, 9.81]]), np.array([[0.1 * k, 0.0, 0.0, 0.0]]),
+                  np.array([[0.1 * k, lat, lon, 0.0, 1.5]])) for k in range(n)]
+
+
+def _growth_and_peak(loc, frames):
+    """Bytes kept and peak temporary bytes (tracemalloc) over frames[10:], traced from frames[0] on."""
+    tracemalloc.start()
+    for f in frames[:10]:
+        loc.step(f)
+    base, _ = tracemalloc.get_traced_memory()
+    tracemalloc.reset_peak()
+    for f in frames[10:]:
+        loc.step(f)
+    cur, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    return cur - base, peak - base
+
+
+def test_steady_state_allocates_nothing_that_stays(site):
+    pm, x, y, bev = _parked_on_the_road(site, 60)
 
     class Fixed:
         def perceive(self, image, gravity):
             return bev
 
     loc = Localizer(pm, CAM, _cfg("track.verify_every=1000"), perceiver=Fixed())
-    img = np.zeros((4, 4, 3), np.uint8)
-    lat, lon = pm.frame.to_latlon(x, y)
-    frames = [Frame(k, 0.1 * k, img, "", np.array([[0.1 * k, 0, 0, 9.81]]), np.array([[0.1 * k, 0.0, 0.0, 0.0]]),
-                    np.array([[0.1 * k, lat, lon, 0.0, 1.5]])) for k in range(60)]
+    frames = _standing_frames(pm, x, y, np.zeros((4, 4, 3), np.uint8), 60)
     for f in frames[:20]:
         p = loc.step(f)
     assert p.quality == "tracking"
-    tracemalloc.start()
-    for f in frames[20:30]:
-        loc.step(f)
-    base, _ = tracemalloc.get_traced_memory()
-    tracemalloc.reset_peak()
-    for f in frames[30:60]:
-        loc.step(f)
-    cur, peak = tracemalloc.get_traced_memory()
-    tracemalloc.stop()
+    grown, peak = _growth_and_peak(loc, frames[20:])
     # no growth over 30 frames, and no large temporary (the belief alone is 2 MB here, a map window 0.6 MB)
-    assert cur - base < 64 * 1024, cur - base
-    assert peak - base < 512 * 1024, peak - base
+    assert grown < 64 * 1024, grown
+    assert peak < 512 * 1024, peak
 
 
 def test_config_file_and_overrides(tmp_path):
@@ -331,12 +345,7 @@ def test_steady_state_with_the_real_perception_allocates_nothing_that_stays(site
     """As above, with tinyloc's segmenter and projector running on a 160 x 120 colour frame every step."""
     from tinyloc.perception.pipeline import Perception
 
-    path, cov = site
-    pm = PackedMap.open(path)
-    truth = _road_path(cov, 70)
-    x, y, yaw = truth[0]
-    r, c = pm.cell_of(x, y)
-    bev = cut_bev(cov, r, c, yaw, np.random.default_rng(3), noise=0.1, dropout=0.1)
+    pm, x, y, bev = _parked_on_the_road(site, 70)
     cam = CameraModel(width=160, height=120, fx=110.0, fy=110.0, cx=79.5, cy=59.5)
 
     class Real:
@@ -356,24 +365,14 @@ def test_steady_state_with_the_real_perception_allocates_nothing_that_stays(site
     img[:40] = (230, 190, 140)
     img[40:] = (105, 105, 105)
     img = np.clip(img.astype(int) + rng.integers(-8, 9, img.shape), 0, 255).astype(np.uint8)
-    lat, lon = pm.frame.to_latlon(x, y)
-    frames = [Frame(k, 0.1 * k, img, "", np.array([[0.1 * k, 0, 0, 9.81]]), np.array([[0.1 * k, 0.0, 0.0, 0.0]]),
-                    np.array([[0.1 * k, lat, lon, 0.0, 1.5]])) for k in range(70)]
+    frames = _standing_frames(pm, x, y, img, 70)
     for f in frames[:20]:
         p = loc.step(f)
     assert p.quality == "tracking" and perc.status[-1] == "ok"
-    tracemalloc.start()
-    for f in frames[20:30]:
-        loc.step(f)
-    base, _ = tracemalloc.get_traced_memory()
-    tracemalloc.reset_peak()
-    for f in frames[30:70]:
-        loc.step(f)
-    cur, peak = tracemalloc.get_traced_memory()
-    tracemalloc.stop()
+    grown, peak = _growth_and_peak(loc, frames[20:])
     assert perc.status[-1] == "ok"
-    assert cur - base < 64 * 1024, cur - base
-    assert peak - base < 512 * 1024, peak - base
+    assert grown < 64 * 1024, grown
+    assert peak < 512 * 1024, peak
 
 
 def test_map_tile_cache_is_bounded_by_the_loop_config(site, tmp_path):

@@ -152,6 +152,19 @@ def flood_from_top(mask, out, queue):
 
 
 @njit(**JIT)
+def _hist_lower_median(hist, n, ref):
+    """ref[c] = lower median of the n values counted in hist[c] (3 channels of 256 bins)."""
+    half = (n + 1) // 2
+    for c in range(3):
+        acc = 0
+        for v in range(256):
+            acc += hist[c, v]
+            if acc >= half:
+                ref[c] = v
+                break
+
+
+@njit(**JIT)
 def patch_median_lab(lab, r0, r1, c0, c1, hist, ref):
     """Lower median of each Lab channel over rows [r0, r1) x cols [c0, c1); hist (3, 256) int64 scratch."""
     for c in range(3):
@@ -163,14 +176,7 @@ def patch_median_lab(lab, r0, r1, c0, c1, hist, ref):
             n += 1
             for c in range(3):
                 hist[c, lab[i, j, c]] += 1
-    half = (n + 1) // 2
-    for c in range(3):
-        acc = 0
-        for v in range(256):
-            acc += hist[c, v]
-            if acc >= half:
-                ref[c] = v
-                break
+    _hist_lower_median(hist, n, ref)
 
 
 @njit(**JIT)
@@ -829,14 +835,7 @@ def sky_reference(lab, tex, feat, rows, tex_max, hist, ref):
                     hist[c, lab[i, j, c]] += 1
     if n == 0:
         return 0
-    half = (n + 1) // 2
-    for c in range(3):
-        acc = 0
-        for v in range(256):
-            acc += hist[c, v]
-            if acc >= half:
-                ref[c] = v
-                break
+    _hist_lower_median(hist, n, ref)
     return n
 
 
