@@ -147,3 +147,34 @@ def test_corrupted_file_and_odd_layouts(perc, tmp_path):
         g = perc.new_grid()
         assert perc.process(variant, None, g) == "ok"
         assert np.array_equal(g.evidence, ref.evidence) and np.array_equal(g.visible, ref.visible)
+
+
+def test_external_labels_reduce_to_block_shares_centred_like_opencv_area():
+    """Each raster cell holds the class shares of its block of label pixels: at integer factors this is
+    OpenCV's INTER_AREA reduction of each class mask (an independent reference). A nearest-pixel pick
+    (INTER_NEAREST takes a block's top-left pixel) would move every boundary 1.5 pixels down at 4x."""
+    import cv2
+
+    from tinyloc.classes import NUM_CLASSES
+    from tinyloc.perception.labels_in import UNLABELLED, LabelImporter
+
+    rng = np.random.default_rng(17)
+    lut = mapping_lut({0: "sky", 1: "building", 3: "road", 7: "sidewalk"})
+    img = rng.choice(np.array([0, 1, 3, 7, 99], np.uint8), size=(480, 640))
+    img[241:300] = 3  # a boundary inside a block (rows 240..243 hold 1 row of noise, 3 of road)
+    imp = LabelImporter((640, 480), (160, 120), lut)
+    probs, labels = imp.run(img)
+    mapped = lut[img]
+    worst = 0.0
+    for c in range(NUM_CLASSES):
+        ref = cv2.resize((mapped == c).astype(np.float32), (160, 120), interpolation=cv2.INTER_AREA)
+        worst = max(worst, float(np.max(np.abs(ref - probs[c]))))
+    assert worst < 1e-6, worst
+    # majority class, unlabelled where most of the block is unmapped
+    unm = cv2.resize((mapped == UNLABELLED).astype(np.float32), (160, 120), interpolation=cv2.INTER_AREA)
+    top = np.max(probs, axis=0)
+    decided = np.abs(top - unm) > 1e-6
+    want = np.where(unm > top, UNLABELLED, np.argmax(probs, axis=0))
+    assert np.array_equal(labels[decided], want[decided])
+    assert labels[60, 10] == ROAD and abs(probs[ROAD, 60, 10] - 0.75) < 0.25 + 1e-6
+    assert np.all(labels[61:75] == ROAD)
