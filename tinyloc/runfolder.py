@@ -771,3 +771,22 @@ class RunWriter:
     def __exit__(self, exc_type, exc, tb):
         self.close(complete=exc_type is None)
         return False
+
+
+class RowSlicer:
+    """Rows of a time-sorted table (time in column 0) in (t_prev, t], as views (no copies).
+
+    Successive :meth:`upto` calls hand out consecutive slices; ``k`` is the column count of the
+    empty table used when ``table`` is None or empty.
+    """
+
+    def __init__(self, table: np.ndarray | None, k: int = 0):
+        self.table = table if table is not None and len(table) else np.zeros((0, k))
+        self.ts = np.ascontiguousarray(self.table[:, 0]) if len(self.table) else np.zeros(0)
+        self.pos = 0
+
+    def upto(self, t: float) -> np.ndarray:
+        start = self.pos
+        stop = max(start, int(np.searchsorted(self.ts, t, side="right")))
+        self.pos = stop
+        return self.table[start:stop]

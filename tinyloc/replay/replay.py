@@ -26,7 +26,7 @@ import numpy as np
 
 from ..errors import RunFolderError
 from ..geo import LocalFrame
-from ..runfolder import RunFolder
+from ..runfolder import RowSlicer, RunFolder
 from . import metrics as M
 from .gaps import GapParams, find_gaps
 from .records import FrameRecords
@@ -97,21 +97,6 @@ class ReplayResult:
     localizer: object = None
 
 
-class _Slicer:
-    """Hands out the rows of a time-sorted table that fall in (t_prev, t] without copying."""
-
-    def __init__(self, table: np.ndarray):
-        self.table = table
-        self.ts = np.ascontiguousarray(table[:, 0]) if len(table) else np.zeros(0)
-        self.pos = 0
-
-    def upto(self, t: float) -> np.ndarray:
-        start = self.pos
-        stop = max(start, int(np.searchsorted(self.ts, t, side="right")))
-        self.pos = stop
-        return self.table[start:stop]
-
-
 def _same_origin(a: LocalFrame | None, b: LocalFrame | None) -> bool:
     if a is None or b is None:
         return a is b
@@ -180,7 +165,7 @@ def drive(rf: RunFolder, localizer: Localizer, rec: FrameRecords, *,
         Frames decoded ahead on a helper thread while the loop works (image decoding releases
         the GIL, so it overlaps with the loop); 0 decodes in line. Memory: ``prefetch + 1`` images.
     """
-    imu, odo, gnss = _Slicer(rf.imu), _Slicer(rf.odometry), _Slicer(rf.gnss)
+    imu, odo, gnss = RowSlicer(rf.imu, 4), RowSlicer(rf.odometry, 4), RowSlicer(rf.gnss, 5)
     n = rec.n
     pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="replay-decode") if prefetch > 0 else None
     ahead: deque = deque()

@@ -20,24 +20,10 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError, RunFolderError
+from ..runfolder import RowSlicer
 from .loop import Frame
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp")
-
-
-class _Slicer:
-    """Rows of a time-sorted table in (t_prev, t], as views (no copies)."""
-
-    def __init__(self, table: np.ndarray, k: int):
-        self.table = table if table is not None and len(table) else np.zeros((0, k))
-        self.ts = np.ascontiguousarray(self.table[:, 0]) if len(self.table) else np.zeros(0)
-        self.pos = 0
-
-    def upto(self, t: float) -> np.ndarray:
-        start = self.pos
-        stop = max(start, int(np.searchsorted(self.ts, t, side="right")))
-        self.pos = stop
-        return self.table[start:stop]
 
 
 class _Pacer:
@@ -100,7 +86,7 @@ class RunFolderSource:
 
     def __iter__(self):
         rf = self.rf
-        imu, odo, gnss = _Slicer(rf.imu, 4), _Slicer(rf.odometry, 4), _Slicer(rf.gnss, 5)
+        imu, odo, gnss = RowSlicer(rf.imu, 4), RowSlicer(rf.odometry, 4), RowSlicer(rf.gnss, 5)
         pacer = _Pacer(self.realtime, self.late_ms)
         for i in range(self.n):
             t = float(rf.frame_t[i])
