@@ -131,3 +131,18 @@ def test_truth_and_gnss_move_to_the_map_frame_when_origins_differ(tmp_path):
     np.testing.assert_allclose(other.truth_yaw, same.truth_yaw)
     gy = other.gnss_y - same.gnss_y
     assert np.all(np.abs(gy[np.isfinite(gy)] + 11.12) < 0.02)
+
+
+def test_replay_opens_the_map_with_the_loops_tile_cache(tmp_path):
+    """A replay through the loop holds the decoded-tile memory the robot would (loop.map_cache_mb)."""
+    from tinyloc.maps.packfile import DEFAULT_CACHE_BYTES
+    from tinyloc.replay.batch import open_map
+    from tinyloc.runtime.config import LoopConfig
+
+    path = make_map(tmp_path / "m.tlm")
+    mb = LoopConfig().loop.map_cache_mb
+    with open_map(str(path), mb) as pm:
+        assert pm._cache_bytes == int(mb * 2 ** 20) != DEFAULT_CACHE_BYTES
+    with open_map(str(path)) as pm:
+        assert pm._cache_bytes == DEFAULT_CACHE_BYTES
+    assert open_map(None, mb) is None

@@ -99,15 +99,21 @@ def map_for_run(run: str, map_path: str | None) -> tuple[str | None, str]:
     return None, ""
 
 
-def open_map(path: str | None):
-    """Open a packed map (or return None when no path). Raises the map reader's one-line errors."""
+def open_map(path: str | None, cache_mb: float | None = None):
+    """Open a packed map (or return None when no path). Raises the map reader's one-line errors.
+
+    ``cache_mb`` bounds its decoded-tile cache (MB; None: the reader's default), as the live loop's
+    ``loop.map_cache_mb`` does, so a replay holds the memory the robot would.
+    """
     if path is None:
         return None
     if not Path(path).is_file():
         raise InputError(f"{path}: map file not found")
     from ..maps.packfile import PackedMap
 
-    return PackedMap.open(path)
+    if cache_mb is None:
+        return PackedMap.open(path)
+    return PackedMap.open(path, cache_bytes=int(cache_mb * 2 ** 20))
 
 
 _progress_put = None  # where a job reports (run index, frames done, total); set per process
@@ -145,7 +151,12 @@ def _run_job(job: Job, index: int, row: dict) -> dict:
     from .replay import replay_run
 
     map_path, map_from = map_for_run(job.run, job.map_path)
-    packed = open_map(map_path)
+    cache_mb = None
+    if job.localizer == "loop":
+        from ..runtime.config import load_config
+
+        cache_mb = load_config(job.config, job.overrides).loop.map_cache_mb
+    packed = open_map(map_path, cache_mb)
     factory = resolve_factory(job.localizer)
     if job.localizer == "loop":
         base = factory
