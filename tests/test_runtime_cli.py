@@ -308,3 +308,15 @@ def test_demo_runs_the_bundled_drive(tmp_path):
     for k in ("recall_1m_3deg", "median_error_m", "gnss_median_error_m", "frame_ms_median", "frames"):
         assert k in s
     assert s["frames"] == 12
+
+
+def test_prepare_fills_the_kernel_cache_and_exits(site_and_run):
+    """`run --prepare` builds the loop once and exits; a second one then loads every kernel from the cache."""
+    d = site_and_run
+    first = tinyloc("run", "--prepare", "--map", d / "site.tlm", "--source", d / "run")
+    assert first.returncode == 0, first.stderr
+    second = tinyloc("run", "--prepare", "--map", d / "site.tlm", "--source", d / "run")
+    assert second.returncode == 0 and "(0 compiled now" in second.stderr, second.stderr
+    assert second.stdout == ""  # no poses: nothing was run
+    r = tinyloc("run", "--prepare", "--map", d / "site.tlm")
+    assert r.returncode == 2 and r.stderr.strip().splitlines()[-1].startswith("tinyloc: error: tinyloc run --prepare")

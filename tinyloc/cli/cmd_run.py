@@ -25,6 +25,9 @@ sinks (--to, repeatable; default "-"):
   nmea+udp://H:P      NMEA 0183 GGA/RMC/HDT/GST (also nmea+serial:DEV, nmea:-)
   log:PATH            append-only crash-safe run log (read it with tinyloc.runtime.runlog)
 
+first start: `tinyloc run --prepare --map SITE.tlm --camera camera.toml` fills numba's kernel cache
+and exits; a start that has to compile keeps the compiler's memory until the process ends.
+
 configuration: defaults are documented in docs/runtime.md; --config FILE.toml sets any of
 them, --set SECTION.KEY=VALUE overrides one (repeatable), --print-config shows the result.
 
@@ -48,6 +51,10 @@ def register(p):
     p.add_argument("--fps", type=float, default=10.0, help="frame rate of an image folder (default 10)")
     p.add_argument("--max-frames", type=int, metavar="N", help="stop after N frames")
     p.add_argument("--print-config", action="store_true", help="print the effective configuration (TOML) and exit")
+    p.add_argument("--prepare", action="store_true",
+                   help="compile (or load) every numba kernel for this map and camera into the on-disk cache, then "
+                        "exit; run it once after installing or updating, so the robot's first real start loads "
+                        "kernels instead of compiling them (and keeps the usual memory footprint)")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.set_defaults(func=main)
 
@@ -122,6 +129,8 @@ def main(args) -> int:
     if args.print_config:
         sys.stdout.write(dumps_config(cfg))
         return 0
+    if args.prepare:
+        return _prepare(args, cfg)
     if not args.map or not args.source:
         raise InputError("tinyloc run needs --map and --source (see tinyloc run --help)")
     loc, src, sinks = build(args, cfg)
@@ -139,4 +148,33 @@ def main(args) -> int:
           f"{h.get('unusable_frames', 0)} unusable, quality {h.get('quality')}, "
           f"stopped by {summary['stopped_by']}", file=sys.stderr)
     loc.close()
+    return 0
+
+
+def _prepare(args, cfg) -> int:
+    """Build the loop once (its start-up warm-up reaches every kernel), report, and exit."""
+    from ..camera.model import load_camera
+    from ..errors import InputError
+    from ..runtime.loop import Localizer
+    from ..runtime.sources import open_source
+
+    if not args.map:
+        raise InputError("tinyloc run --prepare needs --map (and --camera, or a run folder as --source)")
+    if args.camera:
+        cam = load_camera(args.camera)
+    elif args.source:
+        src = open_source(args.source, labels=cfg.loop.external_labels)
+        cam = getattr(src, "camera", None)
+        if hasattr(src, "close"):
+            src.close()
+        if cam is None:
+            raise InputError("--camera is needed for this source (only run folders carry their calibration)")
+    else:
+        raise InputError("tinyloc run --prepare needs --camera (or a run folder as --source)")
+    t0 = time.monotonic()
+    loc = Localizer.from_files(args.map, cam, cfg)
+    n = loc.kernels_compiled
+    loc.close()
+    print(f"tinyloc run --prepare: kernels ready in {time.monotonic() - t0:.1f} s "
+          f"({n} compiled now, the rest loaded from the cache)", file=sys.stderr)
     return 0
