@@ -642,6 +642,8 @@ def readout_native(buf, L, M, c0, inv_temp, a, nat, nat_a, head_max, head_arg):
     hm = -np.inf
     harg = 0
     for l in range(L):
+        # Two loops, before and after the cyclic wrap, rather than one with a wrap test per cell: the
+        # single loop was measured 35 % slower (float32 256 x 256, 400 interleaved calls, load 0.7).
         for m in range(m1):
             v = buf[l, s + m] * inv_temp
             if v > nat[l, m]:
