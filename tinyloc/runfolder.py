@@ -601,15 +601,7 @@ class RunWriter:
         """
         self = cls.__new__(cls)
         self.path = Path(path)
-        p = self.path / "run.json"
-        if not p.is_file():
-            raise InputError(f"{self.path}: no run.json (not a run folder; nothing to resume)")
-        try:
-            meta = json.loads(p.read_text(encoding="utf-8"))
-        except (UnicodeDecodeError, json.JSONDecodeError) as e:
-            raise InputError(f"{p}: unreadable ({e}); cannot resume") from None
-        if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
-            raise InputError(f"{p}: not a tinyloc run folder; cannot resume")
+        p, meta = read_meta_to_resume(self.path, " (not a run folder; nothing to resume)")
         if meta.get("complete") is not False:
             raise InputError(f"{self.path}: run.json says the run is complete; nothing to resume")
         self._meta = meta
@@ -790,3 +782,20 @@ class RowSlicer:
         stop = max(start, int(np.searchsorted(self.ts, t, side="right")))
         self.pos = stop
         return self.table[start:stop]
+
+
+def read_meta_to_resume(folder: Path, missing: str) -> tuple[Path, dict]:
+    """(path, parsed run.json) of a run folder that is to be resumed; one-line InputError otherwise.
+
+    ``missing`` ends the message when there is no run.json ("<folder>: no run.json" + missing).
+    """
+    p = Path(folder) / "run.json"
+    if not p.is_file():
+        raise InputError(f"{folder}: no run.json{missing}")
+    try:
+        meta = json.loads(p.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as e:
+        raise InputError(f"{p}: unreadable ({e}); cannot resume") from None
+    if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
+        raise InputError(f"{p}: not a tinyloc run folder; cannot resume")
+    return p, meta

@@ -448,16 +448,10 @@ class _Importer:
 
     def _check_resume(self, fingerprint: dict, options: dict) -> dict:
         """The stopped import's run.json ``"import"`` entry, if ``self.out`` may be resumed with this bag."""
+        from ..runfolder import read_meta_to_resume
+
         out = self.out
-        p = out / "run.json"
-        if not p.is_file():
-            raise InputError(f"{out}: no run.json, nothing to resume (run without --resume to start an import)")
-        try:
-            meta = json.loads(p.read_text(encoding="utf-8"))
-        except (UnicodeDecodeError, json.JSONDecodeError) as e:
-            raise InputError(f"{p}: unreadable ({e}); cannot resume") from None
-        if not isinstance(meta, dict):
-            raise InputError(f"{p}: not a run folder's run.json; cannot resume")
+        p, meta = read_meta_to_resume(out, ", nothing to resume (run without --resume to start an import)")
         prev = meta.get("import")
         if meta.get("complete") is not False:
             raise InputError(f"{out}: the import is complete (run.json \"complete\": true); nothing to resume")
