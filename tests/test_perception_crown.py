@@ -120,3 +120,26 @@ def test_fit_tool_on_a_small_labelled_folder(tmp_path):
     assert m.provenance["fit_recall"]["tree"] > 0.9 and m.provenance["fit_recall"]["other"] > 0.9
     # without data: a one-line error and exit status 2
     assert main(["-o", str(tmp_path / "x.json")]) == 2
+
+
+def test_fit_truth_is_the_block_majority():
+    """The fitting tool's truth at the raster is each block's majority class (the features describe the whole
+    area-averaged block), checked against OpenCV's INTER_AREA of each class mask at the set's 3x reduction; a
+    nearest-pixel pick would take the block's top-left pixel instead."""
+    import cv2
+
+    from tinyloc.perception.crown_fit import reduce_truth
+
+    rng = np.random.default_rng(5)
+    raw = rng.integers(0, 4, (36, 48)).astype(np.uint8)  # ids 0..3; 3 is unmapped
+    raw[:, :21] = 1  # a boundary inside a block (column 21 = block 7, pixel 0)
+    lut = np.full(256, 255, np.uint8)
+    lut[[0, 1, 2]] = [9, 0, 4]  # sky, building, tree
+    got = reduce_truth(raw, lut, (16, 12))
+    masks = [(raw == 3)] + [(lut[raw] == c) for c in range(11)]  # unmapped first: it wins ties, as documented
+    shares = np.stack([cv2.resize(m.astype(np.float32), (16, 12), interpolation=cv2.INTER_AREA) for m in masks])
+    want = shares.argmax(axis=0) - 1
+    want = np.where(want < 0, 255, want).astype(np.uint8)
+    assert np.array_equal(got, want)
+    nearest = cv2.resize(lut[raw], (16, 12), interpolation=cv2.INTER_NEAREST)
+    assert not np.array_equal(got, nearest)  # the check can tell the two reductions apart

@@ -31,11 +31,28 @@ from pathlib import Path
 import cv2
 import numpy as np
 
-from ..classes import BUILDING, SKY, TREE
+from ..classes import BUILDING, NUM_CLASSES, SKY, TREE
 from ..errors import InputError
 from . import _kernels as K
 from .crown_model import FEATURES, GAP_FEATURES, fit_crown_model
+from .labels_in import LabelImporter
 from .segment import Segmenter, preset
+
+#: Run folders' labels/ already hold tinyloc class indices: the identity mapping (255 elsewhere).
+_IDENTITY = np.full(256, 255, np.uint8)
+_IDENTITY[:NUM_CLASSES] = np.arange(NUM_CLASSES, dtype=np.uint8)
+
+
+def reduce_truth(raw: np.ndarray, lut: np.ndarray, size: tuple[int, int]) -> np.ndarray:
+    """Truth at the segmentation raster (``size`` = (w, h)): the majority class of each cell's block.
+
+    The features of raster cell (i, j) describe its whole block of frame pixels (the frame is
+    area-averaged), so the truth must be the block's too: a nearest-pixel pick (OpenCV's
+    INTER_NEAREST) takes the block's top-left pixel, one frame pixel up and left of the centre at a
+    3x reduction. Ids that ``lut`` does not map count toward no class; a block mostly unmapped is 255.
+    """
+    imp = LabelImporter((raw.shape[1], raw.shape[0]), size, lut)
+    return imp.run(np.ascontiguousarray(raw, np.uint8))[1].copy()
 
 
 def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None, gaps: bool = False):
@@ -71,7 +88,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
             raise InputError(f"{p if img is None else lp}: unreadable image")
         if seg is None or seg.frame_size != (img.shape[1], img.shape[0]):
             seg = Segmenter((img.shape[1], img.shape[0]), params)
-        truth = cv2.resize(lut[raw], seg.size, interpolation=cv2.INTER_NEAREST)
+        truth = reduce_truth(raw, lut, seg.size)
         x, y = _samples(seg, img, truth, gaps=gaps)
         xs.append(x)
         ys.append(y)
@@ -104,7 +121,7 @@ def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool
         if perc.process(img, g, grid) != "ok":
             continue
         seg = perc.segmenter
-        truth = cv2.resize(lab, seg.size, interpolation=cv2.INTER_NEAREST)
+        truth = reduce_truth(lab, _IDENTITY, seg.size)
         x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps)
         xs.append(x)
         ys.append(y)
@@ -125,6 +142,21 @@ def _balanced(y: np.ndarray, share: float) -> np.ndarray:
     return w
 
 
+def _git_commit() -> str:
+    """Short hash of the tree the tool runs from (with "+changes" when files differ), or "" outside git."""
+    import subprocess
+
+    here = Path(__file__).resolve().parent
+    try:
+        h = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=here, capture_output=True, text=True,
+                           timeout=10).stdout.strip()
+        dirty = subprocess.run(["git", "status", "--porcelain", "--", "."], cwd=here, capture_output=True,
+                               text=True, timeout=10).stdout.strip()
+    except (OSError, subprocess.SubprocessError):
+        return ""
+    return h + ("+changes" if h and dirty else "")
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(prog="python -m tinyloc.perception.crown_fit", description=__doc__,
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -142,6 +174,8 @@ def main(argv=None) -> int:
                     help="crown: the tree-vs-building score (crown model off while sampling); gaps: the sky-gap "
                          "score, sampled with --crown on (default crown)")
     ap.add_argument("--crown", default="default", help="crown model used by the gaps stage (default: shipped)")
+    ap.add_argument("--note", action="append", default=[], metavar="KEY=TEXT",
+                    help="add KEY: TEXT to the file's provenance (repeatable; e.g. what the data are, the figures)")
     ap.add_argument("-o", "--out", type=Path, required=True, help="model file to write (JSON)")
     a = ap.parse_args(argv)
 
@@ -154,7 +188,17 @@ def main(argv=None) -> int:
             "pixels labelled building or tree by both the rules and the truth, above crown_u_min")
     try:
         parts, prov = [], {"fitted": datetime.date.today().isoformat(), "method": "logistic regression, IRLS, L2 1e-2",
-                           "stage": a.stage, "samples": what + ", every 2nd pixel in each direction"}
+                           "stage": a.stage, "samples": what + ", every 2nd pixel in each direction",
+                           "truth": "majority class of each raster cell's block of label pixels "
+                                    "(labels_in block shares)"}
+        commit = _git_commit()
+        if commit:
+            prov["commit"] = commit
+        for item in a.note:
+            key, sep, text = item.partition("=")
+            if not sep or not key:
+                raise InputError(f"--note {item!r}: expected KEY=TEXT")
+            prov[key] = text
         share_img = 1.0 - a.run_share if a.run else 1.0
         if a.images:
             from .labels_in import load_label_map
