@@ -81,6 +81,12 @@ class LoopParams:
         keeps its own map window and re-reads it only when it moves, so a few windows' worth of
         tiles is enough; the map reader's general default (32 MB) would let resident memory
         creep up by that much on a large site [4.0; 9 classes x 128 x 128 cells = 0.15 MB a tile].
+    gravity_window_s : float
+        Gravity for levelling is the mean accelerometer reading over this many seconds; 0 takes the
+        rows since the previous frame (docs/tracking.md, "Gravity") [0.0].
+    gravity_motion_comp : bool
+        Take the robot's own acceleration (wheel odometry: change of speed, and speed x turn rate)
+        out of the accelerometer reading before levelling [False].
     """
 
     realtime: bool = False
@@ -93,6 +99,8 @@ class LoopParams:
     external_labels: bool = False
     segment_preset: str = "sidewalk"
     map_cache_mb: float = 4.0
+    gravity_window_s: float = 0.0
+    gravity_motion_comp: bool = False
 
     def __post_init__(self):
         from ..perception.segment import PRESETS
@@ -102,6 +110,8 @@ class LoopParams:
                              f"known: {', '.join(PRESETS)}")
         if not 0.0 <= self.map_cache_mb <= 4096.0:
             raise InputError(f"loop.map_cache_mb = {self.map_cache_mb}: must be within 0 .. 4096 MB")
+        if not 0.0 <= self.gravity_window_s <= 5.0:
+            raise InputError(f"loop.gravity_window_s = {self.gravity_window_s}: must be within 0 .. 5 s")
 
 
 @dataclass(frozen=True)

@@ -122,15 +122,26 @@ class SensorState:
         self.gravity = np.full(3, np.nan)
         self.gravity_t = -math.inf
         self.fix = None  # (x, y, acc, t)
-        self.counters = {"imu_bad_rows": 0, "odometry_bad_rows": 0, "gnss_bad_rows": 0}
+        self.grav_est = None  # GravityEstimator, made at the first frame from the loop settings
+        self.counters = {"imu_bad_rows": 0, "odometry_bad_rows": 0, "gnss_bad_rows": 0,
+                         "gravity_uncompensated": 0}
         self.bad_now = [0, 0, 0]  # bad rows in the last frame: imu, odometry, gnss
 
     def take(self, fr, p) -> tuple:
         """Digest one frame's sensor rows; returns (odometry increment or None, gravity or None, fix or None).
 
         Rows with a NaN or infinite value (and IMU rows above 1000 m/s^2, GNSS rows off the globe)
-        are skipped and counted, in ``counters`` and, for this frame, in ``bad_now``.
+        are skipped and counted, in ``counters`` and, for this frame, in ``bad_now``. Gravity is the
+        :class:`~tinyloc.perception.gravity.GravityEstimator`'s (``loop.gravity_window_s``,
+        ``loop.gravity_motion_comp``); frames where compensation was on but could not be applied are
+        counted in ``counters["gravity_uncompensated"]``.
         """
+        ge = self.grav_est
+        if ge is None:
+            from ..perception.gravity import GravityEstimator
+
+            ge = self.grav_est = GravityEstimator(getattr(p, "gravity_window_s", 0.0),
+                                                  getattr(p, "gravity_motion_comp", False))
         t = float(fr.t)
         bad = self.bad_now
         bad[0] = bad[1] = bad[2] = 0
@@ -138,6 +149,7 @@ class SensorState:
         for r in _rows(fr.odometry, 4):
             if _finite(r):
                 last = r
+                ge.add_odometry(r[0], r[1], r[2], r[3])
             else:
                 bad[1] += 1
         if last is not None:
@@ -153,22 +165,20 @@ class SensorState:
         elif self.odo_last is not None:
             # stale odometry: the motion since the previous frame is unknown
             self.odo_prev = None
+            ge.forget_odometry()
         n = 0
-        sx = sy = sz = 0.0
         tg = None
         for r in _rows(fr.imu, 4):
             if _finite(r) and abs(r[1]) < 1e3 and abs(r[2]) < 1e3 and abs(r[3]) < 1e3:
-                sx += r[1]
-                sy += r[2]
-                sz += r[3]
+                ge.add_imu(r[0], r[1], r[2], r[3])
                 n += 1
                 tg = r[0]
             else:
                 bad[0] += 1
-        if n:
-            g = self.gravity
-            g[0], g[1], g[2] = sx / n, sy / n, sz / n
+        if n and ge.estimate(self.gravity):
             self.gravity_t = tg
+            if ge.compensate and ge.status != "compensated":
+                self.counters["gravity_uncompensated"] += 1
         grav = self.gravity if (t - self.gravity_t) <= p.imu_timeout_s else None
         if self.frame is not None:
             last = None
