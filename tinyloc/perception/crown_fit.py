@@ -55,13 +55,24 @@ def reduce_truth(raw: np.ndarray, lut: np.ndarray, size: tuple[int, int]) -> np.
     return imp.run(np.ascontiguousarray(raw, np.uint8))[1].copy()
 
 
-def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None, gaps: bool = False):
+#: Which pixels the crown stage samples: "applied" (default): all that the crown model scores at run time
+#: (not sky, above ``crown_u_min``, labelled), so vehicles, poles and fences count as "not tree" as
+#: they do when the model runs; "building-tree": only those that both the rules (model off) and the
+#: truth call building or tree (the first shipped models).
+CROWN_PIXELS = ("applied", "building-tree")
+
+
+def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None, gaps: bool = False,
+             pixels: str = "applied"):
     seg.run(bgr, hrow)
     tf = seg.crown_features(bgr) if seg.crown_model is None else seg.tfeat
     lab = seg.labels
     if gaps:  # sky-gap stage: pixels the segmenter (crown model on, gap model off) calls sky
         tf = np.concatenate([tf, seg.gap_features()])
         m = (lab == SKY) & np.isin(truth_small, (SKY, TREE))
+    elif pixels == "applied":  # every labelled pixel the crown model is applied to (not sky, above u_min)
+        m = (seg.feat[K.F_U] > seg.params.crown_u_min) & (seg.sky == 0) & (truth_small != 255) & \
+            (truth_small != SKY)
     else:
         m = (seg.feat[K.F_U] > seg.params.crown_u_min) & np.isin(lab, (BUILDING, TREE)) & \
             np.isin(truth_small, (BUILDING, TREE))
@@ -71,7 +82,7 @@ def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None
 
 
 def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, params, *, progress=None,
-                        gaps: bool = False):
+                        gaps: bool = False, pixels: str = "applied"):
     """(x, y, names) from an image folder with label images of the same names (see the module docstring)."""
     files = sorted(p for p in Path(images).iterdir() if p.suffix.lower() in (".png", ".jpg", ".jpeg"))
     xs, ys, used = [], [], []
@@ -89,7 +100,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
         if seg is None or seg.frame_size != (img.shape[1], img.shape[0]):
             seg = Segmenter((img.shape[1], img.shape[0]), params)
         truth = reduce_truth(raw, lut, seg.size)
-        x, y = _samples(seg, img, truth, gaps=gaps)
+        x, y = _samples(seg, img, truth, gaps=gaps, pixels=pixels)
         xs.append(x)
         ys.append(y)
         used.append(p.name)
@@ -100,7 +111,8 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
     return np.concatenate(xs), np.concatenate(ys), used
 
 
-def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool = False):
+def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool = False,
+                     pixels: str = "applied"):
     """(x, y, n_frames) from a run folder with labels/, segmented with its camera and IMU gravity."""
     from ..runfolder import RunFolder
     from .pipeline import Perception, PerceptionParams
@@ -122,7 +134,7 @@ def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool
             continue
         seg = perc.segmenter
         truth = reduce_truth(lab, _IDENTITY, seg.size)
-        x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps)
+        x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps, pixels=pixels)
         xs.append(x)
         ys.append(y)
         n += 1
@@ -173,6 +185,10 @@ def main(argv=None) -> int:
     ap.add_argument("--stage", choices=("crown", "gaps"), default="crown",
                     help="crown: the tree-vs-building score (crown model off while sampling); gaps: the sky-gap "
                          "score, sampled with --crown on (default crown)")
+    ap.add_argument("--pixels", choices=CROWN_PIXELS, default="applied",
+                    help="crown stage samples: applied = every labelled pixel the model scores at run time (not "
+                         "sky, above crown_u_min); building-tree = only pixels both the rules and the truth call "
+                         "building or tree (default applied)")
     ap.add_argument("--crown", default="default", help="crown model used by the gaps stage (default: shipped)")
     ap.add_argument("--note", action="append", default=[], metavar="KEY=TEXT",
                     help="add KEY: TEXT to the file's provenance (repeatable; e.g. what the data are, the figures)")
@@ -185,6 +201,8 @@ def main(argv=None) -> int:
     gaps = a.stage == "gaps"
     crown = a.crown if gaps else ""
     what = ("pixels the segmenter (crown model on, gap model off) labels sky and the truth sky or tree" if gaps else
+            "labelled pixels the crown model scores (not sky, above crown_u_min); tree against all other classes"
+            if a.pixels == "applied" else
             "pixels labelled building or tree by both the rules and the truth, above crown_u_min")
     try:
         parts, prov = [], {"fitted": datetime.date.today().isoformat(), "method": "logistic regression, IRLS, L2 1e-2",
@@ -207,7 +225,7 @@ def main(argv=None) -> int:
                 raise InputError("--images needs --labels and --label-map")
             p = dataclasses.replace(preset(a.preset), crown_model=crown, gap_model="")
             x, y, used = samples_from_folder(a.images, a.labels, load_label_map(a.label_map), a.ids, p,
-                                             progress=None, gaps=gaps)
+                                             progress=None, gaps=gaps, pixels=a.pixels)
             parts.append((x, y, _balanced(y, share_img)))
             prov["image_folder"] = {"ids": a.ids, "frames": len(used), "first": used[0], "last": used[-1],
                                     "preset": a.preset, "samples": int(len(y)), "tree_share": float(y.mean()),
@@ -216,7 +234,7 @@ def main(argv=None) -> int:
             p = dataclasses.replace(preset(a.run_preset), crown_model=crown, gap_model="")
             rx, ry, info = [], [], []
             for r in a.run:
-                x, y, n = samples_from_run(r, a.run_every, p, progress=say, gaps=gaps)
+                x, y, n = samples_from_run(r, a.run_every, p, progress=say, gaps=gaps, pixels=a.pixels)
                 rx.append(x)
                 ry.append(y)
                 info.append({"run": Path(r).name, "frames": n, "every": a.run_every})
