@@ -100,7 +100,7 @@ class SegmentParams:
     sky_ref_below: float = 0.2  # ... and fewer than this share of columns have that colour just below the horizon
     crown_model: str = "default"  # linear crown score (crown_model.py): "default", a file path, or "" (rule)
     crown_u_min: float = -0.05  # the crown score applies above this height (image heights) rel. to the horizon
-    crown_threshold: float = 0.65  # above the horizon, tree where the smoothed crown probability exceeds this
+    crown_threshold: float = 0.7  # above the horizon, tree where the smoothed crown probability exceeds this
     crown_smooth: int = 9  # window of the masked mean of the crown probability (px)
     crown_sky_share: float = 0.3  # sky pixels whose window holds more tree than this are crown gaps (0: off)
     crown_sky_window: int = 9  # ... window (px)
