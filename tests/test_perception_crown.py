@@ -2,10 +2,15 @@
 
 Outside reference for the fit: SciPy's BFGS minimiser (scipy.optimize.minimize) on the same
 L2-penalised, weighted logistic log-likelihood; the data are seeded random samples of a planted model.
+The fitting tool's truth reduction is checked against OpenCV's INTER_AREA of the class masks; the colour
+models' extra planes against OpenCV's floating-point Lab conversion, a cumulative sum and SciPy's
+``uniform_filter``; the segmenter with the colour models against tests/_perception_reference.py.
 """
 
+import dataclasses
 import json
 
+import cv2
 import numpy as np
 import pytest
 from scipy.optimize import minimize
@@ -143,3 +148,92 @@ def test_fit_truth_is_the_block_majority():
     assert np.array_equal(got, want)
     nearest = cv2.resize(lut[raw], (16, 12), interpolation=cv2.INTER_NEAREST)
     assert not np.array_equal(got, nearest)  # the check can tell the two reductions apart
+
+
+# --- the colour models' extra planes (crown_features.py) -----------------------------------------------------
+
+def colour_features_reference(bgr_small, sky, *, lab8=False):
+    """The EXTRA_FEATURES planes from their definitions: Lab a*, b* from OpenCV's floating-point Lab
+    conversion (an independent path from the 8-bit one the kernel reads; they differ by rounding, < 1 unit),
+    the column's sky share from a cumulative sum, and the 31 x 31 non-sky share from SciPy's
+    ``uniform_filter`` (edge pixels repeated, as ``mode="nearest"``). ``lab8``: a*, b* from OpenCV's 8-bit
+    Lab minus 128 instead (the definition the segmenter uses, for comparing whole segmentations)."""
+    from scipy.ndimage import uniform_filter
+
+    if lab8:
+        lab = cv2.cvtColor(bgr_small, cv2.COLOR_BGR2Lab).astype(np.float64) - 128.0
+    else:
+        lab = cv2.cvtColor(bgr_small.astype(np.float32) / 255.0, cv2.COLOR_BGR2Lab)
+    sky = sky.astype(bool)
+    above = np.cumsum(sky, axis=0) / np.arange(1, sky.shape[0] + 1)[:, None]
+    nonsky = uniform_filter((~sky).astype(np.float64), size=31, mode="nearest")
+    return np.stack([lab[..., 1], lab[..., 2], above, nonsky])
+
+
+def test_colour_planes_match_reference():
+    from tinyloc.perception.crown_features import EXTRA_FEATURES, CrownExtras
+
+    rng = np.random.default_rng(21)
+    small = cv2.GaussianBlur(rng.integers(0, 256, (60, 80, 3)).astype(np.uint8), (0, 0), 1.5)
+    sky = np.zeros((60, 80), np.uint8)
+    sky[:20] = 1
+    sky[20:35, 30:50] = rng.random((15, 20)) < 0.4  # gaps in a crown
+    lab8 = cv2.cvtColor(small, cv2.COLOR_BGR2Lab)
+    out = np.full((len(EXTRA_FEATURES), 60, 80), np.nan, np.float32)
+    CrownExtras(60, 80).fill(lab8, sky, out)
+    ref = colour_features_reference(small, sky)
+    assert np.max(np.abs(out[:2] - ref[:2])) < 1.0  # 8-bit Lab rounds a* and b* to whole units
+    assert np.max(np.abs(out[2:] - ref[2:])) < 1e-5
+    assert out[2, 0, 0] == 1.0 and out[3, 0, 0] < out[3, 59, 0]  # sky at the top; a street canyon is non-sky
+    with pytest.raises(InputError, match="out must be"):
+        CrownExtras(60, 80).fill(lab8, sky, np.zeros((3, 60, 80), np.float32))
+
+
+def test_segmenter_with_colour_models_matches_reference(monkeypatch):
+    """The whole segmenter with the colour crown and sky-gap models against the plain-NumPy reference of
+    tests/_perception_reference.py, its crown feature planes extended by the reference above."""
+    import _perception_reference as R
+    from test_perception_segment import _frames
+    from tinyloc.perception.segment import SegmentParams, Segmenter
+
+    texture = R.crown_features_reference
+
+    def extended(bgr, g01, s, v, exgr, u, sky):
+        h, w = g01.shape
+        small = bgr if bgr.shape[:2] == (h, w) else cv2.resize(bgr, (w, h), interpolation=cv2.INTER_AREA)
+        return np.concatenate([texture(bgr, g01, s, v, exgr, u, sky), colour_features_reference(small, sky, lab8=True)])
+
+    monkeypatch.setattr(R, "crown_features_reference", extended)
+    # the second set makes the sky-gap model fire on the street-like frame's sky, so it is compared too
+    for p in (SegmentParams(crown_model="colour", gap_model="colour"),
+              SegmentParams(crown_model="colour", gap_model="colour", gap_threshold=0.5, gap_near=0.0)):
+        seen, changed = set(), 0
+        for what, img in _frames():
+            seg = Segmenter((img.shape[1], img.shape[0]), p)
+            assert seg.tfeat.shape[0] == K.NT + 4 and seg.gap_model.features == seg.crown_model.features + \
+                ("tree9", "tree15", "tex", "crown")
+            hrow = np.linspace(0.45, 0.6, seg.size[0]) * seg.size[1]
+            probs, labels = seg.run(img, hrow)
+            rp, rl = R.segment_reference(img, p, hrow)
+            # the kernel's logistic is a table (error < 3e-6): a few near-ties may flip
+            assert np.mean(labels != rl) < 0.002, (what, np.mean(labels != rl))
+            same = labels == rl
+            assert np.max(np.abs(probs[:, same] - rp[:, same])) < 1e-4, what
+            seen |= set(np.unique(labels).tolist())
+            off = Segmenter((img.shape[1], img.shape[0]), dataclasses.replace(p, gap_model="")).run(img, hrow)[1]
+            changed += int(np.sum((labels != off) & (off == 9)))
+        assert {0, 4} <= seen  # the colour crown model split building from tree on these frames
+        if p.gap_threshold == 0.5:
+            assert changed > 500  # the sky-gap model relabelled sky, and the result matched the reference
+
+
+def test_colour_models_ship_and_pair():
+    from tinyloc.perception.crown_model import COLOUR_FEATURES, NAMED
+
+    c = load_crown_model("colour")
+    g = load_crown_model("colour", gaps=True, base=c.features)
+    assert c.features == COLOUR_FEATURES and c.n_extra == 4 and g.n_extra == 4
+    assert c.provenance["image_folder"]["ids"] == "even" and g.provenance["image_folder"]["ids"] == "even"
+    assert load_crown_model("default", gaps=True, base=c.features) is g  # "default" follows the crown model
+    with pytest.raises(InputError, match="do not follow"):
+        load_crown_model(str(NAMED["default"][1]), gaps=True, base=c.features)  # a texture sky-gap model

@@ -34,7 +34,8 @@ import numpy as np
 from ..classes import BUILDING, NUM_CLASSES, SKY, TREE
 from ..errors import InputError
 from . import _kernels as K
-from .crown_model import FEATURES, GAP_FEATURES, fit_crown_model
+from .crown_features import EXTRA_FEATURES, CrownExtras
+from .crown_model import COLOUR_FEATURES, FEATURES, GAP_EXTRA, fit_crown_model, load_crown_model
 from .labels_in import LabelImporter
 from .segment import Segmenter, preset
 
@@ -63,9 +64,17 @@ CROWN_PIXELS = ("applied", "building-tree")
 
 
 def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None, gaps: bool = False,
-             pixels: str = "applied"):
+             pixels: str = "applied", extras: bool = False):
     seg.run(bgr, hrow)
-    tf = seg.crown_features(bgr) if seg.crown_model is None else seg.tfeat
+    if seg.crown_model is None:  # crown stage: the rules decide, the features are collected beside them
+        tf = seg.crown_features(bgr)
+        if extras:
+            h, w = seg.labels.shape
+            ex = np.zeros((len(EXTRA_FEATURES), h, w), np.float32)
+            CrownExtras(h, w).fill(seg.lab, seg.sky, ex)
+            tf = np.concatenate([tf, ex])
+    else:
+        tf = seg.tfeat
     lab = seg.labels
     if gaps:  # sky-gap stage: pixels the segmenter (crown model on, gap model off) calls sky
         tf = np.concatenate([tf, seg.gap_features()])
@@ -82,7 +91,7 @@ def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None
 
 
 def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, params, *, progress=None,
-                        gaps: bool = False, pixels: str = "applied"):
+                        gaps: bool = False, pixels: str = "applied", extras: bool = False):
     """(x, y, names) from an image folder with label images of the same names (see the module docstring)."""
     files = sorted(p for p in Path(images).iterdir() if p.suffix.lower() in (".png", ".jpg", ".jpeg"))
     xs, ys, used = [], [], []
@@ -100,7 +109,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
         if seg is None or seg.frame_size != (img.shape[1], img.shape[0]):
             seg = Segmenter((img.shape[1], img.shape[0]), params)
         truth = reduce_truth(raw, lut, seg.size)
-        x, y = _samples(seg, img, truth, gaps=gaps, pixels=pixels)
+        x, y = _samples(seg, img, truth, gaps=gaps, pixels=pixels, extras=extras)
         xs.append(x)
         ys.append(y)
         used.append(p.name)
@@ -112,7 +121,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
 
 
 def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool = False,
-                     pixels: str = "applied"):
+                     pixels: str = "applied", extras: bool = False):
     """(x, y, n_frames) from a run folder with labels/, segmented with its camera and IMU gravity."""
     from ..runfolder import RunFolder
     from .pipeline import Perception, PerceptionParams
@@ -134,7 +143,7 @@ def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool
             continue
         seg = perc.segmenter
         truth = reduce_truth(lab, _IDENTITY, seg.size)
-        x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps, pixels=pixels)
+        x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps, pixels=pixels, extras=extras)
         xs.append(x)
         ys.append(y)
         n += 1
@@ -189,6 +198,10 @@ def main(argv=None) -> int:
                     help="crown stage samples: applied = every labelled pixel the model scores at run time (not "
                          "sky, above crown_u_min); building-tree = only pixels both the rules and the truth call "
                          "building or tree (default applied)")
+    ap.add_argument("--features", choices=("texture", "colour"), default="texture",
+                    help="crown stage feature set: texture = crown_model.FEATURES; colour = those plus Lab a*, b* "
+                         "and sky context (crown_features.py). The gaps stage takes its --crown model's (default "
+                         "texture)")
     ap.add_argument("--crown", default="default", help="crown model used by the gaps stage (default: shipped)")
     ap.add_argument("--note", action="append", default=[], metavar="KEY=TEXT",
                     help="add KEY: TEXT to the file's provenance (repeatable; e.g. what the data are, the figures)")
@@ -200,6 +213,7 @@ def main(argv=None) -> int:
 
     gaps = a.stage == "gaps"
     crown = a.crown if gaps else ""
+    extras = a.features == "colour" and not gaps
     what = ("pixels the segmenter (crown model on, gap model off) labels sky and the truth sky or tree" if gaps else
             "labelled pixels the crown model scores (not sky, above crown_u_min); tree against all other classes"
             if a.pixels == "applied" else
@@ -225,7 +239,7 @@ def main(argv=None) -> int:
                 raise InputError("--images needs --labels and --label-map")
             p = dataclasses.replace(preset(a.preset), crown_model=crown, gap_model="")
             x, y, used = samples_from_folder(a.images, a.labels, load_label_map(a.label_map), a.ids, p,
-                                             progress=None, gaps=gaps, pixels=a.pixels)
+                                             progress=None, gaps=gaps, pixels=a.pixels, extras=extras)
             parts.append((x, y, _balanced(y, share_img)))
             prov["image_folder"] = {"ids": a.ids, "frames": len(used), "first": used[0], "last": used[-1],
                                     "preset": a.preset, "samples": int(len(y)), "tree_share": float(y.mean()),
@@ -234,7 +248,8 @@ def main(argv=None) -> int:
             p = dataclasses.replace(preset(a.run_preset), crown_model=crown, gap_model="")
             rx, ry, info = [], [], []
             for r in a.run:
-                x, y, n = samples_from_run(r, a.run_every, p, progress=say, gaps=gaps, pixels=a.pixels)
+                x, y, n = samples_from_run(r, a.run_every, p, progress=say, gaps=gaps, pixels=a.pixels,
+                                           extras=extras)
                 rx.append(x)
                 ry.append(y)
                 info.append({"run": Path(r).name, "frames": n, "every": a.run_every})
@@ -247,7 +262,12 @@ def main(argv=None) -> int:
         x = np.concatenate([q[0] for q in parts])
         y = np.concatenate([q[1] for q in parts])
         w = np.concatenate([q[2] for q in parts]) * len(y)
-        model = fit_crown_model(x, y, w, provenance=prov, features=GAP_FEATURES if gaps else FEATURES)
+        if gaps:
+            features = load_crown_model(crown).features + GAP_EXTRA
+        else:
+            features = COLOUR_FEATURES if extras else FEATURES
+        prov["features"] = "colour" if COLOUR_FEATURES[-1] in features else "texture"
+        model = fit_crown_model(x, y, w, provenance=prov, features=features)
         z = model.score(x)
         acc_t = float(np.average(z[y] > 0, weights=w[y]))
         acc_b = float(np.average(z[~y] <= 0, weights=w[~y]))

@@ -13,7 +13,9 @@ squares (Newton's method) on a stated split of labelled frames and stored with t
 
 File format (JSON, ours): ``{"format": "tinyloc-crown-model", "version": 1, "features": [names],
 "mean": [...], "scale": [...], "weights": [...], "bias": b, "provenance": {...}}``; the feature
-names must equal ``FEATURES`` in order.
+names must equal ``FEATURES`` in order, or ``COLOUR_FEATURES`` (``FEATURES`` followed by the colour
+and sky-context planes of crown_features.py: the "colour" models); a sky-gap model's are its crown
+model's followed by ``GAP_EXTRA``.
 """
 
 from __future__ import annotations
@@ -27,6 +29,7 @@ import numpy as np
 
 from ..errors import InputError
 from . import _kernels as K
+from .crown_features import EXTRA_FEATURES
 
 FORMAT = "tinyloc-crown-model"
 DEFAULT_PATH = Path(__file__).with_name("crown_default.json")
@@ -40,8 +43,17 @@ if len(FEATURES) != K.NT:
 #: The sky-gap model's features: the crown features plus, from the labels after the crown model, the
 #: share of tree pixels in 9 x 9 and 15 x 15 windows, the gradient energy ``tex`` and the smoothed crown
 #: probability (planes of ``Segmenter.gfeat`` beyond ``tfeat``).
-GAP_FEATURES = FEATURES + ("tree9", "tree15", "tex", "crown")
+GAP_EXTRA = ("tree9", "tree15", "tex", "crown")
+GAP_FEATURES = FEATURES + GAP_EXTRA
 GAP_PATH = Path(__file__).with_name("crown_gaps_default.json")
+#: The "colour" models: the texture features plus Lab a*, b* and sky context (crown_features.py).
+COLOUR_FEATURES = FEATURES + EXTRA_FEATURES
+COLOUR_GAP_FEATURES = COLOUR_FEATURES + GAP_EXTRA
+#: Feature lists a crown model file may have (the sky-gap model: one of them + GAP_EXTRA).
+CROWN_LAYOUTS = (FEATURES, COLOUR_FEATURES)
+#: Shipped models by name: (crown model file, sky-gap model file).
+NAMED = {"default": (DEFAULT_PATH, GAP_PATH),
+         "colour": (DEFAULT_PATH.with_name("crown_colour.json"), DEFAULT_PATH.with_name("crown_gaps_colour.json"))}
 
 
 @dataclass(frozen=True)
@@ -93,8 +105,16 @@ class CrownModel:
     def save(self, path) -> None:
         Path(path).write_text(json.dumps(self.to_dict(), indent=1) + "\n")
 
+    @property
+    def n_extra(self) -> int:
+        """Feature planes beyond the texture set (``crown_features.EXTRA_FEATURES``) the model needs."""
+        n = len(self.features) - len(FEATURES)
+        return n - len(GAP_EXTRA) if self.features[-len(GAP_EXTRA):] == GAP_EXTRA else n
+
     @classmethod
-    def load(cls, path, features: tuple = FEATURES) -> "CrownModel":
+    def load(cls, path, features: tuple | None = None, *, gaps: bool = False) -> "CrownModel":
+        """Read a model file. ``features``: the exact feature list required; None: any of ``CROWN_LAYOUTS``
+        (with ``gaps``, any of them followed by ``GAP_EXTRA``)."""
         try:
             d = json.loads(Path(path).read_text())
         except OSError as e:
@@ -103,8 +123,13 @@ class CrownModel:
             raise InputError(f"{path}: not valid JSON (line {e.lineno})") from None
         if not isinstance(d, dict) or d.get("format") != FORMAT or d.get("version") != 1:
             raise InputError(f"{path}: not a {FORMAT} version 1 file")
-        if d.get("features") != list(features):
-            raise InputError(f"{path}: feature list does not match this build's ({', '.join(features)})")
+        allowed = [tuple(features)] if features is not None else \
+            [lay + GAP_EXTRA if gaps else lay for lay in CROWN_LAYOUTS]
+        got = tuple(d.get("features") or ())
+        if got not in allowed:
+            raise InputError(f"{path}: feature list does not match this build's ({', '.join(allowed[0])}"
+                             f"{' [+ ' + ', '.join(EXTRA_FEATURES) + ']' if features is None else ''})")
+        features = got
         try:
             return cls(np.array(d["mean"], float), np.array(d["scale"], float), np.array(d["weights"], float),
                        float(d["bias"]), dict(d.get("provenance", {})), tuple(features))
@@ -115,15 +140,32 @@ class CrownModel:
 _CACHE: dict[str, CrownModel] = {}
 
 
-def load_crown_model(name: str, *, gaps: bool = False) -> CrownModel | None:
-    """``"default"``: the shipped model; ``""`` or ``"off"``: None (the bright-mix crown rule, or no sky-gap
-    model); else a path. ``gaps`` selects the sky-gap model (``GAP_FEATURES``) instead of the crown model."""
+def load_crown_model(name: str, *, gaps: bool = False, base: tuple | None = None) -> CrownModel | None:
+    """A crown or sky-gap model by name or path.
+
+    ``"default"`` / ``"colour"``: the shipped models (``NAMED``; a sky-gap model ``"default"`` with a
+    colour crown model ``base`` is the colour one); ``""`` or ``"off"``: None (the bright-mix crown rule,
+    or no sky-gap model); else a path. ``gaps`` selects the sky-gap model instead of the crown
+    model; ``base``, the crown model's feature list, then requires the sky-gap model's to be ``base +
+    GAP_EXTRA`` (both read the same feature planes).
+    """
     if name in ("", "off"):
         return None
-    path = str((GAP_PATH if gaps else DEFAULT_PATH) if name == "default" else Path(name))
-    if path not in _CACHE:
-        _CACHE[path] = CrownModel.load(path, GAP_FEATURES if gaps else FEATURES)
-    return _CACHE[path]
+    if gaps and name == "default" and base is not None and tuple(base) == COLOUR_FEATURES:
+        name = "colour"  # the shipped sky-gap model that goes with the shipped crown model in use
+    if name in NAMED:
+        path = str(NAMED[name][1 if gaps else 0])
+    else:
+        path = str(Path(name))
+    key = (path, gaps)
+    if key not in _CACHE:
+        _CACHE[key] = CrownModel.load(path, gaps=gaps)
+    model = _CACHE[key]
+    if gaps and base is not None and model.features != tuple(base) + GAP_EXTRA:
+        raise InputError(f"{path}: the sky-gap model's features do not follow the crown model's "
+                         f"({len(model.features)} features, expected {len(base) + len(GAP_EXTRA)}); "
+                         "fit it with the same crown model")
+    return model
 
 
 def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarray | None = None, *,
@@ -164,4 +206,5 @@ def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarra
     return CrownModel(mean, scale, th[:-1], float(th[-1]), dict(provenance or {}), tuple(features))
 
 
-__all__ = ["CrownModel", "FEATURES", "GAP_FEATURES", "load_crown_model", "fit_crown_model", "DEFAULT_PATH", "GAP_PATH"]
+__all__ = ["CrownModel", "FEATURES", "GAP_FEATURES", "GAP_EXTRA", "COLOUR_FEATURES", "COLOUR_GAP_FEATURES",
+           "CROWN_LAYOUTS", "NAMED", "load_crown_model", "fit_crown_model", "DEFAULT_PATH", "GAP_PATH"]

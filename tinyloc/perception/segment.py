@@ -44,6 +44,7 @@ import numpy as np
 from ..classes import CLASSES, NUM_CLASSES
 from ..errors import InputError
 from . import _kernels as K
+from .crown_features import CrownExtras
 from .crown_model import load_crown_model
 
 
@@ -98,13 +99,13 @@ class SegmentParams:
     sky_ref_share: float = 0.5  # ... when this share of the band is smooth and above the horizon,
     sky_ref_warm: float = 4.0  # ... its a* and b* are below this (grey or bluish),
     sky_ref_below: float = 0.2  # ... and fewer than this share of columns have that colour just below the horizon
-    crown_model: str = "default"  # linear crown score (crown_model.py): "default", a file path, or "" (rule)
+    crown_model: str = "default"  # linear crown score (crown_model.py): "default", "colour", a path, or "" (rule)
     crown_u_min: float = -0.05  # the crown score applies above this height (image heights) rel. to the horizon
     crown_threshold: float = 0.7  # above the horizon, tree where the smoothed crown probability exceeds this
     crown_smooth: int = 9  # window of the masked mean of the crown probability (px)
     crown_sky_share: float = 0.3  # sky pixels whose window holds more tree than this are crown gaps (0: off)
     crown_sky_window: int = 9  # ... window (px)
-    gap_model: str = "default"  # sky-gap score (crown_model.GAP_FEATURES): "default", a path, or "" (off);
+    gap_model: str = "default"  # sky-gap score (crown_model.GAP_FEATURES): "default", "colour", a path, or "" (off);
     #                             needs the crown model
     gap_threshold: float = 0.85  # a sky pixel whose gap probability exceeds this is tree ...
     gap_near: float = 0.02  # ... when at least this share of its 15 x 15 window is tree (near a crown)
@@ -217,12 +218,16 @@ class Segmenter:
         self.crown_model = load_crown_model(params.crown_model)
         if self.crown_model is not None:
             self._cw, self._cb = self.crown_model.folded()
-        self.gap_model = load_crown_model(params.gap_model, gaps=True) if self.crown_model is not None else None
+        self.gap_model = load_crown_model(params.gap_model, gaps=True, base=self.crown_model.features) \
+            if self.crown_model is not None else None
         if self.gap_model is not None:
             self._gw, self._gb = self.gap_model.folded()
             self._gz = float(np.log(params.gap_threshold / (1.0 - params.gap_threshold)))
         self.gextra = np.zeros((4, h, w), f32)  # sky-gap features beyond tfeat (zero when the model is off)
-        self.tfeat = np.zeros((K.NT, h, w), f32)  # crown-model features (zero when the model is off)
+        # crown-model features (zero when the model is off); a "colour" model adds planes (crown_features.py)
+        n_extra = self.crown_model.n_extra if self.crown_model is not None else 0
+        self.tfeat = np.zeros((K.NT + n_extra, h, w), f32)
+        self._extras = CrownExtras(h, w) if n_extra else None
         self.small2 = np.zeros((2 * h, 2 * w, 3), np.uint8)
         self.g2x = np.zeros((2 * h, 2 * w), f32)
         self.lap2x = np.zeros((2 * h, 2 * w), f32)
@@ -364,6 +369,8 @@ class Segmenter:
         _blur(t[9], 7, tf[K.T_EN15])
         K.class_indicator(self.sky, 0, t[0])  # 1 where not sky (a uint8 -> float ufunc would allocate)
         _blur(t[0], 4, tf[K.T_NONSKY9])
+        if self._extras is not None:
+            self._extras.fill(self.lab, self.sky, tf[K.NT:])
         return tf
 
     def gap_features(self) -> np.ndarray:
