@@ -1,7 +1,9 @@
 """Fit the crown model (crown_model.py) on labelled frames: a developer tool, not on the robot's path.
 
     python -m tinyloc.perception.crown_fit --images DIR --labels DIR --label-map MAP.toml [--ids even]
-        [--run RUN ...] [--run-every 10] [--run-share 0.3] -o crown.json
+        [--run RUN ...] [--run-every 10] [--run-share 0.15] [--features texture|colour]
+        [--pixels applied|building-tree] [--note KEY=TEXT ...] -o crown.json
+    python -m tinyloc.perception.crown_fit --stage gaps --crown crown.json ... -o crown_gaps.json
 
 Two kinds of labelled data, each optional:
 
@@ -12,11 +14,18 @@ Two kinds of labelled data, each optional:
 - run folders with ``labels/`` (docs/run-folder.md; for example simulated drives), segmented with their
   camera and IMU gravity, every ``--run-every``-th frame.
 
-Samples are the segmentation pixels at or above the crown model's height limit that the classical
-rules (crown model off) call building or tree and whose label is building or tree; the regression
-learns which of those are trees. Within each kind of data both classes weigh equally; the run folders
+Crown stage: the samples are the labelled segmentation pixels that the crown model scores when it
+runs (not sky, at or above ``crown_u_min``; ``--pixels applied``), with "tree" against every other
+class, so vehicles, poles and fences teach it what is not a crown; ``--pixels building-tree`` keeps
+only pixels that both the rules (crown model off) and the truth call building or tree (how the first
+models were fitted). ``--features colour`` adds the colour and sky-context planes of
+crown_features.py. Gaps stage: the pixels the segmenter with the ``--crown`` model (gap model off)
+calls sky and the truth sky or tree; the sky-gap model reads the crown model's features and four more.
+The truth at the raster is the majority class of each cell's block of label pixels (the features
+describe the whole block). Within each kind of data both classes weigh equally; the run folders
 together weigh ``--run-share`` of the total. Every 2nd pixel in each direction is used. The written
-file carries the sources, the split and the settings as its provenance.
+file carries the sources, the split, the settings, the commit of the tool and any ``--note`` texts as
+its provenance.
 """
 
 from __future__ import annotations
