@@ -98,6 +98,22 @@ def segment_reference(bgr, p, hrow=None):
     smooth = _sig((p.smooth_tex - tex) / p.smooth_w)
     dist = np.abs(lab[..., 0] - ref[0]) * p.ref_l_weight + np.abs(lab[..., 1] - ref[1]) + np.abs(lab[..., 2] - ref[2])
     on = _sig((p.ref_dist - dist) / p.ref_w)
+    # vegetation on the ground: green, or (soil rule) b* well above the robot's surface's
+    gg = np.maximum(green, _sig((lab[..., 2] - ref[2] - p.soil_b) / p.soil_w)) if p.soil_b > 0 else green
+    gg = np.where(below > 0, gg, green)
+    robot_on = p.robot_on
+    if p.surface_auto > 0:  # which paved surface is under the robot: the darker one is the road
+        db = lab[..., 2] - ref[2]
+        other = (u < p.surface_u) & (tex < p.smooth_tex) & (exgr < p.green0) & (dist > p.ref_dist)
+        if p.soil_b > 0:
+            other &= db <= p.soil_b
+        if other.sum() > 0 and other.sum() >= p.surface_share * w * h:
+            srt = np.sort(lab[..., 0][other])
+            med = srt[(len(srt) + 1) // 2 - 1]
+            if med >= ref[0] + p.surface_auto:
+                robot_on = "road"
+            elif med <= ref[0] - p.surface_auto:
+                robot_on = "sidewalk"
     model = load_crown_model(p.crown_model)
     if model is None:
         crown = _sig((brightmix - p.crown_bright) / 0.05) * _sig((var - p.crown_var) / p.crown_var_w)
@@ -108,12 +124,12 @@ def segment_reference(bgr, p, hrow=None):
         pt = np.where(m, pt, 0.0)
         num, den = box_mean(pt, p.crown_smooth), box_mean(m.astype(float), p.crown_smooth)
         crown = np.where(den > 1e-6, num / np.where(den > 1e-6, den, 1.0), 0.0)
-    here = below * (1 - green) * (p.here_weight * on * (0.5 + 0.5 * smooth) + p.ground_floor)
-    other = below * (1 - green) * (1 - on) * smooth * p.other_weight
+    here = below * (1 - gg) * (p.here_weight * on * (0.5 + 0.5 * smooth) + p.ground_floor)
+    other = below * (1 - gg) * (1 - on) * smooth * p.other_weight
     sc = np.zeros((NUM_CLASSES, h, w))
-    sc[ROAD], sc[SIDEWALK] = (here, other) if p.robot_on == "road" else (other, here)
+    sc[ROAD], sc[SIDEWALK] = (here, other) if robot_on == "road" else (other, here)
     sc[SKY] = np.where(sky, 2.0, 0.0)
-    sc[GRASS] = below * green * p.grass_weight
+    sc[GRASS] = below * gg * p.grass_weight
     if model is None:
         sc[BUILDING] = (1 - below) * (1 - green) * p.building_weight * (1 - crown)
         sc[TREE] = green * p.tree_weight * (1 - below * p.tree_low) + (1 - below) * crown * p.crown_weight

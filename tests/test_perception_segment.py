@@ -1,12 +1,16 @@
 """The segmenter's kernels against the plain-NumPy reference (tests/_perception_reference.py)."""
 
+from dataclasses import replace
+
 import cv2
 import numpy as np
 import pytest
 
 from _perception_reference import segment_reference
 from test_perception_frames import _street_like
+from tinyloc.classes import GRASS, ROAD, SIDEWALK
 from tinyloc.errors import InputError
+from tinyloc.perception.features import exg_minus_exr
 from tinyloc.perception.segment import PRESETS, SegmentParams, Segmenter, preset, segment_image
 
 
@@ -30,7 +34,10 @@ CASES = {**{n: preset(n) for n in PRESETS},
          # a low gap threshold and no nearness condition make the sky-gap model fire on the street-like
          # frame's sky, so it is compared
          "sky-gap model, low threshold": SegmentParams(gap_threshold=0.5, gap_near=0.0),
-         "crown model off": SegmentParams(crown_model="")}
+         "crown model off": SegmentParams(crown_model=""),
+         # the soil rule and the per-frame surface decision (on in "sidewalk"), each alone on the default set
+         "soil rule on": SegmentParams(soil_b=3.0, crown_model=""),
+         "surface decided per frame": SegmentParams(surface_auto=5.0, surface_share=0.005, crown_model="")}
 
 
 @pytest.mark.parametrize("name", list(CASES))
@@ -48,6 +55,11 @@ def test_kernels_match_reference(name):
         assert np.max(np.abs(probs[:, same] - rp[:, same])) < 1e-4, what
         assert np.allclose(probs.sum(axis=0)[same], rp.sum(axis=0)[same], atol=1e-5)
         seen |= set(np.unique(labels).tolist())
+    if name in ("soil rule on", "surface decided per frame"):  # the rule changed labels, so it was compared
+        img = list(_frames())[1][1]
+        hrow = np.linspace(0.45, 0.6, 160) * 120
+        off = Segmenter((320, 240), SegmentParams(crown_model="")).run(img, hrow)[1]
+        assert np.sum(Segmenter((320, 240), p).run(img, hrow)[1] != off) > 100
     if name == "poles and fences on":
         assert {5, 6} <= seen  # both optional rules fired on these frames, so they were compared
     if name == "sky by colour on":  # the overcast frame's sky is taken by colour only
@@ -87,3 +99,69 @@ def test_params_validated():
         SegmentParams(sky_v=float("nan"))
     with pytest.raises(InputError, match="expected an"):
         segment_image(np.zeros((10, 10), np.uint8))
+
+
+def _ground_frame(ground_bgr, patch_bgr=None, side_bgr=None, side_cols=(0, 40)):
+    """A 160 x 120 frame (the raster's own size): brick-red wall above row 50, ``ground_bgr`` below, the
+    robot's bottom-centre patch in ``patch_bgr`` and a block of ``side_bgr`` on the left (rows 70..119)."""
+    img = np.zeros((120, 160, 3), np.uint8)
+    img[:50] = (50, 60, 150)  # brick red: not carried down onto the grey ground by the facade rule
+    img[50:] = ground_bgr
+    if side_bgr is not None:
+        img[70:, side_cols[0]:side_cols[1]] = side_bgr
+    if patch_bgr is not None:
+        img[95:, 50:110] = patch_bgr
+    return img
+
+
+HROW = np.full(160, 49.5)
+
+
+def test_soil_rule_hand_worked():
+    """Yellowish bare ground beside grey paving is grass with the soil rule, paving without it.
+
+    Hand-worked: BGR (60, 120, 150) has chromatic r = 150/330, g = 120/330, b = 60/330, so ExG - ExR =
+    (2g - r - b) - (1.4r - g) = 3g - 2.4r - b = (360 - 360 - 60)/330 = -0.182, below the vegetation threshold
+    (not green); its b* (OpenCV's 8-bit Lab, the reference) is far above that of the grey paving.
+    """
+    paving, soil = (120, 125, 130), (60, 120, 150)
+    lab = cv2.cvtColor(np.array([[paving, soil]], np.uint8), cv2.COLOR_BGR2Lab).astype(float)[0]
+    db = lab[1, 2] - lab[0, 2]
+    assert db > 20.0  # well above soil_b = 6
+    exgr = float(exg_minus_exr(np.array([[soil]], np.uint8))[0, 0])
+    assert abs(exgr - (-60.0 / 330.0)) < 1e-9 and exgr < preset("sidewalk").green0
+    img = _ground_frame(paving, side_bgr=soil)
+    on = Segmenter((160, 120), replace(preset("sidewalk"), soil_b=6.0)).run(img, HROW)[1]
+    off = Segmenter((160, 120), replace(preset("sidewalk"), soil_b=0.0)).run(img, HROW)[1]
+    assert np.all(on[75:, 2:38] == GRASS)
+    assert not np.any(off[75:, 2:38] == GRASS)
+    # the paving itself is untouched (its b* equals the reference's)
+    assert np.all(on[75:, 60:100] == SIDEWALK) and np.all(off[75:, 60:100] == SIDEWALK)
+
+
+@pytest.mark.parametrize("patch, side, expect", [((60, 60, 62), (140, 145, 150), "road"),
+                                                  ((140, 145, 150), (60, 60, 62), "sidewalk")])
+def test_surface_decided_per_frame(patch, side, expect):
+    """The robot on dark asphalt with lighter paving beside it is on the road (a crossing); on paving with
+    darker asphalt beside it, on the sidewalk. The other surface gets the other paved class."""
+    p = replace(preset("sidewalk"), surface_auto=20.0)
+    lab = cv2.cvtColor(np.array([[patch, side]], np.uint8), cv2.COLOR_BGR2Lab).astype(float)[0]
+    assert abs(lab[1, 0] - lab[0, 0]) > 2 * 20.0  # lightness apart by far more than the margin
+    other = {"road": SIDEWALK, "sidewalk": ROAD}[expect]
+    mine = {"road": ROAD, "sidewalk": SIDEWALK}[expect]
+    for ground in (patch, side):  # the rest of the ground either surface: the decision does not depend on it
+        seg = Segmenter((160, 120), p)
+        lab_img = seg.run(_ground_frame(ground, patch_bgr=patch, side_bgr=side), HROW)[1]
+        assert seg.surface == expect
+        assert np.all(lab_img[100:, 60:100] == mine)
+        assert np.all(lab_img[75:, 2:38] == other)
+
+
+def test_surface_kept_without_other_paving():
+    """Only the robot's own surface in view (or too little of the other): the preset's robot_on stands."""
+    p = replace(preset("sidewalk"), surface_auto=20.0)
+    seg = Segmenter((160, 120), p)
+    seg.run(_ground_frame((60, 60, 62)), HROW)
+    assert seg.surface == "sidewalk"
+    seg.run(_ground_frame((60, 60, 62), side_bgr=(140, 145, 150), side_cols=(0, 2)), HROW)  # 100 px < 2 %
+    assert seg.surface == "sidewalk"

@@ -22,8 +22,8 @@ NF = 10
 (P_SKY_TEX, P_SKY_V, P_SKY_S, P_SKY_BLUE, P_SKY_V2, P_SKY_BELOW, P_GREEN0, P_GREEN_W, P_G_U0, P_G_W,
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
  P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND,
- P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T) = range(35)
-NP = 35
+ P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T, P_SOIL_B, P_SOIL_W) = range(37)
+NP = 37
 
 # Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
 BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
@@ -180,6 +180,44 @@ def patch_median_lab(lab, r0, r1, c0, c1, hist, ref):
 
 
 @njit(**JIT)
+def other_paved_lightness(lab, feat, tex, ref, prm, u_max, hist):
+    """Lower-median Lab lightness (8-bit L) of the paved-looking ground unlike the surface under the robot.
+
+    Pixels counted: below ``u_max`` (image heights relative to the horizon, negative below), smoother
+    than ``smooth_tex``, not vegetation (ExG - ExR under ``green0``, and with the soil rule on, b* not
+    more than ``soil_b`` above the reference's), and further than ``ref_dist`` (the segmenter's colour
+    distance) from ``ref``. hist (3, 256) int64 scratch (row 0 used). Returns (median L, count);
+    (-1, 0) when no pixel qualifies.
+    """
+    h, w = tex.shape
+    for v in range(256):
+        hist[0, v] = 0
+    refl, refd, tsm, green0, soil_b = prm[P_REF_L], prm[P_REF_D], prm[P_T_SMOOTH], prm[P_GREEN0], prm[P_SOIL_B]
+    n = 0
+    for i in range(h):
+        for j in range(w):
+            if feat[F_U, i, j] >= u_max or tex[i, j] >= tsm or feat[F_EXGR, i, j] >= green0:
+                continue
+            db = float(lab[i, j, 2]) - ref[2]
+            if soil_b > 0.0 and db > soil_b:
+                continue
+            d = abs(float(lab[i, j, 0]) - ref[0]) * refl + abs(float(lab[i, j, 1]) - ref[1]) + abs(db)
+            if d <= refd:
+                continue
+            hist[0, lab[i, j, 0]] += 1
+            n += 1
+    if n == 0:
+        return -1.0, 0
+    half = (n + 1) // 2
+    acc = 0
+    for v in range(256):
+        acc += hist[0, v]
+        if acc >= half:
+            return float(v), n
+    return 255.0, n
+
+
+@njit(**JIT)
 def sky_candidates(feat, tex, prm, bright, cand):
     """Bright-or-blue pixels (bright) and, of those, smooth ones near or above the horizon (cand); uint8 0/1."""
     h, w = tex.shape
@@ -215,6 +253,7 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, crown_in, ref, prm
     grass_w, bld_w, tree_w, mix_w, tree_low = prm[P_GRASS_W], prm[P_BLD_W], prm[P_TREE_W], prm[P_MIX_W], \
         prm[P_TREE_LOW]
     r0, r1, r2 = ref[0], ref[1], ref[2]
+    soil_b, isoilw = prm[P_SOIL_B], 1.0 / prm[P_SOIL_W]
     use_model = prm[P_CROWN_MODEL] > 0.5
     codds = prm[P_CROWN_T] / (1.0 - prm[P_CROWN_T])  # tree wins where crown > crown_threshold
     for i in range(h):
@@ -224,13 +263,16 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, crown_in, ref, prm
             below = _sig((-u - gu0) * igw)
             s_here = 0.0
             s_other = 0.0
+            gg = green  # vegetation on the ground: green, or yellowish bare or dry ground (soil rule)
+            if soil_b > 0.0 and below > 0.0:
+                gg = max(green, _sig((float(lab[i, j, 2]) - r2 - soil_b) * isoilw))
             if below > 0.0:
                 smooth = _sig((tsm - tex[i, j]) * itw)
                 dist = abs(float(lab[i, j, 0]) - r0) * refl + abs(float(lab[i, j, 1]) - r1) + \
                     abs(float(lab[i, j, 2]) - r2)
                 on = _sig((refd - dist) * irefw)
-                s_here = below * (1.0 - green) * (road_w * on * (0.5 + 0.5 * smooth) + floor)
-                s_other = below * (1.0 - green) * (1.0 - on) * smooth * side_w
+                s_here = below * (1.0 - gg) * (road_w * on * (0.5 + 0.5 * smooth) + floor)
+                s_other = below * (1.0 - gg) * (1.0 - on) * smooth * side_w
             crown = 0.0
             if use_model:
                 crown = crown_in[i, j]
@@ -244,7 +286,7 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, crown_in, ref, prm
             else:
                 s_road, s_side = s_other, s_here
             s_sky = 2.0 if sky[i, j] else 0.0
-            s_grass = below * green * grass_w
+            s_grass = below * gg * grass_w
             if use_model:
                 # above the horizon the crown model alone splits tree from building (green is in it)
                 s_bld = (1.0 - below) * bld_w * (1.0 - crown)

@@ -109,6 +109,14 @@ class SegmentParams:
     #                             needs the crown model
     gap_threshold: float = 0.85  # a sky pixel whose gap probability exceeds this is tree ...
     gap_near: float = 0.02  # ... when at least this share of its 15 x 15 window is tree (near a crown)
+    soil_b: float = 0.0  # ground whose b* exceeds the robot's surface's by this (Lab) is bare or dry ground:
+    #                      grass class (0: off)
+    soil_w: float = 1.5  # ... soft step width (Lab units)
+    surface_auto: float = 0.0  # decide per frame which paved surface the robot is on: road when the other
+    #                            paved ground in view is this much lighter (Lab L, 0..255) than the patch
+    #                            under the robot, sidewalk when this much darker (0: off, keep robot_on)
+    surface_u: float = -0.05  # ... counting paved pixels this far below the horizon (image heights)
+    surface_share: float = 0.02  # ... and only when they cover this share of the raster
 
     def __post_init__(self):
         if not 32 <= int(self.width) <= 1024:
@@ -129,6 +137,10 @@ class SegmentParams:
             raise InputError("gap_threshold must be within 0.05 .. 0.995")
         if not 0.0 <= self.gap_near <= 1.0:
             raise InputError("gap_near must be within 0 .. 1")
+        if not (self.soil_b >= 0.0 and self.soil_w > 0.0 and self.surface_auto >= 0.0):
+            raise InputError("soil_b and surface_auto must be >= 0 and soil_w > 0")
+        if not (-1.0 <= self.surface_u <= 0.0 and 0.0 <= self.surface_share <= 1.0):
+            raise InputError("surface_u must be within -1 .. 0 and surface_share within 0 .. 1")
         if self.crown_smooth % 2 == 0 or self.crown_sky_window % 2 == 0 or self.crown_smooth < 1 \
                 or self.crown_sky_window < 1:
             raise InputError("crown_smooth and crown_sky_window must be odd and positive")
@@ -152,6 +164,7 @@ class SegmentParams:
         v[K.P_POLE_CONTRAST], v[K.P_POLE_RUN], v[K.P_FENCE_TOP] = self.pole_contrast, self.pole_run, self.fence_top
         v[K.P_CROWN_MODEL] = 1.0 if self.crown_model not in ("", "off") else 0.0
         v[K.P_CROWN_T] = self.crown_threshold
+        v[K.P_SOIL_B], v[K.P_SOIL_W] = self.soil_b, self.soil_w
         return v
 
 
@@ -240,6 +253,7 @@ class Segmenter:
         self.labels = np.zeros((h, w), np.uint8)
         self.hrow = np.full(w, params.horizon_frac * h - 0.5)
         self._patch = (int(h * 0.85), h, int(w * 0.35), max(int(w * 0.65), int(w * 0.35) + 1))
+        self.surface = params.robot_on  # the surface under the robot in the last frame (surface_auto)
 
     def default_horizon(self) -> np.ndarray:
         """Horizon rows (segmentation pixels) used without a camera model: ``horizon_frac`` of the height."""
@@ -290,6 +304,8 @@ class Segmenter:
         K.box_mean(self.feat[K.F_G2], rm, self.tmp, self.g2mean)
         r0, r1, c0, c1 = self._patch
         K.patch_median_lab(self.lab, r0, r1, c0, c1, self.hist, self.ref)
+        if p.surface_auto > 0.0:
+            self._decide_surface()
         if self.crown_model is not None:
             self.crown_features(self.small if (w, h) == self.frame_size else bgr)
             self._crown_prob()
@@ -306,6 +322,22 @@ class Segmenter:
             K.sky_gaps(self.tfeat, self.gextra, self._gw, self._gb, self._gz, p.gap_near, self.probs, self.labels)
         K.thin_and_low(self.feat, hrow, self._prm, self.probs, self.labels, self.cand)
         return self.probs, self.labels
+
+    def _decide_surface(self) -> None:
+        """Which paved surface is under the robot, for this frame: asphalt is the darker one. When the other
+        paved ground in view (unlike the patch under the robot) is clearly lighter, the robot stands on the
+        road (crossing a street); clearly darker, on the sidewalk; otherwise the preset's ``robot_on``."""
+        p = self.params
+        w, h = self.size
+        med, n = K.other_paved_lightness(self.lab, self.feat, self.tex, self.ref, self._prm, p.surface_u, self.hist)
+        on_road = p.robot_on == "road"
+        if n >= p.surface_share * w * h:
+            if med >= self.ref[0] + p.surface_auto:
+                on_road = True
+            elif med <= self.ref[0] - p.surface_auto:
+                on_road = False
+        self._prm[K.P_ON_ROAD] = 1.0 if on_road else 0.0
+        self.surface = "road" if on_road else "sidewalk"
 
     def _sky_by_colour(self, hrow: np.ndarray) -> bool:
         """Overcast skies darker than ``sky_v``: take the sky colour from the top rows and add what is
