@@ -199,7 +199,7 @@ def main(argv=None) -> int:
     ap.add_argument("--run", type=Path, nargs="*", default=[], help="run folders with labels/")
     ap.add_argument("--run-preset", default="sidewalk", help="segmentation preset for the runs (default sidewalk)")
     ap.add_argument("--run-every", type=int, default=10, help="use every N-th frame of a run (default 10)")
-    ap.add_argument("--run-share", type=float, default=0.3, help="total weight of the runs, 0..1 (default 0.3)")
+    ap.add_argument("--run-share", type=float, default=0.15, help="total weight of the runs, 0..1 (default 0.15)")
     ap.add_argument("--stage", choices=("crown", "gaps"), default="crown",
                     help="crown: the tree-vs-building score (crown model off while sampling); gaps: the sky-gap "
                          "score, sampled with --crown on (default crown)")
