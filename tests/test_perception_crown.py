@@ -109,6 +109,8 @@ def test_fit_tool_on_a_small_labelled_folder(tmp_path):
         img[60:135, :160] = (80 + 10 * k, 95, 130)  # facade, flat
         crown = rng.integers(30, 120, (75, 160, 3)).astype(np.uint8)  # fine, isotropic texture
         img[60:135, 160:] = crown
+        for c0 in range(176, 320, 40):  # sky between branches, open to the sky above, labelled tree
+            img[60:95, c0:c0 + 12] = (235, 225, 215)
         img[135:] = (100, 100, 100)  # road
         lab = np.full((240, 320), 3, np.uint8)
         lab[:60] = 0
@@ -123,8 +125,23 @@ def test_fit_tool_on_a_small_labelled_folder(tmp_path):
     m = CrownModel.load(out)
     assert m.provenance["image_folder"]["frames"] == 4 and m.provenance["stage"] == "crown"
     assert m.provenance["fit_recall"]["tree"] > 0.9 and m.provenance["fit_recall"]["other"] > 0.9
-    # without data: a one-line error and exit status 2
+    # the colour feature set, then a sky-gap model on top of it: the lists follow each other
+    args = ["--images", str(tmp_path / "img"), "--labels", str(tmp_path / "lab"), "--label-map",
+            str(tmp_path / "map.toml"), "--ids", "all"]
+    col = tmp_path / "colour.json"
+    assert main(args + ["--features", "colour", "--note", "data=four synthetic frames", "-o", str(col)]) == 0
+    mc = CrownModel.load(col)
+    assert mc.features == FEATURES + ("astar", "bstar", "skyabove", "nonsky31")
+    assert mc.provenance["data"] == "four synthetic frames" and mc.provenance["features"] == "colour"
+    gap = tmp_path / "gaps.json"
+    assert main(args + ["--stage", "gaps", "--crown", str(col), "-o", str(gap)]) == 0
+    assert load_crown_model(str(gap), gaps=True, base=mc.features).features == mc.features + GAP_FEATURES[-4:]
+    # without data, or with a malformed note: a one-line error and exit status 2
     assert main(["-o", str(tmp_path / "x.json")]) == 2
+    assert main(args + ["--note", "no equals sign", "-o", str(tmp_path / "x.json")]) == 2
+    save_label_map(tmp_path / "no_tree.toml", {0: "sky", 1: "building", 3: "road"})  # one class only
+    assert main(args[:4] + ["--label-map", str(tmp_path / "no_tree.toml"), "-o", str(tmp_path / "x.json")]) == 2
+    assert not (tmp_path / "x.json").exists()
 
 
 def test_fit_truth_is_the_block_majority():

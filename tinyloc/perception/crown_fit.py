@@ -270,6 +270,9 @@ def main(argv=None) -> int:
             raise InputError("nothing to fit: give --images and/or --run")
         x = np.concatenate([q[0] for q in parts])
         y = np.concatenate([q[1] for q in parts])
+        if y.all() or not y.any():
+            raise InputError(f"all {len(y)} samples are {'tree' if y.any() else 'not tree'}: nothing to tell "
+                             "apart (do the labels hold both classes where the stage samples?)")
         w = np.concatenate([q[2] for q in parts]) * len(y)
         if gaps:
             features = load_crown_model(crown).features + GAP_EXTRA
