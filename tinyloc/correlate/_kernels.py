@@ -707,3 +707,151 @@ def merge_native(nat, nat_a, head_arg, q, first, step, best, best_a):
                 i, j = m, W - 1 - l
             head_arg[a] = i * W + j
 
+
+
+# ---- tracking engine over the frame's support (``_SupportPatchEngine``) ---------------------------------------
+
+
+@njit(**JIT)
+def feature_support(feat, act):
+    """Bounding box of the cells where any feature is nonzero, and the features that are.
+
+    ``act[:n]`` gets the indices of the features with any nonzero cell. Returns
+    (n, r_lo, r_hi, c_lo, c_hi); n = 0 (and an empty box) when every feature is zero.
+    """
+    F, h, w = feat.shape
+    r_lo, r_hi, c_lo, c_hi = h, -1, w, -1
+    n = 0
+    for f in range(F):
+        seen = False
+        for r in range(h):
+            for c in range(w):
+                if feat[f, r, c] != 0.0:
+                    seen = True
+                    r_lo = min(r_lo, r)
+                    r_hi = max(r_hi, r)
+                    c_lo = min(c_lo, c)
+                    c_hi = max(c_hi, c)
+        if seen:
+            act[n] = f
+            n += 1
+    return n, r_lo, r_hi, c_lo, c_hi
+
+
+@njit(**JIT)
+def gather_features(feat, act, n, out):
+    """out[k] = feat[act[k]] for k < n (the frame's nonzero features, packed)."""
+    F, h, w = feat.shape
+    for k in range(n):
+        f = act[k]
+        for r in range(h):
+            for c in range(w):
+                out[k, r, c] = feat[f, r, c]
+
+
+@njit(**JIT)
+def support_bounds(r_lo, r_hi, c_lo, c_hi, origin_row, origin_col, cos_tab, sin_tab, a0, A, out):
+    """Integer offset box (lo_u, hi_u, lo_v, hi_v) of headings (a0 + t) mod A, t < out.shape[0], for a grid whose
+    nonzero cells lie in rows r_lo..r_hi, columns c_lo..c_hi (``template_bounds`` of that rectangle: a bilinear
+    sample is nonzero only for body points strictly inside the rectangle grown by half a cell).
+
+    Returns the union (LU, HU, LV, HV) of the boxes."""
+    x0 = c_lo - 0.5 - origin_col
+    x1 = c_hi + 1.5 - origin_col
+    y0 = origin_row - r_hi - 1.5
+    y1 = origin_row - r_lo + 0.5
+    LU, HU, LV, HV = 1 << 30, -(1 << 30), 1 << 30, -(1 << 30)
+    for t in range(out.shape[0]):
+        a = (a0 + t) % A
+        c = cos_tab[a]
+        s = sin_tab[a]
+        umin, umax, vmin, vmax = np.inf, -np.inf, np.inf, -np.inf
+        for k in range(4):
+            xf = x0 if k < 2 else x1
+            yl = y0 if k % 2 == 0 else y1
+            dv = c * xf - s * yl
+            du = -(s * xf + c * yl)
+            umin = min(umin, du)
+            umax = max(umax, du)
+            vmin = min(vmin, dv)
+            vmax = max(vmax, dv)
+        lu, hu = int(math.floor(umin)), int(math.ceil(umax))
+        lv, hv = int(math.floor(vmin)), int(math.ceil(vmax))
+        out[t, 0], out[t, 1], out[t, 2], out[t, 3] = lu, hu, lv, hv
+        LU, HU = min(LU, lu), max(HU, hu)
+        LV, HV = min(LV, lv), max(HV, hv)
+    return LU, HU, LV, HV
+
+
+@njit(**JIT)
+def fill_patch(G, act, r0, c0, patch):
+    """patch[k, r, c] = G[act[k], r0 + r, c0 + c] inside the window, 0 outside (every entry written)."""
+    n, Nr, Nc = patch.shape
+    H, W = G.shape[1], G.shape[2]
+    for k in range(n):
+        f = act[k]
+        for r in range(Nr):
+            i = r0 + r
+            for c in range(Nc):
+                j = c0 + c
+                if i >= 0 and i < H and j >= 0 and j < W:
+                    patch[k, r, c] = G[f, i, j]
+                else:
+                    patch[k, r, c] = 0.0
+
+
+@njit(**JIT)
+def rotate_support(feat, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, r_lo, r_hi, c_lo, c_hi, out):
+    """:func:`rotate_into` for a grid whose nonzero cells all lie in rows r_lo..r_hi, columns c_lo..c_hi.
+
+    Canvas (u, v) is the map offset (u + lo_u, v + lo_v); every entry of ``out`` (F, SU, NV) is
+    written. Only the canvas columns whose sample can fall inside the support rectangle are
+    sampled (the rest are 0, as are the samples themselves there): same samples, same
+    arithmetic as :func:`rotate_into`.
+    """
+    F, SU, NV = out.shape
+    h, w = feat.shape[1], feat.shape[2]
+    hs, ws = r_hi - r_lo + 1, c_hi - c_lo + 1
+    for u in range(SU):
+        dy = -(u + lo_u) * 1.0
+        rr0 = origin_row - (-sin_t * (lo_v * 1.0) + cos_t * dy) - 0.5
+        cc0 = origin_col + (cos_t * (lo_v * 1.0) + sin_t * dy) - 0.5
+        v0, v1 = _row_span(rr0 - r_lo, cc0 - c_lo, sin_t, cos_t, hs, ws, NV)
+        for f in range(F):
+            for v in range(0, min(v0, NV)):
+                out[f, u, v] = 0.0
+            for v in range(max(v1 + 1, 0), NV):
+                out[f, u, v] = 0.0
+        for v in range(v0, v1 + 1):
+            dx = (v + lo_v) * 1.0
+            xf = cos_t * dx + sin_t * dy
+            yl = -sin_t * dx + cos_t * dy
+            rr = origin_row - yl - 0.5
+            cc = origin_col + xf - 0.5
+            if rr <= -1.0 or cc <= -1.0 or rr >= h or cc >= w:
+                for f in range(F):
+                    out[f, u, v] = 0.0
+                continue
+            r0 = int(math.floor(rr))
+            c0 = int(math.floor(cc))
+            fr = rr - r0
+            fc = cc - c0
+            w00 = (1.0 - fr) * (1.0 - fc)
+            w01 = (1.0 - fr) * fc
+            w10 = fr * (1.0 - fc)
+            w11 = fr * fc
+            ok_r0 = r0 >= 0
+            ok_r1 = r0 + 1 < h
+            ok_c0 = c0 >= 0
+            ok_c1 = c0 + 1 < w
+            for f in range(F):
+                acc = 0.0
+                if ok_r0 and ok_c0:
+                    acc += w00 * feat[f, r0, c0]
+                if ok_r0 and ok_c1:
+                    acc += w01 * feat[f, r0, c0 + 1]
+                if ok_r1 and ok_c0:
+                    acc += w10 * feat[f, r0 + 1, c0]
+                if ok_r1 and ok_c1:
+                    acc += w11 * feat[f, r0 + 1, c0 + 1]
+                out[f, u, v] = acc

@@ -85,6 +85,13 @@ class CorrelatorParams:
     start_heading_reach : int
         Full headings each side of a coarse hypothesis's own that are scored under it to
         rank the climbs' starts (0: its own heading only; the climbs look further).
+    track_engine : str
+        "support" (default): the tracking engines transform only the features this frame has and
+        only the offsets its nonzero cells can reach, with FFT sizes chosen per call; "fixed": the
+        earlier engine, whole grid and every feature at sizes fixed at construction (kept as the
+        benchmark's same-run reference). Both give the same volume.
+    track_threads : int
+        Threads of the tracking update (1 or 2; headings alternate between two buffer lanes).
     """
 
     n_headings: int = 256
@@ -105,6 +112,8 @@ class CorrelatorParams:
     threads: int = 1
     climb_heading_radius: int = 2
     start_heading_reach: int = 0
+    track_engine: str = "support"
+    track_threads: int = 1
 
     def __post_init__(self):
         A = self.n_headings
@@ -120,6 +129,10 @@ class CorrelatorParams:
             raise InputError("tracking window: radius >= 1 cell and 2 * half_headings + 1 <= n_headings")
         if self.threads not in (1, 2):
             raise InputError(f"threads must be 1 or 2, got {self.threads}")
+        if self.track_threads not in (1, 2):
+            raise InputError(f"track_threads must be 1 or 2, got {self.track_threads}")
+        if self.track_engine not in ("support", "fixed"):
+            raise InputError(f"track_engine must be 'support' or 'fixed', got {self.track_engine!r}")
         if self.coarse_heading_step not in (0, 1, 2, 4):
             raise InputError(f"coarse_heading_step must be 0 (automatic), 1, 2 or 4, got {self.coarse_heading_step}")
         if (A // self.coarse_step) % 4:
@@ -238,6 +251,20 @@ def _good_size(n: int) -> int:
     while True:
         k = m
         for p in (2, 3, 5, 7):
+            while k % p == 0:
+                k //= p
+        if k == 1:
+            return m
+        m += 1
+
+
+def _fast_size(n: int) -> int:
+    """Smallest m >= n whose only prime factors are 2, 3, 5: pocketfft's radix-7 passes were measured slower per
+    point at the tracking sizes (98, 112, 126, 140 against 96, 108, 120, 144)."""
+    m = max(1, n)
+    while True:
+        k = m
+        for p in (2, 3, 5):
             while k % p == 0:
                 k //= p
         if k == 1:
@@ -509,6 +536,149 @@ class _PatchEngine:
                 K.readout_patch(self.buf[b], 0, self._shift[b, 1], inv_temp, self.vol[t0 + b])
 
 
+class _SupportPatchEngine:
+    """Exact FFT correlation over a few headings and an (Ho, Ho) block of cells, sized per frame.
+
+    The same correlation as :class:`_PatchEngine`, but each call first finds where this frame's
+    features are nonzero (the camera's visible wedge: 46 x 38 cells of the 64 x 64 grid on the
+    live loop's frames) and which features are nonzero at all (a frame without buildings has an
+    all-zero building feature). Only those features are transformed, over the offset boxes of
+    that support rectangle rather than of the whole grid, and the FFT sizes follow (about
+    100-110 instead of 150 on the loop's frames). Buffers are allocated once for the largest
+    case (the whole grid, every feature, the ``Ho`` and ``n_head`` of the construction); a call
+    may ask for a smaller block and fewer headings and works in contiguous views of the same
+    memory.
+
+    Spectra are kept in (row frequency, column frequency) order: the second pass of each 2-D
+    transform runs along axis 1 (pocketfft buffers the strided columns itself, measured a
+    little faster than an explicit transpose), and the inverse's rows that land in the output
+    block are a contiguous slab. Nothing wraps: every read of a patch index stays below the
+    patch size, as in :class:`_PatchEngine`. With ``threads = 2`` the headings alternate
+    between two lanes of per-heading buffers (numpy's FFT and the nogil kernels release the GIL).
+    """
+
+    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=1):
+        self.F, self.Ho, self.n_head, self.A = F, Ho, n_head, A
+        self.origin = (float(origin_row), float(origin_col))
+        self.bev_shape = bev_shape
+        b = np.array([template_bounds(bev_shape, origin_row, origin_col, 2.0 * math.pi * a / A)
+                      for a in range(A)], np.int64)
+        self.cos = np.cos(2.0 * math.pi * np.arange(A) / A)
+        self.sin = np.sin(2.0 * math.pi * np.arange(A) / A)
+        UU = UV = 0
+        for a0 in range(A):
+            idx = (a0 + np.arange(n_head)) % A
+            UU = max(UU, int(b[idx, 1].max() - b[idx, 0].min()) + 1)
+            UV = max(UV, int(b[idx, 3].max() - b[idx, 2].min()) + 1)
+        self.SU = int((b[:, 1] - b[:, 0]).max()) + 1
+        self.Nr = _fast_size(Ho + UU - 1)  # the largest sizes (the whole grid in view)
+        self.Nc = _fast_size(Ho + UV - 1)
+        self.N = max(self.Nr, self.Nc)
+        self._good = np.array([_fast_size(n) for n in range(self.N + 1)], np.int64)
+        Kh = self.Nc // 2 + 1
+        self.lanes = [_PatchLane(F, self.SU, self.Nr, self.Nc, Kh, Ho) for _ in range(threads)]
+        self.patch = np.zeros(F * self.Nr * self.Nc, np.float64)
+        self.Gin = np.zeros(F * self.Nr * Kh, np.complex128)
+        self.Gs = np.zeros(F * self.Nr * Kh, np.complex128)
+        self._vol = np.zeros(n_head * Ho * Ho, np.float32)
+        self.vol = self._vol.reshape(n_head, Ho, Ho)
+        self.featA = np.zeros((F,) + tuple(bev_shape), np.float32)
+        self.act = np.zeros(F, np.int64)
+        self.hb = np.zeros((n_head, 4), np.int64)
+        self.last_sizes = (0, 0, 0)  # (Nr, Nc, features transformed) of the last call
+        self._pool = None
+        if threads > 1:
+            from concurrent.futures import ThreadPoolExecutor
+            self._pool = ThreadPoolExecutor(max_workers=threads - 1, thread_name_prefix="tinyloc-track")
+
+    @property
+    def nbytes(self) -> int:
+        return (sum(ln.nbytes for ln in self.lanes) + self.patch.nbytes + self.Gin.nbytes + self.Gs.nbytes
+                + self._vol.nbytes + self.featA.nbytes + self.hb.nbytes)
+
+    def run(self, feat, G, row0, col0, a0, A, inv_temp, Ho=None, n_head=None):
+        """Volume (n_head, Ho, Ho) for headings a0..a0+n_head-1 and cells (row0 + u, col0 + v) of the window G:
+        a contiguous view of this engine's memory (``self.vol`` at the construction's sizes)."""
+        Ho = self.Ho if Ho is None else Ho
+        nh = self.n_head if n_head is None else n_head
+        vol = self._vol[:nh * Ho * Ho].reshape(nh, Ho, Ho)
+        n, r_lo, r_hi, c_lo, c_hi = K.feature_support(feat, self.act)
+        if n == 0:
+            vol.fill(0.0)  # nothing in view: every pose scores 0 (the exact value)
+            self.last_sizes = (0, 0, 0)
+            return vol
+        K.gather_features(feat, self.act, n, self.featA)
+        hb = self.hb[:nh]
+        LU, HU, LV, HV = K.support_bounds(r_lo, r_hi, c_lo, c_hi, self.origin[0], self.origin[1], self.cos,
+                                          self.sin, a0, A, hb)
+        Nr = int(self._good[Ho + HU - LU])
+        Nc = int(self._good[Ho + HV - LV])
+        Kh = Nc // 2 + 1
+        self.last_sizes = (Nr, Nc, n)
+        patch = self.patch[:n * Nr * Nc].reshape(n, Nr, Nc)
+        Gin = self.Gin[:n * Nr * Kh].reshape(n, Nr, Kh)
+        Gs = self.Gs[:n * Nr * Kh].reshape(n, Nr, Kh)
+        # Patch cell (r, c) = window cell (row0 + LU + r, col0 + LV + c); outside the window 0.
+        K.fill_patch(G, self.act, row0 + LU, col0 + LV, patch)
+        np.fft.rfft(patch, axis=2, out=Gin)
+        np.fft.fft(Gin, axis=1, out=Gs)
+        job = (n, Nr, Nc, Kh, LU, LV, Ho, nh, a0, A, inv_temp, Gs, vol, (r_lo, r_hi, c_lo, c_hi))
+        L = len(self.lanes)
+        if L == 1:
+            self._run_lane(self.lanes[0], 0, 1, job)
+        else:
+            futs = [self._pool.submit(self._run_lane, self.lanes[w], w, L, job) for w in range(1, L)]
+            self._run_lane(self.lanes[0], 0, L, job)
+            for fu in futs:
+                fu.result()
+        return vol
+
+    def _run_lane(self, ln, first, step, job):
+        n, Nr, Nc, Kh, LU, LV, Ho, nh, a0, A, inv_temp, Gs, vol, (r_lo, r_hi, c_lo, c_hi) = job
+        orow, ocol = self.origin
+        hb = self.hb
+        Tin = ln.Tin[:n * Nr * Kh].reshape(n, Nr, Kh)
+        T = ln.T[:n * Nr * Kh].reshape(n, Nr, Kh)
+        P = ln.P[:Nr * Kh].reshape(Nr, Kh)
+        Q = ln.Q[:Nr * Kh].reshape(Nr, Kh)
+        buf = ln.buf[:Ho * Nc].reshape(Ho, Nc)
+        su_prev = Nr  # rows of Tin beyond this call's template rows must be 0
+        for t in range(first, nh, step):
+            a = (a0 + t) % A
+            lu, lv = int(hb[t, 0]), int(hb[t, 2])
+            su = int(hb[t, 1]) - lu + 1
+            canvas = ln.canvas[:n * su * Nc].reshape(n, su, Nc)
+            K.rotate_support(self.featA[:n], self.cos[a], self.sin[a], orow, ocol, lu, lv, r_lo, r_hi, c_lo, c_hi,
+                             canvas)
+            np.fft.rfft(canvas, axis=2, out=Tin[:, :su])
+            if su < su_prev:
+                Tin[:, su:su_prev].fill(0.0)
+            su_prev = su
+            np.fft.fft(Tin, axis=1, out=T)
+            K.spectra_mac1(Gs, T, P)
+            np.fft.ifft(P, axis=0, out=Q)
+            # Output cell u, template row k read patch row u + (lu - LU) + k (<= Ho - 1 + HU - LU < Nr).
+            s0 = lu - LU
+            np.fft.irfft(Q[s0:s0 + Ho], n=Nc, axis=1, out=buf)
+            K.readout_patch(buf, 0, lv - LV, inv_temp, vol[t])
+
+
+class _PatchLane:
+    """Per-thread buffers of a :class:`_SupportPatchEngine` (one heading at the largest sizes)."""
+
+    def __init__(self, F, SU, Nr, Nc, Kh, Ho):
+        self.canvas = np.zeros(F * SU * Nc, np.float64)
+        self.Tin = np.zeros(F * Nr * Kh, np.complex128)
+        self.T = np.zeros(F * Nr * Kh, np.complex128)
+        self.P = np.zeros(Nr * Kh, np.complex128)
+        self.Q = np.zeros(Nr * Kh, np.complex128)
+        self.buf = np.zeros(Ho * Nc, np.float64)
+
+    @property
+    def nbytes(self) -> int:
+        return sum(a.nbytes for a in (self.canvas, self.Tin, self.T, self.P, self.Q, self.buf))
+
+
 class Correlator:
     """Scores a bird's-eye grid against a map window over headings and shifts, in preallocated memory.
 
@@ -573,19 +743,24 @@ class Correlator:
     def _track_engine(self) -> "_PatchEngine":
         if self._track is None:
             p = self.params
-            self._track = _PatchEngine(self.model.n_features, 2 * p.track_radius_cells + 1,
-                                       2 * p.track_half_headings + 1, p.bev_shape, p.origin_row, p.origin_col,
-                                       p.n_headings)
+            self._track = self._patch_engine(2 * p.track_radius_cells + 1, 2 * p.track_half_headings + 1,
+                                             p.bev_shape, p.origin_row, p.origin_col, p.n_headings)
         return self._track
 
     def _track_engine_coarse(self) -> "_PatchEngine":
         if self._track_c is None:
             p = self.params
             h, w = p.bev_shape
-            self._track_c = _PatchEngine(self.model.n_features, 2 * ((p.track_radius_cells + 1) // 2) + 1,
-                                         2 * ((p.track_half_headings + 1) // 2) + 1, (h // 2, w // 2),
-                                         p.origin_row / 2, p.origin_col / 2, p.n_headings // 2)
+            self._track_c = self._patch_engine(2 * ((p.track_radius_cells + 1) // 2) + 1,
+                                               2 * ((p.track_half_headings + 1) // 2) + 1, (h // 2, w // 2),
+                                               p.origin_row / 2, p.origin_col / 2, p.n_headings // 2)
         return self._track_c
+
+    def _patch_engine(self, Ho, n_head, bev_shape, origin_row, origin_col, A):
+        p, F = self.params, self.model.n_features
+        if p.track_engine == "fixed":
+            return _PatchEngine(F, Ho, n_head, bev_shape, origin_row, origin_col, A)
+        return _SupportPatchEngine(F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=p.track_threads)
 
     # -- set-up ----------------------------------------------------------------------------
     @property
@@ -634,7 +809,9 @@ class Correlator:
         the on-disk cache) their kernels, so the first frame is neither slow nor allocating."""
         p = self.params
         from .synth import SyntheticBev
-        z = np.zeros((NUM_MAP_CLASSES,) + p.bev_shape, np.float32)
+        # Evidence everywhere: every feature nonzero over the whole grid, so the tracking engines run every kernel
+        # (an empty grid short-cuts them) at their largest sizes (every buffer page touched once).
+        z = np.full((NUM_MAP_CLASSES,) + p.bev_shape, 0.1, np.float32)
         bev = SyntheticBev(z, z[0], z[0], p.res_m, p.origin_row, p.origin_col)
         had = self._have_map
         if not had:
@@ -729,8 +906,10 @@ class Correlator:
         return SearchResult(e.best, best_heading, e.head_max, e.head_arg, modes=modes, scale=2,
                             heading_scale=out_hs, heading_max_scale=hs)
 
-    def track(self, bev, row: float, col: float, heading_index: int, *, exact: bool = False) -> TrackResult:
-        """Tracking update around a prior: +-track_radius_cells and +-track_half_headings.
+    def track(self, bev, row: float, col: float, heading_index: int, *, exact: bool = False,
+              radius_cells: int | None = None, half_headings: int | None = None) -> TrackResult:
+        """Tracking update around a prior: +-radius_cells and +-half_headings (by default the parameters'
+        ``track_radius_cells`` and ``track_half_headings``, also the largest a call may ask for).
 
         Parameters
         ----------
@@ -743,39 +922,61 @@ class Correlator:
             False (default): coarse-to-fine - the window is scored exactly at half
             resolution (1 m, 2 heading steps), and the ``track_refine`` best modes are
             climbed to their local best at full resolution with exact scores.
-            True: the exact full-resolution volume over the window (slower).
+            True: the exact full-resolution volume over the window.
+        radius_cells : int, optional
+            Half size of this call's box in full-resolution cells, 1 .. ``track_radius_cells``:
+            a filter whose posterior is tight asks for less and pays less (the FFT sizes follow).
+            At ``exact=False`` the half-resolution box is ``(radius_cells + 1) // 2`` cells.
+        half_headings : int, optional
+            Headings each side of the prior, 0 .. ``track_half_headings`` (full steps; at
+            ``exact=False`` ``(half_headings + 1) // 2`` half-resolution steps).
+
+        The volume's shape follows: (2 hh + 1, 2 R + 1, 2 R + 1) at ``exact=True``.
         """
         p = self.params
-        R, hh = p.track_radius_cells, p.track_half_headings
+        R = p.track_radius_cells if radius_cells is None else int(radius_cells)
+        hh = p.track_half_headings if half_headings is None else int(half_headings)
+        if not 1 <= R <= p.track_radius_cells or not 0 <= hh <= p.track_half_headings:
+            raise InputError(f"tracking box: radius_cells must be 1..{p.track_radius_cells} and half_headings "
+                             f"0..{p.track_half_headings} (the sizes allocated), got {R} and {hh}")
         if exact:
             e = self._track_engine()
             row0, col0 = int(round(row)) - R, int(round(col)) - R
             a0 = (int(heading_index) - hh) % p.n_headings
+            Ho, nh = 2 * R + 1, 2 * hh + 1
         else:
             e = self._track_engine_coarse()
             Rc, hc = (R + 1) // 2, (hh + 1) // 2
             row0, col0 = int(round(row)) // 2 - Rc, int(round(col)) // 2 - Rc
             a0 = (int(round(heading_index / 2.0)) - hc) % (p.n_headings // 2)
+            Ho, nh = 2 * Rc + 1, 2 * hc + 1
+        full = Ho == e.Ho and nh == e.n_head
         status = self._prepare(bev)
         if status != "ok":
-            return TrackResult(e.vol, row0, col0, a0, scale=1 if exact else 2, ok=False, status=status)
+            vol = e.vol if full else e.vol.reshape(-1)[:nh * Ho * Ho].reshape(nh, Ho, Ho)
+            return TrackResult(vol, row0, col0, a0, scale=1 if exact else 2, ok=False, status=status)
+        if not full and isinstance(e, _PatchEngine):
+            raise InputError("tracking box: a smaller box per call needs track_engine='support'")
         if exact:
-            e.run(self._feat, self._G, row0, col0, a0, p.n_headings, self._inv_temp)
-            return TrackResult(e.vol, row0, col0, a0, _make=lambda: self._track_modes(e, row0, col0, a0, True),
+            vol = e.run(self._feat, self._G, row0, col0, a0, p.n_headings, self._inv_temp, *(() if full else (Ho, nh)))
+            vol = e.vol if vol is None else vol
+            return TrackResult(vol, row0, col0, a0, _make=lambda: self._track_modes(vol, row0, col0, a0, True),
                                _owner=self)
         K.downsample2(self._feat, self._feat_c)
-        e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, 4.0 * self._inv_temp)
-        return TrackResult(e.vol, row0, col0, a0, scale=2, _make=lambda: self._track_modes(e, row0, col0, a0, False),
+        vol = e.run(self._feat_c, self._Gc, row0, col0, a0, p.n_headings // 2, 4.0 * self._inv_temp,
+                    *(() if full else (Ho, nh)))
+        vol = e.vol if vol is None else vol
+        return TrackResult(vol, row0, col0, a0, scale=2, _make=lambda: self._track_modes(vol, row0, col0, a0, False),
                            _owner=self)
 
-    def _track_modes(self, e, row0, col0, a0, exact: bool) -> list:
+    def _track_modes(self, vol, row0, col0, a0, exact: bool) -> list:
         """Modes of the last tracking volume: its own maxima (exact), or the best ``track_refine`` coarse
         maxima climbed to local maxima of the exact full-resolution score."""
         p = self.params
         if exact:
-            return modes_of_volume(e.vol, row0, col0, a0, p.n_headings, self._pw_track, p.n_modes,
+            return modes_of_volume(vol, row0, col0, a0, p.n_headings, self._pw_track, p.n_modes,
                                    p.mode_radius_cells, p.mode_radius_headings)
-        cands = modes_of_volume(e.vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
+        cands = modes_of_volume(vol, row0, col0, a0, p.n_headings // 2, self._pw_track_c, p.track_refine,
                                 max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // 2))
         sc = self._scorer
         sc.new_frame(self._feat)
