@@ -171,12 +171,14 @@ class SegmentParams:
 #: Named parameter sets. The defaults ("street") were tuned jointly on the labelled street-image set
 #: (a car on city roads) and on rendered frames of simulated sites 1 and 2; "sidewalk" has the robot on
 #: the footway (lightness weighs more in telling paving from asphalt, and facades may reach further
-#: down; both chosen on the same rendered sites 1 and 2); "park"
+#: down; both chosen on the same rendered sites 1 and 2; the soil rule, the per-frame surface decision
+#: and the tighter colour match ref_dist = 12 were chosen on the loop's tuning drives 11-17,
+#: docs/perception.md); "park"
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
-    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, crown_model="",
-                              gap_model=""),
+    "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
+                              gap_model="", soil_b=6.0, surface_auto=20.0),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
                           grass_weight=0.7, crown_model="", gap_model=""),
 }
@@ -402,7 +404,7 @@ class Segmenter:
         K.class_indicator(self.sky, 0, t[0])  # 1 where not sky (a uint8 -> float ufunc would allocate)
         _blur(t[0], 4, tf[K.T_NONSKY9])
         if self._extras is not None:
-            self._extras.fill(self.lab, self.sky, tf[K.NT:])
+            self._extras.fill(self.lab, self.sky, tf)
         return tf
 
     def gap_features(self) -> np.ndarray:
