@@ -37,7 +37,9 @@ DESCRIPTION = (
     "centre, matchTemplate TM_CCORR over the placements inside the window, sum); baseline_same_ms computes "
     "tinyloc's own output with OpenCV (every heading, every robot cell of the window). tinyloc_ms is the "
     "coarse-to-fine full search, exact_ms the exact one, tracking_ms the coarse-to-fine tracking update (the volume "
-    "the filter takes; tracking_with_modes_ms also reads its refined modes), tracking_exact_ms the exact one. "
+    "the filter takes; tracking_with_modes_ms also reads its refined modes), tracking_exact_ms the exact one "
+    "(tracking_exact_*: alternating with the previous fixed-size engine, a +-10 cell / +-8 heading box, two "
+    "threads, and a 20 m / 60 deg view). "
     "Also reported: FLOPs of the exact method and the share of this machine's measured FFT throughput it "
     "reaches, working-buffer memory, allocation in repeated calls, and the load average (the ratios are what "
     "survive a busy machine). --agreement N adds N planted-pose trials comparing fast and exact searches.")
@@ -76,6 +78,27 @@ def _baseline_issue(feat, G, A):
             acc += cv2.matchTemplate(G[f], rot, cv2.TM_CCORR)
         best = max(best, float(acc.max()))
     return best
+
+
+def _view20(win, seed):
+    """The bench frame's pose seen through a 20 m, 60 deg wedge (the shape of the live loop's frames)."""
+    from ..correlate import synth
+    return synth.cut_bev(win, 130.3, 121.6, 0.9, np.random.default_rng(seed), map_error_cells=0.5, range_m=20.0,
+                         fov_deg=60.0)
+
+
+def _alternating_ms(fns: dict, repeat: int) -> dict:
+    """Median wall time (ms) of each function, called in turn (one call of each per round, ``repeat`` rounds,
+    after one warm-up round), so that a change of the machine's load affects them alike."""
+    ts = {k: [] for k in fns}
+    for k, f in fns.items():
+        f()
+    for _ in range(repeat):
+        for k, f in fns.items():
+            t0 = time.perf_counter()
+            f()
+            ts[k].append((time.perf_counter() - t0) * 1e3)
+    return {k: float(np.median(v)) for k, v in ts.items()}
 
 
 def opencv_rotation_matrix(yaw_rad, origin_row, origin_col, lo_u, lo_v):
@@ -182,6 +205,34 @@ def run(args) -> dict:
     track_ms = median_ms(lambda: corr.track(bev, a_true[1], a_true[2], a_true[0]), repeat=15)
     track_modes_ms = median_ms(lambda: corr.track(bev, a_true[1], a_true[2], a_true[0]).modes, repeat=15)
     track_exact_ms = median_ms(lambda: corr.track(bev, a_true[1], a_true[2], a_true[0], exact=True), repeat=7)
+    # The exact tracking update against the previous engine (whole grid, every feature, FFT sizes fixed at
+    # construction: track_engine="fixed"), alternating call by call in this run so that load changes hit both;
+    # also a smaller box (+-10 cells, +-8 headings, the tracker's choice when its posterior is tight), two
+    # threads, and a 20 m / 60 deg view (the shape of the live loop's frames, whose support is smaller).
+    fixed = Correlator(CorrelatorParams(track_engine="fixed"))
+    fixed.set_map(win)
+    fixed.warm_up(("track_exact",))
+    corr_t2 = Correlator(CorrelatorParams(track_threads=2))
+    corr_t2.set_map(win)
+    corr_t2.warm_up(("track_exact",))
+    bev20 = _view20(win, args.seed)
+    ai, ri, ci = a_true
+    trk = _alternating_ms({
+        "support": lambda: corr.track(bev, ri, ci, ai, exact=True),
+        "fixed": lambda: fixed.track(bev, ri, ci, ai, exact=True),
+        "small": lambda: corr.track(bev, ri, ci, ai, exact=True, radius_cells=10, half_headings=8),
+        "threads2": lambda: corr_t2.track(bev, ri, ci, ai, exact=True),
+        "support20": lambda: corr.track(bev20, ri, ci, ai, exact=True),
+        "fixed20": lambda: fixed.track(bev20, ri, ci, ai, exact=True),
+        "small20": lambda: corr.track(bev20, ri, ci, ai, exact=True, radius_cells=10, half_headings=8),
+    }, repeat=9)
+    same_vol = float(np.max(np.abs(corr.track(bev, ri, ci, ai, exact=True).volume
+                                   - fixed.track(bev, ri, ci, ai, exact=True).volume)))
+    corr.track(bev, ri, ci, ai, exact=True)
+    sizes_frame = corr._track.last_sizes
+    corr.track(bev20, ri, ci, ai, exact=True)
+    sizes_20 = corr._track.last_sizes
+    del fixed, corr_t2
     fast_best = corr.search_fast(bev).modes[0].cell
     # The same searches with two threads (two lanes of per-quarter buffers).
     corr2 = Correlator(CorrelatorParams(threads=2))
@@ -215,6 +266,18 @@ def run(args) -> dict:
         "tracking_ms": track_ms,
         "tracking_exact_ms": track_exact_ms,
         "tracking_with_modes_ms": track_modes_ms,
+        "tracking_exact_alternating_ms": trk["support"],
+        "tracking_exact_fixed_engine_ms": trk["fixed"],
+        "tracking_exact_speedup_vs_fixed_engine": trk["fixed"] / trk["support"],
+        "tracking_exact_box10_8_ms": trk["small"],
+        "tracking_exact_2threads_ms": trk["threads2"],
+        "tracking_exact_view20m_ms": trk["support20"],
+        "tracking_exact_view20m_fixed_engine_ms": trk["fixed20"],
+        "tracking_exact_view20m_speedup_vs_fixed_engine": trk["fixed20"] / trk["support20"],
+        "tracking_exact_view20m_box10_8_ms": trk["small20"],
+        "tracking_exact_max_diff_vs_fixed_engine": same_vol,
+        "fft_sizes_track_exact_frame": list(sizes_frame),
+        "fft_sizes_track_exact_view20m": list(sizes_20),
         "speedup": base_ms / fast_ms,
         "speedup_same": base_same_ms / fast_ms,
         "speedup_exact": base_ms / exact_ms,
