@@ -131,7 +131,8 @@ def test_fit_tool_on_a_small_labelled_folder(tmp_path):
     col = tmp_path / "colour.json"
     assert main(args + ["--features", "colour", "--note", "data=four synthetic frames", "-o", str(col)]) == 0
     mc = CrownModel.load(col)
-    assert mc.features == FEATURES + ("astar", "bstar", "skyabove", "nonsky31")
+    assert mc.features[:len(FEATURES) + 4] == FEATURES + ("astar", "bstar", "skyabove", "nonsky31")
+    assert len(mc.features) == len(FEATURES) + 16
     assert mc.provenance["data"] == "four synthetic frames" and mc.provenance["features"] == "colour"
     gap = tmp_path / "gaps.json"
     assert main(args + ["--stage", "gaps", "--crown", str(col), "-o", str(gap)]) == 0
@@ -169,12 +170,13 @@ def test_fit_truth_is_the_block_majority():
 
 # --- the colour models' extra planes (crown_features.py) -----------------------------------------------------
 
-def colour_features_reference(bgr_small, sky, *, lab8=False):
+def colour_features_reference(bgr_small, sky, texture, *, lab8=False):
     """The EXTRA_FEATURES planes from their definitions: Lab a*, b* from OpenCV's floating-point Lab
     conversion (an independent path from the 8-bit one the kernel reads; they differ by rounding, < 1 unit),
-    the column's sky share from a cumulative sum, and the 31 x 31 non-sky share from SciPy's
-    ``uniform_filter`` (edge pixels repeated, as ``mode="nearest"``). ``lab8``: a*, b* from OpenCV's 8-bit
-    Lab minus 128 instead (the definition the segmenter uses, for comparing whole segmentations)."""
+    the column's sky share from a cumulative sum, the 31 x 31 non-sky share from SciPy's
+    ``uniform_filter`` (edge pixels repeated, as ``mode="nearest"``), and the height products from
+    ``texture``, the 23 texture planes (``FEATURES`` order). ``lab8``: a*, b* from OpenCV's 8-bit Lab minus
+    128 instead (the definition the segmenter uses, for comparing whole segmentations)."""
     from scipy.ndimage import uniform_filter
 
     if lab8:
@@ -184,7 +186,12 @@ def colour_features_reference(bgr_small, sky, *, lab8=False):
     sky = sky.astype(bool)
     above = np.cumsum(sky, axis=0) / np.arange(1, sky.shape[0] + 1)[:, None]
     nonsky = uniform_filter((~sky).astype(np.float64), size=31, mode="nearest")
-    return np.stack([lab[..., 1], lab[..., 2], above, nonsky])
+    tx = dict(zip(FEATURES, texture))
+    u = tx["u"]
+    own = [lab[..., 1], lab[..., 2], above, nonsky]
+    prods = [u * lab[..., 1], u * lab[..., 2], u * above] + \
+        [u * tx[n] for n in ("v", "s", "exgr", "coh9", "fr", "logen9", "var9", "axis9", "nonsky9")]
+    return np.stack(own + prods)
 
 
 def test_colour_planes_match_reference():
@@ -196,14 +203,20 @@ def test_colour_planes_match_reference():
     sky[:20] = 1
     sky[20:35, 30:50] = rng.random((15, 20)) < 0.4  # gaps in a crown
     lab8 = cv2.cvtColor(small, cv2.COLOR_BGR2Lab)
-    out = np.full((len(EXTRA_FEATURES), 60, 80), np.nan, np.float32)
-    CrownExtras(60, 80).fill(lab8, sky, out)
-    ref = colour_features_reference(small, sky)
+    nt, ne = K.NT, len(EXTRA_FEATURES)
+    tf = np.full((nt + ne, 60, 80), np.nan, np.float32)
+    tf[:nt] = rng.uniform(0.0, 1.0, (nt, 60, 80))  # stand-in texture planes: the products only read them
+    tf[K.T_U] = np.linspace(0.4, -0.3, 60)[:, None]
+    CrownExtras(60, 80).fill(lab8, sky, tf)
+    ref = colour_features_reference(small, sky, tf[:nt].astype(np.float64))
+    out = tf[nt:]
+    assert np.all(np.isfinite(out)) and len(ref) == ne
     assert np.max(np.abs(out[:2] - ref[:2])) < 1.0  # 8-bit Lab rounds a* and b* to whole units
-    assert np.max(np.abs(out[2:] - ref[2:])) < 1e-5
+    assert np.max(np.abs(out[4:6] - ref[4:6])) < 0.4  # ... times |u| <= 0.4
+    assert np.max(np.abs(out[2:4] - ref[2:4])) < 1e-5 and np.max(np.abs(out[6:] - ref[6:])) < 1e-5
     assert out[2, 0, 0] == 1.0 and out[3, 0, 0] < out[3, 59, 0]  # sky at the top; a street canyon is non-sky
-    with pytest.raises(InputError, match="out must be"):
-        CrownExtras(60, 80).fill(lab8, sky, np.zeros((3, 60, 80), np.float32))
+    with pytest.raises(InputError, match="tfeat must be"):
+        CrownExtras(60, 80).fill(lab8, sky, np.zeros((nt + 3, 60, 80), np.float32))
 
 
 def test_segmenter_with_colour_models_matches_reference(monkeypatch):
@@ -219,13 +232,14 @@ def test_segmenter_with_colour_models_matches_reference(monkeypatch):
     def extended(bgr, g01, s, v, exgr, u, sky):
         h, w = g01.shape
         small = bgr if bgr.shape[:2] == (h, w) else cv2.resize(bgr, (w, h), interpolation=cv2.INTER_AREA)
-        return np.concatenate([texture(bgr, g01, s, v, exgr, u, sky), colour_features_reference(small, sky, lab8=True)])
+        tx = texture(bgr, g01, s, v, exgr, u, sky)
+        return np.concatenate([tx, colour_features_reference(small, sky, tx, lab8=True)])
 
     p0 = SegmentParams(crown_model="colour", gap_model="colour")
     img0 = next(_frames())[1]
     try:  # a reference that computes the colour planes itself is used as it is
         R.segment_reference(img0, p0, np.linspace(0.45, 0.6, 160) * 120)
-    except ValueError:  # it computes the texture planes only: add ours (the model then has 4 weights more)
+    except ValueError:  # it computes the texture planes only: add ours (the model then has 16 weights more)
         monkeypatch.setattr(R, "crown_features_reference", extended)
     # the second set makes the sky-gap model fire on the street-like frame's sky, so it is compared too
     for p in (SegmentParams(crown_model="colour", gap_model="colour"),
@@ -233,7 +247,7 @@ def test_segmenter_with_colour_models_matches_reference(monkeypatch):
         seen, changed = set(), 0
         for what, img in _frames():
             seg = Segmenter((img.shape[1], img.shape[0]), p)
-            assert seg.tfeat.shape[0] == K.NT + 4 and seg.gap_model.features == seg.crown_model.features + \
+            assert seg.tfeat.shape[0] == K.NT + 16 and seg.gap_model.features == seg.crown_model.features + \
                 ("tree9", "tree15", "tex", "crown")
             hrow = np.linspace(0.45, 0.6, seg.size[0]) * seg.size[1]
             probs, labels = seg.run(img, hrow)
@@ -255,7 +269,7 @@ def test_colour_models_ship_and_pair():
 
     c = load_crown_model("colour")
     g = load_crown_model("colour", gaps=True, base=c.features)
-    assert c.features == COLOUR_FEATURES and c.n_extra == 4 and g.n_extra == 4
+    assert c.features == COLOUR_FEATURES and c.n_extra == 16 and g.n_extra == 16
     assert c.provenance["image_folder"]["ids"] == "even" and g.provenance["image_folder"]["ids"] == "even"
     assert load_crown_model("default", gaps=True, base=c.features) is g  # "default" follows the crown model
     with pytest.raises(InputError, match="do not follow"):

@@ -12,6 +12,12 @@ street-image set (docs/perception-real.md), four more planes carry most of what 
 - ``nonsky31``: the share of non-sky pixels in the 31 x 31 window (a crown is a blob against the sky,
   a street canyon is mostly non-sky).
 
+and, because a linear score cannot tell "dark and smooth high up" from "dark and smooth near the
+horizon" by itself, the products of the height above the horizon ``u`` with twelve planes
+(``u_astar``, ``u_bstar``, ``u_skyabove`` and ``u_`` times ``v``, ``s``, ``exgr``, ``coh9``, ``fr``,
+``logen9``, ``var9``, ``axis9``, ``nonsky9`` of the texture set): a crown low in the picture is
+darker and less textured than one against the sky, a facade's colour hardly changes with height.
+
 A model file whose feature list is ``FEATURES + EXTRA_FEATURES`` (``crown_model.COLOUR_FEATURES``)
 asks the segmenter for these planes; it then holds them after the texture planes of ``tfeat``.
 """
@@ -22,10 +28,15 @@ import cv2
 import numpy as np
 
 from ..errors import InputError
+from . import _kernels as K
 from ._crown_kernels import colour_context
 
+#: Planes of the texture set (``crown_model.FEATURES``) multiplied by the height ``u``, by kernel index.
+_U_TEXTURE = (("v", K.T_V), ("s", K.T_S), ("exgr", K.T_EXGR), ("coh9", K.T_COH9), ("fr", K.T_FR),
+              ("logen9", K.T_LOGEN9), ("var9", K.T_VAR9), ("axis9", K.T_AXIS9), ("nonsky9", K.T_NONSKY9))
+_OWN = ("astar", "bstar", "skyabove", "nonsky31")
 #: Extra feature planes, in order, after ``crown_model.FEATURES``.
-EXTRA_FEATURES = ("astar", "bstar", "skyabove", "nonsky31")
+EXTRA_FEATURES = _OWN + ("u_astar", "u_bstar", "u_skyabove") + tuple("u_" + n for n, _ in _U_TEXTURE)
 #: Window (px of the segmentation raster) of ``nonsky31``.
 NONSKY_WINDOW = 31
 
@@ -44,8 +55,9 @@ class CrownExtras:
         self._count = np.zeros(int(w), np.int64)
         self._nonsky = np.zeros((int(h), int(w)), np.float32)
 
-    def fill(self, lab: np.ndarray, sky: np.ndarray, out: np.ndarray) -> np.ndarray:
-        """Write the ``EXTRA_FEATURES`` planes into ``out``.
+    def fill(self, lab: np.ndarray, sky: np.ndarray, tfeat: np.ndarray) -> np.ndarray:
+        """Write the ``EXTRA_FEATURES`` planes into ``tfeat[NT:]`` (the texture planes ``tfeat[:NT]``
+        must be filled already: the height products read them).
 
         Parameters
         ----------
@@ -53,16 +65,25 @@ class CrownExtras:
             The raster in OpenCV's 8-bit Lab.
         sky : ndarray (h, w) uint8
             Sky mask of the rules (non-zero = sky), as used for ``nonsky9``.
-        out : ndarray (len(EXTRA_FEATURES), h, w) float32
-            Overwritten; returned.
+        tfeat : ndarray (NT + len(EXTRA_FEATURES), h, w) float32
+            The crown features; planes from ``NT`` on are overwritten. Returned.
         """
-        if out.shape != (len(EXTRA_FEATURES),) + self.shape or out.dtype != np.float32:
-            raise InputError(f"crown extras: out must be float32 {(len(EXTRA_FEATURES),) + self.shape}, "
-                             f"got {out.dtype} {out.shape}")
-        colour_context(lab, sky, self._count, out[0], out[1], out[2], self._nonsky)
+        nt, ne = K.NT, len(EXTRA_FEATURES)
+        if tfeat.shape != (nt + ne,) + self.shape or tfeat.dtype != np.float32:
+            raise InputError(f"crown extras: tfeat must be float32 {(nt + ne,) + self.shape}, "
+                             f"got {tfeat.dtype} {tfeat.shape}")
+        colour_context(lab, sky, self._count, tfeat[nt], tfeat[nt + 1], tfeat[nt + 2], self._nonsky)
         r = NONSKY_WINDOW
-        cv2.blur(self._nonsky, (r, r), dst=out[3], borderType=cv2.BORDER_REPLICATE)
-        return out
+        cv2.blur(self._nonsky, (r, r), dst=tfeat[nt + 3], borderType=cv2.BORDER_REPLICATE)
+        u = tfeat[K.T_U]
+        k = nt + len(_OWN)
+        for src in (nt, nt + 1, nt + 2):  # a*, b*, sky above
+            np.multiply(u, tfeat[src], out=tfeat[k])
+            k += 1
+        for _, src in _U_TEXTURE:
+            np.multiply(u, tfeat[src], out=tfeat[k])
+            k += 1
+        return tfeat
 
 
 __all__ = ["EXTRA_FEATURES", "NONSKY_WINDOW", "CrownExtras"]

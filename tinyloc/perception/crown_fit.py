@@ -79,9 +79,8 @@ def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None
         tf = seg.crown_features(bgr)
         if extras:
             h, w = seg.labels.shape
-            ex = np.zeros((len(EXTRA_FEATURES), h, w), np.float32)
-            CrownExtras(h, w).fill(seg.lab, seg.sky, ex)
-            tf = np.concatenate([tf, ex])
+            tf = np.concatenate([tf, np.zeros((len(EXTRA_FEATURES), h, w), np.float32)])
+            CrownExtras(h, w).fill(seg.lab, seg.sky, tf)
     else:
         tf = seg.tfeat
     lab = seg.labels
