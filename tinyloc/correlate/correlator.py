@@ -557,7 +557,7 @@ class _SupportPatchEngine:
     between two lanes of per-heading buffers (numpy's FFT and the nogil kernels release the GIL).
     """
 
-    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=1):
+    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=1, groups=2):
         self.F, self.Ho, self.n_head, self.A = F, Ho, n_head, A
         self.origin = (float(origin_row), float(origin_col))
         self.bev_shape = bev_shape
@@ -576,10 +576,8 @@ class _SupportPatchEngine:
         self.N = max(self.Nr, self.Nc)
         self._good = np.array([_fast_size(n) for n in range(self.N + 1)], np.int64)
         Kh = self.Nc // 2 + 1
+        self.groups = max(1, int(groups))
         self.lanes = [_PatchLane(F, self.SU, self.Nr, self.Nc, Kh, Ho) for _ in range(threads)]
-        self.patch = np.zeros(F * self.Nr * self.Nc, np.float64)
-        self.Gin = np.zeros(F * self.Nr * Kh, np.complex128)
-        self.Gs = np.zeros(F * self.Nr * Kh, np.complex128)
         self._vol = np.zeros(n_head * Ho * Ho, np.float32)
         self.vol = self._vol.reshape(n_head, Ho, Ho)
         self.featA = np.zeros((F,) + tuple(bev_shape), np.float32)
@@ -593,8 +591,7 @@ class _SupportPatchEngine:
 
     @property
     def nbytes(self) -> int:
-        return (sum(ln.nbytes for ln in self.lanes) + self.patch.nbytes + self.Gin.nbytes + self.Gs.nbytes
-                + self._vol.nbytes + self.featA.nbytes + self.hb.nbytes)
+        return sum(ln.nbytes for ln in self.lanes) + self._vol.nbytes + self.featA.nbytes + self.hb.nbytes
 
     def run(self, feat, G, row0, col0, a0, A, inv_temp, Ho=None, n_head=None):
         """Volume (n_head, Ho, Ho) for headings a0..a0+n_head-1 and cells (row0 + u, col0 + v) of the window G:
@@ -608,45 +605,58 @@ class _SupportPatchEngine:
             self.last_sizes = (0, 0, 0)
             return vol
         K.gather_features(feat, self.act, n, self.featA)
-        hb = self.hb[:nh]
-        LU, HU, LV, HV = K.support_bounds(r_lo, r_hi, c_lo, c_hi, self.origin[0], self.origin[1], self.cos,
-                                          self.sin, a0, A, hb)
+        for ln in self.lanes:
+            ln.sizes = (0, 0)
+        ng = min(self.groups, nh)
+        per = -(-nh // ng)
+        job = (n, G, row0, col0, Ho, a0, A, inv_temp, vol, (r_lo, r_hi, c_lo, c_hi), per, nh)
+        L = len(self.lanes)
+        if L == 1:
+            for s0 in range(0, nh, per):
+                self._run_group(self.lanes[0], s0, job)
+        else:
+            # Lane w takes groups w, w + L, ...: each has its own patch, so the lanes share nothing but the output.
+            futs = [self._pool.submit(self._run_groups, self.lanes[w], w, L, job) for w in range(1, L)]
+            self._run_groups(self.lanes[0], 0, L, job)
+            for fu in futs:
+                fu.result()
+        self.last_sizes = (max(ln.sizes[0] for ln in self.lanes), max(ln.sizes[1] for ln in self.lanes), n)
+        return vol
+
+    def _run_groups(self, ln, first, step, job):
+        per, nh = job[-2], job[-1]
+        for s0 in range(first * per, nh, step * per):
+            self._run_group(ln, s0, job)
+
+    def _run_group(self, ln, s0, job):
+        """Headings s0 .. s0 + per - 1 of the call: their own map patch (the union of their boxes), then each one."""
+        n, G, row0, col0, Ho, a0, A, inv_temp, vol, (r_lo, r_hi, c_lo, c_hi), per, nh = job
+        m = min(per, nh - s0)
+        hb = self.hb[s0:s0 + m]
+        orow, ocol = self.origin
+        LU, HU, LV, HV = K.support_bounds(r_lo, r_hi, c_lo, c_hi, orow, ocol, self.cos, self.sin, a0 + s0, A, hb)
         Nr = int(self._good[Ho + HU - LU])
         Nc = int(self._good[Ho + HV - LV])
         Kh = Nc // 2 + 1
-        self.last_sizes = (Nr, Nc, n)
-        patch = self.patch[:n * Nr * Nc].reshape(n, Nr, Nc)
-        Gin = self.Gin[:n * Nr * Kh].reshape(n, Nr, Kh)
-        Gs = self.Gs[:n * Nr * Kh].reshape(n, Nr, Kh)
+        ln.sizes = (max(ln.sizes[0], Nr), max(ln.sizes[1], Nc))
+        patch = ln.patch[:n * Nr * Nc].reshape(n, Nr, Nc)
+        Gin = ln.Gin[:n * Nr * Kh].reshape(n, Nr, Kh)
+        Gs = ln.Gs[:n * Nr * Kh].reshape(n, Nr, Kh)
         # Patch cell (r, c) = window cell (row0 + LU + r, col0 + LV + c); outside the window 0.
         K.fill_patch(G, self.act, row0 + LU, col0 + LV, patch)
         np.fft.rfft(patch, axis=2, out=Gin)
         np.fft.fft(Gin, axis=1, out=Gs)
-        job = (n, Nr, Nc, Kh, LU, LV, Ho, nh, a0, A, inv_temp, Gs, vol, (r_lo, r_hi, c_lo, c_hi))
-        L = len(self.lanes)
-        if L == 1:
-            self._run_lane(self.lanes[0], 0, 1, job)
-        else:
-            futs = [self._pool.submit(self._run_lane, self.lanes[w], w, L, job) for w in range(1, L)]
-            self._run_lane(self.lanes[0], 0, L, job)
-            for fu in futs:
-                fu.result()
-        return vol
-
-    def _run_lane(self, ln, first, step, job):
-        n, Nr, Nc, Kh, LU, LV, Ho, nh, a0, A, inv_temp, Gs, vol, (r_lo, r_hi, c_lo, c_hi) = job
-        orow, ocol = self.origin
-        hb = self.hb
         Tin = ln.Tin[:n * Nr * Kh].reshape(n, Nr, Kh)
         T = ln.T[:n * Nr * Kh].reshape(n, Nr, Kh)
         P = ln.P[:Nr * Kh].reshape(Nr, Kh)
         Q = ln.Q[:Nr * Kh].reshape(Nr, Kh)
         buf = ln.buf[:Ho * Nc].reshape(Ho, Nc)
-        su_prev = Nr  # rows of Tin beyond this call's template rows must be 0
-        for t in range(first, nh, step):
+        su_prev = Nr  # rows of Tin beyond this heading's template rows must be 0
+        for k in range(m):
+            t = s0 + k
             a = (a0 + t) % A
-            lu, lv = int(hb[t, 0]), int(hb[t, 2])
-            su = int(hb[t, 1]) - lu + 1
+            lu, lv = int(hb[k, 0]), int(hb[k, 2])
+            su = int(hb[k, 1]) - lu + 1
             canvas = ln.canvas[:n * su * Nc].reshape(n, su, Nc)
             K.rotate_support(self.featA[:n], self.cos[a], self.sin[a], orow, ocol, lu, lv, r_lo, r_hi, c_lo, c_hi,
                              canvas)
@@ -658,15 +668,19 @@ class _SupportPatchEngine:
             K.spectra_mac1(Gs, T, P)
             np.fft.ifft(P, axis=0, out=Q)
             # Output cell u, template row k read patch row u + (lu - LU) + k (<= Ho - 1 + HU - LU < Nr).
-            s0 = lu - LU
-            np.fft.irfft(Q[s0:s0 + Ho], n=Nc, axis=1, out=buf)
+            r0 = lu - LU
+            np.fft.irfft(Q[r0:r0 + Ho], n=Nc, axis=1, out=buf)
             K.readout_patch(buf, 0, lv - LV, inv_temp, vol[t])
 
 
 class _PatchLane:
-    """Per-thread buffers of a :class:`_SupportPatchEngine` (one heading at the largest sizes)."""
+    """Per-thread buffers of a :class:`_SupportPatchEngine` (a group's map patch and one heading, largest sizes)."""
 
     def __init__(self, F, SU, Nr, Nc, Kh, Ho):
+        self.patch = np.zeros(F * Nr * Nc, np.float64)
+        self.Gin = np.zeros(F * Nr * Kh, np.complex128)
+        self.Gs = np.zeros(F * Nr * Kh, np.complex128)
+        self.sizes = (0, 0)  # largest (Nr, Nc) of the lane's groups in the last call
         self.canvas = np.zeros(F * SU * Nc, np.float64)
         self.Tin = np.zeros(F * Nr * Kh, np.complex128)
         self.T = np.zeros(F * Nr * Kh, np.complex128)
@@ -676,7 +690,8 @@ class _PatchLane:
 
     @property
     def nbytes(self) -> int:
-        return sum(a.nbytes for a in (self.canvas, self.Tin, self.T, self.P, self.Q, self.buf))
+        return sum(a.nbytes for a in (self.patch, self.Gin, self.Gs, self.canvas, self.Tin, self.T, self.P, self.Q,
+                                      self.buf))
 
 
 class Correlator:
