@@ -46,7 +46,8 @@ if len(FEATURES) != K.NT:
 GAP_EXTRA = ("tree9", "tree15", "tex", "crown")
 GAP_FEATURES = FEATURES + GAP_EXTRA
 GAP_PATH = Path(__file__).with_name("crown_gaps_default.json")
-#: The "colour" models: the texture features plus Lab a*, b* and sky context (crown_features.py).
+#: The "colour" models: the texture features plus Lab a*, b*, sky context and products with the height
+#: above the horizon (crown_features.py).
 COLOUR_FEATURES = FEATURES + EXTRA_FEATURES
 COLOUR_GAP_FEATURES = COLOUR_FEATURES + GAP_EXTRA
 #: Feature lists a crown model file may have (the sky-gap model: one of them + GAP_EXTRA).
@@ -127,8 +128,10 @@ class CrownModel:
             [lay + GAP_EXTRA if gaps else lay for lay in CROWN_LAYOUTS]
         got = tuple(d.get("features") or ())
         if got not in allowed:
-            raise InputError(f"{path}: feature list does not match this build's ({', '.join(allowed[0])}"
-                             f"{' [+ ' + ', '.join(EXTRA_FEATURES) + ']' if features is None else ''})")
+            names = ("GAP_FEATURES", "COLOUR_GAP_FEATURES") if gaps else ("FEATURES", "COLOUR_FEATURES")
+            want = ", ".join(allowed[0]) if features is not None else \
+                " or ".join(f"crown_model.{n} ({len(lay)} names)" for n, lay in zip(names, allowed))
+            raise InputError(f"{path}: feature list ({len(got)} names) does not match this build's: {want}")
         features = got
         try:
             return cls(np.array(d["mean"], float), np.array(d["scale"], float), np.array(d["weights"], float),
@@ -137,7 +140,7 @@ class CrownModel:
             raise InputError(f"{path}: bad crown model: {e}") from None
 
 
-_CACHE: dict[str, CrownModel] = {}
+_CACHE: dict[tuple[str, bool], CrownModel] = {}
 
 
 def load_crown_model(name: str, *, gaps: bool = False, base: tuple | None = None) -> CrownModel | None:
