@@ -172,7 +172,7 @@ def test_sensor_digest_hands_the_perceiver_the_compensated_vector():
     r_m, v = 5.0, 2.0
     f = specific_force(0.0, 0.0, 0.0, v * v / r_m)
     on = LoopParams(gravity_window_s=0.4, gravity_motion_comp=True)
-    off = LoopParams()
+    off = LoopParams(gravity_window_s=0.0, gravity_motion_comp=False)  # the mean since the previous frame
     res = {}
     for name, p in (("on", on), ("off", off)):
         ss = SensorState(None, None)

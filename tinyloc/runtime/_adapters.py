@@ -24,8 +24,14 @@ class PerceptionAdapter:
         from ..perception.pipeline import Perception, PerceptionParams
         from ..perception.segment import preset
 
-        # The grid's cell must be the map's cell; the preset fits where the robot drives.
-        params = PerceptionParams(segment=preset(cfg.loop.segment_preset), overhead=OverheadParams(res_m=geom.res_m))
+        # The grid's cell must be the map's cell; the preset fits where the robot drives. Far ground is
+        # where a small tilt error moves evidence most (r^2 d / h): the loop may see less far than the
+        # projector can (loop.bev_range_m, docs/tracking.md).
+        ov = {"res_m": geom.res_m}
+        rng = float(getattr(cfg.loop, "bev_range_m", 0.0))
+        if rng > 0.0:
+            ov["max_range_m"] = rng
+        params = PerceptionParams(segment=preset(cfg.loop.segment_preset), overhead=OverheadParams(**ov))
         self.perc = Perception(camera, params, warm_up=cfg.loop.warmup)
         self.grid = self.perc.new_grid()
         self.status = "ok"

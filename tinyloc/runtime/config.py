@@ -83,10 +83,14 @@ class LoopParams:
         creep up by that much on a large site [4.0; 9 classes x 128 x 128 cells = 0.15 MB a tile].
     gravity_window_s : float
         Gravity for levelling is the mean accelerometer reading over this many seconds; 0 takes the
-        rows since the previous frame (docs/tracking.md, "Gravity") [0.0].
+        rows since the previous frame (docs/tracking.md, "Gravity and range") [0.4].
     gravity_motion_comp : bool
         Take the robot's own acceleration (wheel odometry: change of speed, and speed x turn rate)
-        out of the accelerometer reading before levelling [False].
+        out of the accelerometer reading before levelling [True].
+    bev_range_m : float
+        Ground and objects further than this from the robot are left out of the bird's-eye grid the
+        loop matches; 0 keeps the projector's own limit. A tilt error d (rad) moves ground seen at
+        range r by about r^2 d / camera height (docs/tracking.md, "Gravity and range") [13.5].
     """
 
     realtime: bool = False
@@ -99,8 +103,9 @@ class LoopParams:
     external_labels: bool = False
     segment_preset: str = "sidewalk"
     map_cache_mb: float = 4.0
-    gravity_window_s: float = 0.0
-    gravity_motion_comp: bool = False
+    gravity_window_s: float = 0.4
+    gravity_motion_comp: bool = True
+    bev_range_m: float = 13.5
 
     def __post_init__(self):
         from ..perception.segment import PRESETS
@@ -112,6 +117,8 @@ class LoopParams:
             raise InputError(f"loop.map_cache_mb = {self.map_cache_mb}: must be within 0 .. 4096 MB")
         if not 0.0 <= self.gravity_window_s <= 5.0:
             raise InputError(f"loop.gravity_window_s = {self.gravity_window_s}: must be within 0 .. 5 s")
+        if not (0.0 <= self.bev_range_m <= 1000.0):
+            raise InputError(f"loop.bev_range_m = {self.bev_range_m}: must be within 0 .. 1000 m (0: the projector's)")
 
 
 @dataclass(frozen=True)

@@ -140,8 +140,8 @@ class SensorState:
         if ge is None:
             from ..perception.gravity import GravityEstimator
 
-            ge = self.grav_est = GravityEstimator(getattr(p, "gravity_window_s", 0.0),
-                                                  getattr(p, "gravity_motion_comp", False))
+            ge = self.grav_est = GravityEstimator(getattr(p, "gravity_window_s", 0.4),
+                                                  getattr(p, "gravity_motion_comp", True))
         t = float(fr.t)
         bad = self.bad_now
         bad[0] = bad[1] = bad[2] = 0
