@@ -44,7 +44,7 @@ import numpy as np
 from ..classes import CLASSES, NUM_CLASSES
 from ..errors import InputError
 from . import _kernels as K
-from .crown_features import CrownExtras
+from .crown_features import CrownContext, CrownExtras
 from .crown_model import load_crown_model
 
 
@@ -172,13 +172,13 @@ class SegmentParams:
 #: (a car on city roads) and on rendered frames of simulated sites 1 and 2; "sidewalk" has the robot on
 #: the footway (lightness weighs more in telling paving from asphalt, and facades may reach further
 #: down; both chosen on the same rendered sites 1 and 2; the soil rule, the per-frame surface decision
-#: and the tighter colour match ref_dist = 12 were chosen on the loop's tuning drives 11-17,
-#: docs/perception.md); "park"
+#: the tighter colour match ref_dist = 12 and the sky by colour (sky_ref_dist = 20) were chosen on the
+#: loop's tuning drives 11-17, docs/perception.md); "park"
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
     "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
-                              gap_model="", soil_b=6.0, surface_auto=20.0),
+                              gap_model="", soil_b=6.0, surface_auto=20.0, sky_ref_dist=20.0),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
                           grass_weight=0.7, crown_model="", gap_model=""),
 }
@@ -233,6 +233,9 @@ class Segmenter:
         self.crown_model = load_crown_model(params.crown_model)
         if self.crown_model is not None:
             self._cw, self._cb = self.crown_model.folded()
+            if self.crown_model.first is not None:  # a "context" model scores twice (crown_features.py)
+                self._cw1, self._cb1 = self.crown_model.first.folded()
+                self._context = CrownContext(h, w)
         self.gap_model = load_crown_model(params.gap_model, gaps=True, base=self.crown_model.features) \
             if self.crown_model is not None else None
         if self.gap_model is not None:
@@ -419,9 +422,18 @@ class Segmenter:
         return g
 
     def _crown_prob(self) -> None:
-        """Tree probability of the crown model, averaged over the pixels it applies to, into ``crown``."""
-        p, f, tf, t, tmp = self.params, self.feat, self.tfeat, self._t, self.tmp
-        K.crown_prob(tf, self._cw, self._cb, f, self.sky, p.green0, 1.0 / p.green_w, p.crown_u_min, t[0], t[1])
+        """Tree probability of the crown model, averaged over the pixels it applies to, into ``crown``.
+        A context model first does this with its first model, then adds the layout of that map as planes."""
+        first = self.crown_model.first
+        if first is not None:
+            n1 = len(first.features)
+            self._crown_pass(self.tfeat[:n1], self._cw1, self._cb1)
+            self._context.fill(self.crown, self.tfeat[n1:])
+        self._crown_pass(self.tfeat, self._cw, self._cb)
+
+    def _crown_pass(self, tf: np.ndarray, wts: np.ndarray, bias: float) -> None:
+        p, f, t = self.params, self.feat, self._t
+        K.crown_prob(tf, wts, bias, f, self.sky, p.green0, 1.0 / p.green_w, p.crown_u_min, t[0], t[1])
         r = p.crown_smooth // 2
         _blur(t[0], r, t[2])
         _blur(t[1], r, t[3])
