@@ -137,6 +137,13 @@ def test_fit_tool_on_a_small_labelled_folder(tmp_path):
     gap = tmp_path / "gaps.json"
     assert main(args + ["--stage", "gaps", "--crown", str(col), "-o", str(gap)]) == 0
     assert load_crown_model(str(gap), gaps=True, base=mc.features).features == mc.features + GAP_FEATURES[-4:]
+    # a context model on top of the colour one: the file holds both; a texture model cannot be the first
+    ctx = tmp_path / "context.json"
+    assert main(args + ["--first", str(col), "-o", str(ctx)]) == 0
+    mx = CrownModel.load(ctx)
+    assert mx.features == mc.features + ("crown7", "crown15", "crown31", "crown_col", "crown_row")
+    assert np.array_equal(mx.first.weights, mc.weights) and mx.provenance["features"] == "context"
+    assert main(args + ["--first", str(out), "-o", str(tmp_path / "x.json")]) == 2
     # without data, or with a malformed note: a one-line error and exit status 2
     assert main(["-o", str(tmp_path / "x.json")]) == 2
     assert main(args + ["--note", "no equals sign", "-o", str(tmp_path / "x.json")]) == 2
@@ -274,3 +281,84 @@ def test_colour_models_ship_and_pair():
     assert load_crown_model("default", gaps=True, base=c.features) is g  # "default" follows the crown model
     with pytest.raises(InputError, match="do not follow"):
         load_crown_model(str(NAMED["default"][1]), gaps=True, base=c.features)  # a texture sky-gap model
+
+
+# --- the context models (two scores: a colour model, then one on its crown map's layout) ---------------------
+
+def context_planes_reference(crown):
+    """CONTEXT_FEATURES from their definitions: SciPy ``uniform_filter`` window means (edge pixels repeated),
+    the mean over rows 0 .. i of the column from a cumulative sum, and the row mean."""
+    from scipy.ndimage import uniform_filter
+
+    c = crown.astype(np.float64)
+    col = np.cumsum(c, axis=0) / np.arange(1, c.shape[0] + 1)[:, None]
+    row = np.repeat(c.mean(axis=1, keepdims=True), c.shape[1], axis=1)
+    return np.stack([uniform_filter(c, size=n, mode="nearest") for n in (7, 15, 31)] + [col, row])
+
+
+def test_context_planes_match_reference():
+    from tinyloc.perception.crown_features import CONTEXT_FEATURES, CrownContext
+
+    rng = np.random.default_rng(8)
+    crown = cv2.GaussianBlur(rng.random((60, 80)).astype(np.float32), (0, 0), 3)
+    out = np.full((len(CONTEXT_FEATURES), 60, 80), np.nan, np.float32)
+    CrownContext(60, 80).fill(crown, out)
+    assert np.max(np.abs(out - context_planes_reference(crown))) < 1e-5
+    with pytest.raises(InputError, match="out must be"):
+        CrownContext(60, 80).fill(crown, out[:4])
+
+
+def _sig(z):
+    return 1.0 / (1.0 + np.exp(-z))
+
+
+def test_context_crown_map_matches_reference():
+    """The segmenter's two-pass crown map against NumPy from the same feature planes (checked above and in
+    tests/test_perception_segment.py): first score, raised to the vegetation score, masked mean over
+    ``crown_smooth``; its context planes; the second score the same way."""
+    from scipy.ndimage import uniform_filter
+    from test_perception_segment import _frames
+    from tinyloc.perception.segment import SegmentParams, Segmenter
+
+    p = SegmentParams(crown_model="context", gap_model="context")
+    for what, img in _frames():
+        seg = Segmenter((img.shape[1], img.shape[0]), p)
+        m2 = seg.crown_model
+        assert m2.first is not None and seg.tfeat.shape[0] == len(m2.features)
+        hrow = np.linspace(0.45, 0.6, seg.size[0]) * seg.size[1]
+        seg.run(img, hrow)
+        f = seg.feat.astype(np.float64)
+        green = _sig((f[K.F_EXGR] - p.green0) / p.green_w)
+        mask = (seg.sky == 0) & (f[K.F_U] > p.crown_u_min)
+
+        def smoothed(model, planes):
+            pt = np.where(mask, np.maximum(_sig(model.score(np.moveaxis(planes, 0, -1))), green), 0.0)
+            num = uniform_filter(pt, size=p.crown_smooth, mode="nearest")
+            den = uniform_filter(mask.astype(float), size=p.crown_smooth, mode="nearest")
+            return np.where(den > 1e-6, num / np.where(den > 1e-6, den, 1.0), 0.0)
+
+        n1 = len(m2.first.features)
+        c1 = smoothed(m2.first, seg.tfeat[:n1].astype(np.float64))
+        ctx = context_planes_reference(c1)
+        assert np.max(np.abs(seg.tfeat[n1:] - ctx)) < 1e-4, what
+        c2 = smoothed(m2, np.concatenate([seg.tfeat[:n1].astype(np.float64), ctx]))
+        assert np.max(np.abs(seg.crown - c2)) < 1e-4, what
+
+
+def test_context_model_files(tmp_path):
+    from tinyloc.perception.crown_model import CONTEXT_FEATURES_ALL, COLOUR_FEATURES
+
+    c = load_crown_model("context")
+    g = load_crown_model("default", gaps=True, base=c.features)  # "default" follows the crown model
+    assert c.features == CONTEXT_FEATURES_ALL and c.first.features == COLOUR_FEATURES and c.n_extra == 21
+    assert g is load_crown_model("context", gaps=True) and g.n_extra == 21 and g.first is None
+    assert c.provenance["image_folder"]["ids"] == "even" and g.provenance["image_folder"]["ids"] == "even"
+    p = tmp_path / "ctx.json"
+    c.save(p)
+    back = CrownModel.load(p)
+    assert np.array_equal(back.weights, c.weights) and np.array_equal(back.first.weights, c.first.weights)
+    d = json.loads(p.read_text())
+    del d["first"]
+    p.write_text(json.dumps(d))
+    with pytest.raises(InputError, match="needs its first model"):
+        CrownModel.load(p)

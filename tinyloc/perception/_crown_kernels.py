@@ -32,3 +32,22 @@ def colour_context(lab, sky, count, astar, bstar, skyabove, nonsky):
             bstar[i, j] = float(lab[i, j, 2]) - 128.0
             skyabove[i, j] = count[j] * inv
             nonsky[i, j] = 0.0 if s else 1.0
+
+
+@njit(**JIT)
+def column_row_means(crown, colmean, rowmean):
+    """Mean of ``crown`` over rows 0 .. i of each column (the pixel included) and over each whole row.
+
+    crown, colmean, rowmean (h, w) float32.
+    """
+    h, w = crown.shape
+    for i in range(h):
+        acc = 0.0
+        for j in range(w):
+            acc += crown[i, j]
+        rm = acc / w
+        inv = 1.0 / (i + 1)
+        for j in range(w):
+            prev = colmean[i - 1, j] * i if i > 0 else 0.0
+            colmean[i, j] = (prev + crown[i, j]) * inv
+            rowmean[i, j] = rm

@@ -21,6 +21,11 @@ something else near the horizon (vehicles, shop fronts) than high up (a crown in
 
 A model file whose feature list is ``FEATURES + EXTRA_FEATURES`` (``crown_model.COLOUR_FEATURES``)
 asks the segmenter for these planes; it then holds them after the texture planes of ``tfeat``.
+
+The "context" models score twice (auto-context): a colour model gives the smoothed crown map, and a
+second score reads the colour planes plus five planes of that map's layout (``CONTEXT_FEATURES``):
+its 7 x 7, 15 x 15 and 31 x 31 window means, its mean over the column above the pixel and over the
+pixel's row. A crown is a blob of high scores with sky around it; a facade a band across the street.
 """
 
 from __future__ import annotations
@@ -30,7 +35,7 @@ import numpy as np
 
 from ..errors import InputError
 from . import _kernels as K
-from ._crown_kernels import colour_context
+from ._crown_kernels import colour_context, column_row_means
 
 #: Planes of the texture set (``crown_model.FEATURES``) multiplied by the height ``u``, by kernel index.
 _U_TEXTURE = (("v", K.T_V), ("s", K.T_S), ("exgr", K.T_EXGR), ("coh9", K.T_COH9), ("fr", K.T_FR),
@@ -40,6 +45,9 @@ _OWN = ("astar", "bstar", "skyabove", "nonsky31")
 EXTRA_FEATURES = _OWN + ("u_astar", "u_bstar", "u_skyabove") + tuple("u_" + n for n, _ in _U_TEXTURE)
 #: Window (px of the segmentation raster) of ``nonsky31``.
 NONSKY_WINDOW = 31
+#: Planes of the first crown map read by the second score of a "context" model, in order.
+CONTEXT_FEATURES = ("crown7", "crown15", "crown31", "crown_col", "crown_row")
+_CONTEXT_WINDOWS = (7, 15, 31)
 
 
 class CrownExtras:
@@ -70,9 +78,10 @@ class CrownExtras:
             The crown features; planes from ``NT`` on are overwritten. Returned.
         """
         nt, ne = K.NT, len(EXTRA_FEATURES)
-        if tfeat.shape != (nt + ne,) + self.shape or tfeat.dtype != np.float32:
-            raise InputError(f"crown extras: tfeat must be float32 {(nt + ne,) + self.shape}, "
-                             f"got {tfeat.dtype} {tfeat.shape}")
+        if tfeat.ndim != 3 or tfeat.shape[0] < nt + ne or tfeat.shape[1:] != self.shape or \
+                tfeat.dtype != np.float32:
+            raise InputError(f"crown extras: tfeat must be float32 (>= {nt + ne}, {self.shape[0]}, "
+                             f"{self.shape[1]}), got {tfeat.dtype} {tfeat.shape}")
         colour_context(lab, sky, self._count, tfeat[nt], tfeat[nt + 1], tfeat[nt + 2], self._nonsky)
         r = NONSKY_WINDOW
         cv2.blur(self._nonsky, (r, r), dst=tfeat[nt + 3], borderType=cv2.BORDER_REPLICATE)
@@ -87,4 +96,27 @@ class CrownExtras:
         return tfeat
 
 
-__all__ = ["EXTRA_FEATURES", "NONSKY_WINDOW", "CrownExtras"]
+class CrownContext:
+    """Workspace filling the ``CONTEXT_FEATURES`` planes from a crown map (no buffers of its own).
+
+    Parameters
+    ----------
+    h, w : int
+        Segmentation raster size (rows, columns).
+    """
+
+    def __init__(self, h: int, w: int):
+        self.shape = (int(h), int(w))
+
+    def fill(self, crown: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """Write the context planes of ``crown`` (h, w) float32 into ``out`` (5, h, w) float32; returned."""
+        if out.shape != (len(CONTEXT_FEATURES),) + self.shape or out.dtype != np.float32:
+            raise InputError(f"crown context: out must be float32 {(len(CONTEXT_FEATURES),) + self.shape}, "
+                             f"got {out.dtype} {out.shape}")
+        for k, r in enumerate(_CONTEXT_WINDOWS):
+            cv2.blur(crown, (r, r), dst=out[k], borderType=cv2.BORDER_REPLICATE)
+        column_row_means(crown, out[3], out[4])
+        return out
+
+
+__all__ = ["EXTRA_FEATURES", "CONTEXT_FEATURES", "NONSKY_WINDOW", "CrownExtras", "CrownContext"]

@@ -43,7 +43,7 @@ import numpy as np
 from ..classes import BUILDING, NUM_CLASSES, SKY, TREE
 from ..errors import InputError
 from . import _kernels as K
-from .crown_features import EXTRA_FEATURES, CrownExtras
+from .crown_features import CONTEXT_FEATURES, EXTRA_FEATURES, CrownContext, CrownExtras
 from .crown_model import COLOUR_FEATURES, FEATURES, GAP_EXTRA, fit_crown_model, load_crown_model
 from .labels_in import LabelImporter
 from .segment import Segmenter, preset
@@ -73,9 +73,14 @@ CROWN_PIXELS = ("applied", "building-tree")
 
 
 def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None, gaps: bool = False,
-             pixels: str = "applied", extras: bool = False):
+             pixels: str = "applied", extras: bool = False, context: bool = False):
     seg.run(bgr, hrow)
-    if seg.crown_model is None:  # crown stage: the rules decide, the features are collected beside them
+    if context:  # second score of a context model: the first model's planes and its crown map's layout
+        h, w = seg.labels.shape
+        ctx = np.zeros((len(CONTEXT_FEATURES), h, w), np.float32)
+        CrownContext(h, w).fill(seg.crown, ctx)
+        tf = np.concatenate([seg.tfeat, ctx])
+    elif seg.crown_model is None:  # crown stage: the rules decide, the features are collected beside them
         tf = seg.crown_features(bgr)
         if extras:
             h, w = seg.labels.shape
@@ -99,7 +104,8 @@ def _samples(seg: Segmenter, bgr: np.ndarray, truth_small: np.ndarray, hrow=None
 
 
 def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, params, *, progress=None,
-                        gaps: bool = False, pixels: str = "applied", extras: bool = False):
+                        gaps: bool = False, pixels: str = "applied", extras: bool = False,
+                        context: bool = False):
     """(x, y, names) from an image folder with label images of the same names (see the module docstring)."""
     files = sorted(p for p in Path(images).iterdir() if p.suffix.lower() in (".png", ".jpg", ".jpeg"))
     xs, ys, used = [], [], []
@@ -117,7 +123,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
         if seg is None or seg.frame_size != (img.shape[1], img.shape[0]):
             seg = Segmenter((img.shape[1], img.shape[0]), params)
         truth = reduce_truth(raw, lut, seg.size)
-        x, y = _samples(seg, img, truth, gaps=gaps, pixels=pixels, extras=extras)
+        x, y = _samples(seg, img, truth, gaps=gaps, pixels=pixels, extras=extras, context=context)
         xs.append(x)
         ys.append(y)
         used.append(p.name)
@@ -129,7 +135,7 @@ def samples_from_folder(images: Path, labels: Path, lut: np.ndarray, ids: str, p
 
 
 def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool = False,
-                     pixels: str = "applied", extras: bool = False):
+                     pixels: str = "applied", extras: bool = False, context: bool = False):
     """(x, y, n_frames) from a run folder with labels/, segmented with its camera and IMU gravity."""
     from ..runfolder import RunFolder
     from .pipeline import Perception, PerceptionParams
@@ -151,7 +157,8 @@ def samples_from_run(run: Path, every: int, params, *, progress=None, gaps: bool
             continue
         seg = perc.segmenter
         truth = reduce_truth(lab, _IDENTITY, seg.size)
-        x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps, pixels=pixels, extras=extras)
+        x, y = _samples(seg, img, truth, perc.horizon.copy(), gaps=gaps, pixels=pixels, extras=extras,
+                        context=context)
         xs.append(x)
         ys.append(y)
         n += 1
@@ -210,6 +217,9 @@ def main(argv=None) -> int:
                     help="crown stage feature set: texture = crown_model.FEATURES; colour = those plus Lab a*, b* "
                          "and sky context (crown_features.py). The gaps stage takes its --crown model's (default "
                          "texture)")
+    ap.add_argument("--first", metavar="MODEL",
+                    help="crown stage: fit the second score of a context model on top of this colour model "
+                         "(sampled with it on; the written file holds both)")
     ap.add_argument("--crown", default="default", help="crown model used by the gaps stage (default: shipped)")
     ap.add_argument("--note", action="append", default=[], metavar="KEY=TEXT",
                     help="add KEY: TEXT to the file's provenance (repeatable; e.g. what the data are, the figures)")
@@ -220,8 +230,9 @@ def main(argv=None) -> int:
         print(msg, file=sys.stderr)
 
     gaps = a.stage == "gaps"
-    crown = a.crown if gaps else ""
-    extras = a.features == "colour" and not gaps
+    context = bool(a.first) and not gaps
+    crown = a.crown if gaps else (a.first if context else "")
+    extras = a.features == "colour" and not gaps and not context
     what = ("pixels the segmenter (crown model on, gap model off) labels sky and the truth sky or tree" if gaps else
             "labelled pixels the crown model scores (not sky, above crown_u_min); tree against all other classes"
             if a.pixels == "applied" else
@@ -240,6 +251,8 @@ def main(argv=None) -> int:
                 raise InputError(f"--note {item!r}: expected KEY=TEXT")
             prov[key] = text
         share_img = 1.0 - a.run_share if a.run else 1.0
+        if context and load_crown_model(a.first).features != COLOUR_FEATURES:
+            raise InputError(f"--first {a.first}: not a colour model (fit one with --features colour)")
         if a.images:
             from .labels_in import load_label_map
 
@@ -247,7 +260,8 @@ def main(argv=None) -> int:
                 raise InputError("--images needs --labels and --label-map")
             p = dataclasses.replace(preset(a.preset), crown_model=crown, gap_model="")
             x, y, used = samples_from_folder(a.images, a.labels, load_label_map(a.label_map), a.ids, p,
-                                             progress=None, gaps=gaps, pixels=a.pixels, extras=extras)
+                                             progress=None, gaps=gaps, pixels=a.pixels, extras=extras,
+                                             context=context)
             parts.append((x, y, _balanced(y, share_img)))
             prov["image_folder"] = {"ids": a.ids, "frames": len(used), "first": used[0], "last": used[-1],
                                     "preset": a.preset, "samples": int(len(y)), "tree_share": float(y.mean()),
@@ -257,7 +271,7 @@ def main(argv=None) -> int:
             rx, ry, info = [], [], []
             for r in a.run:
                 x, y, n = samples_from_run(r, a.run_every, p, progress=say, gaps=gaps, pixels=a.pixels,
-                                           extras=extras)
+                                           extras=extras, context=context)
                 rx.append(x)
                 ry.append(y)
                 info.append({"run": Path(r).name, "frames": n, "every": a.run_every})
@@ -273,12 +287,17 @@ def main(argv=None) -> int:
             raise InputError(f"all {len(y)} samples are {'tree' if y.any() else 'not tree'}: nothing to tell "
                              "apart (do the labels hold both classes where the stage samples?)")
         w = np.concatenate([q[2] for q in parts]) * len(y)
+        first = None
         if gaps:
             features = load_crown_model(crown).features + GAP_EXTRA
+        elif context:
+            first = load_crown_model(a.first)
+            features = first.features + CONTEXT_FEATURES
         else:
             features = COLOUR_FEATURES if extras else FEATURES
-        prov["features"] = "colour" if COLOUR_FEATURES[-1] in features else "texture"
-        model = fit_crown_model(x, y, w, provenance=prov, features=features)
+        prov["features"] = "context" if CONTEXT_FEATURES[0] in features else \
+            "colour" if COLOUR_FEATURES[-1] in features else "texture"
+        model = fit_crown_model(x, y, w, provenance=prov, features=features, first=first)
         z = model.score(x)
         acc_t = float(np.average(z[y] > 0, weights=w[y]))
         acc_b = float(np.average(z[~y] <= 0, weights=w[~y]))

@@ -29,7 +29,7 @@ import numpy as np
 
 from ..errors import InputError
 from . import _kernels as K
-from .crown_features import EXTRA_FEATURES
+from .crown_features import CONTEXT_FEATURES, EXTRA_FEATURES
 
 FORMAT = "tinyloc-crown-model"
 DEFAULT_PATH = Path(__file__).with_name("crown_default.json")
@@ -50,11 +50,16 @@ GAP_PATH = Path(__file__).with_name("crown_gaps_default.json")
 #: above the horizon (crown_features.py).
 COLOUR_FEATURES = FEATURES + EXTRA_FEATURES
 COLOUR_GAP_FEATURES = COLOUR_FEATURES + GAP_EXTRA
+#: The "context" models: a second score on the colour planes plus the layout of the first score's crown
+#: map (crown_features.CONTEXT_FEATURES); the file holds the first (colour) model under "first".
+CONTEXT_FEATURES_ALL = COLOUR_FEATURES + CONTEXT_FEATURES
 #: Feature lists a crown model file may have (the sky-gap model: one of them + GAP_EXTRA).
-CROWN_LAYOUTS = (FEATURES, COLOUR_FEATURES)
+CROWN_LAYOUTS = (FEATURES, COLOUR_FEATURES, CONTEXT_FEATURES_ALL)
 #: Shipped models by name: (crown model file, sky-gap model file).
 NAMED = {"default": (DEFAULT_PATH, GAP_PATH),
-         "colour": (DEFAULT_PATH.with_name("crown_colour.json"), DEFAULT_PATH.with_name("crown_gaps_colour.json"))}
+         "colour": (DEFAULT_PATH.with_name("crown_colour.json"), DEFAULT_PATH.with_name("crown_gaps_colour.json")),
+         "context": (DEFAULT_PATH.with_name("crown_context.json"),
+                     DEFAULT_PATH.with_name("crown_gaps_context.json"))}
 
 
 @dataclass(frozen=True)
@@ -68,6 +73,10 @@ class CrownModel:
     bias : float
     provenance : dict
         Data, split and fit settings the numbers came from.
+    features : tuple of str
+    first : CrownModel or None
+        A "context" model's first score (a colour model, whose smoothed crown map the context planes
+        describe); None otherwise.
     """
 
     mean: np.ndarray
@@ -76,9 +85,17 @@ class CrownModel:
     bias: float
     provenance: dict = field(default_factory=dict, compare=False)
     features: tuple = FEATURES
+    first: "CrownModel | None" = field(default=None, compare=False)
 
     def __post_init__(self):
         n = len(self.features)
+        is_gap = tuple(self.features[-len(GAP_EXTRA):]) == GAP_EXTRA
+        ctx = not is_gap and tuple(self.features[len(COLOUR_FEATURES):]) == CONTEXT_FEATURES
+        if ctx != (self.first is not None):
+            raise InputError("crown model: a context model (features ending in the context planes) needs its "
+                             "first model, and only a context model has one")
+        if self.first is not None and self.first.features != COLOUR_FEATURES:
+            raise InputError("crown model: the first model of a context model must be a colour model")
         for name in ("mean", "scale", "weights"):
             a = np.asarray(getattr(self, name), np.float64)
             if a.shape != (n,) or not np.all(np.isfinite(a)):
@@ -99,9 +116,12 @@ class CrownModel:
         return self.bias + ((np.asarray(tfeat, np.float64) - self.mean) / self.scale) @ self.weights
 
     def to_dict(self) -> dict:
-        return {"format": FORMAT, "version": 1, "features": list(self.features), "mean": self.mean.tolist(),
-                "scale": self.scale.tolist(), "weights": self.weights.tolist(), "bias": self.bias,
-                "provenance": self.provenance}
+        d = {"format": FORMAT, "version": 1, "features": list(self.features), "mean": self.mean.tolist(),
+             "scale": self.scale.tolist(), "weights": self.weights.tolist(), "bias": self.bias,
+             "provenance": self.provenance}
+        if self.first is not None:
+            d["first"] = self.first.to_dict()
+        return d
 
     def save(self, path) -> None:
         Path(path).write_text(json.dumps(self.to_dict(), indent=1) + "\n")
@@ -128,16 +148,30 @@ class CrownModel:
             [lay + GAP_EXTRA if gaps else lay for lay in CROWN_LAYOUTS]
         got = tuple(d.get("features") or ())
         if got not in allowed:
-            names = ("GAP_FEATURES", "COLOUR_GAP_FEATURES") if gaps else ("FEATURES", "COLOUR_FEATURES")
+            names = ("GAP_FEATURES", "COLOUR_GAP_FEATURES", "CONTEXT_FEATURES_ALL + GAP_EXTRA") if gaps else \
+                ("FEATURES", "COLOUR_FEATURES", "CONTEXT_FEATURES_ALL")
             want = ", ".join(allowed[0]) if features is not None else \
                 " or ".join(f"crown_model.{n} ({len(lay)} names)" for n, lay in zip(names, allowed))
             raise InputError(f"{path}: feature list ({len(got)} names) does not match this build's: {want}")
         features = got
         try:
+            first = None
+            if "first" in d:
+                first = cls._from_dict(d["first"], path)
             return cls(np.array(d["mean"], float), np.array(d["scale"], float), np.array(d["weights"], float),
-                       float(d["bias"]), dict(d.get("provenance", {})), tuple(features))
+                       float(d["bias"]), dict(d.get("provenance", {})), tuple(features), first)
+        except InputError as e:
+            raise InputError(f"{path}: {e}") from None
         except (KeyError, TypeError, ValueError) as e:
             raise InputError(f"{path}: bad crown model: {e}") from None
+
+    @classmethod
+    def _from_dict(cls, d, path) -> "CrownModel":
+        """A context model's first model (a colour model) from its entry in the file."""
+        if not isinstance(d, dict) or tuple(d.get("features") or ()) != COLOUR_FEATURES:
+            raise InputError("the first model of a context model must be a colour model")
+        return cls(np.array(d["mean"], float), np.array(d["scale"], float), np.array(d["weights"], float),
+                   float(d["bias"]), dict(d.get("provenance", {})), COLOUR_FEATURES)
 
 
 _CACHE: dict[tuple[str, bool], CrownModel] = {}
@@ -154,8 +188,9 @@ def load_crown_model(name: str, *, gaps: bool = False, base: tuple | None = None
     """
     if name in ("", "off"):
         return None
-    if gaps and name == "default" and base is not None and tuple(base) == COLOUR_FEATURES:
-        name = "colour"  # the shipped sky-gap model that goes with the shipped crown model in use
+    if gaps and name == "default" and base is not None and tuple(base) in (COLOUR_FEATURES, CONTEXT_FEATURES_ALL):
+        # the shipped sky-gap model that goes with the shipped crown model in use
+        name = "colour" if tuple(base) == COLOUR_FEATURES else "context"
     if name in NAMED:
         path = str(NAMED[name][1 if gaps else 0])
     else:
@@ -173,7 +208,7 @@ def load_crown_model(name: str, *, gaps: bool = False, base: tuple | None = None
 
 def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarray | None = None, *,
                     l2: float = 1e-2, iterations: int = 25, provenance: dict | None = None,
-                    features: tuple = FEATURES) -> CrownModel:
+                    features: tuple = FEATURES, first: CrownModel | None = None) -> CrownModel:
     """Logistic regression of ``is_tree`` on the features by Newton's method (IRLS), L2-regularised.
 
     Parameters
@@ -206,8 +241,9 @@ def fit_crown_model(x: np.ndarray, is_tree: np.ndarray, sample_weight: np.ndarra
         th -= step
         if np.max(np.abs(step)) < 1e-8:
             break
-    return CrownModel(mean, scale, th[:-1], float(th[-1]), dict(provenance or {}), tuple(features))
+    return CrownModel(mean, scale, th[:-1], float(th[-1]), dict(provenance or {}), tuple(features), first)
 
 
 __all__ = ["CrownModel", "FEATURES", "GAP_FEATURES", "GAP_EXTRA", "COLOUR_FEATURES", "COLOUR_GAP_FEATURES",
+           "CONTEXT_FEATURES_ALL",
            "CROWN_LAYOUTS", "NAMED", "load_crown_model", "fit_crown_model", "DEFAULT_PATH", "GAP_PATH"]
