@@ -3,6 +3,7 @@
     python -m tinyloc.perception.crown_fit --images DIR --labels DIR --label-map MAP.toml [--ids even]
         [--run RUN ...] [--run-every 10] [--run-share 0.15] [--features texture|colour]
         [--pixels applied|building-tree] [--note KEY=TEXT ...] -o crown.json
+    python -m tinyloc.perception.crown_fit --first colour.json ... -o context.json   (a context model)
     python -m tinyloc.perception.crown_fit --stage gaps --crown crown.json ... -o crown_gaps.json
 
 Two kinds of labelled data, each optional:
@@ -19,8 +20,10 @@ runs (not sky, at or above ``crown_u_min``; ``--pixels applied``), with "tree" a
 class, so vehicles, poles and fences teach it what is not a crown; ``--pixels building-tree`` keeps
 only pixels that both the rules (crown model off) and the truth call building or tree (how the first
 models were fitted). ``--features colour`` adds the colour and sky-context planes of
-crown_features.py. Gaps stage: the pixels the segmenter with the ``--crown`` model (gap model off)
-calls sky and the truth sky or tree; the sky-gap model reads the crown model's features and four more.
+crown_features.py; ``--first COLOUR_MODEL`` fits the second score of a context model (the same
+pixels, segmented with the colour model on; its planes plus the context planes of its crown map).
+Gaps stage: the pixels the segmenter with the ``--crown`` model (gap model off) calls sky and the
+truth sky or tree; the sky-gap model reads the crown model's features and four more.
 The truth at the raster is the majority class of each cell's block of label pixels (the features
 describe the whole block). Within each kind of data both classes weigh equally; the run folders
 together weigh ``--run-share`` of the total. Every 2nd pixel in each direction is used. The written
