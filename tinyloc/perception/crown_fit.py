@@ -217,9 +217,9 @@ def main(argv=None) -> int:
                          "sky, above crown_u_min); building-tree = only pixels both the rules and the truth call "
                          "building or tree (default applied)")
     ap.add_argument("--features", choices=("texture", "colour"), default="texture",
-                    help="crown stage feature set: texture = crown_model.FEATURES; colour = those plus Lab a*, b* "
-                         "and sky context (crown_features.py). The gaps stage takes its --crown model's (default "
-                         "texture)")
+                    help="crown stage feature set: texture = crown_model.FEATURES; colour = those plus Lab a*, b*, "
+                         "sky context and height products (crown_features.py). The gaps stage takes its --crown "
+                         "model's (default texture)")
     ap.add_argument("--first", metavar="MODEL",
                     help="crown stage: fit the second score of a context model on top of this colour model "
                          "(sampled with it on; the written file holds both)")
