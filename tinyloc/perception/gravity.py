@@ -132,10 +132,16 @@ class GravityEstimator:
     capacity : int
         Ring size for each sensor (rows). At 100 Hz and ``window_s`` 0.4 an IMU needs 40; the window
         silently shrinks to what the ring holds at very high rates.
+    bias : 3 floats
+        Accelerometer bias (FLU base frame, m/s^2) subtracted from every row, e.g. from
+        :func:`accel_bias_two_position`. A bias b tilts the estimate by about b / g and nothing on
+        board tells it from a slope: it must be calibrated.
     """
 
     def __init__(self, window_s: float = 0.4, compensate: bool = True, *, speed_span_s: float = 0.1,
-                 max_accel_mps2: float = 3.0, max_step_m: float = 2.0, capacity: int = 1024):
+                 max_accel_mps2: float = 3.0, max_step_m: float = 2.0, capacity: int = 1024,
+                 bias=(0.0, 0.0, 0.0)):
+        self.bias = tuple(float(v) for v in bias)
         self.window_s = float(window_s)
         self.compensate = bool(compensate)
         self.speed_span_s = float(speed_span_s)
@@ -172,7 +178,8 @@ class GravityEstimator:
         if self._icount and t <= self._it[self._ihead]:
             return
         k = (self._ihead + 1) % self._cap
-        self._it[k], self._ix[k], self._iy[k], self._iz[k] = t, fx, fy, fz
+        b = self.bias
+        self._it[k], self._ix[k], self._iy[k], self._iz[k] = t, fx - b[0], fy - b[1], fz - b[2]
         self._ihead = k
         self._icount = min(self._icount + 1, self._cap)
         self._inew += 1
@@ -291,3 +298,35 @@ class GravityEstimator:
         self.accel[0], self.accel[1] = a_fwd, a_left
         self.status = "compensated"
         return True
+
+
+def accel_bias_two_position(f_a, f_b, g_mps2: float = G0) -> np.ndarray:
+    """Accelerometer bias from two readings at rest on the same spot, the robot turned by 180 degrees.
+
+    Turning the robot about the ground's normal by half a turn flips the horizontal components of
+    gravity in the base frame (x and y change sign, z stays) while a bias stays put, so the mean of
+    the two readings' x and y is the bias whatever the slope (the two-position method; common
+    practice). The z bias is the mean z minus gravity's z, ``g cos(tilt)``, with the tilt from the
+    half-difference; it needs the local gravity (``g_mps2``, standard gravity by default; it varies
+    by about 0.5 % over the Earth) and matters little for levelling.
+
+    Parameters
+    ----------
+    f_a, f_b : array_like (3,)
+        Mean specific force at rest (FLU base frame, m/s^2), at a heading and at that heading + 180
+        deg. Average a few seconds of samples each: vibration and noise average out, the bias does not.
+    g_mps2 : float
+        Local gravity (m/s^2).
+
+    Returns
+    -------
+    ndarray (3,)
+        The bias (m/s^2), to subtract from every reading.
+    """
+    a = np.asarray(f_a, dtype=np.float64).reshape(3)
+    b = np.asarray(f_b, dtype=np.float64).reshape(3)
+    bias = 0.5 * (a + b)
+    h = 0.5 * (a - b)  # gravity's horizontal part at the first heading
+    c2 = 1.0 - (h[0] * h[0] + h[1] * h[1]) / (g_mps2 * g_mps2)
+    bias[2] = 0.5 * (a[2] + b[2]) - g_mps2 * math.sqrt(max(c2, 0.0))
+    return bias

@@ -87,6 +87,10 @@ class LoopParams:
     gravity_motion_comp : bool
         Take the robot's own acceleration (wheel odometry: change of speed, and speed x turn rate)
         out of the accelerometer reading before levelling [True].
+    accel_bias_x, accel_bias_y, accel_bias_z : float
+        Accelerometer bias (m/s^2, base frame: forward, left, up) subtracted from every IMU row; from
+        a calibration at rest (``tinyloc.perception.gravity.accel_bias_two_position``). A bias b tilts
+        the levelling by b / g [0.0].
     bev_range_m : float
         Ground and objects further than this from the robot are left out of the bird's-eye grid the
         loop matches; 0 keeps the projector's own limit. A tilt error d (rad) moves ground seen at
@@ -105,6 +109,9 @@ class LoopParams:
     map_cache_mb: float = 4.0
     gravity_window_s: float = 0.4
     gravity_motion_comp: bool = True
+    accel_bias_x: float = 0.0
+    accel_bias_y: float = 0.0
+    accel_bias_z: float = 0.0
     bev_range_m: float = 13.5
 
     def __post_init__(self):

@@ -133,15 +133,16 @@ class SensorState:
         Rows with a NaN or infinite value (and IMU rows above 1000 m/s^2, GNSS rows off the globe)
         are skipped and counted, in ``counters`` and, for this frame, in ``bad_now``. Gravity is the
         :class:`~tinyloc.perception.gravity.GravityEstimator`'s (``loop.gravity_window_s``,
-        ``loop.gravity_motion_comp``); frames where compensation was on but could not be applied are
+        ``loop.gravity_motion_comp``, ``loop.accel_bias_*``); frames where compensation was on but could not be applied are
         counted in ``counters["gravity_uncompensated"]``.
         """
         ge = self.grav_est
         if ge is None:
             from ..perception.gravity import GravityEstimator
 
+            bias = tuple(getattr(p, f"accel_bias_{a}", 0.0) for a in "xyz")
             ge = self.grav_est = GravityEstimator(getattr(p, "gravity_window_s", 0.4),
-                                                  getattr(p, "gravity_motion_comp", True))
+                                                  getattr(p, "gravity_motion_comp", True), bias=bias)
         t = float(fr.t)
         bad = self.bad_now
         bad[0] = bad[1] = bad[2] = 0
