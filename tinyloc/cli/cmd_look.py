@@ -21,6 +21,7 @@ image and write what it found, so you can see why a frame helps or fails:
 examples:
   tinyloc look frame.png -o look/                                   segment only
   tinyloc look frame.png --camera camera.toml --gravity 0.3,0.1,9.8 -o look/
+  tinyloc look frame.png --crown-model context -o look/           the stronger crown model
   tinyloc look frame.png --camera camera.toml --labels seg.png --label-map ids.toml -o look/"""
 
 
@@ -32,6 +33,11 @@ def register(parser):
     p.add_argument("--gravity", metavar="FX,FY,FZ",
                    help="accelerometer specific force in the base frame, m/s^2 (level: 0,0,9.81)")
     p.add_argument("--preset", default="street", help="segmentation preset: street, sidewalk, park (default street)")
+    p.add_argument("--crown-model", metavar="NAME|PATH",
+                   help="tree-crown score of the preset: default, colour, context (shipped, docs/perception-real.md), "
+                        "off (the colour rule), or a model file from crown_fit (default: the preset's own)")
+    p.add_argument("--gap-model", metavar="NAME|PATH",
+                   help="sky-through-crowns score: default (the one that goes with the crown model), off, or a file")
     p.add_argument("--labels", metavar="LABELS.png", help="use this external label image instead of segmenting")
     p.add_argument("--label-map", metavar="MAP.toml", help="id -> class table for --labels (docs/perception.md)")
     p.add_argument("--scale", type=int, default=6, metavar="N",
@@ -143,6 +149,12 @@ def _run(args) -> int:
     img = np.ascontiguousarray(img[..., :3])
     gravity = _parse_gravity(args.gravity)
     seg_params = preset(args.preset)
+    if args.crown_model is not None or args.gap_model is not None:
+        import dataclasses
+        seg_params = dataclasses.replace(
+            seg_params,
+            crown_model=seg_params.crown_model if args.crown_model is None else args.crown_model,
+            gap_model=seg_params.gap_model if args.gap_model is None else args.gap_model)
     ext = None
     lut = None
     if args.labels:
