@@ -192,7 +192,7 @@ def test_low_and_narrow_buildings():
     foot's 6 m) is placed as a tree trunk; with both checks off the low wall is placed as building."""
     cam = _cam()
     p = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=3.0,
-                       min_building_width_m=1.0)
+                       min_building_width_m=1.0, low_building_as="none")
     proj = OverheadProjector(cam, p)
     hrow = proj.horizon(np.eye(3))
     assert 38.0 < hrow[80] < 38.5
@@ -215,8 +215,11 @@ def test_low_and_narrow_buildings():
                             min_building_width_m=1.0)
         n = OverheadProjector(cam, pp).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
         assert (grid.evidence[BUILDING, :, :].sum() > 0) == placed, (lim, n)
-    # A low run as a fence when asked: fence evidence object_depth_m deep, no building.
-    pf = OverheadParams(building_depth_m=0.0, building_start_m=0.0, min_building_height_m=3.0, low_building_as="fence")
+    # A low run as a fence (the default since the loop measured it better): fence evidence object_depth_m
+    # deep, no building.
+    d = OverheadParams()
+    assert (d.min_building_height_m, d.min_building_width_m, d.low_building_as) == (3.0, 0.0, "fence")
+    pf = OverheadParams(building_depth_m=0.0, building_start_m=0.0)
     probs, labels = _wall_scene(cam, 40)
     assert OverheadProjector(cam, pf).project(probs, labels, np.eye(3), hrow, grid, tilted=False) == cam.width
     assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[FENCE].sum() > 0
