@@ -168,6 +168,9 @@ def test_bad_parameters_and_windows_raise_one_line_errors():
     with pytest.raises(InputError, match="multiple of 4, got 200 / 4"):
         CorrelatorParams(n_headings=200, coarse_heading_step=4)
     assert CorrelatorParams(n_headings=200).coarse_step == 2 and CorrelatorParams().coarse_step == 4
+    assert CorrelatorParams(coarse_heading_step=8).coarse_step == 8
+    with pytest.raises(InputError, match="coarse_heading_step must be"):
+        CorrelatorParams(coarse_heading_step=3)
     c = Correlator(CorrelatorParams(window_shape=(64, 64), n_headings=32, track_half_headings=4))
     with pytest.raises(InputError, match=r"expected shape \(9, 64, 64\), got \(9, 64, 65\)"):
         c.set_map(np.zeros((NUM_MAP_CLASSES, 64, 65), np.float32))
