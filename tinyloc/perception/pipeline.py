@@ -75,8 +75,11 @@ class Perception:
         self.last_feet = 0
         self._importer = None
         if warm_up:
-            frame = np.full((camera.height, camera.width, 3), 90, np.uint8)
-            frame[camera.height // 2:] = 120
+            # a grey sky above the level horizon and lighter ground below it, so that the conditional
+            # rules (the sky by colour needs a sky colour that ends at the horizon) compile too
+            frame = np.full((camera.height, camera.width, 3), 160, np.uint8)
+            r = float(np.clip(np.median(self.projector.hrow_level), 0, sh - 1))
+            frame[:int((r + 0.5) * camera.height / sh)] = 90
             self.process(frame, None, self.new_grid())
 
     def new_grid(self) -> BevGrid:
