@@ -143,3 +143,34 @@ def test_tracking_with_varying_frames_and_boxes_allocates_nothing(setup):
     peak = tracemalloc.get_traced_memory()[1]
     tracemalloc.stop()
     assert peak < 64_000, peak
+
+
+def test_random_supports_feature_subsets_priors_and_boxes_match_the_fixed_engine(setup):
+    """Seeded random frames: a random rectangle of evidence (down to one cell), a random subset of the features
+    (evidence classes zeroed), priors anywhere including off the window, random smaller boxes; the support
+    engine's volume must equal the slice of the fixed engine's full volume (that engine is itself checked
+    against the direct sum and OpenCV in test_correlate_exact.py)."""
+    rng, model, win, corr, fixed = setup
+    r = np.random.default_rng(2024)
+    for trial in range(12):
+        h0, w0 = (int(x) for x in r.integers(0, 64, size=2))
+        h1, w1 = h0 + int(r.integers(1, 65 - h0)), w0 + int(r.integers(1, 65 - w0))
+        ev = np.zeros((NUM_MAP_CLASSES, 64, 64), np.float32)
+        keep = r.uniform(size=NUM_MAP_CLASSES) < 0.5
+        ev[:, h0:h1, w0:w1] = r.uniform(size=(NUM_MAP_CLASSES, h1 - h0, w1 - w0)) * keep[:, None, None]
+        vis = np.zeros((64, 64), np.float32)
+        free = np.zeros((64, 64), np.float32)
+        if r.uniform() < 0.7:
+            vis[h0:h1, w0:w1] = 1.0
+        if r.uniform() < 0.5:
+            free[h0:h1, w0:w1] = r.uniform(size=(h1 - h0, w1 - w0))
+        bev = SyntheticBev(ev, free, vis, 0.5, 32.0, 0.0)
+        row, col = (int(x) for x in r.integers(-10, W + 10, size=2))
+        a = int(r.integers(0, 256))
+        R, hh = int(r.integers(1, 21)), int(r.integers(0, 16))
+        full = fixed.track(bev, row, col, a, exact=True).volume.copy()
+        got = corr.track(bev, row, col, a, exact=True, radius_cells=R, half_headings=hh).volume
+        sl = full[15 - hh:16 + hh, 20 - R:21 + R, 20 - R:21 + R]
+        assert got.shape == sl.shape
+        peak = float(np.max(np.abs(full)))
+        assert np.max(np.abs(got - sl)) <= 1e-6 * max(peak, 1e-30), (trial, h0, h1, w0, w1, keep, R, hh)
