@@ -39,7 +39,8 @@ DESCRIPTION = (
     "coarse-to-fine full search, exact_ms the exact one, tracking_ms the coarse-to-fine tracking update (the volume "
     "the filter takes; tracking_with_modes_ms also reads its refined modes), tracking_exact_ms the exact one "
     "(tracking_exact_*: alternating with the previous fixed-size engine, a +-10 cell / +-8 heading box, two "
-    "threads, and a 60 deg view of the loop's bird's-eye range; *_interleaved: the baseline and the fast search alternating). "
+    "threads, and a 60 deg view of the loop's bird's-eye range; *_interleaved: the baseline and the fast search "
+    "alternating). "
     "Also reported: FLOPs of the exact method and the share of this machine's measured FFT throughput it "
     "reaches, working-buffer memory, allocation in repeated calls, and the load average (the ratios are what "
     "survive a busy machine). --agreement N adds N planted-pose trials comparing fast and exact searches.")
