@@ -172,13 +172,13 @@ class SegmentParams:
 #: (a car on city roads) and on rendered frames of simulated sites 1 and 2; "sidewalk" has the robot on
 #: the footway (lightness weighs more in telling paving from asphalt, and facades may reach further
 #: down; both chosen on the same rendered sites 1 and 2; the soil rule, the per-frame surface decision
-#: the tighter colour match ref_dist = 12 and the sky by colour (sky_ref_dist = 20) were chosen on the
-#: loop's tuning drives 11-17, docs/perception.md); "park"
+#: and the tighter colour match ref_dist = 12 were chosen on the loop's tuning drives 11-17; the sky by
+#: colour, sky_ref_dist = 20, stays off: it did not raise the loop's recall there, docs/perception.md); "park"
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
     "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
-                              gap_model="", soil_b=6.0, surface_auto=20.0, sky_ref_dist=20.0),
+                              gap_model="", soil_b=6.0, surface_auto=20.0),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
                           grass_weight=0.7, crown_model="", gap_model=""),
 }
