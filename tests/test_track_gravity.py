@@ -253,3 +253,27 @@ def test_two_position_bias_on_a_slope_against_the_simulated_accelerometer():
     ge.estimate(out)
     r_deg, p_deg = tilt_deg(out)
     assert abs(r_deg - math.degrees(roll[100])) < 0.05 and abs(p_deg - math.degrees(pitch[100])) < 0.05
+
+
+def test_tracking_range_cut_matches_a_per_cell_reference():
+    """loop.search_full_range: the grid is cut at bev_range_m before the tracking match (per-cell loop as reference)."""
+    from types import SimpleNamespace
+
+    from tinyloc.perception.overhead import BevGrid
+    from tinyloc.runtime._adapters import CorrelatorAdapter
+
+    rng = np.random.default_rng(5)
+    bev = BevGrid.empty(40, 30, res_m=0.5, origin_row=20.0, origin_col=3.0)
+    bev.evidence[...] = rng.random(bev.evidence.shape)
+    bev.free[...] = rng.random(bev.free.shape)
+    bev.visible[...] = 1.0
+    ref = (bev.evidence.copy(), bev.free.copy())
+    holder = SimpleNamespace(track_range_m=6.0, _range_mask=None)
+    CorrelatorAdapter._cut_range(holder, bev)
+    for i in range(40):
+        for j in range(30):
+            inside = math.hypot(i + 0.5 - 20.0, j + 0.5 - 3.0) * 0.5 <= 6.0
+            assert bev.visible[i, j] == (1.0 if inside else 0.0)
+            assert np.array_equal(bev.evidence[:, i, j], ref[0][:, i, j] if inside else np.zeros(bev.evidence.shape[0]))
+            assert bev.free[i, j] == (ref[1][i, j] if inside else 0.0)
+    assert 0 < int(bev.visible.sum()) < 40 * 30

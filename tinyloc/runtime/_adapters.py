@@ -29,7 +29,7 @@ class PerceptionAdapter:
         # projector can (loop.bev_range_m, docs/tracking.md).
         ov = {"res_m": geom.res_m}
         rng = float(getattr(cfg.loop, "bev_range_m", 0.0))
-        if rng > 0.0:
+        if rng > 0.0 and not getattr(cfg.loop, "search_full_range", False):
             ov["max_range_m"] = rng
         params = PerceptionParams(segment=preset(cfg.loop.segment_preset), overhead=OverheadParams(**ov))
         self.perc = Perception(camera, params, warm_up=cfg.loop.warmup)
@@ -95,6 +95,11 @@ class CorrelatorAdapter:
         self._yaw = np.zeros((n, n), np.float64)
         self.status = "ok"
         self.counters = {"window_moves": 0, "damaged_tiles": 0}
+        # with loop.search_full_range the grid arrives at the projector's full range and is cut to
+        # loop.bev_range_m here, after any global search of the frame and before the tracking match
+        rng = float(getattr(cfg.loop, "bev_range_m", 0.0))
+        self.track_range_m = rng if (rng > 0.0 and getattr(cfg.loop, "search_full_range", False)) else 0.0
+        self._range_mask = None
 
     def warmup(self) -> None:
         self.corr.warm_up(("fast", "track_exact") if self.exact else ("fast", "track"))
@@ -134,8 +139,22 @@ class CorrelatorAdapter:
         np.multiply(res.best_heading, self.dyaw * hs, out=self._yaw[:res.best.shape[0], :res.best.shape[1]])
         return GlobalEvidence(res.best, self.wrow0, self.wcol0, s, self._yaw[:res.best.shape[0], :res.best.shape[1]])
 
+    def _cut_range(self, bev) -> None:
+        """Zero the grid beyond ``track_range_m`` from the robot (in place; the mask is made once)."""
+        m = self._range_mask
+        if m is None or m.shape != bev.visible.shape:
+            h, w = bev.visible.shape
+            i = (np.arange(h) + 0.5 - float(bev.origin_row))[:, None]
+            j = (np.arange(w) + 0.5 - float(bev.origin_col))[None, :]
+            m = self._range_mask = (np.hypot(i, j) * float(bev.res_m) <= self.track_range_m).astype(np.float32)
+        np.multiply(bev.evidence, m, out=bev.evidence)
+        np.multiply(bev.free, m, out=bev.free)
+        np.multiply(bev.visible, m, out=bev.visible)
+
     def track(self, bev, x, y, yaw):
         """Full-resolution volume over the tracking box around (x, y, yaw), or None (see status)."""
+        if self.track_range_m > 0.0:
+            self._cut_range(bev)
         moved = self._ensure(x, y, self.margin)
         r, c = self.geom.cell_of(x, y)
         a = int(round((yaw if math.isfinite(yaw) else 0.0) / self.dyaw)) % self.A

@@ -95,6 +95,9 @@ class LoopParams:
         Ground and objects further than this from the robot are left out of the bird's-eye grid the
         loop matches; 0 keeps the projector's own limit. A tilt error d (rad) moves ground seen at
         range r by about r^2 d / camera height (docs/tracking.md, "Gravity and range") [13.5].
+    search_full_range : bool
+        Project as far as the projector can and cut the grid at ``bev_range_m`` only for the
+        tracking-mode match, so global searches still see the far field [False].
     """
 
     realtime: bool = False
@@ -113,6 +116,7 @@ class LoopParams:
     accel_bias_y: float = 0.0
     accel_bias_z: float = 0.0
     bev_range_m: float = 13.5
+    search_full_range: bool = False
 
     def __post_init__(self):
         from ..perception.segment import PRESETS
