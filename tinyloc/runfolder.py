@@ -217,6 +217,34 @@ def _read_table(rd: _Reader, name: str, need: tuple[str, ...], strict_increase: 
     return _Table(data[:n].copy(), lines[:n].copy())
 
 
+def read_sensor_csv(path, columns: tuple[str, ...], *, cls: type[Exception] = RunFolderError) -> np.ndarray:
+    """Rows of one sensor CSV in the run-folder format (header row, ``#`` comments, torn last line tolerated).
+
+    Parameters
+    ----------
+    path : path-like
+        A ``.csv`` file, e.g. a recording of ``imu.csv`` rows ``t,fx,fy,fz``.
+    columns : tuple of str
+        Columns to return, in this order (the first is the time, which must not go backwards).
+    cls : exception class
+        Raised (one line, naming the file and line) on a missing file or a bad row.
+
+    Returns
+    -------
+    ndarray (N, len(columns)) float64
+    """
+    p = Path(path)
+    if p.suffix != ".csv":
+        raise cls(f"{p}: expected a .csv file")
+    if not p.is_file():
+        raise cls(f"{p}: no such file")
+    try:
+        table = _read_table(_Reader(p.parent, strict=True), p.stem, tuple(columns), strict_increase=False)
+    except RunFolderError as e:
+        raise cls(str(e)) from None
+    return table.data
+
+
 def _is_float(s: str) -> bool:
     try:
         float(s)

@@ -3,13 +3,15 @@
 from __future__ import annotations
 
 import json
+import math
 import sys
 from pathlib import Path
 
 NAME = "calibrate"
-HELP = "calibrate the camera (intrinsics from a checkerboard) and its mount (height, pitch)"
+HELP = "calibrate the camera (intrinsics from a checkerboard), its mount (height, pitch) and the accelerometer bias"
 DESCRIPTION = """\
-Camera calibration in two steps, both writing the same camera.toml (docs/camera.md).
+Camera calibration in two steps, both writing the same camera.toml (docs/camera.md), and the
+accelerometer bias for the loop configuration.
 
 1. Intrinsics and lens distortion, from 10-30 photos of a printed checkerboard held at
    varied angles and distances, filling the corners of the picture too:
@@ -25,7 +27,13 @@ Camera calibration in two steps, both writing the same camera.toml (docs/camera.
    or set it by hand (metres, degrees; pitch positive looks down):
      tinyloc calibrate mount --camera camera.toml --height 0.62 --pitch 12
    Height, pitch and roll come from the photo; yaw and the camera's x/y offset on the
-   base keep their values unless given by hand."""
+   base keep their values unless given by hand.
+
+3. The accelerometer's bias (it tilts the levelling by bias / g, and far ground moves by
+   about range^2 x tilt / camera height): record a few seconds at rest, turn the robot in
+   place by half a turn, record again, then
+     tinyloc calibrate imu rest_a.csv rest_b.csv -o loop.toml
+   and start the loop with --config loop.toml."""
 
 _INTR_HELP = """\
 Detect the checkerboard's inner corners in every photo (OpenCV), refine them to
@@ -39,6 +47,21 @@ Estimate the camera's height above the ground, pitch and roll from one photo of 
 flat target on the ground (a checkerboard with --board/--square, or a marked
 rectangle with --rect and its four pixel corners), or set mount values by hand.
 The result is written back into the calibration file (or to -o)."""
+
+
+_IMU_HELP = """\
+Estimate the accelerometer's constant bias by the two-position method (common practice):
+at rest, a reading is gravity plus the bias; turning the robot in place by half a turn flips
+gravity's horizontal components in the robot's frame but not the bias, so the mean of the two
+readings' horizontal parts is the bias whatever the slope of the spot. Each recording must hold
+at least 50 samples, taken at rest (small spread), reading about one gravity, and the two must come
+from the same spot (turn the robot in place: a change of spot of a few degrees of slope cannot be
+seen and half of it would end up in the bias). Prints the bias (m/s^2, forward, left, up) and the spot's tilt, and with -o
+writes it into a loop configuration (tinyloc run --config loop.toml).
+
+examples:
+  tinyloc calibrate imu rest_a.csv rest_b.csv
+  tinyloc calibrate imu runs/rest_0deg runs/rest_180deg -o loop.toml"""
 
 
 def register(parser):
@@ -73,6 +96,20 @@ def register(parser):
         p.add_argument(f"--{name}", type=float, metavar="V", help=f"set {what} by hand")
     p.add_argument("--json", action="store_true", help="print the result as one JSON object")
     p.set_defaults(func=_mount)
+
+    p = sub.add_parser("imu", help="accelerometer bias from two recordings at rest, half a turn apart",
+                       description=_IMU_HELP, formatter_class=parser.formatter_class)
+    p.add_argument("first", metavar="REST_A", help="recording at rest: a CSV with t,fx,fy,fz (imu.csv format) "
+                                                   "or a run folder (its imu.csv)")
+    p.add_argument("second", metavar="REST_B", help="the same spot, the robot turned in place by 180 degrees")
+    p.add_argument("-o", "--out", metavar="loop.toml",
+                   help="loop configuration to write the bias into ([loop] accel_bias_x/y/z); created if missing, "
+                        "other values kept (comments are not)")
+    p.add_argument("--g", type=float, default=None, metavar="MPS2",
+                   help="local gravity (m/s^2; default standard gravity 9.80665; it varies by about 0.5 %% "
+                        "over the Earth and only the z bias depends on it)")
+    p.add_argument("--json", action="store_true", help="print the result as one JSON object")
+    p.set_defaults(func=_imu)
 
 
 def _read_image(path):
@@ -191,4 +228,48 @@ def _mount(args) -> int:
     print(f"mount {src}: height {m.height_m:.3f} m, pitch {m.pitch_deg:.2f} deg, roll {m.roll_deg:.2f} deg, "
           f"yaw {m.yaw_deg:.2f} deg, x {m.x_m:.3f} m, y {m.y_m:.3f} m")
     print(f"wrote {out}")
+    return 0
+
+
+def _imu(args) -> int:
+    from ..camera.imu_rest import imu_table, read_rest, two_position_bias
+    from ..errors import CalibrationError
+    from ..perception.gravity import G0
+    from ..tomlio import read_toml, write_toml
+
+    g = G0 if args.g is None else args.g
+    if not 9.7 <= g <= 9.9:
+        raise CalibrationError(f"--g {g}: expected local gravity in m/s^2, within 9.7 .. 9.9 (about 9.78 at the "
+                               "equator to 9.83 at the poles)")
+    a = read_rest(args.first, imu_table(args.first))
+    b = read_rest(args.second, imu_table(args.second))
+    res = two_position_bias(a, b, g_mps2=g)
+    bx, by, bz = (float(v) for v in res.bias)
+    if args.out:
+        out = Path(args.out)
+        doc = read_toml(out, cls=CalibrationError) if out.is_file() else {}
+        loop = doc.get("loop", {})
+        if not isinstance(loop, dict):
+            raise CalibrationError(f"{out}: 'loop' is not a table")
+        loop.update(accel_bias_x=bx, accel_bias_y=by, accel_bias_z=bz)
+        doc["loop"] = loop
+        try:
+            write_toml(out, doc, header="tinyloc loop configuration (docs/runtime.md)")
+        except (OSError, TypeError, ValueError) as e:
+            raise CalibrationError(f"{out}: cannot write ({getattr(e, 'strerror', None) or e})") from None
+    report = {"bias_mps2": [bx, by, bz], "tilt_deg": res.tilt_deg, "g_mps2": g,
+              "tilt_from_bias_deg": math.degrees(math.hypot(bx, by) / g), "out": args.out,
+              "recordings": [{"path": r.path, "samples": r.n, "seconds": r.seconds, "mean": [float(v) for v in r.mean],
+                              "std": [float(v) for v in r.std]} for r in (a, b)]}
+    if args.json:
+        print(json.dumps(report))
+        return 0
+    print(f"accelerometer bias (forward, left, up): {bx:+.4f} {by:+.4f} {bz:+.4f} m/s^2 "
+          f"(levelling error without it: {report['tilt_from_bias_deg']:.2f} deg)")
+    print(f"  spot tilt {res.tilt_deg:.2f} deg; {a.n} and {b.n} samples at rest")
+    if math.hypot(bx, by) > 0.5:
+        print("  warning: a horizontal bias above 0.5 m/s^2 is large for a MEMS accelerometer; check that both "
+              "recordings were taken on the same spot, turned in place", file=sys.stderr)
+    if args.out:
+        print(f"  wrote [loop] accel_bias_x/y/z to {args.out}")
     return 0
