@@ -165,3 +165,13 @@ def test_surface_kept_without_other_paving():
     assert seg.surface == "sidewalk"
     seg.run(_ground_frame((60, 60, 62), side_bgr=(140, 145, 150), side_cols=(0, 2)), HROW)  # 100 px < 2 %
     assert seg.surface == "sidewalk"
+
+
+@pytest.mark.parametrize("keep, expect", [(False, "sidewalk"), (True, "road")])
+def test_surface_kept_from_previous_frame(keep, expect):
+    """With surface_keep, an undecided frame keeps the previous frame's surface instead of robot_on."""
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_keep=keep))
+    seg.run(_ground_frame((60, 60, 62), patch_bgr=(60, 60, 62), side_bgr=(140, 145, 150)), HROW)
+    assert seg.surface == "road"
+    seg.run(_ground_frame((60, 60, 62)), HROW)  # only asphalt in view: undecided
+    assert seg.surface == expect

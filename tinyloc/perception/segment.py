@@ -117,6 +117,7 @@ class SegmentParams:
     #                            under the robot, sidewalk when this much darker (0: off, keep robot_on)
     surface_u: float = -0.05  # ... counting paved pixels this far below the horizon (image heights)
     surface_share: float = 0.02  # ... and only when they cover this share of the raster
+    surface_keep: bool = False  # ... otherwise keep the previous frame's decision (False: fall back to robot_on)
 
     def __post_init__(self):
         if not 32 <= int(self.width) <= 1024:
@@ -331,11 +332,12 @@ class Segmenter:
     def _decide_surface(self) -> None:
         """Which paved surface is under the robot, for this frame: asphalt is the darker one. When the other
         paved ground in view (unlike the patch under the robot) is clearly lighter, the robot stands on the
-        road (crossing a street); clearly darker, on the sidewalk; otherwise the preset's ``robot_on``."""
+        road (crossing a street); clearly darker, on the sidewalk; otherwise the preset's ``robot_on``, or
+        with ``surface_keep`` the previous frame's decision."""
         p = self.params
         w, h = self.size
         med, n = K.other_paved_lightness(self.lab, self.feat, self.tex, self.ref, self._prm, p.surface_u, self.hist)
-        on_road = p.robot_on == "road"
+        on_road = (self.surface if p.surface_keep else p.robot_on) == "road"
         if n >= p.surface_share * w * h:
             if med >= self.ref[0] + p.surface_auto:
                 on_road = True
