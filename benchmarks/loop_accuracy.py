@@ -14,6 +14,10 @@ For each seed: ``tinyloc sim site --seed S`` (map errors on, the simulator's def
   errors, but the run's own odometry, IMU and satellite fixes, the real correlator and tracker.
   It shows what the loop does with evidence that agrees with the map.
 
+``--imu-cal`` first calibrates each drive's accelerometer bias the way an operator would
+(``tinyloc calibrate imu`` on the two recordings at rest the simulator writes beside the drive,
+docs/camera.md step 3) and runs the loop with it; without it the loop runs uncalibrated.
+
 Figures per run (definitions in tinyloc/runtime/summary.py): recall within 1 m and 3 deg after
 the first 30 m, median position and heading error, the satellite receiver's median error on
 the same frames and the ratio, the share inside the reported 95 % ellipse, median frame time.
@@ -123,6 +127,24 @@ def _tracking_wrong(poses, truth, skip_m: float) -> float:
     return float(np.sum(counted & trk & ~good) / counted.sum())
 
 
+def _imu_cal(run: Path) -> list[str]:
+    """Loop overrides with the accelerometer bias from the run's recordings at rest (made if missing)."""
+    from dataclasses import fields
+
+    from tinyloc.camera.imu_rest import imu_table, read_rest, two_position_bias
+    from tinyloc.sim.runs import IMU_REST_FILES, write_imu_rest
+    from tinyloc.sim.sensors import ImuParams
+
+    paths = [run / rel for rel in IMU_REST_FILES]
+    if not all(p.is_file() for p in paths):
+        sim = json.loads((run / "run.json").read_text())["simulated"]
+        names = {f.name for f in fields(ImuParams)}
+        write_imu_rest(run, int(sim["seed"]), ImuParams(**{k: v for k, v in sim["imu"].items() if k in names}))
+    a, b = (read_rest(p, imu_table(p)) for p in paths)
+    bias = two_position_bias(a, b).bias
+    return [f"loop.accel_bias_{ax}={float(v)!r}" for ax, v in zip("xyz", bias)]
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--seeds", type=int, nargs="+", default=[1, 2, 3, 4, 5])
@@ -132,6 +154,10 @@ def main(argv=None) -> int:
     ap.add_argument("--skip-m", type=float, default=30.0)
     ap.add_argument("--modes", nargs="+", default=["segmenter", "labels", "mapcut"])
     ap.add_argument("--set", action="append", default=[])
+    ap.add_argument("--imu-cal", action="store_true",
+                    help="calibrate each drive's accelerometer first, as an operator would (tinyloc calibrate imu on "
+                         "the run's two recordings at rest, calibration/imu_rest_*.csv; made for older cached runs), "
+                         "and run the loop with that bias")
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args(argv)
     work = Path(a.work)
@@ -144,14 +170,15 @@ def main(argv=None) -> int:
             _sim(a, "site", "--seed", str(seed), "--size", a.size, "-o", str(site))
         if not (run / "run.json").is_file():
             _sim(a, "run", str(site), "--seed", str(seed), "--frames", str(a.frames), "-o", str(run))
+        cal = _imu_cal(run) if a.imu_cal else []
         for mode in a.modes:
-            ov = list(a.set) + (["loop.external_labels=true"] if mode == "labels" else [])
+            ov = list(a.set) + cal + (["loop.external_labels=true"] if mode == "labels" else [])
             try:
                 s = evaluate(run, _fresh_map(site), ov, a.skip_m, mode)
             except Exception as e:  # one bad seed must not hide the others
                 print(f"seed {seed} {mode}: failed: {type(e).__name__}: {e}", file=sys.stderr, flush=True)
                 continue
-            s.update(seed=seed, mode=mode)
+            s.update(seed=seed, mode=mode, imu_cal=bool(a.imu_cal))
             rows.append(s)
             print(f"seed {seed} {mode:<9} recall {s['recall_1m_3deg']:.2f}  median {s['median_error_m']:.2f} m "
                   f"{s['median_heading_error_deg']:.2f} deg  gnss {s['gnss_median_error_m']:.2f} m "

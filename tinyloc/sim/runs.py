@@ -21,7 +21,7 @@ from ..errors import InputError
 from ..runfolder import RunWriter
 from .render import Renderer, RenderParams
 from .rover import DriveParams, drive
-from .sensors import G0, GnssParams, ImuParams, OdometryParams, gnss_samples, imu_samples, odometry_samples
+from .sensors import G0, GnssParams, ImuParams, OdometryParams, gnss_samples, imu_samples, odometry_samples, rest_imu_pair
 from .world import World
 
 # The simulator's default camera: VGA, about 70 degrees across, mild barrel distortion, 0.8 m up, 8 deg down.
@@ -96,8 +96,7 @@ def make_run(world: World, out_dir, *, seed: int, params: RunParams = RunParams(
     if not 0.1 <= params.frame_rate_hz <= 60.0:
         raise InputError(f"frame rate {params.frame_rate_hz} Hz is out of range (0.1 .. 60)")
     cam = camera or DEFAULT_CAMERA
-    ss = np.random.SeedSequence([int(seed), 0x52554E])
-    r_route, r_imu, r_odo, r_gnss, r_look = (np.random.default_rng(s) for s in ss.spawn(5))
+    r_route, r_imu, r_odo, r_gnss, r_look = _streams(seed)
     t0 = 1.5
     duration = t0 + (params.frames - 1) / params.frame_rate_hz + 1.0
     traj = drive(world, r_route, duration, params.drive)
@@ -149,12 +148,45 @@ def make_run(world: World, out_dir, *, seed: int, params: RunParams = RunParams(
         for k in range(len(gn["t"])):
             w.add_gnss(float(gn["t"][k]), float(lat_g[k]), float(lon_g[k]), float(world.origin[2] + gn["h"][k]),
                        float(gn["acc_m"][k]))
+    write_imu_rest(out_dir, seed, params.imu)
     dist = float(traj.s[-1])
     d_odo = float(np.sum(np.hypot(*np.diff(odo[:, :2], axis=0).T)))
     return {"frames": n, "duration_s": float(traj.t[-1]), "distance_m": dist,
             "render_ms_median": float(np.median(render_ms)), "odometry_length_ratio": d_odo / max(dist, 1e-9),
             "gnss_rms_m": float(np.sqrt(np.mean(gn["err_x"] ** 2 + gn["err_y"] ** 2))),
             "gnss_blocked_mean": float(np.mean(gn["blocked"])), "gravity": G0}
+
+
+def _streams(seed: int) -> list:
+    """The run's independent random streams: route, IMU, odometry, GNSS, look (in that order)."""
+    ss = np.random.SeedSequence([int(seed), 0x52554E])
+    return [np.random.default_rng(s) for s in ss.spawn(5)]
+
+
+IMU_REST_FILES = ("calibration/imu_rest_a.csv", "calibration/imu_rest_b.csv")
+
+
+def write_imu_rest(run_dir, seed: int, imu: ImuParams = ImuParams()) -> list[Path]:
+    """Write the run's two IMU recordings at rest (``IMU_REST_FILES``), for ``tinyloc calibrate imu``.
+
+    The accelerometer bias is the one the run's IMU stream drew first (:func:`imu_samples`), so a
+    calibration from these files applies to the drive; the recordings' own noise, slope and headings
+    come from a stream of their own, so adding them changes nothing else in the run. Runs made before
+    these files existed get them by calling this with the run's seed and IMU parameters (run.json
+    ``simulated``).
+    """
+    bias = _streams(seed)[1].normal(0.0, imu.bias_std, 3)  # imu_samples' first draw
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed), 0x52554E, 0x494D55]))
+    paths = []
+    for rel, (t, f) in zip(IMU_REST_FILES, rest_imu_pair(bias, rng, imu)):
+        p = Path(run_dir) / rel
+        p.parent.mkdir(parents=True, exist_ok=True)
+        with open(p, "w") as fh:
+            fh.write("# simulated recording at rest for tinyloc calibrate imu (docs/camera.md, step 3)\nt,fx,fy,fz\n")
+            for k in range(len(t)):
+                fh.write(f"{t[k]:.3f},{f[k, 0]:.5f},{f[k, 1]:.5f},{f[k, 2]:.5f}\n")
+        paths.append(p)
+    return paths
 
 
 def stderr_progress(label: str):

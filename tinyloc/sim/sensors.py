@@ -107,6 +107,41 @@ def imu_samples(traj: Trajectory, rng: np.random.Generator, p: ImuParams = ImuPa
     return t, f
 
 
+def rest_imu_pair(bias, rng: np.random.Generator, p: ImuParams = ImuParams(), *, seconds: float = 5.0,
+                  slope_max_deg: float = 3.0):
+    """Two accelerometer recordings at rest on one spot, the robot turned in place by half a turn between them.
+
+    What an operator records for ``tinyloc calibrate imu``: the robot stands on a slope (tilt up to
+    ``slope_max_deg``, any direction, drawn from ``rng``) at a random heading, then at that heading + 180
+    deg about the ground's normal. Each sample is gravity in the base frame plus the run's constant
+    ``bias`` (the same one :func:`imu_samples` drew), its random walk and white noise; no vibration
+    (the motors are still).
+
+    Returns
+    -------
+    list of (t (N,), f (N, 3))
+        The two recordings (s, m/s^2 FLU).
+    """
+    tilt = math.radians(float(rng.uniform(0.0, slope_max_deg)))
+    sdir = float(rng.uniform(-math.pi, math.pi))
+    yaw0 = float(rng.uniform(-math.pi, math.pi))
+    n = max(1, int(round(seconds * p.rate_hz)))
+    t = np.arange(n) / p.rate_hz
+    normal = np.array([math.sin(tilt) * math.cos(sdir), math.sin(tilt) * math.sin(sdir), math.cos(tilt)])
+    out = []
+    for yaw in (yaw0, yaw0 + math.pi):
+        # base frame: z along the ground's normal, x at heading yaw projected onto the slope
+        h = np.array([math.cos(yaw), math.sin(yaw), 0.0])
+        x = h - normal * (h @ normal)
+        x /= np.linalg.norm(x)
+        r = np.stack([x, np.cross(normal, x), normal], axis=1)  # base -> world
+        walk = np.cumsum(rng.normal(0.0, p.bias_walk * math.sqrt(1.0 / p.rate_hz), (n, 3)), axis=0)
+        f = (r.T @ np.array([0.0, 0.0, G0]))[None, :] + np.asarray(bias)[None, :] + walk \
+            + rng.normal(0.0, p.noise_std, (n, 3))
+        out.append((t, f))
+    return out
+
+
 def odometry_samples(traj: Trajectory, rng: np.random.Generator, p: OdometryParams = OdometryParams()):
     """(t, pose (N,3)) wheel-odometry pose (x, y, yaw) in its own frame, starting at (0, 0, 0)."""
     t = np.arange(traj.t[0], traj.t[-1], 1.0 / p.rate_hz)
