@@ -308,6 +308,7 @@ def test_demo_runs_the_bundled_drive(tmp_path):
     for k in ("recall_1m_3deg", "median_error_m", "gnss_median_error_m", "frame_ms_median", "frames"):
         assert k in s
     assert s["frames"] == 12
+    assert s["config"] == str(DATA / "loop.toml")  # the demo robot's calibrated accelerometer bias
 
 
 def test_prepare_fills_the_kernel_cache_and_exits(site_and_run):

@@ -120,3 +120,18 @@ def test_bundled_demo_data_is_complete_and_consistent():
     assert np.all((row >= 0) & (row < m.rows) & (col >= 0) & (col < m.cols))
     total = sum(f.stat().st_size for f in p["run"].rglob("*") if f.is_file()) + p["map"].stat().st_size
     assert total < 8e6  # small enough to ship in the wheel
+
+
+def test_bundled_demo_config_is_the_calibration_of_its_recordings(tmp_path):
+    """The demo robot's loop.toml holds what tinyloc calibrate imu makes of the run's recordings at rest."""
+    from tinyloc.cli.main import main
+    from tinyloc.runtime.config import load_config
+    from tinyloc.sim.demo import demo_paths
+    from tinyloc.sim.runs import IMU_REST_FILES
+
+    run = demo_paths()["run"]
+    out = tmp_path / "loop.toml"
+    assert main(["calibrate", "imu", *(str(run / rel) for rel in IMU_REST_FILES), "-o", str(out)]) == 0
+    want, got = load_config(out).loop, load_config(run.parent / "loop.toml").loop
+    for ax in "xyz":
+        assert abs(getattr(got, f"accel_bias_{ax}") - getattr(want, f"accel_bias_{ax}")) < 1e-4

@@ -35,7 +35,9 @@ def register(p):
     p.add_argument("--map", metavar="SITE.tlm", help="packed map (default: the bundled demo site)")
     p.add_argument("--to", action="append", default=[], metavar="URL",
                    help="pose sink (repeatable; default udp://127.0.0.1:5600; '-' for JSON lines on stdout)")
-    p.add_argument("--config", metavar="loop.toml", help="loop configuration file")
+    p.add_argument("--config", metavar="loop.toml",
+                   help="loop configuration file (default for the bundled drive: the demo robot's loop.toml, which "
+                        "holds its accelerometer bias from tinyloc calibrate imu)")
     p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE", help="override one value")
     p.add_argument("--realtime", action="store_true", help="play the drive at its recorded pace")
     p.add_argument("--max-frames", type=int, metavar="N", help="stop after N frames")
@@ -67,7 +69,10 @@ def main(args) -> int:
     from ..runtime.loop import Localizer
     from .cmd_run import Progress
 
-    cfg = load_config(args.config, args.set)
+    config = args.config
+    if config is None and not args.run and (DATA / "loop.toml").is_file():
+        config = DATA / "loop.toml"  # the demo robot's own settings: its calibrated accelerometer bias
+    cfg = load_config(config, args.set)
     if args.run and args.map:
         map_path, run_path = Path(args.map), Path(args.run)
     else:
@@ -78,6 +83,8 @@ def main(args) -> int:
     if not args.quiet:
         print(f"tinyloc demo: map {map_path}, run {run_path} ({len(src)} frames); starting the loop",
               file=sys.stderr)
+        if config is not None:
+            print(f"tinyloc demo: configuration {config}", file=sys.stderr)
     loc = Localizer.from_files(map_path, src.camera, cfg)
     if loc.kernels_compiled and not args.quiet:
         print(f"tinyloc demo: {loc.kernels_compiled} numba kernel(s) compiled at start-up (first run after an "
@@ -109,6 +116,7 @@ def main(args) -> int:
     s["dropped_late"] = run["dropped_late"]
     s["stopped_by"] = run["stopped_by"]
     s["map"], s["run"] = str(map_path), str(run_path)
+    s["config"] = None if config is None else str(config)
     loc.close()
     if args.json:
         print(json.dumps({k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in s.items()},

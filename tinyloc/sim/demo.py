@@ -62,12 +62,33 @@ def write_demo(data_dir, maps_dir=None, *, progress=None, run_seed: int = RUN_SE
     meta = json.loads(meta_path.read_text(encoding="utf-8"))
     meta["map"] = "../demo_park.tlm"
     meta_path.write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
+    write_demo_config(data_dir)
     if maps_dir is not None:
         maps_dir = Path(maps_dir)
         maps_dir.mkdir(parents=True, exist_ok=True)
         shutil.copyfile(data_dir / "demo_park.tlm", maps_dir / "demo_park.tlm")
         shutil.copyfile(gj, maps_dir / "demo_park.geojson")
     return {"site": site.name, "map_bytes": rep.file_bytes, **summary}
+
+
+def write_demo_config(data_dir) -> Path:
+    """The demo robot's loop.toml: its accelerometer bias, calibrated from the run's recordings at rest.
+
+    What an operator does once per robot (docs/camera.md, step 3: ``tinyloc calibrate imu``), done on
+    the simulated robot's two recordings (``calibration/imu_rest_*.csv``, written with the run).
+    """
+    from ..camera.imu_rest import imu_table, read_rest, two_position_bias
+    from ..tomlio import write_toml
+    from .runs import IMU_REST_FILES
+
+    data_dir = Path(data_dir)
+    a, b = (read_rest(p, imu_table(p)) for p in (data_dir / "run" / rel for rel in IMU_REST_FILES))
+    bias = two_position_bias(a, b).bias
+    out = data_dir / "loop.toml"
+    write_toml(out, {"loop": {f"accel_bias_{ax}": round(float(v), 5) for ax, v in zip("xyz", bias)}},
+               header="The demo robot's loop configuration: its accelerometer bias from\n"
+                      "tinyloc calibrate imu run/calibration/imu_rest_a.csv run/calibration/imu_rest_b.csv")
+    return out
 
 
 def main(argv=None) -> int:
