@@ -119,11 +119,19 @@ def segment_reference(bgr, p, hrow=None):
         crown = _sig((brightmix - p.crown_bright) / 0.05) * _sig((var - p.crown_var) / p.crown_var_w)
     else:
         tf = crown_features_reference(bgr, g01, s, v, exgr, u, sky)
-        pt = np.maximum(_sig(model.score(np.moveaxis(tf, 0, -1))), green)
+        if model.n_extra:  # the colour planes (and a context model's), tinyloc/perception/crown_features.py
+            from test_perception_crown import colour_features_reference, context_planes_reference
+            tf = np.concatenate([tf, colour_features_reference(small, sky, tf, lab8=True)])
         m = (~sky) & (u > p.crown_u_min)
-        pt = np.where(m, pt, 0.0)
-        num, den = box_mean(pt, p.crown_smooth), box_mean(m.astype(float), p.crown_smooth)
-        crown = np.where(den > 1e-6, num / np.where(den > 1e-6, den, 1.0), 0.0)
+
+        def crown_map(mdl, planes):
+            pt = np.where(m, np.maximum(_sig(mdl.score(np.moveaxis(planes, 0, -1))), green), 0.0)
+            num, den = box_mean(pt, p.crown_smooth), box_mean(m.astype(float), p.crown_smooth)
+            return np.where(den > 1e-6, num / np.where(den > 1e-6, den, 1.0), 0.0)
+
+        if model.first is not None:  # a context model: the first score's map, then its layout planes
+            tf = np.concatenate([tf, context_planes_reference(crown_map(model.first, tf))])
+        crown = crown_map(model, tf)
     here = below * (1 - gg) * (p.here_weight * on * (0.5 + 0.5 * smooth) + p.ground_floor)
     other = below * (1 - gg) * (1 - on) * smooth * p.other_weight
     sc = np.zeros((NUM_CLASSES, h, w))
@@ -171,7 +179,7 @@ def segment_reference(bgr, p, hrow=None):
         probs[TREE, gap] = 1.0
         labels[gap] = TREE
     # sky-gap model: remaining sky pixels near a crown whose gap score is high enough are tree
-    gaps = load_crown_model(p.gap_model, gaps=True) if model is not None else None
+    gaps = load_crown_model(p.gap_model, gaps=True, base=model.features) if model is not None else None
     if gaps is not None:
         istree = (labels == TREE).astype(float)
         f = np.concatenate([tf, np.stack([box_mean(istree, 9), box_mean(istree, 15), tex, crown])])

@@ -21,9 +21,9 @@ def _labels(img, **change):
 
 def test_look_crown_model_is_the_segmenter_with_that_model(tmp_path):
     img = cv2.imread(str(FRAME))
-    default, context = _labels(img), _labels(img, crown_model="context")
-    assert np.count_nonzero(default != context) > 1000  # the frame tells the two models apart
-    for name, want in (("context", context), ("default", default)):
+    first, context = _labels(img, crown_model="default"), _labels(img, crown_model="context")
+    assert np.count_nonzero(first != context) > 1000  # the frame tells the two models apart
+    for name, want in (("context", context), ("default", first)):
         out = tmp_path / name
         assert main(["look", str(FRAME), "--crown-model", name, "-o", str(out)]) == 0
         assert np.array_equal(cv2.imread(str(out / "labels.png"), cv2.IMREAD_UNCHANGED), want)

@@ -13,10 +13,11 @@ the "street" preset, tinyloc/perception/crown_default.json), its threshold and t
 (crown_gaps_default.json) were fitted and chosen on the even ids with simulated drives of sites 11 and
 12; the odd ids were never used for tuning or fitting, so their figures are reported separately.
 Floors are the measured IoU minus about 0.02 (docs/perception-real.md has the tables and commands).
-The issue's goal (road/sidewalk, building, vegetation and sky each >= 0.5) is met on the odd ids,
-vegetation only just (0.504); the opt-in colour models (crown_model / gap_model "colour", fitted the same
-way with Lab a*, b*, sky context and height products added) reach 0.536, the opt-in context models (a
-second score on the layout of the colour model's crown map) 0.568; both are checked on the odd ids too.
+The issue's goal (road/sidewalk, building, vegetation and sky each >= 0.5) is met on the odd ids with
+the `street` preset's context models (a second score on the layout of the colour model's crown map,
+the default since they measured best: vegetation 0.568); the earlier models are checked on the odd
+ids too: the colour models (Lab a*, b*, sky context and height products; 0.536) and the first texture
+models (crown_model / gap_model "default"; vegetation 0.504).
 """
 
 import dataclasses
@@ -35,10 +36,10 @@ SET_TO_OURS = np.array([SKY, BUILDING, POLE, ROAD, SIDEWALK, TREE, POLE, FENCE, 
 GROUPS = {"sky": [SKY], "building": [BUILDING], "road": [ROAD], "sidewalk": [SIDEWALK],
           "road+sidewalk": [ROAD, SIDEWALK], "vegetation": [TREE, GRASS], "pole": [POLE], "fence": [FENCE]}
 # Measured on this folder with the "street" preset (see docs/perception.md), minus a margin.
-FLOORS_ALL = {"sky": 0.78, "building": 0.58, "road": 0.73, "road+sidewalk": 0.82, "vegetation": 0.49}
-FLOORS_UNSEEN = {"sky": 0.78, "building": 0.57, "road": 0.74, "road+sidewalk": 0.82, "vegetation": 0.48}
+FLOORS_ALL = {"sky": 0.78, "building": 0.60, "road": 0.73, "road+sidewalk": 0.82, "vegetation": 0.55}
+FLOORS_UNSEEN = {"sky": 0.78, "building": 0.59, "road": 0.74, "road+sidewalk": 0.82, "vegetation": 0.55}
+FLOORS_FIRST_UNSEEN = {"sky": 0.78, "building": 0.57, "road": 0.74, "road+sidewalk": 0.82, "vegetation": 0.48}
 FLOORS_COLOUR_UNSEEN = {"sky": 0.78, "building": 0.57, "road": 0.74, "road+sidewalk": 0.82, "vegetation": 0.51}
-FLOORS_CONTEXT_UNSEEN = {"sky": 0.78, "building": 0.59, "road": 0.74, "road+sidewalk": 0.82, "vegetation": 0.55}
 
 
 def street_counts(root, ids, params):
@@ -98,10 +99,10 @@ def test_colour_models_on_images_not_used_for_tuning():
         assert iou[k] >= floor, (k, iou[k])
 
 
-def test_context_models_on_images_not_used_for_tuning():
+def test_first_models_on_images_not_used_for_tuning():
     root = require_street_seg()
-    p = dataclasses.replace(preset("street"), crown_model="context", gap_model="context")
+    p = dataclasses.replace(preset("street"), crown_model="default", gap_model="default")
     iou = iou_of(street_counts(root, list(range(1, 184, 2)), p))
-    print("IoU (odd ids, context models):", {k: round(v, 3) for k, v in iou.items()})
-    for k, floor in FLOORS_CONTEXT_UNSEEN.items():
+    print("IoU (odd ids, first texture models):", {k: round(v, 3) for k, v in iou.items()})
+    for k, floor in FLOORS_FIRST_UNSEEN.items():
         assert iou[k] >= floor, (k, iou[k])

@@ -99,7 +99,7 @@ class SegmentParams:
     sky_ref_share: float = 0.5  # ... when this share of the band is smooth and above the horizon,
     sky_ref_warm: float = 4.0  # ... its a* and b* are below this (grey or bluish),
     sky_ref_below: float = 0.2  # ... and fewer than this share of columns have that colour just below the horizon
-    crown_model: str = "default"  # linear crown score (crown_model.py): "default", "colour", a path, or "" (rule)
+    crown_model: str = "context"  # linear crown score (crown_model.py): "context", "default", "colour", a path, or "" (rule)
     crown_u_min: float = -0.05  # the crown score applies above this height (image heights) rel. to the horizon
     crown_threshold: float = 0.7  # above the horizon, tree where the smoothed crown probability exceeds this
     crown_smooth: int = 9  # window of the masked mean of the crown probability (px)
