@@ -28,10 +28,12 @@ Two further rules exist but are off by default because they measured worse than 
 (docs/perception.md): **poles** from thin vertical lines crossing the horizon (``pole_contrast``,
 ``pole_run``) and **fences** from building runs too low for a house (``fence_top``).
 
-Known limits (measured, see docs/perception.md): bare trees and buildings are still confused in part
-(real frames, held out: building IoU 0.58, vegetation 0.46); overcast grey skies darker than
-``sky_v`` are missed; road and sidewalk are told apart only by colour contrast to the robot's own
-surface; with the defaults poles, fences, vehicles and people are not output.
+Known limits (measured, see docs/perception.md and docs/perception-real.md): bare trees and buildings
+are still confused in part (real frames, held out, ``street`` with the context crown models: building
+IoU 0.61, vegetation 0.57); overcast grey skies darker than ``sky_v`` are missed unless
+``sky_ref_dist`` is on; road and sidewalk are told apart only by colour contrast to the robot's own
+surface (``surface_auto`` picks that surface per frame, and shaded paving can pass for asphalt); with
+the defaults poles, vehicles and people are not output.
 """
 
 from __future__ import annotations
