@@ -69,51 +69,9 @@ def rotate_into(feat, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, out):
     (du along map rows, i.e. south; dv along map columns, i.e. east). Each canvas row
     samples only the columns whose body point can fall inside the grid (the rest is 0).
     """
-    F, h, w = feat.shape
-    SU, SV = out.shape[1], out.shape[2]
-    for u in range(SU):
-        dy = -(u + lo_u) * 1.0  # north offset (cells)
-        rr0 = origin_row - (-sin_t * (lo_v * 1.0) + cos_t * dy) - 0.5
-        cc0 = origin_col + (cos_t * (lo_v * 1.0) + sin_t * dy) - 0.5
-        v0, v1 = _row_span(rr0, cc0, sin_t, cos_t, h, w, SV)
-        for f in range(F):
-            for v in range(0, min(v0, SV)):
-                out[f, u, v] = 0.0
-            for v in range(max(v1 + 1, 0), SV):
-                out[f, u, v] = 0.0
-        for v in range(v0, v1 + 1):
-            dx = (v + lo_v) * 1.0  # east offset (cells)
-            xf = cos_t * dx + sin_t * dy
-            yl = -sin_t * dx + cos_t * dy
-            rr = origin_row - yl - 0.5
-            cc = origin_col + xf - 0.5
-            if rr <= -1.0 or cc <= -1.0 or rr >= h or cc >= w:
-                for f in range(F):
-                    out[f, u, v] = 0.0
-                continue
-            r0 = int(math.floor(rr))
-            c0 = int(math.floor(cc))
-            fr = rr - r0
-            fc = cc - c0
-            w00 = (1.0 - fr) * (1.0 - fc)
-            w01 = (1.0 - fr) * fc
-            w10 = fr * (1.0 - fc)
-            w11 = fr * fc
-            ok_r0 = r0 >= 0
-            ok_r1 = r0 + 1 < h
-            ok_c0 = c0 >= 0
-            ok_c1 = c0 + 1 < w
-            for f in range(F):
-                acc = 0.0
-                if ok_r0 and ok_c0:
-                    acc += w00 * feat[f, r0, c0]
-                if ok_r0 and ok_c1:
-                    acc += w01 * feat[f, r0, c0 + 1]
-                if ok_r1 and ok_c0:
-                    acc += w10 * feat[f, r0 + 1, c0]
-                if ok_r1 and ok_c1:
-                    acc += w11 * feat[f, r0 + 1, c0 + 1]
-                out[f, u, v] = acc
+    # the support rectangle of a whole grid: one sampling loop serves both (rotate_support)
+    rotate_support(feat, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, 0, feat.shape[1] - 1, 0,
+                   feat.shape[2] - 1, out)
 
 
 @njit(**JIT)
