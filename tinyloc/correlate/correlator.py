@@ -293,6 +293,24 @@ def template_bounds(bev_shape, origin_row, origin_col, yaw_rad):
     return (math.floor(min(du)), math.ceil(max(du)), math.floor(min(dv)), math.ceil(max(dv)))
 
 
+def _heading_boxes(bev_shape, origin_row, origin_col, A: int, n_head: int):
+    """Offset boxes of the rotated grid per heading and the sizes every tracking patch fits in.
+
+    Returns ``(bounds, UU, UV, SU, SV)``: ``bounds`` (A, 4) int64 rows lo_u, hi_u, lo_v, hi_v
+    (``template_bounds``) per heading; UU, UV the largest union box (rows, columns) over any
+    ``n_head`` consecutive headings of the circle (the patch of any call fits in it); SU, SV the
+    largest single-heading box.
+    """
+    b = np.array([template_bounds(bev_shape, origin_row, origin_col, 2.0 * math.pi * a / A)
+                  for a in range(A)], np.int64)
+    UU = UV = 0
+    for a0 in range(A):
+        idx = (a0 + np.arange(n_head)) % A
+        UU = max(UU, int(b[idx, 1].max() - b[idx, 0].min()) + 1)
+        UV = max(UV, int(b[idx, 3].max() - b[idx, 2].min()) + 1)
+    return b, UU, UV, int((b[:, 1] - b[:, 0]).max()) + 1, int((b[:, 3] - b[:, 2]).max()) + 1
+
+
 def template_reach(bev_shape, origin_row, origin_col) -> int:
     """Largest |offset| (cells, per axis) any rotation of the grid can touch."""
     h, w = bev_shape
@@ -454,19 +472,10 @@ class _PatchEngine:
         self.origin = (float(origin_row), float(origin_col))
         self.bev_shape = bev_shape
         self.reach = template_reach(bev_shape, origin_row, origin_col)
-        b = np.array([template_bounds(bev_shape, origin_row, origin_col, 2.0 * math.pi * a / A)
-                      for a in range(A)], np.int64)
+        b, UU, UV, SU, SV = _heading_boxes(bev_shape, origin_row, origin_col, A, n_head)
         self.bounds = b  # (A, 4): lo_u, hi_u, lo_v, hi_v per heading
         self.cos = np.cos(2.0 * math.pi * np.arange(A) / A)
         self.sin = np.sin(2.0 * math.pi * np.arange(A) / A)
-        # Largest union box over any n_head consecutive headings: the patch of any call fits in it.
-        UU = UV = 0
-        for a0 in range(A):
-            idx = (a0 + np.arange(n_head)) % A
-            UU = max(UU, int(b[idx, 1].max() - b[idx, 0].min()) + 1)
-            UV = max(UV, int(b[idx, 3].max() - b[idx, 2].min()) + 1)
-        SU = int((b[:, 1] - b[:, 0]).max()) + 1
-        SV = int((b[:, 3] - b[:, 2]).max()) + 1
         self.Mr, self.Mc = Ho + UU - 1, Ho + UV - 1
         self.Nr = _good_size(self.Mr)
         self.Nc = _good_size(self.Mc)
@@ -564,16 +573,9 @@ class _SupportPatchEngine:
         self.F, self.Ho, self.n_head, self.A = F, Ho, n_head, A
         self.origin = (float(origin_row), float(origin_col))
         self.bev_shape = bev_shape
-        b = np.array([template_bounds(bev_shape, origin_row, origin_col, 2.0 * math.pi * a / A)
-                      for a in range(A)], np.int64)
+        _, UU, UV, self.SU, _ = _heading_boxes(bev_shape, origin_row, origin_col, A, n_head)
         self.cos = np.cos(2.0 * math.pi * np.arange(A) / A)
         self.sin = np.sin(2.0 * math.pi * np.arange(A) / A)
-        UU = UV = 0
-        for a0 in range(A):
-            idx = (a0 + np.arange(n_head)) % A
-            UU = max(UU, int(b[idx, 1].max() - b[idx, 0].min()) + 1)
-            UV = max(UV, int(b[idx, 3].max() - b[idx, 2].min()) + 1)
-        self.SU = int((b[:, 1] - b[:, 0]).max()) + 1
         self.Nr = _fast_size(Ho + UU - 1)  # the largest sizes (the whole grid in view)
         self.Nc = _fast_size(Ho + UV - 1)
         self.N = max(self.Nr, self.Nc)
