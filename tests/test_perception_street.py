@@ -90,19 +90,12 @@ def test_street_iou_images_not_used_for_tuning(counts):
         assert iou[k] >= floor, (k, iou[k])
 
 
-def test_colour_models_on_images_not_used_for_tuning():
+@pytest.mark.parametrize("model,floors", [("colour", FLOORS_COLOUR_UNSEEN), ("default", FLOORS_FIRST_UNSEEN)],
+                         ids=["colour models", "first texture models"])
+def test_earlier_models_on_images_not_used_for_tuning(model, floors):
     root = require_street_seg()
-    p = dataclasses.replace(preset("street"), crown_model="colour", gap_model="colour")
+    p = dataclasses.replace(preset("street"), crown_model=model, gap_model=model)
     iou = iou_of(street_counts(root, list(range(1, 184, 2)), p))
-    print("IoU (odd ids, colour models):", {k: round(v, 3) for k, v in iou.items()})
-    for k, floor in FLOORS_COLOUR_UNSEEN.items():
-        assert iou[k] >= floor, (k, iou[k])
-
-
-def test_first_models_on_images_not_used_for_tuning():
-    root = require_street_seg()
-    p = dataclasses.replace(preset("street"), crown_model="default", gap_model="default")
-    iou = iou_of(street_counts(root, list(range(1, 184, 2)), p))
-    print("IoU (odd ids, first texture models):", {k: round(v, 3) for k, v in iou.items()})
-    for k, floor in FLOORS_FIRST_UNSEEN.items():
+    print(f"IoU (odd ids, crown/gap models {model!r}):", {k: round(v, 3) for k, v in iou.items()})
+    for k, floor in floors.items():
         assert iou[k] >= floor, (k, iou[k])
