@@ -76,9 +76,11 @@ class PlantedMatcher:
 def _params(**kw):
     # planted frames are independent and their log-likelihoods calibrated (no tempering), and the
     # planted evidence has no model error (no covariance floor): this checks the posterior itself
+    # (cov_scale 1: the default scale calibrates the tempered real correlator's posterior, not this one)
     kw.setdefault("likelihood_weight", 1.0)
     kw.setdefault("model_sigma_m", 0.0)
     kw.setdefault("model_sigma_deg", 0.0)
+    kw.setdefault("cov_scale", 1.0)
     return TrackParams(window_cells=48, headings=64, **kw)
 
 

@@ -13,7 +13,7 @@ The same object runs live (:mod:`tinyloc.runtime.runner`) and offline (replay dr
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 import math
 import time
 
@@ -262,7 +262,7 @@ class Localizer:
         self.perceiver = perceiver if perceiver is not None else default_perceiver(camera, self.cfg, self.geom)
         self.matcher = (matcher if matcher is not None else
                         default_matcher(packed_map, self.cfg, self.geom, getattr(self.perceiver, "grid", None)))
-        self.tracker = Tracker(self.geom, self.cfg.track)
+        self.tracker = Tracker(self.geom, self._track_params())
         self.sensors = SensorState(self.frame_enu, None)
         self.frames = 0
         self.health_counters = {"frames": 0, "unusable_frames": 0, "global_searches": 0, "overruns": 0,
@@ -274,6 +274,14 @@ class Localizer:
         if self.cfg.loop.warmup:
             self.warmup()
         self.kernels_compiled, self.kernels_cached = kernel_cache_stats()
+
+    def _track_params(self):
+        """The tracker's parameters; an uncalibrated accelerometer (every loop.accel_bias_* 0) widens the
+        covariance floor to ``track.model_sigma_uncal_m`` (docs/tracking.md, "Covariance calibration")."""
+        lp, tp = self.cfg.loop, self.cfg.track
+        if lp.accel_bias_x == 0.0 and lp.accel_bias_y == 0.0 and lp.accel_bias_z == 0.0:
+            return replace(tp, model_sigma_m=max(tp.model_sigma_m, tp.model_sigma_uncal_m))
+        return tp
 
     @classmethod
     def from_files(cls, map_path, camera, config: LoopConfig | None = None, **kw) -> "Localizer":

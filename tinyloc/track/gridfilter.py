@@ -191,7 +191,17 @@ class TrackParams:
     model_sigma_m, model_sigma_deg : float
         Error the likelihood cannot show (map survey errors of open vector map data, calibration,
         the ground not being flat), added to the reported covariance as an independent term after
-        the quality decision: the output never claims better than this [0.5, 0.5].
+        the quality decision: the output never claims better than this [0.1, 0.5].
+    model_sigma_uncal_m : float
+        ``model_sigma_m`` when the accelerometer bias is not calibrated (the loop uses it when every
+        ``loop.accel_bias_*`` is 0): a bias of 0.04 m/s^2 tilts the levelling by 0.23 deg, which
+        moves ground seen at 10 m by about 0.5 m from a 0.8 m camera, and the likelihood cannot
+        show it [0.5].
+    cov_scale : float
+        Multiplier of the posterior's own covariance in the output (before the model-error and
+        fallback terms). The grid posterior is broader than the errors it holds (tempering, 0.5 m
+        cells, diffusion), so an honest 95 % ellipse needs it scaled; chosen on generated drives
+        (docs/tracking.md, "Covariance calibration") [0.5].
     fallback_weight : float
         While not tracking (searching, degraded), the reported covariance also holds the satellite
         fix of the frame as a competing pose with this weight: ``w (S + d d^T)`` with S the fix's
@@ -238,8 +248,10 @@ class TrackParams:
     course_weight: float = 0.3
     course_veto_deg: float = 40.0
     course_veto_frames: int = 5
-    model_sigma_m: float = 0.5
+    model_sigma_m: float = 0.1
     model_sigma_deg: float = 0.5
+    model_sigma_uncal_m: float = 0.5
+    cov_scale: float = 0.5
     fallback_weight: float = 0.25
     gnss: GnssParams = field(default_factory=GnssParams)
 
@@ -250,6 +262,8 @@ class TrackParams:
             raise InputError(f"track.headings = {self.headings}: must be in 4..4096")
         if not 0.0 <= self.floor < 0.5:
             raise InputError(f"track.floor = {self.floor}: must be in [0, 0.5)")
+        if not 0.0 < self.cov_scale <= 10.0:
+            raise InputError(f"track.cov_scale = {self.cov_scale}: must be in (0, 10]")
         if not 0.0 <= self.fallback_weight <= 1.0:
             raise InputError(f"track.fallback_weight = {self.fallback_weight}: must be in [0, 1]")
         if self.outside_fill not in ("min", "mean"):
@@ -1111,7 +1125,7 @@ class Tracker:
         if est is None:
             nan = math.nan
             return TrackOutput(t, nan, nan, nan, np.full((3, 3), np.nan), quality, [], status, surprise, was_global)
-        cov = est.cov.copy()
+        cov = est.cov * self.p.cov_scale
         cov[0, 0] += self.p.model_sigma_m ** 2
         cov[1, 1] += self.p.model_sigma_m ** 2
         cov[2, 2] += math.radians(self.p.model_sigma_deg) ** 2
