@@ -81,3 +81,11 @@ def test_any_heading_and_a_run_folder(tmp_path, capsys, yaw):
     assert main(["calibrate", "imu", str(ra), str(rb), "--json"]) == 0
     rep = json.loads(capsys.readouterr().out)
     assert np.max(np.abs(np.array(rep["bias_mps2"]) - BIAS)) < 0.01
+
+
+def test_a_recording_named_like_another_run_file_is_read_by_its_columns(tmp_path, capsys):
+    # gnss.csv in a run folder has latitude checks; a recording of accelerometer rows must not get them
+    a = _rest_csv(tmp_path / "gnss.csv", 10.0, seed=1)
+    b = _rest_csv(tmp_path / "truth.csv", 190.0, seed=2)
+    assert main(["calibrate", "imu", str(a), str(b), "--json"]) == 0
+    assert np.max(np.abs(np.array(json.loads(capsys.readouterr().out)["bias_mps2"]) - BIAS)) < 0.01

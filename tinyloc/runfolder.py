@@ -164,7 +164,8 @@ def _is_last(rows, k: int, ends_nl: bool) -> bool:
     return k == len(rows) - 1 and not ends_nl
 
 
-def _read_table(rd: _Reader, name: str, need: tuple[str, ...], strict_increase: bool) -> _Table | None:
+def _read_table(rd: _Reader, name: str, need: tuple[str, ...], strict_increase: bool,
+                kind: str | None = None) -> _Table | None:
     got = _read_lines(rd, f"{name}.csv")
     if got is None:
         return None
@@ -206,7 +207,7 @@ def _read_table(rd: _Reader, name: str, need: tuple[str, ...], strict_increase: 
         if t < last_t or (strict_increase and t == last_t):
             rd.fault(where, f"time {t!r} s goes backwards (previous row {last_t!r} s); timestamps must be monotonic")
             continue
-        bad = _range_fault(name, vals)
+        bad = _range_fault(name if kind is None else kind, vals)
         if bad:
             rd.fault(where, bad)
             continue
@@ -239,7 +240,9 @@ def read_sensor_csv(path, columns: tuple[str, ...], *, cls: type[Exception] = Ru
     if not p.is_file():
         raise cls(f"{p}: no such file")
     try:
-        table = _read_table(_Reader(p.parent, strict=True), p.stem, tuple(columns), strict_increase=False)
+        # kind "sensor": the table's own columns decide, not a file name that happens to be gnss.csv
+        table = _read_table(_Reader(p.parent, strict=True), p.stem, tuple(columns), strict_increase=False,
+                            kind="sensor")
     except RunFolderError as e:
         raise cls(str(e)) from None
     return table.data
