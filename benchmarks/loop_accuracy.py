@@ -131,7 +131,7 @@ def _imu_cal(run: Path) -> list[str]:
     """Loop overrides with the accelerometer bias from the run's recordings at rest (made if missing)."""
     from dataclasses import fields
 
-    from tinyloc.camera.imu_rest import imu_table, read_rest, two_position_bias
+    from tinyloc.camera.imu_rest import calibrate_from_files
     from tinyloc.sim.runs import IMU_REST_FILES, write_imu_rest
     from tinyloc.sim.sensors import ImuParams
 
@@ -140,8 +140,7 @@ def _imu_cal(run: Path) -> list[str]:
         sim = json.loads((run / "run.json").read_text())["simulated"]
         names = {f.name for f in fields(ImuParams)}
         write_imu_rest(run, int(sim["seed"]), ImuParams(**{k: v for k, v in sim["imu"].items() if k in names}))
-    a, b = (read_rest(p, imu_table(p)) for p in paths)
-    bias = two_position_bias(a, b).bias
+    bias = calibrate_from_files(*paths).bias
     return [f"loop.accel_bias_{ax}={float(v)!r}" for ax, v in zip("xyz", bias)]
 
 

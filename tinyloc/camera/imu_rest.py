@@ -95,3 +95,10 @@ def imu_table(path) -> np.ndarray:
     if p.is_dir():
         p = p / "imu.csv"
     return read_sensor_csv(p, ("t", "fx", "fy", "fz"), cls=CalibrationError)
+
+
+def calibrate_from_files(first, second, *, g_mps2: float = G0, p: RestParams = RestParams()) -> ImuBias:
+    """The two-position calibration from two recordings (CSV files or run folders: :func:`imu_table`)."""
+    a = read_rest(first, imu_table(first), p)
+    b = read_rest(second, imu_table(second), p)
+    return two_position_bias(a, b, g_mps2=g_mps2, p=p)

@@ -232,7 +232,7 @@ def _mount(args) -> int:
 
 
 def _imu(args) -> int:
-    from ..camera.imu_rest import imu_table, read_rest, two_position_bias
+    from ..camera.imu_rest import calibrate_from_files
     from ..errors import CalibrationError
     from ..perception.gravity import G0
     from ..tomlio import read_toml, write_toml
@@ -241,9 +241,8 @@ def _imu(args) -> int:
     if not 9.7 <= g <= 9.9:
         raise CalibrationError(f"--g {g}: expected local gravity in m/s^2, within 9.7 .. 9.9 (about 9.78 at the "
                                "equator to 9.83 at the poles)")
-    a = read_rest(args.first, imu_table(args.first))
-    b = read_rest(args.second, imu_table(args.second))
-    res = two_position_bias(a, b, g_mps2=g)
+    res = calibrate_from_files(args.first, args.second, g_mps2=g)
+    a, b = res.first, res.second
     bx, by, bz = (float(v) for v in res.bias)
     if args.out:
         out = Path(args.out)

@@ -77,13 +77,12 @@ def write_demo_config(data_dir) -> Path:
     What an operator does once per robot (docs/camera.md, step 3: ``tinyloc calibrate imu``), done on
     the simulated robot's two recordings (``calibration/imu_rest_*.csv``, written with the run).
     """
-    from ..camera.imu_rest import imu_table, read_rest, two_position_bias
+    from ..camera.imu_rest import calibrate_from_files
     from ..tomlio import write_toml
     from .runs import IMU_REST_FILES
 
     data_dir = Path(data_dir)
-    a, b = (read_rest(p, imu_table(p)) for p in (data_dir / "run" / rel for rel in IMU_REST_FILES))
-    bias = two_position_bias(a, b).bias
+    bias = calibrate_from_files(*(data_dir / "run" / rel for rel in IMU_REST_FILES)).bias
     out = data_dir / "loop.toml"
     write_toml(out, {"loop": {f"accel_bias_{ax}": round(float(v), 5) for ax, v in zip("xyz", bias)}},
                header="The demo robot's loop configuration: its accelerometer bias from\n"
