@@ -33,6 +33,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from tinyloc.runtime.config import load_config  # noqa: E402
@@ -181,10 +183,19 @@ def main(argv=None) -> int:
             rows.append(s)
             print(f"seed {seed} {mode:<9} recall {s['recall_1m_3deg']:.2f}  median {s['median_error_m']:.2f} m "
                   f"{s['median_heading_error_deg']:.2f} deg  gnss {s['gnss_median_error_m']:.2f} m "
-                  f"({s['gnss_ratio']:.1f}x)  in95 {s['inside_95_ellipse']:.2f}  wrong-tracking {s['tracking_wrong']:.2f}  "
+                  f"({s['gnss_ratio']:.1f}x)  in95 {s['inside_95_ellipse']:.2f} (d2 {s['mahalanobis_d2_median']:.2f})  wrong-tracking {s['tracking_wrong']:.2f}  "
                   f"{s['frame_ms_median']:.0f} ms  "
                   f"[{s['frames_counted']}/{s['frames']} frames counted, {s['distance_m']:.0f} m]",
                   file=sys.stderr, flush=True)
+    for mode in a.modes:
+        ms = [s for s in rows if s["mode"] == mode]
+        if ms:
+            n95 = sum(s.get("inside_95_tested", 0) for s in ms)
+            in95 = sum(s["inside_95_ellipse"] * s.get("inside_95_tested", 0) for s in ms
+                       if s.get("inside_95_tested")) / n95 if n95 else math.nan
+            print(f"all {mode:<9} mean recall {np.mean([s['recall_1m_3deg'] for s in ms]):.3f}  "
+                  f"mean median {np.mean([s['median_error_m'] for s in ms]):.3f} m  "
+                  f"pooled in95 {in95:.3f} over {n95} frames  ({len(ms)} drives)", file=sys.stderr, flush=True)
     if a.json:
         print(json.dumps(rows, default=lambda v: None))
         return 0

@@ -10,7 +10,9 @@ Definitions (the same as docs/replay.md where they overlap):
 - *gnss_median_error_m*: distance from the latest satellite fix at each counted frame to the truth.
 - *inside_95_ellipse*: share of counted frames with an estimate whose position error lies inside
   the reported 95 % ellipse (Mahalanobis distance squared <= 5.991, the chi-square 95 % value for
-  2 degrees of freedom from standard tables).
+  2 degrees of freedom from standard tables); *inside_95_tested* is how many frames that share is
+  over (to pool drives), *mahalanobis_d2_median* the median of those squared distances (about 1.39
+  for an honest 2-D Gaussian covariance: the chi-square median for 2 degrees of freedom, 2 ln 2).
 """
 
 from __future__ import annotations
@@ -41,14 +43,15 @@ def summarize(poses, truth: np.ndarray, gnss_xy: np.ndarray | None = None, *, sk
     herr = np.degrees(np.abs(wrap_angle(est[:, 2] - truth[:, 2]))) if n else np.zeros(0)
     hit = counted & has & (perr <= 1.0) & (herr <= 3.0)
     m = counted & has
-    inside = []
+    d2 = []
     for i in np.flatnonzero(m):
         c = np.asarray(poses[i].cov, dtype=np.float64)[:2, :2]
         dd = np.array([truth[i, 0] - est[i, 0], truth[i, 1] - est[i, 1]])
         try:
-            inside.append(float(dd @ np.linalg.solve(c, dd)) <= CHI2_95_2DOF)
+            d2.append(float(dd @ np.linalg.solve(c, dd)))
         except np.linalg.LinAlgError:
-            inside.append(False)
+            d2.append(math.inf)  # a singular covariance claims certainty: counted outside
+    inside = [v <= CHI2_95_2DOF for v in d2]
     out = {
         "frames": n,
         "frames_counted": int(counted.sum()),
@@ -58,6 +61,8 @@ def summarize(poses, truth: np.ndarray, gnss_xy: np.ndarray | None = None, *, sk
         "median_heading_error_deg": float(np.median(herr[m])) if m.any() else math.nan,
         "p90_error_m": float(np.percentile(perr[m], 90)) if m.any() else math.nan,
         "inside_95_ellipse": float(np.mean(inside)) if inside else math.nan,
+        "inside_95_tested": len(inside),
+        "mahalanobis_d2_median": float(np.median(d2)) if d2 else math.nan,
         "frame_ms_median": float(np.median([p.frame_ms for p in poses])) if n else math.nan,
         "frame_ms_p99": float(np.percentile([p.frame_ms for p in poses], 99)) if n else math.nan,
         "quality_share": {q: float(np.mean([p.quality == q for p in poses])) if n else 0.0
