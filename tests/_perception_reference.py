@@ -110,7 +110,9 @@ def segment_reference(bgr, p, hrow=None):
         if other.sum() > 0 and other.sum() >= p.surface_share * w * h:
             srt = np.sort(lab[..., 0][other])
             med = srt[(len(srt) + 1) // 2 - 1]
-            if med >= ref[0] + p.surface_auto:
+            # asphalt is the darkest paving: clearly darker paving in view means the patch is not asphalt
+            dark_ok = p.surface_dark <= 0 or np.count_nonzero(srt <= ref[0] - p.surface_auto) < p.surface_dark * len(srt)
+            if med >= ref[0] + p.surface_auto and dark_ok:
                 robot_on = "road"
             elif med <= ref[0] - p.surface_auto:
                 robot_on = "sidewalk"

@@ -269,3 +269,113 @@ def test_tilted_lookup_equals_remounted_camera():
     ok = np.isfinite(ref.lut_u)
     assert ok.sum() > 300
     assert np.nanmax(np.abs(pu[ok] - ref.lut_u[ok])) < 1e-6 and np.nanmax(np.abs(pv[ok] - ref.lut_v[ok])) < 1e-6
+
+
+def _row_heights(cam, proj, foot_row=80.5, col=80.0):
+    """Height above the ground (m) of every pixel row of column ``col`` where it meets the vertical plane at
+    the foot's horizontal range (NumPy, from the camera model: independent of the kernel's arithmetic)."""
+    gp = proj.pixel_to_ground([[col, foot_row]])[0]
+    cam_xyz = cam.mount.base_from_camera()[1]
+    dh = np.hypot(*(gp - cam_xyz[:2]))
+    _, d = cam.pixel_rays_base(np.stack([np.full(cam.height, col), np.arange(cam.height, dtype=float)], 1))
+    return cam_xyz[2] + d[:, 2] * dh / np.hypot(d[:, 0], d[:, 1])
+
+
+def _tall_wall(cam, foot):
+    """Labels/probs of a road with a wall from the image's top down to row ``foot``."""
+    h, w = cam.height, cam.width
+    labels = np.full((h, w), ROAD, np.uint8)
+    labels[:foot + 1] = BUILDING
+    probs = np.zeros((NUM_CLASSES, h, w), np.float32)
+    probs[BUILDING][labels == BUILDING] = 1.0
+    probs[ROAD][labels == ROAD] = 1.0
+    return probs, labels
+
+
+def _stack_lab(cam, z, base_lab, upper_lab, n_upper_like_base=0, foot=72):
+    """Lab raster: rows below 1.5 m (at the foot's range) ``base_lab``, rows above ``upper_lab``, except
+    the ``n_upper_like_base`` lowest rows at least 3 m up, which get ``base_lab`` again."""
+    lab = np.zeros((cam.height, cam.width, 3), np.uint8)
+    lab[:] = upper_lab
+    lab[z < 1.5] = base_lab
+    up = np.flatnonzero((z >= 3.0) & (np.arange(cam.height) <= foot))[::-1]  # rows from low to high
+    lab[up[:n_upper_like_base]] = base_lab
+    return lab, len(up)
+
+
+def test_stacked_object_in_front_of_facade():
+    """A tall building run whose base (0.2 .. 1 m up) has a colour that its part above 3 m does not share
+    is a car or garden wall in front of the facade: placed as the low class (a fence by default), the
+    facade not at all. Hand-made Lab rasters; the share and the colour distance are tested at their
+    limits. Without colour (an external label image) the check is skipped."""
+    cam = _cam(mount=Mount(0.8, 0.0))  # level camera: a wall 8 m away fills the column from 0 to 4.7 m
+    p = OverheadParams(building_depth_m=0.0, stack_share=0.2, stack_dist=20.0)
+    proj = OverheadProjector(cam, p)
+    hrow = proj.horizon(np.eye(3))
+    z = _row_heights(cam, proj, foot_row=72.5)
+    assert z[72] < 0.2 and np.count_nonzero((z >= 0.2) & (z <= 1.0)) >= 2 and z[0] > 3.0
+    probs, labels = _tall_wall(cam, 72)
+    grid = p.new_grid()
+    base, facade = (100, 128, 128), (100, 150, 128)  # distance 22 > 20
+    lab, nu = _stack_lab(cam, z, base, facade)
+    assert nu >= 3
+    assert proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False, lab=lab) == cam.width
+    assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[FENCE].sum() > 0
+    # one colour throughout: a facade
+    lab1, _ = _stack_lab(cam, z, base, base)
+    proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False, lab=lab1)
+    assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[FENCE].sum() == 0
+    # colour distance at the limit (0.5 |dL|): 19 counts as the base's colour, 21 does not
+    for dl, stacked in ((38, False), (42, True)):
+        labd, _ = _stack_lab(cam, z, base, (100 + dl, 128, 128))
+        proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False, lab=labd)
+        assert (grid.evidence[BUILDING].sum() == 0) == stacked, dl
+    # share at the limit: the base's colour on ceil(0.2 nu) upper pixels keeps the facade, one fewer does not
+    m = int(np.ceil(0.2 * nu))
+    for n_like, stacked in ((m, False), (m - 1, True)):
+        labs, _ = _stack_lab(cam, z, base, facade, n_like)
+        proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False, lab=labs)
+        assert (grid.evidence[BUILDING].sum() == 0) == stacked, (n_like, nu)
+    # no colour (label images): the facade is placed
+    proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert grid.evidence[BUILDING].sum() > 0
+    # off by default
+    assert OverheadParams().stack_share == 0.0
+    OverheadProjector(cam, OverheadParams(building_depth_m=0.0)).project(probs, labels, np.eye(3), hrow, grid,
+                                                                        tilted=False, lab=lab)
+    assert grid.evidence[BUILDING].sum() > 0
+
+
+def test_trunk_under_a_crown():
+    """A tall building run 4 columns wide (about 0.26 m at 8 m) topped by tree pixels is a trunk when
+    ``trunk_width_m`` is on; the same run topped by sky, or a wide run under a crown, stays building."""
+    cam = _cam(mount=Mount(0.8, 0.0))
+    p = OverheadParams(building_depth_m=0.0, trunk_width_m=1.0)
+    proj = OverheadProjector(cam, p)
+    hrow = proj.horizon(np.eye(3))
+    assert _row_heights(cam, proj, foot_row=72.5)[10] > 3.0  # the run (rows 10 .. 72) is tall enough
+    grid = p.new_grid()
+
+    def scene(cols, above):
+        probs, labels = _tall_wall(cam, 72)
+        keep = np.zeros(cam.width, bool)
+        keep[cols] = True
+        labels[:73, ~keep] = ROAD  # only ``cols`` hold the run (the rest: far road, which nothing stands on)
+        labels[:10, keep] = above
+        probs[:] = 0.0
+        for k in (BUILDING, ROAD, TREE, 9):
+            probs[k][labels == k] = 1.0
+        return probs, labels
+
+    probs, labels = scene(slice(78, 82), TREE)
+    assert proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False) == 4
+    assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[TREE].sum() > 0
+    OverheadProjector(cam, OverheadParams(building_depth_m=0.0)).project(probs, labels, np.eye(3), hrow, grid,
+                                                                        tilted=False)
+    assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
+    probs, labels = scene(slice(78, 82), 9)  # sky above: no crown
+    proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
+    probs, labels = scene(slice(40, 120), TREE)  # 80 columns, about 5 m at 8 m
+    proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0

@@ -37,7 +37,9 @@ CASES = {**{n: preset(n) for n in PRESETS},
          "crown model off": SegmentParams(crown_model=""),
          # the soil rule and the per-frame surface decision (on in "sidewalk"), each alone on the default set
          "soil rule on": SegmentParams(soil_b=3.0, crown_model=""),
-         "surface decided per frame": SegmentParams(surface_auto=5.0, surface_share=0.005, crown_model="")}
+         "surface decided per frame": SegmentParams(surface_auto=5.0, surface_share=0.005, crown_model=""),
+         "surface with the darker-paving guard": SegmentParams(surface_auto=5.0, surface_share=0.005,
+                                                               surface_dark=0.05, crown_model="")}
 
 
 @pytest.mark.parametrize("name", list(CASES))
@@ -175,3 +177,30 @@ def test_surface_kept_from_previous_frame(keep, expect):
     assert seg.surface == "road"
     seg.run(_ground_frame((60, 60, 62)), HROW)  # only asphalt in view: undecided
     assert seg.surface == expect
+
+
+def test_surface_not_road_when_darker_paving_in_view():
+    """The robot on paving in a shadow: sunlit paving beyond is lighter (alone it would say "on the road"),
+    but asphalt darker than the patch is in view too, and asphalt is the darkest paving. With
+    ``surface_dark`` the frame is not called "on the road" once at least that share of the other paved
+    pixels is clearly darker; the share is tested at its limit (read from the segmenter's histogram)."""
+    shade, sunlit, asphalt = (100, 100, 102), (170, 175, 180), (40, 40, 42)
+    lab = cv2.cvtColor(np.array([[shade, sunlit, asphalt]], np.uint8), cv2.COLOR_BGR2Lab).astype(float)[0]
+    assert lab[1, 0] - lab[0, 0] > 20.0 and lab[0, 0] - lab[2, 0] > 20.0  # both beyond surface_auto
+    img = _ground_frame(shade, patch_bgr=shade, side_bgr=sunlit, side_cols=(0, 60))
+    img[70:, 130:] = asphalt  # less of it than of the sunlit paving: the median is the sunlit paving's
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0))
+    seg.run(img, HROW)
+    assert seg.surface == "road"  # the known failure without the guard
+    n = int(seg.hist[0].sum())
+    dark = int(seg.hist[0, :int(seg.ref[0] - 20.0) + 1].sum())
+    assert 0 < dark < n / 2
+    share = dark / n
+    for lim, expect in ((share - 0.01, "sidewalk"), (share + 0.01, "road")):
+        seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_dark=lim))
+        seg.run(img, HROW)
+        assert seg.surface == expect, (lim, share)
+    # the robot truly on asphalt (nothing darker in view) is still on the road with the guard
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_dark=0.05))
+    seg.run(_ground_frame(asphalt, patch_bgr=asphalt, side_bgr=sunlit), HROW)
+    assert seg.surface == "road"

@@ -572,11 +572,48 @@ def _write_along(gx, gy, ux, uy, d0, depth_m, m, val, res_m, origin_row, origin_
 
 
 @njit(**JIT)
+def _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh, min_h, share, dist, base_m):
+    """True when the base of the building run (rows ii+1..i of column j, foot range dh) is another object.
+
+    The base is the run's pixels 0.2 .. ``base_m`` metres above the ground at range ``dh``; the upper part
+    is every building pixel of rows topi..i at least ``min_h`` up. Needs 2 base and 3 upper pixels.
+    """
+    c0 = 0.0
+    c1 = 0.0
+    c2 = 0.0
+    nb = 0
+    for q in range(ii + 1, i + 1):
+        z = _height_at(rays, level, cam, q, j, dh)
+        if 0.2 <= z <= base_m:
+            c0 += lab[q, j, 0]
+            c1 += lab[q, j, 1]
+            c2 += lab[q, j, 2]
+            nb += 1
+    if nb < 2:
+        return False
+    c0 /= nb
+    c1 /= nb
+    c2 /= nb
+    nu = 0
+    near = 0
+    for q in range(topi, i + 1):
+        if labels[q, j] != BUILDING or _height_at(rays, level, cam, q, j, dh) < min_h:
+            continue
+        nu += 1
+        d = 0.5 * abs(lab[q, j, 0] - c0) + abs(lab[q, j, 1] - c1) + abs(lab[q, j, 2] - c2)
+        if d <= dist:
+            near += 1
+    return nu >= 3 and near < share * nu
+
+
+@njit(**JIT)
 def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_ground, to_map, min_run, max_range,
-                      depth_m, start_m, geom, res_m, origin_row, origin_col, ray3, evidence, free, visible):
+                      depth_m, start_m, geom, res_m, origin_row, origin_col, ray3, evidence, free, visible, lab):
     # depth_m, start_m: (256,) float64, metres of evidence behind the foot and where it starts, per class
     # geom: (min_building_height_m, min_building_width_m, fx of the segmentation raster (px), thin_class,
-    #        low_class (-1: not placed))
+    #        low_class (-1: not placed), stack_share (0: off), stack_dist (Lab), stack_base_m,
+    #        trunk_width_m (0: off))
+    # lab: (h, w, 3) uint8 Lab of the segmentation raster (read only when stack_share > 0)
     """Deposit vertical classes at their ground contacts, column by column.
 
     Scanning each image column up from the bottom row to the horizon, every place where a ground pixel
@@ -594,10 +631,26 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
     building pixels across the horizon row (or the run's top or foot, when the run lies wholly below or
     above it) at least ``geom[1]`` metres wide at the foot's range. A building too low (a
     vehicle, a fence, a hedge) is placed as class ``geom[4]`` (-1: not placed); one too narrow but tall
-    enough (a trunk, a pole) as class ``geom[3]``, each with that class's depth. Returns the number of feet placed.
+    enough (a trunk, a pole) as class ``geom[3]``, each with that class's depth.
+
+    Two further checks of a building run that is tall enough (each off at 0):
+
+    - a separate object in front (``geom[5]`` = stack_share > 0): the run's base, the pixels from 0.2 m
+      to ``geom[7]`` metres above the ground at the foot's range, has a mean Lab colour; when fewer than
+      ``stack_share`` of the run's building pixels at least ``geom[0]`` metres up lie within ``geom[6]``
+      of it (distance 0.5 |dL| + |da| + |db|), the base is another object (a car, a bus, a garden wall)
+      standing in front of the facade: the foot is that object's and is placed as class ``geom[4]``;
+      the facade above has no visible foot and is not placed;
+    - a trunk (``geom[8]`` = trunk_width_m > 0): a run narrower than that across the horizon row whose
+      top ends under a tree crown (the first pixel above the bridged top is tree) is placed as class
+      ``geom[3]``.
+
+    Returns the number of feet placed.
     """
     nc, h, w = probs.shape
     min_h, min_w, fx, thin, low = geom[0], geom[1], geom[2], int(geom[3]), int(geom[4])
+    st_share, st_dist, st_base, tr_w = geom[5], geom[6], geom[7], geom[8]
+    checks = min_h > 0.0 or min_w > 0.0 or st_share > 0.0 or tr_w > 0.0
     count = 0
     for j in range(w):
         top = int(math.floor(hrow[j])) + 1
@@ -625,7 +678,7 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                         hn = math.sqrt(lx * lx + ly * ly)
                         if gx * gx + gy * gy <= max_range * max_range:
                             kk = k
-                            if k == BUILDING and (min_h > 0.0 or min_w > 0.0):
+                            if k == BUILDING and checks:
                                 # top of the building: bridge short gaps of non-sky classes
                                 q = ii
                                 topi = ii + 1
@@ -644,6 +697,9 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                     q -= 1
                                 dh = s * hn
                                 tall = topi == 0 or _height_at(rays, level, cam, topi, j, dh) >= min_h
+                                if tall and st_share > 0.0 and _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh,
+                                                                        min_h, st_share, st_dist, st_base):
+                                    tall = False
                                 # width where the run crosses the horizon (the foot row wanders
                                 # between columns on an oblique or ragged foot)
                                 wr = min(max(int(math.floor(hrow[j])), topi), i)
@@ -657,6 +713,9 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                 if not tall:
                                     kk = low
                                 elif not wide:
+                                    kk = thin
+                                elif tr_w > 0.0 and topi > 0 and labels[topi - 1, j] == TREE \
+                                        and (b - a + 1) * dh / fx < tr_w:
                                     kk = thin
                             if kk >= 0:
                                 ux = lx / hn if hn > 1e-12 else 0.0  # a ray straight down: foot only

@@ -18,10 +18,12 @@ foot (the lowest such run is the nearest object; runs further up stand further a
 the foot (sub-pixel, where the class probability crosses 0.5) meets the ground at the object's range,
 and the evidence is written there and ``building_depth_m`` (``object_depth_m`` for thin objects)
 beyond it along the ray (a building's from ``building_start_m`` behind the foot). An object resting
-on another in the picture (a house behind a hedge) has no visible foot and is not placed. Optional
-checks (off by default, ``CHECKED_BUILDINGS``): a building run lower than ``min_building_height_m`` at
-its range (a vehicle, a fence) becomes ``low_building_as``; one narrower than
-``min_building_width_m`` (a trunk, a pole) is placed as a tree trunk.
+on another in the picture (a house behind a hedge) has no visible foot and is not placed. Building
+checks: a building run lower than ``min_building_height_m`` at its range (a vehicle, a fence) becomes
+``low_building_as`` (on by default); one narrower than ``min_building_width_m`` (a trunk, a pole) is
+placed as a tree trunk (off); a tall run whose base's colour its upper part does not share is another
+object in front of a facade (``stack_share``), and a narrow run under a crown a trunk
+(``trunk_width_m``).
 
 The lookup (cell centre -> pixel) is computed once per calibration for a level base; a frame
 whose gravity vector tilts the base gets its own lookup, recomputed in place by a kernel
@@ -137,6 +139,16 @@ class OverheadParams:
         cleared, no class evidence).
     min_run_px : int
         A vertical class must cover this many pixels upward from its foot to count (segmentation pixels).
+    stack_share, stack_dist, stack_base_m : float
+        A separate object in front of a facade (0: off; needs the frame's colour, so the built-in
+        segmenter only): when fewer than ``stack_share`` of a tall building run's pixels at least
+        ``min_building_height_m`` up lie within ``stack_dist`` (Lab, 0.5 |dL| + |da| + |db|) of the mean
+        colour of its base (0.2 m .. ``stack_base_m`` above the ground at the foot's range), the base is
+        a car, bus or garden wall standing in front: it is placed as ``low_building_as`` and the facade,
+        whose own foot is hidden, is not placed.
+    trunk_width_m : float
+        A tall building run narrower than this across the horizon row and topped by a tree crown is a
+        trunk and placed as one (0: off).
     """
 
     rows: int = 64
@@ -155,6 +167,10 @@ class OverheadParams:
     min_building_width_m: float = 0.0
     low_building_as: str = "fence"
     min_run_px: int = 3
+    stack_share: float = 0.0
+    stack_dist: float = 20.0
+    stack_base_m: float = 1.0
+    trunk_width_m: float = 0.0
 
     def __post_init__(self):
         if not (4 <= self.rows <= 2048 and 4 <= self.cols <= 2048):
@@ -164,12 +180,16 @@ class OverheadParams:
         if not (math.isfinite(self.max_range_m) and self.max_range_m > 0):
             raise InputError("max_range_m must be a positive number of metres")
         for name in ("building_depth_m", "object_depth_m", "building_start_m", "min_building_height_m",
-                     "min_building_width_m"):
+                     "min_building_width_m", "stack_base_m", "trunk_width_m"):
             v = getattr(self, name)
             if not (math.isfinite(v) and 0.0 <= v <= 20.0):
                 raise InputError(f"{name} must be within 0 .. 20 m")
         if self.low_building_as not in ("none", "fence", "dynamic"):
             raise InputError(f"low_building_as must be 'none', 'fence' or 'dynamic', got {self.low_building_as!r}")
+        if not (math.isfinite(self.stack_share) and 0.0 <= self.stack_share <= 1.0):
+            raise InputError("stack_share must be within 0 .. 1")
+        if not (math.isfinite(self.stack_dist) and self.stack_dist > 0.0):
+            raise InputError("stack_dist must be a positive Lab distance")
         if not 1 <= int(self.min_run_px) <= 100:
             raise InputError("min_run_px must be within 1 .. 100")
 
@@ -255,7 +275,12 @@ class OverheadProjector:
                 self.depth[c.index] = params.building_depth_m if c.index == BUILDING else params.object_depth_m
         self.start[BUILDING] = params.building_start_m
         low = {"none": -1, "fence": FENCE, "dynamic": DYNAMIC}[params.low_building_as]
-        self._geom = np.array([params.min_building_height_m, params.min_building_width_m, cam.fx, TREE, low], np.float64)
+        self._geom = np.array([params.min_building_height_m, params.min_building_width_m, cam.fx, TREE, low,
+                               params.stack_share, params.stack_dist, params.stack_base_m, params.trunk_width_m],
+                              np.float64)
+        self._geom_nocolour = self._geom.copy()
+        self._geom_nocolour[5] = 0.0  # a label image has no colour: no stacked-object check
+        self._nolab = np.zeros((1, 1, 3), np.uint8)
         self._ray3 = np.empty(3)
         self.hrow_level = np.empty(w)
         K.horizon_rows(self.rays, np.eye(3), self.hrow_level)
@@ -281,17 +306,25 @@ class OverheadProjector:
         return self._level_u, self._level_v
 
     def project(self, probs: np.ndarray, labels: np.ndarray, level: np.ndarray, hrow: np.ndarray,
-                out: BevGrid, *, tilted: bool = True) -> int:
-        """Write this frame's evidence into ``out`` (cleared first). Returns the number of object feet placed."""
+                out: BevGrid, *, tilted: bool = True, lab: np.ndarray | None = None) -> int:
+        """Write this frame's evidence into ``out`` (cleared first). Returns the number of object feet placed.
+
+        ``lab`` is the segmentation raster's Lab colour (h, w, 3) uint8, needed by the stacked-object
+        check (``stack_share``); without it (label images) that check is skipped.
+        """
         p = self.params
+        if lab is None:
+            lab, geom = self._nolab, self._geom_nocolour
+        else:
+            geom = self._geom
         out.clear("ok")
         pu, pv = self.lookup(level, tilted=tilted)
         K.ground_gather(probs, labels, pu, pv, self.cell_range, p.max_range_m, IS_GROUND, TO_MAP, hrow,
                         out.evidence, out.free, out.visible)
         np.matmul(level, self._t_base, out=self._cam_l)
         return K.vertical_contacts(labels, probs, self.rays, level, self._cam_l, hrow, IS_VERTICAL, IS_GROUND, TO_MAP,
-                                   int(p.min_run_px), p.max_range_m, self.depth, self.start, self._geom, p.res_m,
-                                   p.origin_row, p.origin_col, self._ray3, out.evidence, out.free, out.visible)
+                                   int(p.min_run_px), p.max_range_m, self.depth, self.start, geom, p.res_m,
+                                   p.origin_row, p.origin_col, self._ray3, out.evidence, out.free, out.visible, lab)
 
     def pixel_to_ground(self, uv_seg, level: np.ndarray | None = None) -> np.ndarray:
         """Ground points (N, 2) body (xf, yl) metres under segmentation pixels (N, 2); NaN above the horizon.

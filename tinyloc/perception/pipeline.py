@@ -155,7 +155,8 @@ class Perception:
             return self._fail(out, f"bad-frame: too dark (mean value {v:.3f})")
         if sat > self.params.saturated_share:
             return self._fail(out, f"bad-frame: saturated ({100 * sat:.0f} % of pixels white)")
-        self.last_feet = self.projector.project(probs, labels, level, hrow, out, tilted=tilted)
+        self.last_feet = self.projector.project(probs, labels, level, hrow, out, tilted=tilted,
+                                                lab=self.segmenter.lab)
         out.status = "ok"
         self.last_status = "ok"
         if not out.visible.any():

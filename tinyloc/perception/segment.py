@@ -120,6 +120,7 @@ class SegmentParams:
     surface_u: float = -0.05  # ... counting paved pixels this far below the horizon (image heights)
     surface_share: float = 0.02  # ... and only when they cover this share of the raster
     surface_keep: bool = False  # ... otherwise keep the previous frame's decision (False: fall back to robot_on)
+    surface_dark: float = 0.0  # ... but not "road" when this share of those pixels is clearly darker (0: off)
 
     def __post_init__(self):
         if not 32 <= int(self.width) <= 1024:
@@ -142,6 +143,8 @@ class SegmentParams:
             raise InputError("gap_near must be within 0 .. 1")
         if not (self.soil_b >= 0.0 and self.soil_w > 0.0 and self.surface_auto >= 0.0):
             raise InputError("soil_b and surface_auto must be >= 0 and soil_w > 0")
+        if not 0.0 <= self.surface_dark <= 1.0:
+            raise InputError("surface_dark must be within 0 .. 1")
         if not (-1.0 <= self.surface_u <= 0.0 and 0.0 <= self.surface_share <= 1.0):
             raise InputError("surface_u must be within -1 .. 0 and surface_share within 0 .. 1")
         if self.crown_smooth % 2 == 0 or self.crown_sky_window % 2 == 0 or self.crown_smooth < 1 \
@@ -335,14 +338,20 @@ class Segmenter:
         """Which paved surface is under the robot, for this frame: asphalt is the darker one. When the other
         paved ground in view (unlike the patch under the robot) is clearly lighter, the robot stands on the
         road (crossing a street); clearly darker, on the sidewalk; otherwise the preset's ``robot_on``, or
-        with ``surface_keep`` the previous frame's decision."""
+        with ``surface_keep`` the previous frame's decision.
+
+        Asphalt is the darkest paving, so with ``surface_dark`` > 0 a frame is not called "on the road"
+        when at least that share of the other paved pixels is clearly darker than the patch (by
+        ``surface_auto`` too): the patch is then paving in a shadow, with sunlit paving beyond it."""
         p = self.params
         w, h = self.size
         med, n = K.other_paved_lightness(self.lab, self.feat, self.tex, self.ref, self._prm, p.surface_u, self.hist)
         on_road = (self.surface if p.surface_keep else p.robot_on) == "road"
         if n >= p.surface_share * w * h:
             if med >= self.ref[0] + p.surface_auto:
-                on_road = True
+                dark_to = int(self.ref[0] - p.surface_auto) + 1  # bins 0 .. dark_to - 1: clearly darker
+                if p.surface_dark <= 0.0 or dark_to <= 0 or self.hist[0, :dark_to].sum() < p.surface_dark * n:
+                    on_road = True
             elif med <= self.ref[0] - p.surface_auto:
                 on_road = False
         self._prm[K.P_ON_ROAD] = 1.0 if on_road else 0.0
