@@ -203,6 +203,15 @@ class TrackParams:
         ``model_sigma_m`` 0.1 looked calibrated on the tuning drives but left one held-out drive
         overconfident (77 % inside the 95 % ellipse), so the default keeps the conservative output
         (docs/tracking.md, "Covariance calibration") [1.0].
+    odometry_scale : float
+        Factor on odometry distances at start: a calibrated wheel scale, or 1 [1.0].
+    odo_scale_span_m : float
+        The scale is learned online from the poses flagged tracking against the raw odometry over this
+        much path (tinyloc/track/odoscale.py); 0 turns learning off [30.0].
+    odo_scale_rate : float
+        Share of the way to each new fit taken per frame [0.02].
+    odo_scale_max_dev : float
+        The scale in use stays within 1 +- this [0.05].
     fallback_weight : float
         While not tracking (searching, degraded), the reported covariance also holds the satellite
         fix of the frame as a competing pose with this weight: ``w (S + d d^T)`` with S the fix's
@@ -253,6 +262,10 @@ class TrackParams:
     model_sigma_deg: float = 0.5
     model_sigma_uncal_m: float = 0.5
     cov_scale: float = 1.0
+    odometry_scale: float = 1.0
+    odo_scale_span_m: float = 30.0
+    odo_scale_rate: float = 0.02
+    odo_scale_max_dev: float = 0.05
     fallback_weight: float = 0.25
     gnss: GnssParams = field(default_factory=GnssParams)
 
@@ -265,6 +278,11 @@ class TrackParams:
             raise InputError(f"track.floor = {self.floor}: must be in [0, 0.5)")
         if not 0.0 < self.cov_scale <= 10.0:
             raise InputError(f"track.cov_scale = {self.cov_scale}: must be in (0, 10]")
+        if not 0.5 <= self.odometry_scale <= 2.0:
+            raise InputError(f"track.odometry_scale = {self.odometry_scale}: must be in [0.5, 2]")
+        if not (0.0 <= self.odo_scale_rate <= 1.0 and 0.0 <= self.odo_scale_max_dev <= 0.5
+                and self.odo_scale_span_m >= 0.0):
+            raise InputError("track.odo_scale_*: span_m must be >= 0, rate in [0, 1], max_dev in [0, 0.5]")
         if not 0.0 <= self.fallback_weight <= 1.0:
             raise InputError(f"track.fallback_weight = {self.fallback_weight}: must be in [0, 1]")
         if self.outside_fill not in ("min", "mean"):
@@ -738,6 +756,11 @@ class Tracker:
         from .course import CourseCheck
 
         self.course = CourseCheck(max(params.course_span_m, 1.0), params.course_sigma_deg)
+        from .odoscale import OdometryScale
+
+        self.odo_scale = OdometryScale(max(params.odo_scale_span_m, 1.0),
+                                       params.odo_scale_rate if params.odo_scale_span_m > 0 else 0.0,
+                                       params.odo_scale_max_dev, params.odometry_scale)
         self.reset_state()
 
     def reset_state(self) -> None:
@@ -762,6 +785,7 @@ class Tracker:
         self.last = None
         self._clock.reset()
         self.course.reset()
+        self.odo_scale.reset()
         self._course = None  # (yaw, sigma) of the current frame, or None
         self._course_off = 0
         self._off_e = self._off_n = math.nan  # average (estimate - fix) over recent fixes (m)
@@ -910,6 +934,8 @@ class Tracker:
                 f.recentre(est.x, est.y)
         f.add_floor()
         self.last = est
+        if self.state == "tracking":
+            self.odo_scale.pose(est.x, est.y)  # learn the wheel scale from poses the map holds
         if self._ambig is not None and self.state != "searching":
             est = self._with_alternative(est)
         return self._output(t, self.state, notes, est, surprise, self._was_global)
@@ -943,6 +969,7 @@ class Tracker:
             self.counters["no_odometry"] += 1
             notes.append("no odometry")
             self.course.reset()
+            self.odo_scale.reset()
             f.add_noise(p.q_no_odometry_m2, p.q_no_odometry_rad2)
             return
         d_fwd, d_left, d_yaw = odo
@@ -950,11 +977,14 @@ class Tracker:
             self.counters["odometry_jumps"] += 1
             notes.append("odometry jump ignored")
             self.course.reset()
+            self.odo_scale.reset()
             f.add_noise(p.q_no_odometry_m2 + (p.q_xy_per_m * math.hypot(d_fwd, d_left)),
                         p.q_no_odometry_rad2)
             return
         self.course.odometry(d_fwd, d_left, d_yaw)
-        f.predict(d_fwd, d_left, d_yaw)
+        self.odo_scale.odometry(d_fwd, d_left, d_yaw)
+        k = self.odo_scale.scale
+        f.predict(d_fwd * k, d_left * k, d_yaw)
 
     def _global_decision(self, ev: "GlobalEvidence", g, notes) -> tuple[float, float, float]:
         """Compare the best pose of a global search with the best near the belief; move, vote or flag."""
@@ -1069,6 +1099,7 @@ class Tracker:
     def _lose(self, notes, why) -> None:
         self.state = "searching"
         self.counters["lost"] += 1
+        self.odo_scale.reset()
         self._converge = 0
         self._votes = 0
         self._surprised = 0

@@ -1,0 +1,145 @@
+"""The wheel-odometry scale learned from the tracked poses (tinyloc/track/odoscale.py).
+
+References: the similarity (scale + rotation) fit of two centred point sets, Umeyama (1991), whose
+scale is the sum of the singular values of the cross-covariance over the first set's sum of
+squares (from memory); ``scipy.linalg.orthogonal_procrustes`` returns that sum of singular values
+(a general-purpose reference library). The tracker check uses planted likelihoods (as
+tests/test_track_tracker.py), with odometry 3 % long, as a wheel slightly smaller than configured.
+"""
+
+import math
+import tracemalloc
+
+import numpy as np
+from scipy.linalg import orthogonal_procrustes
+
+from tinyloc.frames import relative2, wrap_angle
+from tinyloc.track import MapGeometry, TrackParams, Tracker
+from tinyloc.track.odoscale import OdometryScale
+
+from test_track_tracker import PlantedMatcher, _frame
+
+
+def _feed(osc, rng, *, n=200, step=0.25, turn=0.004, true_scale=0.98, theta=0.6, noise=0.0,
+          offset=(120.0, -40.0)):
+    """Drive n raw odometry steps; the 'estimates' are the true path (true_scale x odometry), rotated."""
+    c, s = math.cos(theta), math.sin(theta)
+    raw, est = [], []
+    for _ in range(n):
+        osc.odometry(step, 0.0, turn)
+        ex = true_scale * (c * osc.ox - s * osc.oy) + offset[0] + rng.normal(0, noise)
+        ey = true_scale * (s * osc.ox + c * osc.oy) + offset[1] + rng.normal(0, noise)
+        raw.append((osc.ox, osc.oy))
+        est.append((ex, ey))
+        osc.pose(ex, ey)
+    return np.array(raw), np.array(est)
+
+
+def test_exact_scale_is_recovered_from_a_rotated_scaled_path():
+    osc = OdometryScale(span_m=30.0, rate=0.0)
+    _feed(osc, np.random.default_rng(0), true_scale=0.98)
+    assert abs(osc.fit() - 0.98) < 1e-12
+    assert osc.scale == 1.0  # rate 0: the value in use does not move
+
+
+def test_scale_matches_the_umeyama_fit_with_scipy():
+    rng = np.random.default_rng(1)
+    osc = OdometryScale(span_m=30.0, rate=0.0)
+    _feed(osc, rng, true_scale=1.03, noise=0.2)
+    got = osc.fit()
+    # the rows the fit used: recorded every 0.3 m (span / 100) over the newest 30 m of path
+    o = osc._o[:osc.n].copy()
+    e = osc._e[:osc.n].copy()
+    path = osc._path[:osc.n]
+    start = path[path <= path.max() - 30.0].max()  # the newest row at least 30 m back opens the window
+    keep = path >= start
+    o, e = o[keep], e[keep]
+    oc, ec = o - o.mean(axis=0), e - e.mean(axis=0)
+    _, sv_sum = orthogonal_procrustes(oc, ec)  # sum of singular values of oc^T ec
+    ref = sv_sum / float((oc * oc).sum())
+    assert abs(got - ref) < 1e-9
+    assert abs(got - 1.03) < 0.02
+
+
+def test_value_in_use_follows_the_fit_and_is_clamped():
+    rng = np.random.default_rng(2)
+    osc = OdometryScale(span_m=20.0, rate=0.05, max_dev=0.05)
+    _feed(osc, rng, n=400, true_scale=0.97)
+    assert abs(osc.scale - 0.97) < 2e-3
+    osc = OdometryScale(span_m=20.0, rate=0.05, max_dev=0.05)
+    _feed(osc, rng, n=400, true_scale=0.80)  # 20 % off: never trusted beyond 5 %
+    assert 0.95 <= osc.scale < 0.95 + 1e-6  # approaches the limit, never passes it
+
+
+def test_short_or_back_and_forth_tracks_say_nothing():
+    osc = OdometryScale(span_m=30.0, rate=0.02)
+    _feed(osc, np.random.default_rng(3), n=50)  # 12.5 m < half the span
+    assert osc.fit() is None and osc.scale == 1.0
+    osc = OdometryScale(span_m=10.0, rate=0.02)
+    for k in range(400):  # 1 m forward and back, over and over
+        osc.odometry(0.25 if (k // 4) % 2 == 0 else -0.25, 0.0, 0.0)
+        osc.pose(osc.ox, osc.oy)
+    assert osc.fit() is None and osc.scale == 1.0
+
+
+def test_reset_forgets_the_track_but_keeps_the_scale():
+    osc = OdometryScale(span_m=20.0, rate=0.05)
+    _feed(osc, np.random.default_rng(4), n=300, true_scale=0.97)
+    s = osc.scale
+    osc.reset()
+    assert osc.n == 0 and osc.fit() is None and osc.scale == s
+
+
+def test_no_allocation_per_call():
+    osc = OdometryScale(span_m=20.0, rate=0.02)
+    rng = np.random.default_rng(5)
+    _feed(osc, rng, n=300)
+    tracemalloc.start()
+    for _ in range(300):
+        osc.odometry(0.25, 0.0, 0.003)
+        osc.pose(osc.ox * 0.98, osc.oy * 0.98)
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert peak < 4096, peak
+
+
+GEOM = MapGeometry(0.0, 400.0, 0.5)
+
+
+def _drive_long_wheels(rng, *, learn: bool, n=900, dt=0.2, speed=1.25):
+    """A gently curving drive with odometry 3 % long; tempered planted evidence, so the belief lags."""
+    p = TrackParams(window_cells=48, headings=64, likelihood_weight=0.1, model_sigma_m=0.0,
+                    model_sigma_deg=0.0, odo_scale_span_m=30.0 if learn else 0.0)
+    m = PlantedMatcher(rng, sigma_m=0.5, noise=0.1)
+    tr = Tracker(GEOM, p)
+    x, y, yaw = 150.0, 150.0, 0.3
+    ox = oy = oyaw = 0.0
+    prev = None
+    along = []
+    for k in range(n):
+        w = 0.08 * math.sin(0.01 * k)
+        x += speed * dt * math.cos(yaw)
+        y += speed * dt * math.sin(yaw)
+        yaw = wrap_angle(yaw + w * dt)
+        ox += 1.03 * speed * dt * math.cos(oyaw)
+        oy += 1.03 * speed * dt * math.sin(oyaw)
+        oyaw = wrap_angle(oyaw + w * dt)
+        inc = relative2(prev, (ox, oy, oyaw)) if prev is not None else None
+        prev = (ox, oy, oyaw)
+        m.truth = (x, y, yaw)
+        g = (x + rng.normal(0, 2.0), y + rng.normal(0, 2.0), 1.5, k * dt)
+        o = _frame(tr, m, k * dt, inc, g)
+        if k >= n // 2 and o.quality == "tracking":
+            along.append((x - o.x) * math.cos(yaw) + (y - o.y) * math.sin(yaw))
+    return tr, np.array(along)
+
+
+def test_learning_the_scale_removes_the_lag_of_long_wheels():
+    tr0, a0 = _drive_long_wheels(np.random.default_rng(6), learn=False)
+    tr1, a1 = _drive_long_wheels(np.random.default_rng(6), learn=True)
+    assert len(a0) > 300 and len(a1) > 300
+    # without learning the estimate runs ahead of the truth (negative along-track error)
+    assert np.mean(a0) < -0.1, np.mean(a0)
+    assert abs(np.mean(a1)) < 0.5 * abs(np.mean(a0)), (np.mean(a0), np.mean(a1))
+    assert abs(tr1.odo_scale.scale - 1.0 / 1.03) < 0.01, tr1.odo_scale.scale
+    assert tr0.odo_scale.scale == 1.0
