@@ -813,3 +813,191 @@ def rotate_support(feat, cos_t, sin_t, origin_row, origin_col, lo_u, lo_v, r_lo,
                 if ok_r1 and ok_c1:
                     acc += w11 * feat[f, r0 + 1, c0 + 1]
                 out[f, u, v] = acc
+
+
+# ---- single-precision spectra in OpenCV's packed layout (``fft="opencv"``) -------------------------------------
+# ``cv2.dft`` of a real (Nr, Nc) float32 array, both sides even, gives its spectrum packed in the same shape
+# ("CCS" in OpenCV's documentation): columns 1 .. Nc - 2 hold (re, im) pairs of column frequencies
+# 1 .. Nc/2 - 1 for every row frequency; columns 0 and Nc - 1 hold the real column frequencies 0 and Nc/2,
+# whose row spectra are packed the same way down the column (row 0 and row Nr - 1 real, (re, im) pairs between).
+
+
+@njit(**_FAST)
+def _ccs_mac_cols(Gf, Tf, P, first, c):
+    """P[:, c] (+)= Gf[:, c] * conj(Tf[:, c]) for an edge column c (0 or Nc - 1) packed down the rows."""
+    Nr = P.shape[0]
+    if first:
+        P[0, c] = Gf[0, c] * Tf[0, c]
+        P[Nr - 1, c] = Gf[Nr - 1, c] * Tf[Nr - 1, c]
+    else:
+        P[0, c] += Gf[0, c] * Tf[0, c]
+        P[Nr - 1, c] += Gf[Nr - 1, c] * Tf[Nr - 1, c]
+    for r in range(1, Nr - 1, 2):
+        gr, gi = Gf[r, c], Gf[r + 1, c]
+        tr, ti = Tf[r, c], Tf[r + 1, c]
+        if first:
+            P[r, c] = gr * tr + gi * ti
+            P[r + 1, c] = gi * tr - gr * ti
+        else:
+            P[r, c] += gr * tr + gi * ti
+            P[r + 1, c] += gi * tr - gr * ti
+
+
+@njit(**_FAST)
+def mac_ccs(G, T, n, P):
+    """P = sum_{k < n} G[k] * conj(T[k]), spectra packed as ``cv2.dft`` gives them (float32, even sides).
+
+    G, T: (>= n, Nr, Nc); P: (Nr, Nc). The inverse ``cv2.idft(P, flags=DFT_REAL_OUTPUT)`` is then
+    Nr * Nc times the cyclic correlation sum_y t(y) g(x + y).
+    """
+    Nr, Nc = P.shape
+    h = (Nc - 2) // 2
+    for r in range(Nr):
+        for c in range(Nc):
+            P[r, c] = 0.0
+    for k in range(n):
+        _ccs_mac_cols(G[k], T[k], P, False, 0)
+        _ccs_mac_cols(G[k], T[k], P, False, Nc - 1)
+        for r in range(Nr):
+            g = G[k, r, 1:Nc - 1]
+            t = T[k, r, 1:Nc - 1]
+            p = P[r, 1:Nc - 1]
+            # (re, im) pairs: one pass over the row, products of the pair written together
+            for q in range(h):
+                gr = g[2 * q]
+                gi = g[2 * q + 1]
+                tr = t[2 * q]
+                ti = t[2 * q + 1]
+                p[2 * q] += gr * tr + gi * ti
+                p[2 * q + 1] += gi * tr - gr * ti
+
+
+@njit(**JIT)
+def readout_native_rows(buf, r0, L, M, c0, inv_temp, a, nat, nat_a, head_max, head_arg):
+    """:func:`readout_native` for a full cyclic correlation (N, N): buffer row (r0 + l) mod N is row l."""
+    N = buf.shape[0]
+    Nc = buf.shape[1]
+    s = c0 % Nc
+    m1 = min(M, Nc - s)
+    hm = -np.inf
+    harg = 0
+    for l in range(L):
+        row = buf[(r0 + l) % N]
+        for m in range(m1):
+            v = row[s + m] * inv_temp
+            if v > nat[l, m]:
+                nat[l, m] = v
+                nat_a[l, m] = a
+            if v > hm:
+                hm = v
+                harg = l * M + m
+        for m in range(m1, M):
+            v = row[m - m1] * inv_temp
+            if v > nat[l, m]:
+                nat[l, m] = v
+                nat_a[l, m] = a
+            if v > hm:
+                hm = v
+                harg = l * M + m
+    head_max[a] = hm
+    head_arg[a] = harg
+
+
+@njit(**JIT)
+def support_cells(feat):
+    """Number of grid cells where any feature is nonzero (the cost of one exact direct sum scales with it)."""
+    F, h, w = feat.shape
+    n = 0
+    for r in range(h):
+        for c in range(w):
+            for f in range(F):
+                if feat[f, r, c] != 0.0:
+                    n += 1
+                    break
+    return n
+
+
+@njit(**JIT)
+def _walk_score(a, i, j, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8):
+    Q = A // 4
+    b = a % Q
+    ensure_base(b, fr, uv_pool, vals_pool, count, bnd, valid)
+    return pose_score(uv_pool[b], vals_pool[b], count[b], a // Q, bnd[b], G, i, j, acc8)
+
+
+@njit(**JIT)
+def walk_plateau(a0, i0, j0, tol_frac, budget, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8, keys,
+                 vals, queue):
+    """Best pose of the near-best plateau around (a0, i0, j0): the tie rule shared by every search.
+
+    Breadth-first over the 3 x 3 x 3 neighbourhoods of poses whose exact score is within
+    ``tol_frac * |best|`` of the best score met so far (the running best moves up as better poses
+    are met, so this also climbs). Returns (a, i, j, score, evaluations): the highest exact score
+    met; among exactly equal scores, the lowest flat index a * H * W + i * W + j, so two walks
+    that explore the same plateau end on the same pose wherever they start. At most ``budget``
+    poses are scored. ``keys`` (power-of-two size, int64) and ``vals`` (float64) are an
+    open-addressing table of the poses scored; ``queue`` (int64, >= budget) is scratch.
+    """
+    H, W = G.shape[0], G.shape[1]
+    HW = H * W
+    mask = keys.shape[0] - 1
+    for k in range(keys.shape[0]):
+        keys[k] = -1
+    a0 = a0 % A
+    key0 = a0 * HW + i0 * W + j0
+    s0 = _walk_score(a0, i0, j0, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8)
+    h = (key0 * 2654435761) & mask
+    keys[h] = key0
+    vals[h] = s0
+    n_eval = 1
+    best_key = key0
+    best = s0
+    qh = 0
+    qt = 0
+    queue[qt] = key0
+    qt += 1
+    while qh < qt:
+        key = queue[qh]
+        qh += 1
+        # this pose's own score, looked up
+        h = (key * 2654435761) & mask
+        while keys[h] != key:
+            h = (h + 1) & mask
+        if vals[h] < best - tol_frac * abs(best):
+            continue  # left the band when the best moved up
+        a = key // HW
+        i = (key % HW) // W
+        j = key % W
+        for da in range(-1, 2):
+            for di in range(-1, 2):
+                for dj in range(-1, 2):
+                    if da == 0 and di == 0 and dj == 0:
+                        continue
+                    ii = i + di
+                    jj = j + dj
+                    if ii < 0 or ii >= H or jj < 0 or jj >= W:
+                        continue
+                    aa = (a + da + A) % A
+                    nk = aa * HW + ii * W + jj
+                    h = (nk * 2654435761) & mask
+                    seen = False
+                    while keys[h] != -1:
+                        if keys[h] == nk:
+                            seen = True
+                            break
+                        h = (h + 1) & mask
+                    if seen:
+                        continue
+                    if n_eval >= budget or n_eval * 2 > keys.shape[0]:
+                        continue
+                    v = _walk_score(aa, ii, jj, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8)
+                    n_eval += 1
+                    keys[h] = nk
+                    vals[h] = v
+                    if v > best or (v == best and nk < best_key):
+                        best = v
+                        best_key = nk
+                    if v >= best - tol_frac * abs(best) and qt < queue.shape[0]:
+                        queue[qt] = nk
+                        qt += 1
+    return best_key // HW, (best_key % HW) // W, best_key % W, best, n_eval

@@ -66,6 +66,22 @@ class CorrelatorParams:
         Hypotheses of the 2x-coarse search refined at full resolution (fast search).
     coarse_climb : int
         Of those, the best (by the exact score under them) climbed to a local maximum.
+    coarse_budget_cells : int
+        Refinement budget of the fast search in grid cells (0: off, a fixed ``coarse_top_k`` / ``coarse_climb``).
+        An exact score at one pose costs about one multiply-add per feature per grid cell with evidence, so a
+        frame with fewer such cells than this gets proportionally more hypotheses and climbs, up to
+        ``coarse_budget_max`` times as many: the same work, spent where the coarse level is least reliable.
+    coarse_budget_max : int
+        Largest factor on ``coarse_top_k`` and ``coarse_climb`` of the budget (1 .. 16).
+    plateau_budget : int
+        The tie rule of both full searches (0: off): after its climbs, each search walks the near-best plateau
+        of its best modes (poses whose exact score is within ``plateau_tol`` of the peak, 3 x 3 x 3
+        neighbourhoods, at most this many poses scored per mode) and keeps the highest exact score met; among
+        exactly equal scores, the lowest flat index (heading, row, col). Two searches that land on the same
+        plateau (a straight street) then end on the same pose.
+    plateau_tol : float
+        Width of that plateau as a fraction of the peak's |log-likelihood| (1e-4: the exactness bound of the
+        exact search, within which its own FFT values cannot rank poses).
     coarse_heading_step : int
         Heading step of the coarse full search, in full steps (1, 2, 4 or 8), or 0 (default):
         4 when n_headings is a multiple of 16, else 2 (see ``coarse_step``). 8 (with ``coarse_top_k`` 48 and
@@ -94,6 +110,11 @@ class CorrelatorParams:
         benchmark's same-run reference). Both give the same volume.
     track_threads : int
         Threads of the tracking update (1 or 2; headings alternate between two buffer lanes).
+    fft : str
+        Transforms of the coarse full-search level and of the tracking engines: "numpy" (double precision,
+        pocketfft) or "opencv" (single precision, ``cv2.dft``, 2-3x faster at these sizes, measured). The exact
+        full search (``search``) always runs in double precision: it is the reference the others are checked
+        against.
     """
 
     n_headings: int = 256
@@ -107,6 +128,11 @@ class CorrelatorParams:
     mode_radius_headings: int = 8
     coarse_top_k: int = 32
     coarse_climb: int = 16
+    coarse_budget_cells: int = 2048
+    coarse_budget_max: int = 16
+    plateau_budget: int = 500
+    budget_climb_heading_radius: int = 3
+    plateau_tol: float = 1e-4
     coarse_heading_step: int = 0
     track_radius_cells: int = 20
     track_half_headings: int = 15
@@ -116,6 +142,7 @@ class CorrelatorParams:
     start_heading_reach: int = 0
     track_engine: str = "support"
     track_threads: int = 1
+    fft: str = "opencv"
 
     def __post_init__(self):
         A = self.n_headings
@@ -133,6 +160,8 @@ class CorrelatorParams:
             raise InputError(f"threads must be 1 or 2, got {self.threads}")
         if self.track_threads not in (1, 2):
             raise InputError(f"track_threads must be 1 or 2, got {self.track_threads}")
+        if self.fft not in ("numpy", "opencv"):
+            raise InputError(f"fft must be 'numpy' or 'opencv', got {self.fft!r}")
         if self.track_engine not in ("support", "fixed"):
             raise InputError(f"track_engine must be 'support' or 'fixed', got {self.track_engine!r}")
         if self.coarse_heading_step not in (0, 1, 2, 4, 8):
@@ -145,6 +174,12 @@ class CorrelatorParams:
             raise InputError(f"start_heading_reach must be 0..4, got {self.start_heading_reach}")
         if self.climb_heading_radius not in (1, 2, 3):
             raise InputError(f"climb_heading_radius must be 1, 2 or 3, got {self.climb_heading_radius}")
+        if self.plateau_budget < 0 or not 0.0 <= self.plateau_tol <= 0.01:
+            raise InputError(f"plateau_budget must be >= 0 and plateau_tol 0..0.01, got {self.plateau_budget} and "
+                             f"{self.plateau_tol}")
+        if self.coarse_budget_cells < 0 or not 1 <= self.coarse_budget_max <= 16:
+            raise InputError(f"coarse_budget_cells must be >= 0 and coarse_budget_max 1..16, got "
+                             f"{self.coarse_budget_cells} and {self.coarse_budget_max}")
         if min(self.n_modes, self.coarse_top_k, self.coarse_climb, self.track_refine) < 1:
             raise InputError("n_modes, coarse_top_k, coarse_climb and track_refine must be >= 1")
 
@@ -427,6 +462,112 @@ class _CircleEngine:
             K.merge_native(ln.nat, ln.nat_a, self.head_arg, q, first, step, ln.best, ln.best_a)
 
 
+class _CircleEngineCV(_CircleEngine):
+    """:class:`_CircleEngine` with single-precision transforms by OpenCV (``cv2.dft``), for the coarse level.
+
+    The same quarter-turn scheme: the four turned maps' spectra once per window, A/4 rotated templates
+    transformed, the feature sum in the frequency domain (:func:`_kernels.mac_ccs`), one inverse per
+    heading. OpenCV transforms the whole (N, N) array in one call (float32, packed layout, N even); its
+    full 2-D transform of a 168 x 168 array took 37 us against 115 us for numpy's double-precision pair of
+    passes (docs/correlator.md). The inverse is the whole cyclic correlation; the window's rows are read
+    from it in place (:func:`_kernels.readout_native_rows`).
+    """
+
+    def __init__(self, F, H, W, bev_shape, origin_row, origin_col, A, threads=1):
+        self.F, self.H, self.W, self.A = F, H, W, A
+        self.origin = (float(origin_row), float(origin_col))
+        self.reach = template_reach(bev_shape, origin_row, origin_col)
+        self.N = N = _even_fast_size(max(H, W) + self.reach)
+        self.K = N  # packed spectra: (N, N) float32
+        q = A // 4
+        yaws = [2.0 * math.pi * a / A for a in range(q)]
+        self.cos = np.cos(yaws)
+        self.sin = np.sin(yaws)
+        b = np.array([template_bounds(bev_shape, origin_row, origin_col, y) for y in yaws], np.int64)
+        self.lo_u, self.lo_v = b[:, 0].copy(), b[:, 2].copy()
+        self.SU = int((b[:, 1] - b[:, 0]).max()) + 1
+        self.SV = int((b[:, 3] - b[:, 2]).max()) + 1
+        L = max(H, W)
+        self.G4 = np.zeros((4, F, N, N), np.float32)
+        self.lanes = [_LaneCV(F, self.SU, self.SV, N, L, H, W) for _ in range(threads)]
+        self.best, self.best_a = self.lanes[0].best, self.lanes[0].best_a
+        self.native = True
+        self._pool = None
+        if threads > 1:
+            from concurrent.futures import ThreadPoolExecutor
+            self._pool = ThreadPoolExecutor(max_workers=threads - 1, thread_name_prefix="tinyloc-correlate")
+        self.head_max = np.zeros(A, np.float32)
+        self.head_arg = np.zeros(A, np.int32)
+        self._dummy_vol = np.zeros((1, 1, 1), np.float32)
+        self.modtab = (np.arange(-N, 2 * N) % N).astype(np.int64)
+        self.rows = np.zeros((4, q, 2), np.int64)
+        for k in range(4):
+            length = H if k in (0, 2) else W
+            for qi in range(q):
+                su = int(self.lo_u[qi])
+                start = su if k in (0, 1) else su - length + 1
+                self.rows[k, qi] = (start % N, length)
+
+    def set_map(self, G):
+        import cv2
+        N = self.N
+        pad = np.zeros((N, N), np.float32)
+        idx = (-np.arange(N)) % N
+        for f in range(self.F):
+            pad[:self.H, :self.W] = G[f]
+            turned = (pad, pad[idx].T, pad[idx][:, idx], pad[:, idx].T)
+            for k in range(4):
+                cv2.dft(np.ascontiguousarray(turned[k]), dst=self.G4[k, f])
+
+    def _run_lane(self, ln, first, step, feat, inv_temp, v, write_vol):
+        import cv2
+        ln.best.fill(-np.inf)
+        ln.nat.fill(-np.inf)
+        N, q = self.N, self.A // 4
+        H, W, F = self.H, self.W, self.F
+        orow, ocol = self.origin
+        scale = inv_temp / (N * N)  # OpenCV's inverse is unnormalized
+        for qi in range(first, q, step):
+            K.rotate_into(feat, self.cos[qi], self.sin[qi], orow, ocol, self.lo_u[qi], self.lo_v[qi], ln.canvas_v)
+            for f in range(F):
+                cv2.dft(ln.canvas[f], dst=ln.T[f])
+            su, sv = int(self.lo_u[qi]), int(self.lo_v[qi])
+            for k in range(4):
+                K.mac_ccs(self.G4[k], ln.T, F, ln.P)
+                cv2.idft(ln.P, dst=ln.buf, flags=cv2.DFT_REAL_OUTPUT)
+                r0, L = self.rows[k, qi]
+                if write_vol:
+                    K.readout_tiled(ln.buf[(np.arange(L) + r0) % N], k, su, sv, scale, qi + k * q, ln.best,
+                                    ln.best_a, self.head_max, self.head_arg, v, write_vol, self.modtab)
+                else:
+                    M = W if k in (0, 2) else H
+                    c0 = sv if k in (0, 3) else sv - M + 1
+                    K.readout_native_rows(ln.buf, r0, L, M, c0, scale, qi + k * q, ln.nat[k, :L, :M],
+                                          ln.nat_a[k, :L, :M], self.head_max, self.head_arg)
+        if not write_vol:
+            K.merge_native(ln.nat, ln.nat_a, self.head_arg, q, first, step, ln.best, ln.best_a)
+
+
+class _LaneCV:
+    """Per-thread buffers of a :class:`_CircleEngineCV` (float32, packed spectra)."""
+
+    def __init__(self, F, SU, SV, N, L, H, W):
+        self.canvas = np.zeros((F, N, N), np.float32)  # entries outside (SU, SV) stay 0
+        self.canvas_v = self.canvas[:, :SU, :SV]
+        self.T = np.zeros((F, N, N), np.float32)
+        self.P = np.zeros((N, N), np.float32)
+        self.buf = np.zeros((N, N), np.float32)
+        self.best = np.zeros((H, W), np.float32)
+        self.best_a = np.zeros((H, W), np.int16)
+        self.nat = np.zeros((4, L, L), np.float32)
+        self.nat_a = np.zeros((4, L, L), np.int16)
+
+    @property
+    def nbytes(self) -> int:
+        return sum(a.nbytes for a in (self.canvas, self.T, self.P, self.buf, self.best, self.best_a, self.nat,
+                                      self.nat_a))
+
+
 class _Lane:
     """The per-thread working buffers of a circle engine (one quarter heading at a time)."""
 
@@ -678,6 +819,99 @@ class _SupportPatchEngine:
             K.readout_patch(buf, 0, lv - LV, inv_temp, vol[t])
 
 
+def _even_fast_size(n: int) -> int:
+    """Smallest m >= n, a multiple of 4 whose only prime factors are 2, 3, 5, 7: the packed spectra of ``cv2.dft``
+    need even sides, and OpenCV's transform was measured faster at such sizes than at the 2-3-5-smooth ones in
+    between (forward + inverse of an m x m array: 84 and 96 against 90, 112 against 108 and 120, 168 against 180)."""
+    m = max(4, n)
+    while True:
+        if m % 4 == 0:
+            k = m
+            for p in (2, 3, 5, 7):
+                while k % p == 0:
+                    k //= p
+            if k == 1:
+                return m
+        m += 1
+
+
+class _SupportPatchEngineCV(_SupportPatchEngine):
+    """:class:`_SupportPatchEngine` with single-precision transforms by OpenCV (``cv2.dft``, already a dependency).
+
+    The same correlation, the same patch and heading boxes; the spectra are float32 in OpenCV's packed layout
+    (sides even) and the frequency-domain sum is :func:`_kernels.mac_ccs`. OpenCV's 2-D real transform of a
+    whole (Nr, Nc) array was measured 2-3x faster than numpy's double-precision pair of 1-D passes at the
+    tracking sizes (docs/correlator.md); the volume differs from the double-precision one only by float32
+    rounding of the transforms (a few 1e-7 of the peak, tests).
+    """
+
+    def __init__(self, F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=1, groups=2):
+        super().__init__(F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=threads, groups=groups)
+        self.Nr = _even_fast_size(self.Nr)
+        self.Nc = _even_fast_size(self.Nc)
+        self.N = max(self.Nr, self.Nc)
+        self._good = np.array([_even_fast_size(n) for n in range(self.N + 1)], np.int64)
+        self.lanes = [_PatchLaneCV(F, self.Nr, self.Nc) for _ in range(threads)]
+        self.featA = np.zeros((F,) + tuple(bev_shape), np.float32)
+
+    def _run_group(self, ln, s0, job):
+        import cv2
+        n, G, row0, col0, Ho, a0, A, inv_temp, vol, (r_lo, r_hi, c_lo, c_hi), per, nh = job
+        m = min(per, nh - s0)
+        hb = self.hb[s0:s0 + m]
+        orow, ocol = self.origin
+        LU, HU, LV, HV = K.support_bounds(r_lo, r_hi, c_lo, c_hi, orow, ocol, self.cos, self.sin, a0 + s0, A, hb)
+        Nr = int(self._good[Ho + HU - LU])
+        Nc = int(self._good[Ho + HV - LV])
+        ln.sizes = (max(ln.sizes[0], Nr), max(ln.sizes[1], Nc))
+        sz = Nr * Nc
+        patch = ln.patch[:n * sz].reshape(n, Nr, Nc)
+        Gs = ln.Gs[:n * sz].reshape(n, Nr, Nc)
+        K.fill_patch(G, self.act, row0 + LU, col0 + LV, patch)
+        for k in range(n):
+            cv2.dft(patch[k], dst=Gs[k])
+        canvas = ln.canvas[:n * sz].reshape(n, Nr, Nc)
+        T = ln.T[:n * sz].reshape(n, Nr, Nc)
+        P = ln.P[:sz].reshape(Nr, Nc)
+        buf = ln.buf[:sz].reshape(Nr, Nc)
+        scale = inv_temp / sz  # OpenCV's inverse is unnormalized
+        canvas.fill(0.0)  # the views' shapes change between calls
+        su_prev = 0
+        for k in range(m):
+            t = s0 + k
+            a = (a0 + t) % A
+            lu, lv = int(hb[k, 0]), int(hb[k, 2])
+            su = int(hb[k, 1]) - lu + 1
+            # rotate_support writes every entry of the rows < su; rows a taller heading left must be 0 again
+            K.rotate_support(self.featA[:n], self.cos[a], self.sin[a], orow, ocol, lu, lv, r_lo, r_hi, c_lo, c_hi,
+                             canvas[:, :su])
+            if su < su_prev:
+                canvas[:, su:su_prev].fill(0.0)
+            su_prev = su
+            for f in range(n):
+                cv2.dft(canvas[f], dst=T[f])
+            K.mac_ccs(Gs, T, n, P)
+            cv2.idft(P, dst=buf, flags=cv2.DFT_REAL_OUTPUT)
+            K.readout_patch(buf, lu - LU, lv - LV, scale, vol[t])
+
+
+class _PatchLaneCV:
+    """Per-thread buffers of a :class:`_SupportPatchEngineCV` (float32, largest sizes)."""
+
+    def __init__(self, F, Nr, Nc):
+        self.patch = np.zeros(F * Nr * Nc, np.float32)
+        self.Gs = np.zeros(F * Nr * Nc, np.float32)
+        self.canvas = np.zeros(F * Nr * Nc, np.float32)
+        self.T = np.zeros(F * Nr * Nc, np.float32)
+        self.P = np.zeros(Nr * Nc, np.float32)
+        self.buf = np.zeros(Nr * Nc, np.float32)
+        self.sizes = (0, 0)
+
+    @property
+    def nbytes(self) -> int:
+        return sum(a.nbytes for a in (self.patch, self.Gs, self.canvas, self.T, self.P, self.buf))
+
+
 class _PatchLane:
     """Per-thread buffers of a :class:`_SupportPatchEngine` (a group's map patch and one heading, largest sizes)."""
 
@@ -733,12 +967,13 @@ class Correlator:
         self._scorer = _PoseScorer(F, p)
         self._G_hwf8 = np.zeros((H, W, self._scorer.FP), np.float32)  # cell-major map features, for direct sums
         self._pw_fine = PeakWork(p.window_shape)
-        self._pw_coarse = PeakWork((H // 2, W // 2))
+        self._pw_coarse = PeakWork((H // 2, W // 2), kmax=max(64, p.coarse_top_k * p.coarse_budget_max))
         self._pw_track = PeakWork((2 * p.track_half_headings + 1,) + (2 * p.track_radius_cells + 1,) * 2)
         self._pw_track_c = PeakWork((2 * ((p.track_half_headings + 1) // 2) + 1,)
                                     + (2 * ((p.track_radius_cells + 1) // 2) + 1,) * 2)
         self._have_map = False
         self._calls = 0
+        self.last_refine = (p.coarse_top_k, p.coarse_climb)  # (hypotheses, climbs) of the last fast search
 
     def _fine_engine(self) -> "_CircleEngine":
         if self._fine is None:
@@ -754,8 +989,9 @@ class Correlator:
             p = self.params
             H, W = p.window_shape
             h, w = p.bev_shape
-            self._coarse = _CircleEngine(self.model.n_features, H // 2, W // 2, (h // 2, w // 2), p.origin_row / 2,
-                                         p.origin_col / 2, p.n_headings // p.coarse_step, p.threads)
+            cls = _CircleEngineCV if p.fft == "opencv" else _CircleEngine
+            self._coarse = cls(self.model.n_features, H // 2, W // 2, (h // 2, w // 2), p.origin_row / 2,
+                               p.origin_col / 2, p.n_headings // p.coarse_step, p.threads)
             if self._have_map:
                 self._coarse.set_map(self._Gc)
         return self._coarse
@@ -780,7 +1016,8 @@ class Correlator:
         p, F = self.params, self.model.n_features
         if p.track_engine == "fixed":
             return _PatchEngine(F, Ho, n_head, bev_shape, origin_row, origin_col, A)
-        return _SupportPatchEngine(F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=p.track_threads)
+        cls = _SupportPatchEngineCV if p.fft == "opencv" else _SupportPatchEngine
+        return cls(F, Ho, n_head, bev_shape, origin_row, origin_col, A, threads=p.track_threads)
 
     # -- set-up ----------------------------------------------------------------------------
     @property
@@ -886,7 +1123,8 @@ class Correlator:
                            p.mode_radius_headings, p.n_headings)
         self._scorer.new_frame(self._feat)
         modes = self._scorer.climb(self._G_hwf8, modes, self._inv_temp, max_steps=0)
-        modes.sort(key=lambda m: -m.cell_loglik)
+        modes.sort(key=self._rank)
+        modes = self._tie_rule(modes)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, volume=volume)
 
     def search_fast(self, bev) -> SearchResult:
@@ -913,16 +1151,27 @@ class Correlator:
         e.run(self._feat_c, 4.0 * self._inv_temp, None)
         if mult != 1:
             np.multiply(e.best_a, mult, out=best_heading)
-        cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, p.coarse_top_k, max(1, p.mode_radius_cells // 2),
-                           max(1, p.mode_radius_headings // hs), p.n_headings // hs)
+        top_k, n_climb = p.coarse_top_k, p.coarse_climb
+        rc, rh = max(1, p.mode_radius_cells // 2), max(1, p.mode_radius_headings // hs)
+        climb_rh = p.climb_heading_radius
+        if p.coarse_budget_cells:
+            cells = K.support_cells(self._feat)
+            if 0 < cells < p.coarse_budget_cells:  # nothing seen: every pose scores 0, nothing to look for
+                f = min(float(p.coarse_budget_max), p.coarse_budget_cells / max(1, cells))
+                top_k, n_climb = int(round(top_k * f)), int(round(n_climb * f))
+                if f >= 4.0:
+                    # denser starts and a wider look in heading too: a little evidence gives a ragged surface
+                    # with maxima close together, and each exact score is cheap
+                    rc, rh, climb_rh = 1, 1, max(climb_rh, p.budget_climb_heading_radius)
+        self.last_refine = (top_k, n_climb)
+        cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, top_k, rc, rh, p.n_headings // hs)
         sc = self._scorer
         sc.new_frame(self._feat)
         starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=hs,
                                heading_reach=p.start_heading_reach)
         starts.sort(key=lambda m: -m.cell_loglik)
-        fine = sc.climb(self._G_hwf8, starts[:p.coarse_climb], self._inv_temp, max_steps=16,
-                        heading_radius=p.climb_heading_radius)
-        modes = _distinct(fine, p, p.n_modes)
+        fine = sc.climb(self._G_hwf8, starts[:n_climb], self._inv_temp, max_steps=16, heading_radius=climb_rh)
+        modes = self._tie_rule(_distinct(fine, p, p.n_modes, self._rank))
         return SearchResult(e.best, best_heading, e.head_max, e.head_arg, modes=modes, scale=2,
                             heading_scale=out_hs, heading_max_scale=hs)
 
@@ -1004,15 +1253,33 @@ class Correlator:
         return _distinct(sc.climb(self._G_hwf8, starts, self._inv_temp, max_steps=16,
                                   heading_radius=p.climb_heading_radius), p, p.n_modes)
 
+    def _rank(self, m):
+        """Sort key of modes: higher exact score first; among equal scores the lower flat index (a, i, j)."""
+        H, W = self.params.window_shape
+        a, i, j = m.cell
+        return (-m.cell_loglik, (a * H + i) * W + j)
+
+    def _tie_rule(self, modes: list) -> list:
+        """Walk the near-best plateau of the modes within ``plateau_tol`` of the best (``plateau_budget``), then
+        rank again (the rule both full searches end with)."""
+        p = self.params
+        if not p.plateau_budget or not modes:
+            return modes
+        top = modes[0].cell_loglik
+        band = top - p.plateau_tol * abs(top)
+        near = [m for m in modes[:4] if m.cell_loglik >= band]
+        walked = self._scorer.walk(self._G_hwf8, near, self._inv_temp, p.plateau_tol, p.plateau_budget)
+        return _distinct(walked + modes, p, p.n_modes, self._rank)
+
     def pose_of(self, mode: Mode) -> tuple[float, float, float]:
         """(row, col, yaw_rad) of a mode: continuous window cell of the robot origin and its yaw."""
         return mode.row + 0.5, mode.col + 0.5, float(wrap_angle(mode.heading * self.params.dyaw))
 
 
-def _distinct(modes, p, n):
+def _distinct(modes, p, n, key=None):
     """Best first, dropping modes within the suppression radius of a better one (climbs can converge)."""
     out = []
-    for m in sorted(modes, key=lambda m: -m.cell_loglik):
+    for m in sorted(modes, key=key or (lambda m: -m.cell_loglik)):
         if all(not _near(m, o, p) for o in out):
             out.append(m)
         if len(out) == n:
@@ -1078,10 +1345,18 @@ class _PoseScorer:
         self.cells_out = np.zeros((kmax, 3), np.int64)
         self.score_out = np.zeros(kmax, np.float64)
         self.nb = np.zeros((kmax, 7), np.float64)
+        # the plateau walk's table of scored poses (open addressing, at most half full) and queue
+        wb = max(1, p.plateau_budget)
+        size = 1 << max(10, int(math.ceil(math.log2(4 * wb))))
+        self.walk_keys = np.full(size, -1, np.int64)
+        self.walk_vals = np.zeros(size, np.float64)
+        self.walk_queue = np.zeros(wb, np.int64)
+        self.walk_evals = 0  # poses scored by the last walk (all its modes)
 
     @property
     def nbytes(self) -> int:
-        return sum(a.nbytes for a in (self.uv, self.vals, self.count, self.bnd, self.valid, self.feat_hwf, self.cube,
+        return sum(a.nbytes for a in (self.walk_keys, self.walk_vals, self.walk_queue,
+                                      self.uv, self.vals, self.count, self.bnd, self.valid, self.feat_hwf, self.cube,
                                       self.cells_in, self.cells_out, self.score_out, self.nb, self.colmin,
                                       self.colmax))
 
@@ -1111,6 +1386,20 @@ class _PoseScorer:
             v = float(self.score_out[k]) * inv_temp
             out.append(Mode(float(i), float(j), float(a), v, (a, i, j), v))
         return out
+
+    def walk(self, G, modes, inv_temp, tol_frac: float, budget: int) -> list:
+        """Each mode walked over its near-best plateau (:func:`_kernels.walk_plateau`), refined below a cell."""
+        budget = min(budget, self.walk_queue.shape[0])
+        self.walk_evals = 0
+        cells = []
+        for m in modes:
+            a, i, j = m.cell
+            a2, i2, j2, _, ne = K.walk_plateau(a, i, j, tol_frac, budget, self.p.n_headings, self.fr, self.uv,
+                                              self.vals, self.count, self.bnd, self.valid, G, self.acc8,
+                                              self.walk_keys, self.walk_vals, self.walk_queue)
+            self.walk_evals += int(ne)
+            cells.append(Mode(float(i2), float(j2), float(a2), 0.0, (int(a2), int(i2), int(j2))))
+        return self.climb(G, cells, inv_temp, max_steps=0)
 
     def climb(self, G, modes, inv_temp, *, max_steps: int, heading_radius: int = 1) -> list:
         """Climb each mode's cell to a local maximum of the exact score (``max_steps = 0``: stay), then
