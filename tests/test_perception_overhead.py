@@ -7,6 +7,7 @@ with WARP_INVERSE_MAP) with it. With distortion, cv2.projectPoints itself is the
 """
 
 import math
+from dataclasses import replace
 
 import cv2
 import numpy as np
@@ -378,4 +379,13 @@ def test_trunk_under_a_crown():
     assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
     probs, labels = scene(slice(40, 120), TREE)  # 80 columns, about 5 m at 8 m
     proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
+    # a narrow run leaving the picture at the top (its crown out of view): a trunk only with trunk_at_top
+    probs, labels = scene(slice(78, 82), BUILDING)
+    proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
+    OverheadProjector(cam, replace(p, trunk_at_top=True)).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[TREE].sum() > 0
+    probs, labels = scene(slice(40, 120), BUILDING)  # ... but not a wide one
+    OverheadProjector(cam, replace(p, trunk_at_top=True)).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0

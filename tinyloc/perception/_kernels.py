@@ -612,7 +612,7 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
     # depth_m, start_m: (256,) float64, metres of evidence behind the foot and where it starts, per class
     # geom: (min_building_height_m, min_building_width_m, fx of the segmentation raster (px), thin_class,
     #        low_class (-1: not placed), stack_share (0: off), stack_dist (Lab), stack_base_m,
-    #        trunk_width_m (0: off))
+    #        trunk_width_m (0: off), trunk_at_top (1: a narrow run leaving the picture's top is a trunk too))
     # lab: (h, w, 3) uint8 Lab of the segmentation raster (read only when stack_share > 0)
     """Deposit vertical classes at their ground contacts, column by column.
 
@@ -642,14 +642,14 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
       standing in front of the facade: the foot is that object's and is placed as class ``geom[4]``;
       the facade above has no visible foot and is not placed;
     - a trunk (``geom[8]`` = trunk_width_m > 0): a run narrower than that across the horizon row whose
-      top ends under a tree crown (the first pixel above the bridged top is tree) is placed as class
-      ``geom[3]``.
+      top ends under a tree crown (the first pixel above the bridged top is tree), or with ``geom[9]`` > 0
+      leaves the picture at the top, is placed as class ``geom[3]``.
 
     Returns the number of feet placed.
     """
     nc, h, w = probs.shape
     min_h, min_w, fx, thin, low = geom[0], geom[1], geom[2], int(geom[3]), int(geom[4])
-    st_share, st_dist, st_base, tr_w = geom[5], geom[6], geom[7], geom[8]
+    st_share, st_dist, st_base, tr_w, tr_top = geom[5], geom[6], geom[7], geom[8], geom[9]
     checks = min_h > 0.0 or min_w > 0.0 or st_share > 0.0 or tr_w > 0.0
     count = 0
     for j in range(w):
@@ -714,8 +714,8 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                     kk = low
                                 elif not wide:
                                     kk = thin
-                                elif tr_w > 0.0 and topi > 0 and labels[topi - 1, j] == TREE \
-                                        and (b - a + 1) * dh / fx < tr_w:
+                                elif tr_w > 0.0 and (b - a + 1) * dh / fx < tr_w and \
+                                        ((topi > 0 and labels[topi - 1, j] == TREE) or (topi == 0 and tr_top > 0.0)):
                                     kk = thin
                             if kk >= 0:
                                 ux = lx / hn if hn > 1e-12 else 0.0  # a ray straight down: foot only

@@ -149,6 +149,8 @@ class OverheadParams:
     trunk_width_m : float
         A tall building run narrower than this across the horizon row and topped by a tree crown is a
         trunk and placed as one (0: off).
+    trunk_at_top : bool
+        ... and so is one that leaves the picture at the top (a near trunk whose crown is out of view).
     """
 
     rows: int = 64
@@ -171,6 +173,7 @@ class OverheadParams:
     stack_dist: float = 20.0
     stack_base_m: float = 1.0
     trunk_width_m: float = 0.0
+    trunk_at_top: bool = False
 
     def __post_init__(self):
         if not (4 <= self.rows <= 2048 and 4 <= self.cols <= 2048):
@@ -276,7 +279,8 @@ class OverheadProjector:
         self.start[BUILDING] = params.building_start_m
         low = {"none": -1, "fence": FENCE, "dynamic": DYNAMIC}[params.low_building_as]
         self._geom = np.array([params.min_building_height_m, params.min_building_width_m, cam.fx, TREE, low,
-                               params.stack_share, params.stack_dist, params.stack_base_m, params.trunk_width_m],
+                               params.stack_share, params.stack_dist, params.stack_base_m, params.trunk_width_m,
+                               1.0 if params.trunk_at_top else 0.0],
                               np.float64)
         self._geom_nocolour = self._geom.copy()
         self._geom_nocolour[5] = 0.0  # a label image has no colour: no stacked-object check
