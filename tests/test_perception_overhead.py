@@ -340,10 +340,10 @@ def test_stacked_object_in_front_of_facade():
     # no colour (label images): the facade is placed
     proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0
-    # off by default
-    assert OverheadParams().stack_share == 0.0
-    OverheadProjector(cam, OverheadParams(building_depth_m=0.0)).project(probs, labels, np.eye(3), hrow, grid,
-                                                                        tilted=False, lab=lab)
+    # on by default (0.2, 15); off at 0
+    assert (OverheadParams().stack_share, OverheadParams().stack_dist) == (0.2, 15.0)
+    OverheadProjector(cam, OverheadParams(building_depth_m=0.0, stack_share=0.0)).project(
+        probs, labels, np.eye(3), hrow, grid, tilted=False, lab=lab)
     assert grid.evidence[BUILDING].sum() > 0
 
 
@@ -371,8 +371,9 @@ def test_trunk_under_a_crown():
     probs, labels = scene(slice(78, 82), TREE)
     assert proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False) == 4
     assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[TREE].sum() > 0
-    OverheadProjector(cam, OverheadParams(building_depth_m=0.0)).project(probs, labels, np.eye(3), hrow, grid,
-                                                                        tilted=False)
+    assert OverheadParams().trunk_width_m == 1.0 and not OverheadParams().trunk_at_top  # the defaults
+    OverheadProjector(cam, OverheadParams(building_depth_m=0.0, trunk_width_m=0.0)).project(
+        probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
     probs, labels = scene(slice(78, 82), 9)  # sky above: no crown
     proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)

@@ -22,8 +22,8 @@ on another in the picture (a house behind a hedge) has no visible foot and is no
 checks: a building run lower than ``min_building_height_m`` at its range (a vehicle, a fence) becomes
 ``low_building_as`` (on by default); one narrower than ``min_building_width_m`` (a trunk, a pole) is
 placed as a tree trunk (off); a tall run whose base's colour its upper part does not share is another
-object in front of a facade (``stack_share``), and a narrow run under a crown a trunk
-(``trunk_width_m``).
+object in front of a facade (``stack_share``, on), and a narrow run under a crown a trunk
+(``trunk_width_m``, on).
 
 The lookup (cell centre -> pixel) is computed once per calibration for a level base; a frame
 whose gravity vector tilts the base gets its own lookup, recomputed in place by a kernel
@@ -163,16 +163,19 @@ class OverheadParams:
     object_depth_m: float = 0.5
     # The height check with low runs placed as fences is on (it raised the live loop's recall on the
     # tuning drives, docs/perception.md, "The live loop"); the start offset and the width check stay off
-    # (the width check drops true facades; CHECKED_BUILDINGS has all three as first measured).
+    # (the width check drops true facades; CHECKED_BUILDINGS has all three as first measured). The
+    # object-in-front and trunk-under-a-crown checks are on: fewer false building cells on the tuning
+    # drives and the rendered sites, loop recall up (docs/perception.md, "Building precision");
+    # trunk_at_top stays off (the loop's medians got worse).
     building_start_m: float = 0.0
     min_building_height_m: float = 3.0
     min_building_width_m: float = 0.0
     low_building_as: str = "fence"
     min_run_px: int = 3
-    stack_share: float = 0.0
-    stack_dist: float = 20.0
+    stack_share: float = 0.2
+    stack_dist: float = 15.0
     stack_base_m: float = 1.0
-    trunk_width_m: float = 0.0
+    trunk_width_m: float = 1.0
     trunk_at_top: bool = False
 
     def __post_init__(self):
@@ -207,7 +210,11 @@ class OverheadParams:
 CHECKED_BUILDINGS = {"building_start_m": 0.25, "min_building_height_m": 3.0, "min_building_width_m": 1.0,
                      "low_building_as": "none"}
 #: The projection as it was before the height check became the default (no building checks).
-UNCHECKED_BUILDINGS = {"min_building_height_m": 0.0, "low_building_as": "none"}
+UNCHECKED_BUILDINGS = {"min_building_height_m": 0.0, "low_building_as": "none", "stack_share": 0.0,
+                       "trunk_width_m": 0.0}
+#: The projection of the previous round (height check with low runs as fences; no object-in-front or
+#: trunk check).
+PREVIOUS_BUILDINGS = {"stack_share": 0.0, "trunk_width_m": 0.0}
 
 # Ground classes: seen by their surface; vertical classes (and "dynamic") by their foot.
 # Indexed by label value (256 entries so that 255 = "unlabelled" is neither).
