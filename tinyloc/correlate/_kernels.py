@@ -926,23 +926,59 @@ def _walk_score(a, i, j, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8):
 
 
 @njit(**JIT)
-def walk_plateau(a0, i0, j0, tol_frac, budget, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8, keys,
-                 vals, queue):
-    """Best pose of the near-best plateau around (a0, i0, j0): the tie rule shared by every search.
+def _heap_push(heap, n, key):
+    heap[n] = key
+    k = n
+    while k > 0:
+        up = (k - 1) // 2
+        if heap[up] <= heap[k]:
+            break
+        heap[up], heap[k] = heap[k], heap[up]
+        k = up
+    return n + 1
 
-    Breadth-first over the 3 x 3 x 3 neighbourhoods of poses whose exact score is within
-    ``tol_frac * |best|`` of the best score met so far (the running best moves up as better poses
-    are met, so this also climbs). Returns (a, i, j, score, evaluations): the highest exact score
-    met; among exactly equal scores, the lowest flat index a * H * W + i * W + j, so two walks
-    that explore the same plateau end on the same pose wherever they start. At most ``budget``
-    poses are scored. ``keys`` (power-of-two size, int64) and ``vals`` (float64) are an
-    open-addressing table of the poses scored; ``queue`` (int64, >= budget) is scratch.
+
+@njit(**JIT)
+def _heap_pop(heap, n):
+    top = heap[0]
+    n -= 1
+    heap[0] = heap[n]
+    k = 0
+    while True:
+        l = 2 * k + 1
+        if l >= n:
+            break
+        c = l
+        if l + 1 < n and heap[l + 1] < heap[l]:
+            c = l + 1
+        if heap[k] <= heap[c]:
+            break
+        heap[k], heap[c] = heap[c], heap[k]
+        k = c
+    return top, n
+
+
+@njit(**JIT)
+def walk_plateau(a0, i0, j0, tol_frac, budget, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8, keys,
+                 vals, queue, reset=True):
+    """Best pose of the near-best plateau around (a0, i0, j0): the tie rule shared by both full searches.
+
+    Explores the 3 x 3 x 3 neighbourhoods of poses whose exact score is within ``tol_frac * |best|``
+    of the best score met so far (the running best moves up as better poses are met, so this also
+    climbs), lowest flat index a * H * W + i * W + j first, so that on a long plateau the walk heads
+    for its low end. Returns (a, i, j, score, evaluations): the highest exact score met; among exactly
+    equal scores, the lowest flat index, so two walks that reach the same end of a plateau end on the
+    same pose wherever they start. At most ``budget`` poses are scored. ``keys`` (power-of-two size,
+    int64) and ``vals`` (float64) are an open-addressing table of the poses scored; ``queue`` (int64,
+    >= budget) is the heap of poses to expand. ``reset`` False keeps the table of the previous walk of the
+    same frame (its scores are valid; the caller checks whether the start was already met).
     """
     H, W = G.shape[0], G.shape[1]
     HW = H * W
     mask = keys.shape[0] - 1
-    for k in range(keys.shape[0]):
-        keys[k] = -1
+    if reset:
+        for k in range(keys.shape[0]):
+            keys[k] = -1
     a0 = a0 % A
     key0 = a0 * HW + i0 * W + j0
     s0 = _walk_score(a0, i0, j0, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8)
@@ -952,14 +988,9 @@ def walk_plateau(a0, i0, j0, tol_frac, budget, A, fr, uv_pool, vals_pool, count,
     n_eval = 1
     best_key = key0
     best = s0
-    qh = 0
-    qt = 0
-    queue[qt] = key0
-    qt += 1
-    while qh < qt:
-        key = queue[qh]
-        qh += 1
-        # this pose's own score, looked up
+    nq = _heap_push(queue, 0, key0)
+    while nq > 0:
+        key, nq = _heap_pop(queue, nq)
         h = (key * 2654435761) & mask
         while keys[h] != key:
             h = (h + 1) & mask
@@ -986,9 +1017,7 @@ def walk_plateau(a0, i0, j0, tol_frac, budget, A, fr, uv_pool, vals_pool, count,
                             seen = True
                             break
                         h = (h + 1) & mask
-                    if seen:
-                        continue
-                    if n_eval >= budget or n_eval * 2 > keys.shape[0]:
+                    if seen or n_eval >= budget or n_eval * 2 > keys.shape[0]:
                         continue
                     v = _walk_score(aa, ii, jj, A, fr, uv_pool, vals_pool, count, bnd, valid, G, acc8)
                     n_eval += 1
@@ -997,7 +1026,55 @@ def walk_plateau(a0, i0, j0, tol_frac, budget, A, fr, uv_pool, vals_pool, count,
                     if v > best or (v == best and nk < best_key):
                         best = v
                         best_key = nk
-                    if v >= best - tol_frac * abs(best) and qt < queue.shape[0]:
-                        queue[qt] = nk
-                        qt += 1
+                    if v >= best - tol_frac * abs(best) and nq < queue.shape[0]:
+                        nq = _heap_push(queue, nq, nk)
     return best_key // HW, (best_key % HW) // W, best_key % W, best, n_eval
+
+
+@njit(**JIT)
+def order_by_score(score, cells, n, W, HW, tie_key, order):
+    """order[:n] = indices of score[:n] from the highest (a stable insertion sort: n is a few hundred at most).
+
+    Equal scores keep their input order (``tie_key`` False) or go lowest flat index a * HW + i * W + j first
+    (``tie_key`` True, ``cells[k]`` = (a, i, j)): the ranking rule of the searches' modes.
+    """
+    for k in range(n):
+        order[k] = k
+    for k in range(1, n):
+        x = order[k]
+        sx = score[x]
+        kx = cells[x, 0] * HW + cells[x, 1] * W + cells[x, 2]
+        m = k - 1
+        while m >= 0:
+            y = order[m]
+            sy = score[y]
+            if sy > sx:
+                break
+            if sy == sx:
+                if not tie_key:
+                    break
+                if cells[y, 0] * HW + cells[y, 1] * W + cells[y, 2] <= kx:
+                    break
+            order[m + 1] = y
+            m -= 1
+        order[m + 1] = x
+
+
+@njit(**JIT)
+def take_rows(src, idx, n, dst):
+    """dst[k] = src[idx[k]] for k < n."""
+    for k in range(n):
+        for c in range(src.shape[1]):
+            dst[k, c] = src[idx[k], c]
+
+
+@njit(**JIT)
+def table_has(keys, key):
+    """True if ``key`` is in the open-addressing table of :func:`walk_plateau`."""
+    mask = keys.shape[0] - 1
+    h = (key * 2654435761) & mask
+    while keys[h] != -1:
+        if keys[h] == key:
+            return True
+        h = (h + 1) & mask
+    return False

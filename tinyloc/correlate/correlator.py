@@ -130,7 +130,7 @@ class CorrelatorParams:
     coarse_climb: int = 16
     coarse_budget_cells: int = 2048
     coarse_budget_max: int = 16
-    plateau_budget: int = 500
+    plateau_budget: int = 2000
     budget_climb_heading_radius: int = 3
     plateau_tol: float = 1e-4
     coarse_heading_step: int = 0
@@ -964,7 +964,7 @@ class Correlator:
         self._scratch = np.zeros((H, W), np.float32)
         self._inv_temp = 1.0 / self.model.temperature
         self._fine = self._coarse = self._track = self._track_c = None  # allocated at first use (or warm_up)
-        self._scorer = _PoseScorer(F, p)
+        self._scorer = _PoseScorer(F, p, kmax=max(512, p.coarse_top_k * p.coarse_budget_max))
         self._G_hwf8 = np.zeros((H, W, self._scorer.FP), np.float32)  # cell-major map features, for direct sums
         self._pw_fine = PeakWork(p.window_shape)
         self._pw_coarse = PeakWork((H // 2, W // 2), kmax=max(64, p.coarse_top_k * p.coarse_budget_max))
@@ -1164,14 +1164,16 @@ class Correlator:
                     # with maxima close together, and each exact score is cheap
                     rc, rh, climb_rh = 1, 1, max(climb_rh, p.budget_climb_heading_radius)
         self.last_refine = (top_k, n_climb)
-        cands = find_modes(e.best, e.best_a, self._pw_coarse, 2, top_k, rc, rh, p.n_headings // hs)
+        pw = self._pw_coarse
+        n = K.nms_profile(e.best, e.best_a, p.n_headings // hs, min(top_k, pw.i.shape[0]), rc, rh, pw.work, pw.i,
+                          pw.j, pw.a, pw.v)
         sc = self._scorer
         sc.new_frame(self._feat)
-        starts = sc.best_under(self._G_hwf8, cands, self._inv_temp, scale=2, heading_scale=hs,
-                               heading_reach=p.start_heading_reach)
-        starts.sort(key=lambda m: -m.cell_loglik)
-        fine = sc.climb(self._G_hwf8, starts[:n_climb], self._inv_temp, max_steps=16, heading_radius=climb_rh)
-        modes = self._tie_rule(_distinct(fine, p, p.n_modes, self._rank))
+        # arrays from here to the last step: a few hundred hypotheses make no Python objects
+        fine = sc.refine_hypotheses(self._G_hwf8, pw, n, self._inv_temp, scale=2, heading_scale=hs,
+                                    heading_reach=p.start_heading_reach, n_climb=n_climb, heading_radius=climb_rh,
+                                    n_modes=p.n_modes)
+        modes = self._tie_rule(fine)
         return SearchResult(e.best, best_heading, e.head_max, e.head_arg, modes=modes, scale=2,
                             heading_scale=out_hs, heading_max_scale=hs)
 
@@ -1345,6 +1347,7 @@ class _PoseScorer:
         self.cells_out = np.zeros((kmax, 3), np.int64)
         self.score_out = np.zeros(kmax, np.float64)
         self.nb = np.zeros((kmax, 7), np.float64)
+        self.order = np.zeros(kmax, np.int64)
         # the plateau walk's table of scored poses (open addressing, at most half full) and queue
         wb = max(1, p.plateau_budget)
         size = 1 << max(10, int(math.ceil(math.log2(4 * wb))))
@@ -1355,7 +1358,7 @@ class _PoseScorer:
 
     @property
     def nbytes(self) -> int:
-        return sum(a.nbytes for a in (self.walk_keys, self.walk_vals, self.walk_queue,
+        return sum(a.nbytes for a in (self.walk_keys, self.walk_vals, self.walk_queue, self.order,
                                       self.uv, self.vals, self.count, self.bnd, self.valid, self.feat_hwf, self.cube,
                                       self.cells_in, self.cells_out, self.score_out, self.nb, self.colmin,
                                       self.colmax))
@@ -1391,15 +1394,61 @@ class _PoseScorer:
         """Each mode walked over its near-best plateau (:func:`_kernels.walk_plateau`), refined below a cell."""
         budget = min(budget, self.walk_queue.shape[0])
         self.walk_evals = 0
+        H, W = self.p.window_shape
         cells = []
-        for m in modes:
+        for k, m in enumerate(modes):
             a, i, j = m.cell
+            if k and K.table_has(self.walk_keys, (a * H + i) * W + j):
+                continue  # met by an earlier walk of this frame: the same plateau, the same end
             a2, i2, j2, _, ne = K.walk_plateau(a, i, j, tol_frac, budget, self.p.n_headings, self.fr, self.uv,
                                               self.vals, self.count, self.bnd, self.valid, G, self.acc8,
-                                              self.walk_keys, self.walk_vals, self.walk_queue)
+                                              self.walk_keys, self.walk_vals, self.walk_queue, True)
             self.walk_evals += int(ne)
             cells.append(Mode(float(i2), float(j2), float(a2), 0.0, (int(a2), int(i2), int(j2))))
         return self.climb(G, cells, inv_temp, max_steps=0)
+
+    def refine_hypotheses(self, G, pw, n, inv_temp, *, scale: int, heading_scale: int, heading_reach: int,
+                          n_climb: int, heading_radius: int, n_modes: int) -> list:
+        """The fast search's refinement on arrays: the best exact pose under each of the ``n`` coarse hypotheses in
+        ``pw`` (a :class:`PeakWork` filled by ``nms_profile``), the best ``n_climb`` of those (stable order) climbed
+        to local maxima, and the ``n_modes`` best distinct ones as Modes (ranked by exact score, ties to the
+        lowest flat index). Only the modes returned are made into Python objects."""
+        p = self.p
+        A = p.n_headings
+        H, W = p.window_shape
+        n = min(n, self.kmax)
+        ci = self.cells_in[:n]
+        ci[:, 0] = pw.a[:n]
+        ci[:, 1] = pw.i[:n]
+        ci[:, 2] = pw.j[:n]
+        K.best_under(ci, heading_scale, scale, heading_reach, A, self.fr, self.uv, self.vals, self.count, self.bnd,
+                     self.valid, G, self.acc8, self.cells_out[:n], self.score_out[:n])
+        K.order_by_score(self.score_out, self.cells_out, n, W, H * W, False, self.order)
+        m = min(n_climb, n)
+        K.take_rows(self.cells_out, self.order, m, self.cells_in)
+        K.climb_poses(self.cells_in[:m], 16, max(1, heading_radius), A, self.fr, self.uv, self.vals, self.count,
+                      self.bnd, self.valid, G, self.cube, self.acc8, self.cells_out[:m], self.nb[:m])
+        self.score_out[:m] = self.nb[:m, 0]
+        K.order_by_score(self.score_out, self.cells_out, m, W, H * W, True, self.order)
+        out = []
+        for r in range(m):
+            md = self._mode_at(int(self.order[r]), inv_temp)
+            if all(not _near(md, o, p) for o in out):
+                out.append(md)
+                if len(out) == n_modes:
+                    break
+        return out
+
+    def _mode_at(self, k: int, inv_temp: float) -> Mode:
+        """Mode of climb result k (``cells_out[k]``, neighbour scores ``nb[k]``), refined by parabolas."""
+        A = self.p.n_headings
+        a, i, j = (int(x) for x in self.cells_out[k])
+        s0, rm, rp, cm, cp, hm, hp = (float(x) * inv_temp for x in self.nb[k])
+        dr, vr = parabola(rm, s0, rp)
+        dc, vc = parabola(cm, s0, cp)
+        dh, vh = parabola(hm, s0, hp)
+        peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
+        return Mode(i + dr, j + dc, float((a + dh) % A), float(peak), (a, i, j), s0)
 
     def climb(self, G, modes, inv_temp, *, max_steps: int, heading_radius: int = 1) -> list:
         """Climb each mode's cell to a local maximum of the exact score (``max_steps = 0``: stay), then
