@@ -337,6 +337,10 @@ def test_stacked_object_in_front_of_facade():
         labs, _ = _stack_lab(cam, z, base, facade, n_like)
         proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False, lab=labs)
         assert (grid.evidence[BUILDING].sum() == 0) == stacked, (n_like, nu)
+    # without the height check there is no upper part to compare: no check
+    OverheadProjector(cam, replace(p, min_building_height_m=0.0)).project(probs, labels, np.eye(3), hrow, grid,
+                                                                         tilted=False, lab=lab)
+    assert grid.evidence[BUILDING].sum() > 0
     # no colour (label images): the facade is placed
     proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0

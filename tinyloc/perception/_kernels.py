@@ -697,8 +697,10 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                     q -= 1
                                 dh = s * hn
                                 tall = topi == 0 or _height_at(rays, level, cam, topi, j, dh) >= min_h
-                                if tall and st_share > 0.0 and _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh,
-                                                                        min_h, st_share, st_dist, st_base):
+                                # (the upper part starts at min_h: without a height check above the base, no check)
+                                if tall and st_share > 0.0 and min_h > st_base and \
+                                        _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh, min_h, st_share,
+                                                 st_dist, st_base):
                                     tall = False
                                 # width where the run crosses the horizon (the foot row wanders
                                 # between columns on an oblique or ragged foot)

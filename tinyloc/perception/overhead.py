@@ -145,7 +145,8 @@ class OverheadParams:
         ``min_building_height_m`` up lie within ``stack_dist`` (Lab, 0.5 |dL| + |da| + |db|) of the mean
         colour of its base (0.2 m .. ``stack_base_m`` above the ground at the foot's range), the base is
         a car, bus or garden wall standing in front: it is placed as ``low_building_as`` and the facade,
-        whose own foot is hidden, is not placed.
+        whose own foot is hidden, is not placed. It acts only with the height check on
+        (``min_building_height_m`` above ``stack_base_m``), whose height bounds the upper part.
     trunk_width_m : float
         A tall building run narrower than this across the horizon row and topped by a tree crown is a
         trunk and placed as one (0: off).
