@@ -90,6 +90,17 @@ def test_reset_forgets_the_track_but_keeps_the_scale():
     assert osc.n == 0 and osc.fit() is None and osc.scale == s
 
 
+def test_nothing_is_recorded_while_settling_after_a_reset():
+    osc = OdometryScale(span_m=20.0, rate=0.05, settle_m=5.0)
+    for _ in range(19):  # 4.75 m: still settling (the belief may be catching up after a lock-on)
+        osc.odometry(0.25, 0.0, 0.0)
+        osc.pose(osc.ox + 3.0, osc.oy)
+    assert osc.n == 0
+    osc.odometry(0.25, 0.0, 0.0)
+    osc.pose(osc.ox, osc.oy)
+    assert osc.n == 1
+
+
 def test_no_allocation_per_call():
     osc = OdometryScale(span_m=20.0, rate=0.02)
     rng = np.random.default_rng(5)

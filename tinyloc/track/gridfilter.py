@@ -212,6 +212,8 @@ class TrackParams:
         Share of the way to each new fit taken per frame [0.02].
     odo_scale_max_dev : float
         The scale in use stays within 1 +- this [0.05].
+    odo_scale_settle_m : float
+        Path after each lock-on before poses are used (the belief may still be catching up) [5.0].
     fallback_weight : float
         While not tracking (searching, degraded), the reported covariance also holds the satellite
         fix of the frame as a competing pose with this weight: ``w (S + d d^T)`` with S the fix's
@@ -266,6 +268,7 @@ class TrackParams:
     odo_scale_span_m: float = 30.0
     odo_scale_rate: float = 0.02
     odo_scale_max_dev: float = 0.05
+    odo_scale_settle_m: float = 5.0
     fallback_weight: float = 0.25
     gnss: GnssParams = field(default_factory=GnssParams)
 
@@ -760,7 +763,8 @@ class Tracker:
 
         self.odo_scale = OdometryScale(max(params.odo_scale_span_m, 1.0),
                                        params.odo_scale_rate if params.odo_scale_span_m > 0 else 0.0,
-                                       params.odo_scale_max_dev, params.odometry_scale)
+                                       params.odo_scale_max_dev, params.odometry_scale,
+                                       settle_m=params.odo_scale_settle_m)
         self.reset_state()
 
     def reset_state(self) -> None:
@@ -936,6 +940,8 @@ class Tracker:
         self.last = est
         if self.state == "tracking":
             self.odo_scale.pose(est.x, est.y)  # learn the wheel scale from poses the map holds
+        elif self.state == "searching":
+            self.odo_scale.reset()  # the track starts again at the next lock-on
         if self._ambig is not None and self.state != "searching":
             est = self._with_alternative(est)
         return self._output(t, self.state, notes, est, surprise, self._was_global)

@@ -44,17 +44,21 @@ class OdometryScale:
         Largest relative deviation from 1 that is ever used (0.05: 0.95..1.05).
     initial : float
         Value in use at start (a calibrated scale, or 1).
+    settle_m : float
+        Path after a reset (lock-on) that is not recorded: the belief may still be closing the
+        distance to the truth then, and that catch-up is not the wheels' doing.
     capacity : int
         Rows kept. A row is recorded only after ``span_m / 100`` of new path, so the span fits in the
         ring at any frame rate.
     """
 
     def __init__(self, span_m: float = 30.0, rate: float = 0.02, max_dev: float = 0.05, initial: float = 1.0,
-                 capacity: int = 256):
+                 capacity: int = 256, settle_m: float = 5.0):
         self.span_m = float(span_m)
         self.rate = float(rate)
         self.max_dev = float(max_dev)
         self.initial = float(initial)
+        self.settle_m = float(settle_m)
         self.scale = self.initial
         self.cap = int(capacity)
         self._o = np.zeros((self.cap, 2), np.float64)
@@ -68,7 +72,7 @@ class OdometryScale:
         self.reset()
 
     def reset(self) -> None:
-        """Forget the track (lost, odometry jump or gap); the value in use is kept."""
+        """Forget the track (not tracking, odometry jump or gap); the value in use is kept."""
         self.n = 0
         self.head = 0
         self.ox = self.oy = self.oyaw = 0.0
@@ -85,6 +89,8 @@ class OdometryScale:
 
     def pose(self, x_m: float, y_m: float) -> None:
         """Record the filter's estimate (world ENU, m) of a frame flagged tracking, then refit."""
+        if self.dist < self.settle_m:
+            return
         if self.n and self.dist - self._path[(self.head - 1) % self.cap] < 0.01 * self.span_m:
             return
         k = self.head
