@@ -1,7 +1,7 @@
 """Perception on the accuracy benchmark's drives: pixel IoU, bird's-eye agreement and building evidence.
 
     python tests/_perception_drives.py [--seeds 11 12 13 14 15 16 17] [--every 15] [--preset sidewalk]
-                                       [--set segment.KEY=VALUE] [--set overhead.KEY=VALUE] [--json]
+                                       [--set segment.KEY=VALUE] [--set overhead.KEY=VALUE] [--causes] [--json]
 
 Reads the run folders that ``benchmarks/loop_accuracy.py`` generates and caches (``--work``,
 default /tmp/tinyloc-acc; it skips with a message when a run is missing), takes every ``--every``-th
@@ -14,7 +14,11 @@ frame with its IMU gravity, and compares tinyloc's segmenter with the renderer's
   oracle saw; and the confusion (oracle class -> ours) of the cells both saw;
 - building evidence: our building cells (evidence > 0.3 and the strongest channel) within 1 m of an
   oracle building cell (SciPy's Euclidean distance transform), and the true class of the lowest three
-  pixels of every building run whose foot lands within 20 m (where false building evidence comes from).
+  pixels of every building run whose foot lands within 20 m (where false building evidence comes from);
+- with ``--causes``: every building run that the projector places as building (each column's runs
+  projected alone, the other columns' feet hidden), counted by the true class of its pixels (block
+  majority of the labels at the segmentation raster) and, for true building runs, whether its lowest
+  three pixels are building too (a facade's own foot) or something in front of it.
 
 A diagnostic for tuning on the TUNING drives (seeds 11-17); not a test.
 """
@@ -74,7 +78,52 @@ def _feet_sources(perc, lab_small, counts, max_range_m=20.0):
                 i -= 1
 
 
-def analyse(seeds, *, every=15, segment=None, overhead=None, work="/tmp/tinyloc-acc"):
+def _block_majority(lab, w, h):
+    """Majority class of each (H/h) x (W/w) block of a label image (the truth at the raster's size)."""
+    big_h, big_w = lab.shape
+    fy, fx = big_h // h, big_w // w
+    b = lab[:h * fy, :w * fx].reshape(h, fy, w, fx).transpose(0, 2, 1, 3).reshape(h * w, fy * fx)
+    return np.array([np.bincount(r, minlength=256).argmax() for r in b], np.uint8).reshape(h, w)
+
+
+def _placed_causes(perc, truth_small, counts):
+    """Count each building run placed as building by the true class of its pixels (see the module doc).
+
+    Each run is projected alone: every other foot is hidden by turning the ground pixels below the
+    horizon into "unlabelled" (neither ground nor object, a gap for the top's bridging) in the other
+    columns and above the run in its own column, and the objects below it into its foot's ground.
+    """
+    L, hr = perc.labels, perc.horizon
+    h, w = L.shape
+    ground_below = (np.arange(h)[:, None] > np.floor(hr)[None, :]) & IS_GROUND[L].astype(bool)
+    grid = perc.new_grid()
+    for j in range(w):
+        i = h - 2
+        while i >= max(int(np.floor(hr[j])) + 1, 0):
+            if L[i, j] == BUILDING and IS_GROUND[L[i + 1, j]]:
+                top = i
+                while top >= 0 and L[top, j] == BUILDING:
+                    top -= 1
+                if i - top >= perc.params.overhead.min_run_px:
+                    alone = L.copy()
+                    hide = ground_below.copy()
+                    hide[i + 1:, j] = False
+                    alone[hide] = 255
+                    alone[i + 1:, j] = L[i + 1, j]
+                    perc.projector.project(perc.probs, alone, perc._level, hr, grid, tilted=True, lab=perc.segmenter.lab)
+                    if grid.evidence[BUILDING].max() > 0:
+                        t = int(np.bincount(truth_small[top + 1:i + 1, j], minlength=256).argmax())
+                        run_c = NAMES[t] if t < len(NAMES) else "unlabelled"
+                        if run_c == "building":
+                            foot = np.bincount(truth_small[max(i - 2, top + 1):i + 1, j], minlength=256).argmax()
+                            run_c = "building, own foot" if foot == BUILDING else "building, foot of something in front"
+                        counts[run_c] = counts.get(run_c, 0) + 1
+                i = top
+            else:
+                i -= 1
+
+
+def analyse(seeds, *, every=15, segment=None, overhead=None, work="/tmp/tinyloc-acc", causes=False):
     """Figures (dict) over every ``every``-th frame of the cached drives of ``seeds``."""
     segment = segment if segment is not None else preset("sidewalk")
     overhead = overhead if overhead is not None else OverheadParams()
@@ -86,6 +135,7 @@ def analyse(seeds, *, every=15, segment=None, overhead=None, work="/tmp/tinyloc-
     lut = np.full(256, 255, np.uint8)
     lut[:NUM_CLASSES] = np.arange(NUM_CLASSES)
     used = []
+    placed = {}
     for seed in seeds:
         run = Path(work) / f"run{seed}_300"
         if not (run / "labels").is_dir():
@@ -107,6 +157,8 @@ def analyse(seeds, *, every=15, segment=None, overhead=None, work="/tmp/tinyloc-
             pred = labels_at(perc.probs, (cam.width, cam.height))
             np.add.at(conf, (lab.ravel(), pred.ravel()), 1)
             _feet_sources(perc, cv2.resize(lab, (sw, sh), interpolation=cv2.INTER_NEAREST), feet)
+            if causes:
+                _placed_causes(perc, _block_majority(lab, sw, sh), placed)
             perc.process_labels(lab, grav, oracle, lut)
             seen = oracle.visible > 0
             o_best = np.where(oracle.evidence.max(0) > 0.3, oracle.evidence.argmax(0), 254)
@@ -135,7 +187,9 @@ def analyse(seeds, *, every=15, segment=None, overhead=None, work="/tmp/tinyloc-
                                            for r in range(NUM_CLASSES) if bconf[r].sum()},
             "building_cells": cells,
             "building_feet_true_class": {NAMES[i] if i < len(NAMES) else str(i): int(n)
-                                         for i, n in enumerate(feet) if n}}
+                                         for i, n in enumerate(feet) if n},
+            **({"building_runs_placed_by_true_class": dict(sorted(placed.items(), key=lambda t: -t[1]))}
+               if causes else {})}
 
 
 def main(argv=None) -> int:
@@ -145,6 +199,7 @@ def main(argv=None) -> int:
     ap.add_argument("--preset", default="sidewalk")
     ap.add_argument("--work", default="/tmp/tinyloc-acc")
     ap.add_argument("--set", action="append", default=[], help="segment.KEY=VALUE or overhead.KEY=VALUE")
+    ap.add_argument("--causes", action="store_true", help="count the placed building runs by true class (slow)")
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args(argv)
     seg, ov = {}, {}
@@ -153,7 +208,7 @@ def main(argv=None) -> int:
         part, _, name = key.partition(".")
         {"segment": seg, "overhead": ov}[part][name] = _value(val)
     out = analyse(a.seeds, every=a.every, segment=dataclasses.replace(preset(a.preset), **seg),
-                  overhead=OverheadParams(**ov), work=a.work)
+                  overhead=OverheadParams(**ov), work=a.work, causes=a.causes)
     if a.json:
         print(json.dumps(out))
     else:
