@@ -128,7 +128,7 @@ class CorrelatorParams:
     mode_radius_headings: int = 8
     coarse_top_k: int = 32
     coarse_climb: int = 16
-    coarse_budget_cells: int = 2048
+    coarse_budget_cells: int = 1024
     coarse_budget_max: int = 16
     plateau_budget: int = 2000
     budget_climb_heading_radius: int = 3
@@ -974,6 +974,7 @@ class Correlator:
         self._have_map = False
         self._calls = 0
         self.last_refine = (p.coarse_top_k, p.coarse_climb)  # (hypotheses, climbs) of the last fast search
+        self.last_exact_before_tie_rule = None  # best mode of the last exact search before its tie rule
 
     def _fine_engine(self) -> "_CircleEngine":
         if self._fine is None:
@@ -1124,6 +1125,7 @@ class Correlator:
         self._scorer.new_frame(self._feat)
         modes = self._scorer.climb(self._G_hwf8, modes, self._inv_temp, max_steps=0)
         modes.sort(key=self._rank)
+        self.last_exact_before_tie_rule = modes[0] if modes else None  # for the benchmark's agreement figures
         modes = self._tie_rule(modes)
         return SearchResult(e.best, e.best_a, e.head_max, e.head_arg, modes=modes, volume=volume)
 
