@@ -361,11 +361,11 @@ def test_trunk_under_a_crown():
     assert _row_heights(cam, proj, foot_row=72.5)[10] > 3.0  # the run (rows 10 .. 72) is tall enough
     grid = p.new_grid()
 
-    def scene(cols, above):
-        probs, labels = _tall_wall(cam, 72)
+    def scene(cols, above, foot=72):
+        probs, labels = _tall_wall(cam, foot)
         keep = np.zeros(cam.width, bool)
         keep[cols] = True
-        labels[:73, ~keep] = ROAD  # only ``cols`` hold the run (the rest: far road, which nothing stands on)
+        labels[:foot + 1, ~keep] = ROAD  # only ``cols`` hold the run (the rest: far road, nothing stands on it)
         labels[:10, keep] = above
         probs[:] = 0.0
         for k in (BUILDING, ROAD, TREE, 9):
@@ -385,12 +385,19 @@ def test_trunk_under_a_crown():
     probs, labels = scene(slice(40, 120), TREE)  # 80 columns, about 5 m at 8 m
     proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
-    # a narrow run leaving the picture at the top (its crown out of view): a trunk only with trunk_at_top
-    probs, labels = scene(slice(78, 82), BUILDING)
+    # a narrow run leaving the picture at the top below 3 m (foot row 85, 4 m away: the top row is
+    # 0.8 + 4 tan(25.8 deg) = 2.7 m up there, so its height is unverified): a trunk only with trunk_at_top
+    z_top = _row_heights(cam, proj, foot_row=85.5)[0]
+    assert 2.5 < z_top < 3.0
+    at_top = OverheadProjector(cam, replace(p, trunk_at_top=True))
+    probs, labels = scene(slice(78, 82), BUILDING, foot=85)
     proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
-    OverheadProjector(cam, replace(p, trunk_at_top=True)).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    at_top.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() == 0 and grid.evidence[TREE].sum() > 0
-    probs, labels = scene(slice(40, 120), BUILDING)  # ... but not a wide one
-    OverheadProjector(cam, replace(p, trunk_at_top=True)).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    probs, labels = scene(slice(78, 82), BUILDING)  # ... not one whose top is seen above 3 m (4.7 m at 8 m)
+    at_top.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+    assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
+    probs, labels = scene(slice(40, 120), BUILDING, foot=85)  # ... nor a wide one
+    at_top.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0

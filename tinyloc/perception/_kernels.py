@@ -643,7 +643,8 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
       the facade above has no visible foot and is not placed;
     - a trunk (``geom[8]`` = trunk_width_m > 0): a run narrower than that across the horizon row whose
       top ends under a tree crown (the first pixel above the bridged top is tree), or with ``geom[9]`` > 0
-      leaves the picture at the top, is placed as class ``geom[3]``.
+      leaves the picture at the top below ``geom[0]`` metres (its height unverified), is placed as class
+      ``geom[3]``.
 
     Returns the number of feet placed.
     """
@@ -696,7 +697,8 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                             break
                                     q -= 1
                                 dh = s * hn
-                                tall = topi == 0 or _height_at(rays, level, cam, topi, j, dh) >= min_h
+                                top_h = _height_at(rays, level, cam, topi, j, dh)
+                                tall = topi == 0 or top_h >= min_h
                                 # (the upper part starts at min_h: without a height check above the base, no check)
                                 if tall and st_share > 0.0 and min_h > st_base and \
                                         _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh, min_h, st_share,
@@ -717,7 +719,8 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                 elif not wide:
                                     kk = thin
                                 elif tr_w > 0.0 and (b - a + 1) * dh / fx < tr_w and \
-                                        ((topi > 0 and labels[topi - 1, j] == TREE) or (topi == 0 and tr_top > 0.0)):
+                                        ((topi > 0 and labels[topi - 1, j] == TREE) or
+                                         (topi == 0 and tr_top > 0.0 and top_h < min_h)):
                                     kk = thin
                             if kk >= 0:
                                 ux = lx / hn if hn > 1e-12 else 0.0  # a ray straight down: foot only

@@ -151,7 +151,9 @@ class OverheadParams:
         A tall building run narrower than this across the horizon row and topped by a tree crown is a
         trunk and placed as one (0: off).
     trunk_at_top : bool
-        ... and so is one that leaves the picture at the top (a near trunk whose crown is out of view).
+        ... and so is one that leaves the picture at the top while the top is lower than
+        ``min_building_height_m`` at its range (a near trunk whose crown is out of view; its height
+        cannot be verified).
     """
 
     rows: int = 64
