@@ -214,6 +214,15 @@ class TrackParams:
         The scale in use stays within 1 +- this [0.05].
     odo_scale_settle_m : float
         Path after each lock-on before poses are used (the belief may still be catching up) [5.0].
+    adapt_cov : bool
+        Adaptive reported covariance (docs/tracking.md, "Adaptive covariance"): while the wheel-scale
+        fit of the last ``odo_scale_span_m`` is current (tracking, tinyloc/track/odoscale.py), the
+        position part is ``adapt_cov_scale`` x posterior + ``adapt_sigma_m``^2 I + drag^2 u u^T, with
+        u the heading and drag the distance the map moved the estimate along its path against the
+        odometry over that track; otherwise the default formula (``cov_scale``, ``model_sigma_m``)
+        [False].
+    adapt_cov_scale, adapt_sigma_m : float
+        See ``adapt_cov`` [0.35, 0.2].
     fallback_weight : float
         While not tracking (searching, degraded), the reported covariance also holds the satellite
         fix of the frame as a competing pose with this weight: ``w (S + d d^T)`` with S the fix's
@@ -269,6 +278,9 @@ class TrackParams:
     odo_scale_rate: float = 0.02
     odo_scale_max_dev: float = 0.05
     odo_scale_settle_m: float = 5.0
+    adapt_cov: bool = False
+    adapt_cov_scale: float = 0.35
+    adapt_sigma_m: float = 0.2
     fallback_weight: float = 0.25
     gnss: GnssParams = field(default_factory=GnssParams)
 
@@ -279,6 +291,8 @@ class TrackParams:
             raise InputError(f"track.headings = {self.headings}: must be in 4..4096")
         if not 0.0 <= self.floor < 0.5:
             raise InputError(f"track.floor = {self.floor}: must be in [0, 0.5)")
+        if not (0.0 < self.adapt_cov_scale <= 10.0 and 0.0 <= self.adapt_sigma_m <= 10.0):
+            raise InputError("track.adapt_cov_scale must be in (0, 10] and track.adapt_sigma_m in [0, 10]")
         if not 0.0 < self.cov_scale <= 10.0:
             raise InputError(f"track.cov_scale = {self.cov_scale}: must be in (0, 10]")
         if not 0.5 <= self.odometry_scale <= 2.0:
@@ -1163,9 +1177,21 @@ class Tracker:
         if est is None:
             nan = math.nan
             return TrackOutput(t, nan, nan, nan, np.full((3, 3), np.nan), quality, [], status, surprise, was_global)
-        cov = est.cov * self.p.cov_scale
-        cov[0, 0] += self.p.model_sigma_m ** 2
-        cov[1, 1] += self.p.model_sigma_m ** 2
+        drag = self.odo_scale.drag_m
+        if self.p.adapt_cov and quality == "tracking" and math.isfinite(drag):
+            cov = est.cov * self.p.adapt_cov_scale
+            cov[2, 2] = est.cov[2, 2] * self.p.cov_scale
+            v = self.p.adapt_sigma_m ** 2
+            c, s = math.cos(est.yaw), math.sin(est.yaw)
+            d2 = drag * drag
+            cov[0, 0] += v + d2 * c * c
+            cov[1, 1] += v + d2 * s * s
+            cov[0, 1] += d2 * c * s
+            cov[1, 0] += d2 * c * s
+        else:
+            cov = est.cov * self.p.cov_scale
+            cov[0, 0] += self.p.model_sigma_m ** 2
+            cov[1, 1] += self.p.model_sigma_m ** 2
         cov[2, 2] += math.radians(self.p.model_sigma_deg) ** 2
         g = self._g
         if quality != "tracking" and g is not None and self.p.fallback_weight > 0:

@@ -19,6 +19,12 @@ and has no feedback from the value in use: where the map holds nothing along the
 estimate moves by the corrected odometry, the fit returns the value in use, and nothing changes.
 The value in use follows the fit slowly (``rate`` per frame) and stays within ``1 +- max_dev``.
 
+The same fit says how far the map evidence moved the estimate along its path against the corrected
+odometry over the fitted track, ``drag_m = (s - value in use) * covered path``: where the evidence's
+along-track bias changes (a stretch the perception places nearer than it is), the estimate is pulled
+along and the drag shows it, while the posterior does not (it cannot see a bias common to its
+frames). The tracker can add it to the reported covariance along the heading (``track.adapt_cov``).
+
 Fixed memory: a ring of ``capacity`` (odometry position, estimate, path length) rows and work
 buffers made once; no allocation per call.
 """
@@ -69,6 +75,7 @@ class OdometryScale:
         self.fits = 0
         self.last_fit = math.nan
         self.covered_m = 0.0
+        self.drag_m = math.nan
         self.reset()
 
     def reset(self) -> None:
@@ -77,6 +84,7 @@ class OdometryScale:
         self.head = 0
         self.ox = self.oy = self.oyaw = 0.0
         self.dist = 0.0
+        self.drag_m = math.nan  # no current fit
 
     def odometry(self, d_fwd_m: float, d_left_m: float, d_yaw_rad: float) -> None:
         """Dead-reckon one *raw* body-frame increment (mid-point heading)."""
@@ -100,6 +108,10 @@ class OdometryScale:
         self.head = (k + 1) % self.cap
         self.n = min(self.n + 1, self.cap)
         s = self.fit()
+        if s is not None:
+            # how far the map moved the estimate along its path against the odometry (corrected by the
+            # value in use) over the fitted track: the change of the evidence's along-track bias there
+            self.drag_m = (s - self.scale) * self.covered_m
         if s is not None and self.rate > 0.0:
             self.fits += 1
             self.last_fit = s
