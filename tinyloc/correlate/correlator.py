@@ -25,6 +25,12 @@ templates are transformed (forward FFTs along the template's occupied rows only)
 each feeds four headings. The feature products are summed in the frequency domain
 so each heading costs one inverse FFT, of which only the rows that land in the
 window are finished.
+
+The exact search transforms in double precision (numpy); the coarse level of the
+fast search and the tracking engines in single precision with OpenCV's ``cv2.dft``
+(``CorrelatorParams.fft``), spectra in OpenCV's packed layout. Both full searches
+end with the same ranking and tie rule (``plateau_budget``): highest exact score,
+ties to the lowest flat index over the near-best plateau.
 """
 
 from __future__ import annotations
@@ -478,7 +484,7 @@ class _CircleEngineCV(_CircleEngine):
         self.origin = (float(origin_row), float(origin_col))
         self.reach = template_reach(bev_shape, origin_row, origin_col)
         self.N = N = _even_fast_size(max(H, W) + self.reach)
-        self.K = N  # packed spectra: (N, N) float32
+        self.K = N // 2 + 1  # column frequencies of a real transform (the benchmark's FLOP count); spectra (N, N)
         q = A // 4
         yaws = [2.0 * math.pi * a / A for a in range(q)]
         self.cos = np.cos(yaws)
