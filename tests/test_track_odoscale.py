@@ -120,7 +120,8 @@ GEOM = MapGeometry(0.0, 400.0, 0.5)
 def _drive_long_wheels(rng, *, learn: bool, n=900, dt=0.2, speed=1.25):
     """A gently curving drive with odometry 3 % long; tempered planted evidence, so the belief lags."""
     p = TrackParams(window_cells=48, headings=64, likelihood_weight=0.1, model_sigma_m=0.0,
-                    model_sigma_deg=0.0, odo_scale_span_m=30.0 if learn else 0.0)
+                    model_sigma_deg=0.0, odo_scale_span_m=30.0 if learn else 0.0,
+                    odo_scale_rate=0.02 if learn else 0.0)  # learning is off by default
     m = PlantedMatcher(rng, sigma_m=0.5, noise=0.1)
     tr = Tracker(GEOM, p)
     x, y, yaw = 150.0, 150.0, 0.3
@@ -217,7 +218,7 @@ def test_adaptive_covariance_on_calibrated_planted_evidence_stays_in_the_band():
 
     rng = np.random.default_rng(1)
     tr, out = T.drive(rng, 400, matcher=T.PlantedMatcher(rng, sigma_m=0.8, noise=0.1), odo_noise=True,
-                      params=T._params(adapt_cov=True))
+                      params=T._params(adapt_cov=True, odo_scale_rate=0.02))  # the drag needs the fit
     inside = []
     for t, o in out[30:]:
         if o.quality == "tracking":
