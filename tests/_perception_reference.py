@@ -156,20 +156,35 @@ def segment_reference(bgr, p, hrow=None):
     ground = {ROAD, SIDEWALK, GRASS, 7, 8}
     for j in range(w):
         r = int(math.floor(hrow[j]))
-        if r < 3 or r >= h - 1 or labels[r, j] != BUILDING:
+        if r < 3 or r >= h - 1:
             continue
+        from_above = False
+        if labels[r, j] != BUILDING:
+            # wall_reach: the facade may start up to wall_reach rows higher, only ground pixels between
+            starts = [k for k in range(r - 1, max(r - p.wall_reach, 3) - 1, -1)
+                      if labels[k, j] == BUILDING and all(labels[q, j] in ground for q in range(k + 1, r + 1))]
+            if not starts:
+                continue
+            r, from_above = starts[0], True
         c = lab[r - 2:r + 1, j].mean(axis=0)
+        carry, foot = [], False
         for i in range(r + 1, h):
             if labels[i, j] == BUILDING:
                 continue
             if labels[i, j] not in ground:
+                foot = True
                 break
             d = 0.5 * abs(lab[i, j, 0] - c[0]) + abs(lab[i, j, 1] - c[1]) + abs(lab[i, j, 2] - c[2])
             if d > p.wall_dist or gy[i, j] > p.wall_edge:
+                foot = True
                 break
             dg = abs(lab[i, j, 0] - ref[0]) * p.ref_l_weight + abs(lab[i, j, 1] - ref[1]) + abs(lab[i, j, 2] - ref[2])
             if dg < p.wall_ground:
                 break
+            carry.append(i)
+        if from_above and not foot:  # started above the horizon: kept only down to a visible foot
+            continue
+        for i in carry:
             labels[i, j] = BUILDING
             probs[:, i, j] = 0.0
             probs[BUILDING, i, j] = 1.0

@@ -39,7 +39,8 @@ CASES = {**{n: preset(n) for n in PRESETS},
          "soil rule on": SegmentParams(soil_b=3.0, crown_model=""),
          "surface decided per frame": SegmentParams(surface_auto=5.0, surface_share=0.005, crown_model=""),
          "surface with the darker-paving guard": SegmentParams(surface_auto=5.0, surface_share=0.005,
-                                                               surface_dark=0.05, crown_model="")}
+                                                               surface_dark=0.05, crown_model=""),
+         "facades starting above the horizon": replace(preset("sidewalk"), wall_reach=2)}
 
 
 @pytest.mark.parametrize("name", list(CASES))
@@ -101,6 +102,10 @@ def test_params_validated():
         SegmentParams(sky_v=float("nan"))
     with pytest.raises(InputError, match="expected an"):
         segment_image(np.zeros((10, 10), np.uint8))
+    with pytest.raises(InputError, match="wall_reach"):
+        SegmentParams(wall_reach=-1)
+    with pytest.raises(InputError, match="wall_reach"):
+        SegmentParams(wall_reach=1.5)
 
 
 def _ground_frame(ground_bgr, patch_bgr=None, side_bgr=None, side_cols=(0, 40)):
@@ -204,3 +209,73 @@ def test_surface_not_road_when_darker_paving_in_view():
     seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_dark=0.05))
     seg.run(_ground_frame(asphalt, patch_bgr=asphalt, side_bgr=sunlit), HROW)
     assert seg.surface == "road"
+
+
+def _wall_column_case(reach, *, start_row, foot_l=60.0, facade_l=120.0, ref_l=200.0, edge_row=None):
+    """One hand-made column for the facade carry (kernel ``extend_walls``): 12 rows, horizon at row 5.3
+    (so the horizon pixel is row 5), building from row 0 to ``start_row``, sidewalk below it; Lab of
+    the facade ``facade_l`` (a = b = 128) down to row 8 and ``foot_l`` from row 9 (its foot) unless an
+    edge is drawn instead at ``edge_row``; the robot's surface has lightness ``ref_l``."""
+    from tinyloc.perception import _kernels as K
+    from tinyloc.perception.segment import _IS_GROUND
+    from tinyloc.classes import BUILDING, SIDEWALK, NUM_CLASSES
+
+    h, w = 12, 1
+    labels = np.full((h, w), SIDEWALK, np.uint8)
+    labels[:start_row + 1] = BUILDING
+    lab = np.full((h, w, 3), 128, np.uint8)
+    lab[:, :, 0] = int(facade_l)
+    if edge_row is None:
+        lab[9:, :, 0] = int(foot_l)
+    feat = np.zeros((K.NF, h, w), np.float32)
+    if edge_row is not None:
+        feat[K.F_GY, edge_row] = 0.5
+    probs = np.zeros((NUM_CLASSES, h, w), np.float32)
+    probs[SIDEWALK] = 1.0
+    probs[BUILDING, :start_row + 1], probs[SIDEWALK, :start_row + 1] = 1.0, 0.0
+    ref = np.array([ref_l, 128.0, 128.0])
+    prm = replace(preset("sidewalk"), wall_reach=reach).vector()
+    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels)
+    return labels[:, 0], probs
+
+
+@pytest.mark.parametrize("reach, start_row, carried", [
+    (0, 4, False),   # off: the horizon pixel (row 5) is sidewalk, so nothing is carried (the old rule)
+    (1, 4, True),    # the facade starts one row above the horizon pixel: carried down to its foot (row 9)
+    (2, 3, True),    # two rows above, within reach 2
+    (1, 3, False),   # two rows above, one past reach 1
+    (2, 2, False),   # three rows above, one past reach 2
+])
+def test_wall_reach_hand_worked(reach, start_row, carried):
+    from tinyloc.classes import BUILDING, SIDEWALK
+
+    labels, probs = _wall_column_case(reach, start_row=start_row)
+    # worked by hand: the facade colour is L 120 from row 0 to 8 (distance 0 to its own mean), the foot row
+    # 9 is L 60 (distance 0.5 * 60 = 30 > wall_dist 13.1), the robot's surface L 200 is far (0.8 * 80 = 64)
+    want = np.full(12, SIDEWALK)
+    want[:start_row + 1] = BUILDING
+    if carried:
+        want[:9] = BUILDING
+    assert labels.tolist() == want.tolist()
+    assert np.all(probs[BUILDING, want == BUILDING] == 1.0)
+    assert np.all(probs[SIDEWALK, want == SIDEWALK] == 1.0)
+
+
+def test_wall_reach_needs_a_visible_foot():
+    from tinyloc.classes import BUILDING, SIDEWALK
+
+    # a strong horizontal edge at row 8 is a foot as well: carried over rows 5..7
+    labels, _ = _wall_column_case(2, start_row=4, edge_row=8)
+    assert labels.tolist() == [BUILDING] * 8 + [SIDEWALK] * 4
+    # the facade looks like the robot's surface (distance 0 < wall_ground 6): the carry stops at once, with
+    # no foot seen, so a facade found above the horizon is not carried at all
+    labels, _ = _wall_column_case(2, start_row=4, ref_l=120.0)
+    assert labels.tolist() == [BUILDING] * 5 + [SIDEWALK] * 7
+    # ... while a facade at the horizon pixel keeps the old rule (carried until that stop: none here either)
+    labels, _ = _wall_column_case(0, start_row=5, ref_l=120.0)
+    assert labels.tolist() == [BUILDING] * 6 + [SIDEWALK] * 6
+    # a facade reaching the bottom of the picture with no foot at all: not carried when found above
+    labels, _ = _wall_column_case(2, start_row=4, foot_l=120.0)
+    assert labels.tolist() == [BUILDING] * 5 + [SIDEWALK] * 7
+    labels, _ = _wall_column_case(0, start_row=5, foot_l=120.0)
+    assert labels.tolist() == [BUILDING] * 12

@@ -22,8 +22,8 @@ NF = 10
 (P_SKY_TEX, P_SKY_V, P_SKY_S, P_SKY_BLUE, P_SKY_V2, P_SKY_BELOW, P_GREEN0, P_GREEN_W, P_G_U0, P_G_W,
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
  P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND,
- P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T, P_SOIL_B, P_SOIL_W) = range(37)
-NP = 37
+ P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T, P_SOIL_B, P_SOIL_W, P_WALL_REACH) = range(38)
+NP = 38
 
 # Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
 BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
@@ -390,16 +390,33 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
     of the facade's (the mean of the three pixels above the horizon) and no horizontal edge stronger
     than ``wall_edge`` (|dI/dy|, 0..1) is crossed: the foot of a wall is such an edge. It also stops
     at a pixel that looks like the surface under the robot (within ``wall_ground`` of ``ref``).
+
+    With ``wall_reach`` = k > 0 the facade may also start up to k rows above the horizon pixel when
+    only ground-labelled pixels lie between: ground cannot stand above the horizon of a level camera,
+    so those pixels are the facade's too (a facade coloured like paving is often called ground right
+    up to the row above the horizon). The carry then starts at that building pixel, and is kept only
+    if it ends at a visible foot (colour change, edge or a non-ground class), not at a pixel that looks
+    like the robot's surface.
     """
     nc, h, w = probs.shape
     dmax = prm[P_WALL_DIST]
     emax = prm[P_WALL_EDGE]
     refl = prm[P_REF_L]
     refd = prm[P_WALL_GROUND]
+    reach = int(prm[P_WALL_REACH])
     for j in range(w):
         r = int(math.floor(hrow[j]))
-        if r < 3 or r >= h - 1 or labels[r, j] != BUILDING:
+        if r < 3 or r >= h - 1:
             continue
+        moved = False
+        if labels[r, j] != BUILDING:
+            k = r
+            while k > r - reach and k > 3 and is_ground[labels[k, j]]:
+                k -= 1
+            if k == r or labels[k, j] != BUILDING:
+                continue
+            r = k
+            moved = True
         c0 = 0.0
         c1 = 0.0
         c2 = 0.0
@@ -410,17 +427,32 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
         c0 /= 3.0
         c1 /= 3.0
         c2 /= 3.0
+        e = h  # first row the facade does not continue into
+        at_edge = False
         for i in range(r + 1, h):
             if labels[i, j] == BUILDING:
                 continue
             if not is_ground[labels[i, j]]:
+                e = i
+                at_edge = True
                 break
             d = 0.5 * abs(lab[i, j, 0] - c0) + abs(lab[i, j, 1] - c1) + abs(lab[i, j, 2] - c2)
             if d > dmax or feat[F_GY, i, j] > emax:
+                e = i
+                at_edge = True
                 break
             dg = abs(lab[i, j, 0] - ref[0]) * refl + abs(lab[i, j, 1] - ref[1]) + abs(lab[i, j, 2] - ref[2])
             if dg < refd:
+                e = i
                 break
+        # a facade found above the horizon is carried down only to a visible foot (a change of colour, an
+        # edge or a non-ground class): stopped by ground-like colour, a facade coloured like the paving
+        # may go on lower, and a foot placed too high puts the facade too far away
+        if moved and not at_edge:
+            continue
+        for i in range(r + 1, e):
+            if labels[i, j] == BUILDING:
+                continue
             labels[i, j] = BUILDING
             for c in range(nc):
                 probs[c, i, j] = 0.0

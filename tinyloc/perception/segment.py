@@ -92,6 +92,7 @@ class SegmentParams:
     wall_dist: float = 13.125  # a facade continues below the horizon while its colour stays this close (Lab)
     wall_edge: float = 0.101  # ... and until a horizontal edge at least this strong (|dI/dy|, 0..1): its foot
     wall_ground: float = 12.421  # ... or a pixel this close (Lab distance) to the surface under the robot
+    wall_reach: int = 0  # rows above the horizon pixel a facade may start, ground pixels between (0: off)
     pole_contrast: float = 0.0  # a pole is a line this much darker/brighter than both sides (0: off)
     pole_run: float = 0.15  # ... at least this long (image heights), crossing the horizon
     fence_top: float = 0.0  # building runs ending less than this above the horizon are fences (0: off)
@@ -131,6 +132,9 @@ class SegmentParams:
             v = getattr(self, f.name)
             if isinstance(v, float) and not np.isfinite(v):
                 raise InputError(f"segmentation parameter {f.name} must be finite")
+        if not isinstance(self.wall_reach, (int, np.integer)) or isinstance(self.wall_reach, bool) \
+                or not 0 <= self.wall_reach <= 8:
+            raise InputError(f"wall_reach must be a whole number of rows within 0 .. 8, got {self.wall_reach!r}")
         if not 0.0 <= self.tree_low <= 1.0:
             raise InputError("tree_low must be within 0 .. 1")
         if self.tex_window % 2 == 0 or self.mix_window % 2 == 0:
@@ -171,6 +175,7 @@ class SegmentParams:
         v[K.P_CROWN_MODEL] = 1.0 if self.crown_model not in ("", "off") else 0.0
         v[K.P_CROWN_T] = self.crown_threshold
         v[K.P_SOIL_B], v[K.P_SOIL_W] = self.soil_b, self.soil_w
+        v[K.P_WALL_REACH] = self.wall_reach
         return v
 
 
