@@ -190,6 +190,10 @@ PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
     "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
                               gap_model="", soil_b=6.0, surface_auto=20.0),
+    # candidate for "sidewalk" (fifth round, docs/perception.md): facades found up to 2 rows above the
+    # horizon pixel are carried down to a visible foot, and the per-frame surface margin is 15 (was 20)
+    "footway": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
+                             gap_model="", soil_b=6.0, surface_auto=15.0, wall_reach=2),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
                           grass_weight=0.7, crown_model="", gap_model=""),
 }
