@@ -371,22 +371,30 @@ class _CircleEngine:
     """
 
     def __init__(self, F, H, W, bev_shape, origin_row, origin_col, A, threads=1):
+        N = self._geometry(F, H, W, bev_shape, origin_row, origin_col, A, _good_size)
+        self.K = Kh = N // 2 + 1
+        self.G4 = np.zeros((4, F, Kh, N), np.complex64)  # stored single: halves the largest buffer
+        self.lanes = [_Lane(F, self.SU, self.SV, Kh, N, max(H, W), H, W) for _ in range(threads)]
+        self._buffers(threads)
+
+    def _geometry(self, F, H, W, bev_shape, origin_row, origin_col, A, size) -> int:
+        """Sizes and the quarter-turn templates' bounds shared by both transform providers; returns N."""
         self.F, self.H, self.W, self.A = F, H, W, A
         self.origin = (float(origin_row), float(origin_col))
         self.reach = template_reach(bev_shape, origin_row, origin_col)
-        self.N = N = _good_size(max(H, W) + self.reach)
-        self.K = Kh = N // 2 + 1
-        q = A // 4
-        yaws = [2.0 * math.pi * a / A for a in range(q)]
+        self.N = N = size(max(H, W) + self.reach)
+        yaws = [2.0 * math.pi * a / A for a in range(A // 4)]
         self.cos = np.cos(yaws)
         self.sin = np.sin(yaws)
         b = np.array([template_bounds(bev_shape, origin_row, origin_col, y) for y in yaws], np.int64)
         self.lo_u, self.lo_v = b[:, 0].copy(), b[:, 2].copy()
         self.SU = int((b[:, 1] - b[:, 0]).max()) + 1
         self.SV = int((b[:, 3] - b[:, 2]).max()) + 1
-        L = max(H, W)
-        self.G4 = np.zeros((4, F, Kh, N), np.complex64)  # stored single: halves the largest buffer
-        self.lanes = [_Lane(F, self.SU, self.SV, Kh, N, L, H, W) for _ in range(threads)]
+        return N
+
+    def _buffers(self, threads) -> None:
+        """Read-out buffers, the second lane's thread and the gathered inverse rows (after ``lanes``)."""
+        A, N, H, W, q = self.A, self.N, self.H, self.W, self.A // 4
         self.best, self.best_a = self.lanes[0].best, self.lanes[0].best_a
         self.native = True  # reduced forms through per-quarter maxima (readout_native) when no volume is asked
         self._pool = None
@@ -480,39 +488,11 @@ class _CircleEngineCV(_CircleEngine):
     """
 
     def __init__(self, F, H, W, bev_shape, origin_row, origin_col, A, threads=1):
-        self.F, self.H, self.W, self.A = F, H, W, A
-        self.origin = (float(origin_row), float(origin_col))
-        self.reach = template_reach(bev_shape, origin_row, origin_col)
-        self.N = N = _even_fast_size(max(H, W) + self.reach)
+        N = self._geometry(F, H, W, bev_shape, origin_row, origin_col, A, _even_fast_size)
         self.K = N // 2 + 1  # column frequencies of a real transform (the benchmark's FLOP count); spectra (N, N)
-        q = A // 4
-        yaws = [2.0 * math.pi * a / A for a in range(q)]
-        self.cos = np.cos(yaws)
-        self.sin = np.sin(yaws)
-        b = np.array([template_bounds(bev_shape, origin_row, origin_col, y) for y in yaws], np.int64)
-        self.lo_u, self.lo_v = b[:, 0].copy(), b[:, 2].copy()
-        self.SU = int((b[:, 1] - b[:, 0]).max()) + 1
-        self.SV = int((b[:, 3] - b[:, 2]).max()) + 1
-        L = max(H, W)
         self.G4 = np.zeros((4, F, N, N), np.float32)
-        self.lanes = [_LaneCV(F, self.SU, self.SV, N, L, H, W) for _ in range(threads)]
-        self.best, self.best_a = self.lanes[0].best, self.lanes[0].best_a
-        self.native = True
-        self._pool = None
-        if threads > 1:
-            from concurrent.futures import ThreadPoolExecutor
-            self._pool = ThreadPoolExecutor(max_workers=threads - 1, thread_name_prefix="tinyloc-correlate")
-        self.head_max = np.zeros(A, np.float32)
-        self.head_arg = np.zeros(A, np.int32)
-        self._dummy_vol = np.zeros((1, 1, 1), np.float32)
-        self.modtab = (np.arange(-N, 2 * N) % N).astype(np.int64)
-        self.rows = np.zeros((4, q, 2), np.int64)
-        for k in range(4):
-            length = H if k in (0, 2) else W
-            for qi in range(q):
-                su = int(self.lo_u[qi])
-                start = su if k in (0, 1) else su - length + 1
-                self.rows[k, qi] = (start % N, length)
+        self.lanes = [_LaneCV(F, self.SU, self.SV, N, max(H, W), H, W) for _ in range(threads)]
+        self._buffers(threads)
 
     def set_map(self, G):
         import cv2
