@@ -18,6 +18,8 @@ import math
 
 import numpy as np
 
+from .pathring import gather_centred, newest_rows
+
 
 class CourseCheck:
     """World heading of the robot from recent fixes and odometry, or None when it is not determined.
@@ -72,31 +74,11 @@ class CourseCheck:
         """(world yaw now, 1-sigma) in rad, or None when the last ``span_m`` are not on record."""
         if self.n < 8:
             return None
-        newest = (self.head - 1) % self.cap
-        end = self._path[newest]
-        m = 0
-        k = newest
-        while m < self.n:
-            m += 1
-            if end - self._path[k] >= self.span_m:
-                break
-            k = (k - 1) % self.cap
-        else:
+        m, covered = newest_rows(self._path, self.head, self.n, self.cap, self.span_m)
+        if covered < self.span_m:
             return None
-        # the m newest pairs, copied into work buffers (the order does not matter for the fit)
-        o, g = self._wo[:m], self._wg[:m]
-        start = (newest - m + 1) % self.cap
-        k1 = min(m, self.cap - start)
-        o[:k1] = self._o[start:start + k1]
-        g[:k1] = self._g[start:start + k1]
-        if k1 < m:
-            o[k1:] = self._o[:m - k1]
-            g[k1:] = self._g[:m - k1]
+        o, g = gather_centred(self._o, self._g, self._wo, self._wg, self.head, m, self.cap)
         ox, oy, gx, gy = o[:, 0], o[:, 1], g[:, 0], g[:, 1]
-        ox -= ox.sum() / m
-        oy -= oy.sum() / m
-        gx -= gx.sum() / m
-        gy -= gy.sum() / m
         oo = float(np.dot(ox, ox) + np.dot(oy, oy))
         spread = math.sqrt(oo / m)
         if spread < 0.2 * self.span_m:

@@ -35,6 +35,8 @@ import math
 
 import numpy as np
 
+from .pathring import gather_centred, newest_rows
+
 
 class OdometryScale:
     """The factor applied to odometry distances, learned from the tracked poses.
@@ -124,31 +126,11 @@ class OdometryScale:
         """Scale of the newest rows covering ``span_m`` of path, or None (too short, or back and forth)."""
         if self.n < 8:
             return None
-        newest = (self.head - 1) % self.cap
-        end = self._path[newest]
-        m = 0
-        k = newest
-        while m < self.n:
-            m += 1
-            if end - self._path[k] >= self.span_m:
-                break
-            k = (k - 1) % self.cap
-        covered = end - self._path[(newest - m + 1) % self.cap]
+        m, covered = newest_rows(self._path, self.head, self.n, self.cap, self.span_m)
         if covered < 0.5 * self.span_m:
             return None
-        o, e = self._wo[:m], self._we[:m]
-        start = (newest - m + 1) % self.cap
-        k1 = min(m, self.cap - start)
-        o[:k1] = self._o[start:start + k1]
-        e[:k1] = self._e[start:start + k1]
-        if k1 < m:
-            o[k1:] = self._o[:m - k1]
-            e[k1:] = self._e[:m - k1]
+        o, e = gather_centred(self._o, self._e, self._wo, self._we, self.head, m, self.cap)
         ox, oy, ex, ey = o[:, 0], o[:, 1], e[:, 0], e[:, 1]
-        ox -= ox.sum() / m
-        oy -= oy.sum() / m
-        ex -= ex.sum() / m
-        ey -= ey.sum() / m
         oo = float(np.dot(ox, ox) + np.dot(oy, oy))
         if oo <= 0.0 or math.sqrt(oo / m) < 0.2 * covered:
             return None  # driving back and forth (or standing): the scale is not determined
