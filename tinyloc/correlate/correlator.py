@@ -419,8 +419,8 @@ class _CircleEngine:
     def nbytes(self) -> int:
         return sum(ln.nbytes for ln in self.lanes) + self.G4.nbytes + self.head_max.nbytes + self.head_arg.nbytes
 
-    def set_map(self, G):
-        """Transform the map features G (F, H, W) float32, for the four quarter turns."""
+    def _quarter_turns(self, G):
+        """Each map feature of G (F, H, W), zero-padded to (N, N) and turned by k quarters: yields (f, k, array)."""
         N = self.N
         pad = np.zeros((N, N), np.float32)
         idx = (-np.arange(N)) % N
@@ -429,7 +429,12 @@ class _CircleEngine:
             # Map turned by k quarters about index 0: G_k(x) = G(rho^-k x), rho(i, j) = (j, -i).
             turned = (pad, pad[idx].T, pad[idx][:, idx], pad[:, idx].T)
             for k in range(4):
-                self.G4[k, f] = np.fft.rfft2(np.ascontiguousarray(turned[k])).T
+                yield f, k, np.ascontiguousarray(turned[k])
+
+    def set_map(self, G):
+        """Transform the map features G (F, H, W) float32, for the four quarter turns."""
+        for f, k, g in self._quarter_turns(G):
+            self.G4[k, f] = np.fft.rfft2(g).T
 
     def run(self, feat, inv_temp, vol):
         write_vol = vol is not None
@@ -496,14 +501,8 @@ class _CircleEngineCV(_CircleEngine):
 
     def set_map(self, G):
         import cv2
-        N = self.N
-        pad = np.zeros((N, N), np.float32)
-        idx = (-np.arange(N)) % N
-        for f in range(self.F):
-            pad[:self.H, :self.W] = G[f]
-            turned = (pad, pad[idx].T, pad[idx][:, idx], pad[:, idx].T)
-            for k in range(4):
-                cv2.dft(np.ascontiguousarray(turned[k]), dst=self.G4[k, f])
+        for f, k, g in self._quarter_turns(G):
+            cv2.dft(g, dst=self.G4[k, f])
 
     def _run_lane(self, ln, first, step, feat, inv_temp, v, write_vol):
         import cv2
