@@ -18,10 +18,10 @@ import math
 
 import numpy as np
 
-from .pathring import gather_centred, newest_rows
+from .pathring import PairRing
 
 
-class CourseCheck:
+class CourseCheck(PairRing):
     """World heading of the robot from recent fixes and odometry, or None when it is not determined.
 
     Parameters
@@ -37,47 +37,26 @@ class CourseCheck:
     def __init__(self, span_m: float = 25.0, sigma_floor_deg: float = 8.0, capacity: int = 256):
         self.span_m = float(span_m)
         self.sigma_floor = math.radians(sigma_floor_deg)
-        self.cap = int(capacity)
-        self._o = np.zeros((self.cap, 2), np.float64)
-        self._g = np.zeros((self.cap, 2), np.float64)
-        self._path = np.zeros(self.cap, np.float64)
-        self._wo = np.zeros((self.cap, 2), np.float64)
-        self._wg = np.zeros((self.cap, 2), np.float64)
-        self.reset()
+        super().__init__(capacity)
+        self._g = self._b  # satellite fixes (world ENU)
 
     def reset(self) -> None:
         """Forget the track (after an odometry jump or gap: the two frames no longer line up)."""
-        self.n = 0
-        self.head = 0
-        self.ox = self.oy = self.oyaw = 0.0
-        self.dist = 0.0
-
-    def odometry(self, d_fwd_m: float, d_left_m: float, d_yaw_rad: float) -> None:
-        """Dead-reckon one body-frame increment (mid-point heading)."""
-        h = self.oyaw + 0.5 * d_yaw_rad
-        c, s = math.cos(h), math.sin(h)
-        self.ox += c * d_fwd_m - s * d_left_m
-        self.oy += s * d_fwd_m + c * d_left_m
-        self.oyaw += d_yaw_rad
-        self.dist += math.hypot(d_fwd_m, d_left_m)
+        super().reset()
 
     def fix(self, x_m: float, y_m: float) -> None:
         """Record a new satellite fix (world ENU) against the current dead-reckoned position."""
-        k = self.head
-        self._o[k, 0], self._o[k, 1] = self.ox, self.oy
-        self._g[k, 0], self._g[k, 1] = x_m, y_m
-        self._path[k] = self.dist
-        self.head = (k + 1) % self.cap
-        self.n = min(self.n + 1, self.cap)
+        self._record(x_m, y_m)
 
     def heading(self) -> tuple[float, float] | None:
         """(world yaw now, 1-sigma) in rad, or None when the last ``span_m`` are not on record."""
         if self.n < 8:
             return None
-        m, covered = newest_rows(self._path, self.head, self.n, self.cap, self.span_m)
-        if covered < self.span_m:
+        got = self._newest(self.span_m, self.span_m)
+        if got is None:
             return None
-        o, g = gather_centred(self._o, self._g, self._wo, self._wg, self.head, m, self.cap)
+        o, g, _ = got
+        m = len(o)
         ox, oy, gx, gy = o[:, 0], o[:, 1], g[:, 0], g[:, 1]
         oo = float(np.dot(ox, ox) + np.dot(oy, oy))
         spread = math.sqrt(oo / m)

@@ -35,10 +35,10 @@ import math
 
 import numpy as np
 
-from .pathring import gather_centred, newest_rows
+from .pathring import PairRing
 
 
-class OdometryScale:
+class OdometryScale(PairRing):
     """The factor applied to odometry distances, learned from the tracked poses.
 
     Parameters
@@ -68,12 +68,8 @@ class OdometryScale:
         self.initial = float(initial)
         self.settle_m = float(settle_m)
         self.scale = self.initial
-        self.cap = int(capacity)
-        self._o = np.zeros((self.cap, 2), np.float64)
-        self._e = np.zeros((self.cap, 2), np.float64)
-        self._path = np.zeros(self.cap, np.float64)
-        self._wo = np.zeros((self.cap, 2), np.float64)
-        self._we = np.zeros((self.cap, 2), np.float64)
+        super().__init__(capacity)
+        self._e = self._b  # tracked estimates (world ENU)
         self.fits = 0
         self.last_fit = math.nan
         self.covered_m = 0.0
@@ -82,20 +78,8 @@ class OdometryScale:
 
     def reset(self) -> None:
         """Forget the track (not tracking, odometry jump or gap); the value in use is kept."""
-        self.n = 0
-        self.head = 0
-        self.ox = self.oy = self.oyaw = 0.0
-        self.dist = 0.0
+        super().reset()
         self.drag_m = math.nan  # no current fit
-
-    def odometry(self, d_fwd_m: float, d_left_m: float, d_yaw_rad: float) -> None:
-        """Dead-reckon one *raw* body-frame increment (mid-point heading)."""
-        h = self.oyaw + 0.5 * d_yaw_rad
-        c, s = math.cos(h), math.sin(h)
-        self.ox += c * d_fwd_m - s * d_left_m
-        self.oy += s * d_fwd_m + c * d_left_m
-        self.oyaw += d_yaw_rad
-        self.dist += math.hypot(d_fwd_m, d_left_m)
 
     def pose(self, x_m: float, y_m: float) -> None:
         """Record the filter's estimate (world ENU, m) of a frame flagged tracking, then refit."""
@@ -103,12 +87,7 @@ class OdometryScale:
             return
         if self.n and self.dist - self._path[(self.head - 1) % self.cap] < 0.01 * self.span_m:
             return
-        k = self.head
-        self._o[k, 0], self._o[k, 1] = self.ox, self.oy
-        self._e[k, 0], self._e[k, 1] = x_m, y_m
-        self._path[k] = self.dist
-        self.head = (k + 1) % self.cap
-        self.n = min(self.n + 1, self.cap)
+        self._record(x_m, y_m)
         s = self.fit()
         if s is not None:
             # how far the map moved the estimate along its path against the odometry (corrected by the
@@ -126,10 +105,11 @@ class OdometryScale:
         """Scale of the newest rows covering ``span_m`` of path, or None (too short, or back and forth)."""
         if self.n < 8:
             return None
-        m, covered = newest_rows(self._path, self.head, self.n, self.cap, self.span_m)
-        if covered < 0.5 * self.span_m:
+        got = self._newest(self.span_m, 0.5 * self.span_m)
+        if got is None:
             return None
-        o, e = gather_centred(self._o, self._e, self._wo, self._we, self.head, m, self.cap)
+        o, e, covered = got
+        m = len(o)
         ox, oy, ex, ey = o[:, 0], o[:, 1], e[:, 0], e[:, 1]
         oo = float(np.dot(ox, ox) + np.dot(oy, oy))
         if oo <= 0.0 or math.sqrt(oo / m) < 0.2 * covered:

@@ -9,6 +9,8 @@ buffers made once by the caller and allocate no arrays.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 
@@ -66,3 +68,59 @@ def gather_centred(src_a: np.ndarray, src_b: np.ndarray, work_a: np.ndarray, wor
             col = w[:, c]
             col -= col.sum() / m
     return a, b
+
+
+class PairRing:
+    """A fixed ring of (dead-reckoned odometry position, other position, path length) rows.
+
+    The base of the satellite-course check and the wheel-scale fit: it dead-reckons the odometry
+    increments it is given (mid-point heading), records rows against another position (a satellite
+    fix, a tracked pose) and hands the newest stretch to the subclass's fit. Buffers are made once.
+
+    Parameters
+    ----------
+    capacity : int
+        Rows kept.
+    """
+
+    def __init__(self, capacity: int):
+        self.cap = int(capacity)
+        self._o = np.zeros((self.cap, 2), np.float64)
+        self._b = np.zeros((self.cap, 2), np.float64)
+        self._path = np.zeros(self.cap, np.float64)
+        self._wo = np.zeros((self.cap, 2), np.float64)
+        self._wb = np.zeros((self.cap, 2), np.float64)
+        PairRing.reset(self)
+
+    def reset(self) -> None:
+        """Forget the track and restart dead reckoning at the origin."""
+        self.n = 0
+        self.head = 0
+        self.ox = self.oy = self.oyaw = 0.0
+        self.dist = 0.0
+
+    def odometry(self, d_fwd_m: float, d_left_m: float, d_yaw_rad: float) -> None:
+        """Dead-reckon one body-frame increment (m, m, rad; mid-point heading)."""
+        h = self.oyaw + 0.5 * d_yaw_rad
+        c, s = math.cos(h), math.sin(h)
+        self.ox += c * d_fwd_m - s * d_left_m
+        self.oy += s * d_fwd_m + c * d_left_m
+        self.oyaw += d_yaw_rad
+        self.dist += math.hypot(d_fwd_m, d_left_m)
+
+    def _record(self, x_m: float, y_m: float) -> None:
+        """One row: the dead-reckoned position now against (x_m, y_m), at the path driven so far."""
+        k = self.head
+        self._o[k, 0], self._o[k, 1] = self.ox, self.oy
+        self._b[k, 0], self._b[k, 1] = x_m, y_m
+        self._path[k] = self.dist
+        self.head = (k + 1) % self.cap
+        self.n = min(self.n + 1, self.cap)
+
+    def _newest(self, span_m: float, min_cover_m: float):
+        """(o, b, covered_m) of the newest rows covering ``span_m``, centred; None if they cover less than ``min_cover_m``."""
+        m, covered = newest_rows(self._path, self.head, self.n, self.cap, span_m)
+        if covered < min_cover_m:
+            return None
+        o, b = gather_centred(self._o, self._b, self._wo, self._wb, self.head, m, self.cap)
+        return o, b, covered
