@@ -163,6 +163,7 @@ def test_faults_while_running_keep_the_loop_going(site, tmp_path):
     h = loc.health()
     assert h["track_odometry_jumps"] == 1
     assert h["unusable_frames"] == 1  # the corrupt one (the missing one never reached the loop)
+    assert 0.95 <= h["odometry_scale"] <= 1.05  # the learnt wheel scale stays within track.odo_scale_max_dev
     # after the faults (and with the satellite fixes gone) it still tracks
     assert poses[-1].quality == "tracking"
     assert max(_err(by_t[k], truth[k])[0] for k in range(50, n)) < 1.0

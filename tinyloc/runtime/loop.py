@@ -422,12 +422,17 @@ class Localizer:
 
     # ---- health -------------------------------------------------------------------------------
     def health(self) -> dict:
-        """Counters of the loop, the tracker and the sensors (plain ints), and the current quality."""
+        """Counters of the loop, the tracker and the sensors (plain ints), the current quality, and
+        ``odometry_scale``: the factor the tracker applies to wheel-odometry distances now (float; learnt
+        online, docs/tracking.md; a value to copy into ``[track] odometry_scale`` after a good drive)."""
         h = dict(self.health_counters)
         h.update({f"track_{k}": v for k, v in self.tracker.counters.items()})
         h.update(self.sensors.counters)
         h["quality"] = self.tracker.state
         h["kernels_compiled_at_start"] = self.kernels_compiled
+        osc = getattr(self.tracker, "odo_scale", None)
+        if osc is not None:
+            h["odometry_scale"] = float(osc.scale)
         dt = getattr(self.map, "tiles_damaged", None)
         if dt is not None:
             h["map_damaged_tiles"] = int(dt() if callable(dt) else dt)
