@@ -61,7 +61,14 @@ def _value(v: str):
 
 def _feet_sources(perc, lab_small, counts, max_range_m=20.0):
     """Count the true class of the lowest 3 pixels of each building run standing on ground within range."""
-    L, hr = perc.labels, perc.horizon
+    for j, i, top in _building_runs(perc.labels, perc.horizon):
+        gp = perc.projector.pixel_to_ground(np.array([[j, i + 0.5]]))[0]
+        if i - top >= 3 and np.hypot(*gp) <= max_range_m:
+            counts[np.bincount(lab_small[i - 2:i + 1, j], minlength=256).argmax()] += 1
+
+
+def _building_runs(L, hr):
+    """(column, foot row, row above the top) of each building run standing on ground below the horizon."""
     h, w = L.shape
     for j in range(w):
         i = h - 2
@@ -70,9 +77,7 @@ def _feet_sources(perc, lab_small, counts, max_range_m=20.0):
                 top = i
                 while top >= 0 and L[top, j] == BUILDING:
                     top -= 1
-                gp = perc.projector.pixel_to_ground(np.array([[j, i + 0.5]]))[0]
-                if i - top >= 3 and np.hypot(*gp) <= max_range_m:
-                    counts[np.bincount(lab_small[i - 2:i + 1, j], minlength=256).argmax()] += 1
+                yield j, i, top
                 i = top
             else:
                 i -= 1
@@ -97,30 +102,21 @@ def _placed_causes(perc, truth_small, counts):
     h, w = L.shape
     ground_below = (np.arange(h)[:, None] > np.floor(hr)[None, :]) & IS_GROUND[L].astype(bool)
     grid = perc.new_grid()
-    for j in range(w):
-        i = h - 2
-        while i >= max(int(np.floor(hr[j])) + 1, 0):
-            if L[i, j] == BUILDING and IS_GROUND[L[i + 1, j]]:
-                top = i
-                while top >= 0 and L[top, j] == BUILDING:
-                    top -= 1
-                if i - top >= perc.params.overhead.min_run_px:
-                    alone = L.copy()
-                    hide = ground_below.copy()
-                    hide[i + 1:, j] = False
-                    alone[hide] = 255
-                    alone[i + 1:, j] = L[i + 1, j]
-                    perc.projector.project(perc.probs, alone, perc._level, hr, grid, tilted=True, lab=perc.segmenter.lab)
-                    if grid.evidence[BUILDING].max() > 0:
-                        t = int(np.bincount(truth_small[top + 1:i + 1, j], minlength=256).argmax())
-                        run_c = NAMES[t] if t < len(NAMES) else "unlabelled"
-                        if run_c == "building":
-                            foot = np.bincount(truth_small[max(i - 2, top + 1):i + 1, j], minlength=256).argmax()
-                            run_c = "building, own foot" if foot == BUILDING else "building, foot of something in front"
-                        counts[run_c] = counts.get(run_c, 0) + 1
-                i = top
-            else:
-                i -= 1
+    for j, i, top in _building_runs(L, hr):
+        if i - top >= perc.params.overhead.min_run_px:
+            alone = L.copy()
+            hide = ground_below.copy()
+            hide[i + 1:, j] = False
+            alone[hide] = 255
+            alone[i + 1:, j] = L[i + 1, j]
+            perc.projector.project(perc.probs, alone, perc._level, hr, grid, tilted=True, lab=perc.segmenter.lab)
+            if grid.evidence[BUILDING].max() > 0:
+                t = int(np.bincount(truth_small[top + 1:i + 1, j], minlength=256).argmax())
+                run_c = NAMES[t] if t < len(NAMES) else "unlabelled"
+                if run_c == "building":
+                    foot = np.bincount(truth_small[max(i - 2, top + 1):i + 1, j], minlength=256).argmax()
+                    run_c = "building, own foot" if foot == BUILDING else "building, foot of something in front"
+                counts[run_c] = counts.get(run_c, 0) + 1
 
 
 def analyse(seeds, *, every=15, segment=None, overhead=None, work="/tmp/tinyloc-acc", causes=False):
