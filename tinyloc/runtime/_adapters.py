@@ -100,9 +100,16 @@ class CorrelatorAdapter:
         rng = float(getattr(cfg.loop, "bev_range_m", 0.0))
         self.track_range_m = rng if (rng > 0.0 and getattr(cfg.loop, "search_full_range", False)) else 0.0
         self._range_mask = None
+        # track.cue_cov: a second tracking correlation with the cue family's features alone (docs/tracking.md)
+        self.cue_corr = None
+        tp = getattr(cfg, "track", None)
+        if tp is not None and getattr(tp, "cue_cov", False):
+            self.cue_corr = Correlator(self.params, cue_model(self.corr.model, tp.cue_features))
 
     def warmup(self) -> None:
         self.corr.warm_up(("fast", "track_exact") if self.exact else ("fast", "track"))
+        if self.cue_corr is not None:
+            self.cue_corr.warm_up(("track_exact",) if self.exact else ("track",))
 
     # ---- map window -----------------------------------------------------------------------------
     def _move_window(self, x, y) -> None:
@@ -112,6 +119,8 @@ class CorrelatorAdapter:
         self.counters["damaged_tiles"] += int(self.map.read_window(self.wrow0, self.wcol0, self.win,
                                                                    known_out=self.known) or 0)
         self.corr.set_map(self.win)
+        if self.cue_corr is not None:
+            self.cue_corr.set_map(self.win)
         self.counters["window_moves"] += 1
 
     def _ensure(self, x, y, margin_cells) -> bool:
@@ -164,5 +173,31 @@ class CorrelatorAdapter:
             return None
         self.status = "map window moved" if moved else "ok"
         s = int(getattr(res, "scale", 1))
+        cue = None
+        if self.cue_corr is not None:
+            cr = self.cue_corr.track(bev, r - 0.5 - self.wrow0, c - 0.5 - self.wcol0, a, exact=self.exact)
+            # same box as the full model's (same centre and sizes); the centre heading layer is the cue
+            if cr.ok and cr.row0 == res.row0 and cr.col0 == res.col0 and cr.volume.shape == res.volume.shape:
+                cue = cr.volume[cr.volume.shape[0] // 2]
         return LikelihoodVolume(res.volume, self.wrow0 + s * res.row0, self.wcol0 + s * res.col0,
-                                res.a0 * s * self.dyaw, s * self.dyaw, s)
+                                res.a0 * s * self.dyaw, s * self.dyaw, s, cue)
+
+
+def cue_model(model, names: str):
+    """The scoring model with only the named features (comma-separated), the same temperature.
+
+    A model with fewer rows is a legal model (tinyloc/correlate/scoring.py); the score is linear in the
+    features, so this family's score plus the others' is the full score.
+    """
+    from ..correlate.scoring import ScoringModel
+    from ..errors import InputError
+
+    want = [n.strip() for n in str(names).split(",") if n.strip()]
+    idx = [i for i, n in enumerate(model.names) if n in want]
+    missing = sorted(set(want) - set(model.names))
+    if missing or not idx:
+        raise InputError(f"track.cue_features: unknown feature(s) {', '.join(missing) or '(none given)'}; "
+                         f"the scoring model has {', '.join(model.names)}")
+    return ScoringModel(tuple(model.names[i] for i in idx), model.bev_weights[idx], model.map_weights[idx],
+                        tuple(model.sigma_cells[i] for i in idx), model.temperature,
+                        {"derived": f"features {', '.join(model.names[i] for i in idx)} of the loop's model"})

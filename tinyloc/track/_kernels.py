@@ -402,3 +402,43 @@ def flatten_layers(bel, active, lsum):
             for i in range(H):
                 for j in range(W):
                     bel[a, i, j] = v
+
+
+@njit(**JIT)
+def cue_accumulate(cue, fi0, fj0, di_u, di_v, dj_u, dj_v, offs, lam, weight, acc, tmp):
+    """Sample a surface on a grid of (along, left) offsets and fold it into a decaying sum.
+
+    ``cue[H, W]`` is sampled bilinearly (edges held, like ``scipy.ndimage.map_coordinates`` with
+    ``mode="nearest"``) at continuous index ``(fi0 + di_u u + di_v v, fj0 + dj_u u + dj_v v)`` for
+    ``u = offs[p]`` (along) and ``v = offs[q]`` (left), into ``tmp[p, q]``; then
+    ``acc = lam acc + weight (tmp - max tmp)``. Returns the sampled range ``max - min`` (0: flat).
+    """
+    H, W = cue.shape
+    n = offs.shape[0]
+    hi = -np.inf
+    lo = np.inf
+    for p in range(n):
+        u = offs[p]
+        for q in range(n):
+            v = offs[q]
+            fi = fi0 + di_u * u + di_v * v
+            fj = fj0 + dj_u * u + dj_v * v
+            fi = min(max(fi, 0.0), H - 1.0)
+            fj = min(max(fj, 0.0), W - 1.0)
+            i0 = min(int(math.floor(fi)), H - 2) if H > 1 else 0
+            j0 = min(int(math.floor(fj)), W - 2) if W > 1 else 0
+            ti = fi - i0
+            tj = fj - j0
+            i1 = min(i0 + 1, H - 1)
+            j1 = min(j0 + 1, W - 1)
+            s = ((1.0 - ti) * ((1.0 - tj) * cue[i0, j0] + tj * cue[i0, j1])
+                 + ti * ((1.0 - tj) * cue[i1, j0] + tj * cue[i1, j1]))
+            tmp[p, q] = s
+            if s > hi:
+                hi = s
+            if s < lo:
+                lo = s
+    for p in range(n):
+        for q in range(n):
+            acc[p, q] = lam * acc[p, q] + weight * (tmp[p, q] - hi)
+    return hi - lo

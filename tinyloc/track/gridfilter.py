@@ -70,6 +70,10 @@ class LikelihoodVolume:
     robot origin at continuous global cell coordinates ``(row0 + scale (i + 0.5), col0 + scale (j + 0.5))``:
     with ``scale = 1`` the centre of global map cell (row0 + i, col0 + j); with ``scale = 2`` (a
     half-resolution volume) the centre of the 2 x 2 block starting at (row0 + 2 i, col0 + 2 j).
+
+    ``cue`` (optional, for ``track.cue_cov``): ``(H, W)`` log-likelihood of the cue family alone (the
+    ground-surface features) at the volume's centre heading layer ``A // 2``, placed like one layer of
+    ``loglik``.
     """
 
     loglik: np.ndarray
@@ -78,6 +82,7 @@ class LikelihoodVolume:
     yaw0_rad: float = 0.0
     dyaw_rad: float = 2.0 * math.pi / 256
     scale: int = 1
+    cue: np.ndarray | None = None
 
     @property
     def full_circle(self) -> bool:
@@ -237,6 +242,27 @@ class TrackParams:
         [False].
     adapt_cov_scale, adapt_sigma_m : float
         See ``adapt_cov`` [0.35, 0.2].
+    cue_cov : bool
+        Reported covariance from the ground cues' say (docs/tracking.md, "Cue offset covariance";
+        tinyloc/track/cueoffset.py): the loop also scores each frame with the ground-surface features
+        of the scoring model alone (``cue_features``), keeps a decaying sum of that log-likelihood on a
+        grid of offsets about the estimate, and while tracking the position part is
+        ``cue_cov_scale`` x posterior + ``cue_sigma_m``^2 I + ``cue_gain`` o o^T, o the offset of the
+        sum's maximum (world frame); otherwise (fewer than ``cue_min_frames`` frames since a restart,
+        searching, degraded) the default formula. Costs one more tracking correlation per frame with
+        the named features [False].
+    cue_cov_scale, cue_sigma_m, cue_gain : float
+        See ``cue_cov`` [0.1, 0.1, 1.0]. 0.1 is ``likelihood_weight``: the posterior as if every frame
+        were independent evidence; what the frames share (a bias) is what the offset term is for.
+    cue_memory : float
+        Factor on the sum per frame [0.9; about 10 frames].
+    cue_half_m, cue_step_m : float
+        Half-size and spacing of the offset grid (m) [3.0, 0.25].
+    cue_min_frames : int
+        Frames with ground evidence since a restart before the term is used [10].
+    cue_features : str
+        Comma-separated feature names of the scoring model that make the cue family
+        ["road,sidewalk,grass"].
     fallback_weight : float
         While not tracking (searching, degraded), the reported covariance also holds the satellite
         fix of the frame as a competing pose with this weight: ``w (S + d d^T)`` with S the fix's
@@ -296,6 +322,15 @@ class TrackParams:
     adapt_cov: bool = False
     adapt_cov_scale: float = 0.35
     adapt_sigma_m: float = 0.2
+    cue_cov: bool = False
+    cue_cov_scale: float = 0.1
+    cue_sigma_m: float = 0.1
+    cue_gain: float = 1.0
+    cue_memory: float = 0.9
+    cue_half_m: float = 3.0
+    cue_step_m: float = 0.25
+    cue_min_frames: int = 10
+    cue_features: str = "road,sidewalk,grass"
     fallback_weight: float = 0.25
     gnss: GnssParams = field(default_factory=GnssParams)
 
@@ -308,6 +343,11 @@ class TrackParams:
             raise InputError(f"track.floor = {self.floor}: must be in [0, 0.5)")
         if not (0.0 < self.adapt_cov_scale <= 10.0 and 0.0 <= self.adapt_sigma_m <= 10.0):
             raise InputError("track.adapt_cov_scale must be in (0, 10] and track.adapt_sigma_m in [0, 10]")
+        if not (0.0 < self.cue_cov_scale <= 10.0 and 0.0 <= self.cue_sigma_m <= 10.0 and 0.0 <= self.cue_gain <= 100.0
+                and 0.0 <= self.cue_memory < 1.0 and 0.0 < self.cue_step_m <= self.cue_half_m <= 50.0
+                and self.cue_half_m / self.cue_step_m <= 200 and self.cue_min_frames >= 0):
+            raise InputError("track.cue_*: cov_scale in (0, 10], sigma_m in [0, 10], gain in [0, 100], memory in "
+                             "[0, 1), 0 < step_m <= half_m <= 50 with at most 200 steps, min_frames >= 0")
         if not 0.0 < self.cov_scale <= 10.0:
             raise InputError(f"track.cov_scale = {self.cov_scale}: must be in (0, 10]")
         if not 0.5 <= self.odometry_scale <= 2.0:
@@ -792,6 +832,9 @@ class Tracker:
         self.course = CourseCheck(max(params.course_span_m, 1.0), params.course_sigma_deg)
         from .odoscale import OdometryScale
 
+        from .cueoffset import CueOffset
+
+        self.cue = CueOffset(params.cue_half_m, params.cue_step_m, params.cue_memory)
         self.odo_scale = OdometryScale(max(params.odo_scale_span_m, 1.0),
                                        params.odo_scale_rate if params.odo_scale_span_m > 0 else 0.0,
                                        params.odo_scale_max_dev, params.odometry_scale,
@@ -821,6 +864,7 @@ class Tracker:
         self._clock.reset()
         self.course.reset()
         self.odo_scale.reset()
+        self.cue.reset()
         self._course = None  # (yaw, sigma) of the current frame, or None
         self._course_off = 0
         self._off_e = self._off_n = math.nan  # average (estimate - fix) over recent fixes (m)
@@ -952,6 +996,13 @@ class Tracker:
                 notes.append(frame_status)
         self._since_verify += 1
         est = f.estimate()
+        if p.cue_cov:
+            cue = getattr(vol, "cue", None) if vol is not None else None
+            if cue is not None:
+                gm = self.geom
+                self.cue.add(cue, vol.row0, vol.col0, vol.scale, est.x, est.y, est.yaw, gm.x_min, gm.y_max, gm.res_m)
+            else:
+                self.cue.decay()
         if g is not None:
             self._gnss_disagree_s = self._clock.observe(t, math.hypot(est.x - g[0], est.y - g[1]), g[2])
             if g[3] > self._off_t:
@@ -1143,6 +1194,7 @@ class Tracker:
         self._ambig = None
         self._ambig_seen = 0
         self._off_e = self._off_n = math.nan
+        self.cue.reset()  # the sum is about offsets from an estimate that is no longer trusted
         notes.append(f"lost: {why}")
 
     def _decide(self, est: FilterEstimate, notes) -> None:
@@ -1202,7 +1254,22 @@ class Tracker:
             nan = math.nan
             return TrackOutput(t, nan, nan, nan, np.full((3, 3), np.nan), quality, [], status, surprise, was_global)
         drag = self.odo_scale.drag_m
-        if self.p.adapt_cov and quality == "tracking" and math.isfinite(drag):
+        p = self.p
+        if p.cue_cov and quality == "tracking" and self.cue.frames >= p.cue_min_frames:
+            # scaled posterior (position only; heading as by default) + floor + the ground cues' offset
+            ka, kh = math.sqrt(p.cue_cov_scale), math.sqrt(p.cov_scale)
+            cov = est.cov.copy()
+            cov[:2, :2] *= ka * ka
+            cov[:2, 2] *= ka * kh
+            cov[2, :2] *= ka * kh
+            cov[2, 2] *= kh * kh
+            xx, yy, xy = self.cue.term(est.yaw)
+            v = p.cue_sigma_m ** 2
+            cov[0, 0] += v + p.cue_gain * xx
+            cov[1, 1] += v + p.cue_gain * yy
+            cov[0, 1] += p.cue_gain * xy
+            cov[1, 0] += p.cue_gain * xy
+        elif self.p.adapt_cov and quality == "tracking" and math.isfinite(drag):
             cov = est.cov * self.p.adapt_cov_scale
             cov[2, 2] = est.cov[2, 2] * self.p.cov_scale
             v = self.p.adapt_sigma_m ** 2
