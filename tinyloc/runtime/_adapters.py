@@ -105,6 +105,9 @@ class CorrelatorAdapter:
         tp = getattr(cfg, "track", None)
         if tp is not None and getattr(tp, "cue_cov", False):
             self.cue_corr = Correlator(self.params, cue_model(self.corr.model, tp.cue_features))
+            # the offsets reach cue_half_m along and left of an estimate that moves up to ~1 m a frame from
+            # the box centre (the previous estimate); beyond the box the surface's edge is held
+            self.cue_radius = min(R, int(math.ceil((tp.cue_half_m * math.sqrt(2.0) + 1.5) / geom.res_m)))
 
     def warmup(self) -> None:
         self.corr.warm_up(("fast", "track_exact") if self.exact else ("fast", "track"))
@@ -175,10 +178,13 @@ class CorrelatorAdapter:
         s = int(getattr(res, "scale", 1))
         cue = None
         if self.cue_corr is not None:
-            cr = self.cue_corr.track(bev, r - 0.5 - self.wrow0, c - 0.5 - self.wcol0, a, exact=self.exact)
-            # same box as the full model's (same centre and sizes); the centre heading layer is the cue
-            if cr.ok and cr.row0 == res.row0 and cr.col0 == res.col0 and cr.volume.shape == res.volume.shape:
-                cue = cr.volume[cr.volume.shape[0] // 2]
+            # one heading (the box's centre) and a small box: about a twentieth of the full model's work
+            cr = self.cue_corr.track(bev, r - 0.5 - self.wrow0, c - 0.5 - self.wcol0, a, exact=self.exact,
+                                     radius_cells=self.cue_radius, half_headings=0)
+            if cr.ok:
+                cs = int(getattr(cr, "scale", 1))
+                cue = LikelihoodVolume(cr.volume, self.wrow0 + cs * cr.row0, self.wcol0 + cs * cr.col0,
+                                       cr.a0 * cs * self.dyaw, cs * self.dyaw, cs)
         return LikelihoodVolume(res.volume, self.wrow0 + s * res.row0, self.wcol0 + s * res.col0,
                                 res.a0 * s * self.dyaw, s * self.dyaw, s, cue)
 

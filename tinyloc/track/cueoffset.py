@@ -42,7 +42,7 @@ class CueOffset:
         Factor on each frame's log-likelihood before it is added (1: the calibrated single-frame value).
     """
 
-    def __init__(self, half_m: float = 3.0, step_m: float = 0.25, memory: float = 0.9, weight: float = 1.0):
+    def __init__(self, half_m: float = 2.0, step_m: float = 0.25, memory: float = 0.9, weight: float = 1.0):
         n = int(round(half_m / step_m))
         self.offs = np.arange(-n, n + 1, dtype=np.float64) * float(step_m)
         m = len(self.offs)

@@ -71,9 +71,8 @@ class LikelihoodVolume:
     with ``scale = 1`` the centre of global map cell (row0 + i, col0 + j); with ``scale = 2`` (a
     half-resolution volume) the centre of the 2 x 2 block starting at (row0 + 2 i, col0 + 2 j).
 
-    ``cue`` (optional, for ``track.cue_cov``): ``(H, W)`` log-likelihood of the cue family alone (the
-    ground-surface features) at the volume's centre heading layer ``A // 2``, placed like one layer of
-    ``loglik``.
+    ``cue`` (optional, for ``track.cue_cov``): a second volume of the same layout, the log-likelihood of
+    the cue family alone (the ground-surface features of the scoring model); its layer 0 is used.
     """
 
     loglik: np.ndarray
@@ -82,7 +81,7 @@ class LikelihoodVolume:
     yaw0_rad: float = 0.0
     dyaw_rad: float = 2.0 * math.pi / 256
     scale: int = 1
-    cue: np.ndarray | None = None
+    cue: "LikelihoodVolume | None" = None
 
     @property
     def full_circle(self) -> bool:
@@ -257,7 +256,8 @@ class TrackParams:
     cue_memory : float
         Factor on the sum per frame [0.9; about 10 frames].
     cue_half_m, cue_step_m : float
-        Half-size and spacing of the offset grid (m) [3.0, 0.25].
+        Half-size and spacing of the offset grid (m) [2.0, 0.25]. The offset, and so the term, is at most
+        ``cue_half_m`` along and left: the largest the term says where the ground cannot tell.
     cue_min_frames : int
         Frames with ground evidence since a restart before the term is used [10].
     cue_features : str
@@ -327,7 +327,7 @@ class TrackParams:
     cue_sigma_m: float = 0.1
     cue_gain: float = 1.0
     cue_memory: float = 0.9
-    cue_half_m: float = 3.0
+    cue_half_m: float = 2.0
     cue_step_m: float = 0.25
     cue_min_frames: int = 10
     cue_features: str = "road,sidewalk,grass"
@@ -1000,7 +1000,8 @@ class Tracker:
             cue = getattr(vol, "cue", None) if vol is not None else None
             if cue is not None:
                 gm = self.geom
-                self.cue.add(cue, vol.row0, vol.col0, vol.scale, est.x, est.y, est.yaw, gm.x_min, gm.y_max, gm.res_m)
+                self.cue.add(cue.loglik[0], cue.row0, cue.col0, cue.scale, est.x, est.y, est.yaw, gm.x_min, gm.y_max,
+                             gm.res_m)
             else:
                 self.cue.decay()
         if g is not None:
