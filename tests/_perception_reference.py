@@ -15,6 +15,45 @@ from tinyloc.perception.crown_model import load_crown_model
 from tinyloc.perception.features import box_mean, exg_minus_exr, gradient_energy, hsv_saturation_value
 
 
+def _lab_dist(x, c):
+    """The facade rule's colour distance (Lab, lightness at half weight)."""
+    x = np.asarray(x, float)
+    return 0.5 * abs(x[0] - c[0]) + abs(x[1] - c[1]) + abs(x[2] - c[2])
+
+
+def _ref_lab_dist(x, ref, l_weight):
+    x = np.asarray(x, float)
+    return abs(x[0] - ref[0]) * l_weight + abs(x[1] - ref[1]) + abs(x[2] - ref[2])
+
+
+def _base_band_reference(lab, labels, exgr, ref, p, ground, hr, j, top):
+    """Row below a facade's base band starting at row ``top`` of column j (the carry's colour stop), or None.
+
+    Written from the rule in segment.py: the band is the run of pixels below the mixed pixel at ``top``
+    that are ground, not green (ExG - ExR < green0), not yellowish (with soil_b > 0, b* at most soil_b
+    above the robot's surface's) and unlike the robot's surface, and within wall_dist
+    of the mean colour of its first two; at least two such pixels; it must stand on two ground pixels,
+    the second unlike the band's colour; and its top's depth below the horizon must be at least
+    (1 - wall_base) of its bottom's (boundaries at half rows).
+    """
+    h = labels.shape[0]
+    ok = [labels[i, j] in ground and exgr[i, j] < p.green0 and (p.soil_b <= 0 or lab[i, j, 2] - ref[2] <= p.soil_b)
+          and _ref_lab_dist(lab[i, j], ref, p.ref_l_weight) >= p.wall_ground for i in range(h)]
+    if top + 4 >= h or not (ok[top + 1] and ok[top + 2]):
+        return None
+    c = lab[top + 1:top + 3, j].astype(float).mean(axis=0)
+    end = top + 3
+    while end < h - 1 and ok[end] and _lab_dist(lab[end, j], c) <= p.wall_dist:
+        end += 1
+    if end >= h - 1 or labels[end, j] not in ground or labels[end + 1, j] not in ground:
+        return None
+    if _lab_dist(lab[end + 1, j], c) <= p.wall_dist:
+        return None
+    if (top - 0.5 - hr) < (1 - p.wall_base) * (end - 0.5 - hr):
+        return None
+    return end
+
+
 def crown_features_reference(bgr, g01, s, v, exgr, u, sky):
     """The crown model's feature planes (crown_model.FEATURES order) from their formulas, with OpenCV's
     Laplacian (ksize=1, replicated border) and area resize as the independent pieces; ``bgr`` is the
@@ -167,21 +206,26 @@ def segment_reference(bgr, p, hrow=None):
                 continue
             r, from_above = starts[0], True
         c = lab[r - 2:r + 1, j].mean(axis=0)
-        carry, foot = [], False
+        carry, foot, stop, by_colour = [], False, h, False
         for i in range(r + 1, h):
             if labels[i, j] == BUILDING:
                 continue
             if labels[i, j] not in ground:
-                foot = True
+                foot, stop = True, i
                 break
-            d = 0.5 * abs(lab[i, j, 0] - c[0]) + abs(lab[i, j, 1] - c[1]) + abs(lab[i, j, 2] - c[2])
-            if d > p.wall_dist or gy[i, j] > p.wall_edge:
-                foot = True
-                break
-            dg = abs(lab[i, j, 0] - ref[0]) * p.ref_l_weight + abs(lab[i, j, 1] - ref[1]) + abs(lab[i, j, 2] - ref[2])
-            if dg < p.wall_ground:
+            if _lab_dist(lab[i, j], c) > p.wall_dist or gy[i, j] > p.wall_edge:
+                foot, stop, by_colour = True, i, True
                 break
             carry.append(i)
+        # the first pixel like the robot's surface ends the carry, unless (wall_base) the colour carry past
+        # it ends on a thin base band that stands on other ground
+        on_ref = [i for i in carry if _ref_lab_dist(lab[i, j], ref, p.ref_l_weight) < p.wall_ground]
+        band_end = _base_band_reference(lab, labels, exgr, ref, p, ground, hrow[j], j, stop) \
+            if p.wall_base > 0 and by_colour else None
+        if band_end is not None:
+            carry += [i for i in range(stop, band_end) if labels[i, j] != BUILDING]
+        elif on_ref:
+            carry, foot = [i for i in carry if i < on_ref[0]], False
         if from_above and not foot:  # started above the horizon: kept only down to a visible foot
             continue
         for i in carry:

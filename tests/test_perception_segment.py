@@ -24,6 +24,27 @@ def _frames():
     dull = cv2.resize(_street_like(seed=5), (480, 360))
     dull[:120] = np.clip(rng.normal(0, 1.5, (120, 480, 3)) + (140, 141, 143), 0, 255).astype(np.uint8)
     yield "overcast", dull  # a grey sky darker than sky_v: only the sky-by-colour rule takes it
+    yield "facade with a dark base", _plinth_frame()  # the base-band rule (wall_base) changes 799 pixels
+
+
+def _plinth_frame(seed=3):
+    """480 x 360: sky, paving below the test's horizon (0.45 .. 0.6 of the raster's height, 160 x 120), and
+    in the right half a facade whose lower edge and dark base band are lines through the horizon's
+    left end at depths 0.25 and 0.5 raster rows per column (the band's top at half its bottom's depth)."""
+    rng = np.random.default_rng(seed)
+    width, height = 480, 360
+    hrow = np.linspace(0.45, 0.6, 160) * 120
+    img = np.empty((height, width, 3), np.float64)
+    img[:] = (235, 215, 190)
+    rows, j = np.arange(height)[:, None], np.arange(width)[None, :] // 3
+    hz = (hrow[j] + 0.5) * 3
+    img[np.broadcast_to(rows > hz, (height, width))] = (165, 165, 165)
+    fac = j >= 80
+    top, bot = hz + 0.75 * (j - 80), hz + 1.5 * (j - 80)
+    img[np.broadcast_to(fac & (rows <= top), (height, width))] = (120, 130, 140)
+    img[np.broadcast_to(fac & (rows > top) & (rows <= bot), (height, width))] = (70, 72, 72)
+    img += rng.normal(0, 2.0, img.shape)
+    return np.clip(img, 0, 255).astype(np.uint8)
 
 
 CASES = {**{n: preset(n) for n in PRESETS},
@@ -40,7 +61,8 @@ CASES = {**{n: preset(n) for n in PRESETS},
          "surface decided per frame": SegmentParams(surface_auto=5.0, surface_share=0.005, crown_model=""),
          "surface with the darker-paving guard": SegmentParams(surface_auto=5.0, surface_share=0.005,
                                                                surface_dark=0.05, crown_model=""),
-         "facades starting above the horizon": replace(preset("sidewalk"), wall_reach=2)}
+         "facades starting above the horizon": replace(preset("sidewalk"), wall_reach=2),
+         "facade base bands": replace(preset("sidewalk"), wall_base=0.6)}
 
 
 @pytest.mark.parametrize("name", list(CASES))
@@ -66,11 +88,16 @@ def test_kernels_match_reference(name):
     if name == "poles and fences on":
         assert {5, 6} <= seen  # both optional rules fired on these frames, so they were compared
     if name == "sky by colour on":  # the overcast frame's sky is taken by colour only
-        img = list(_frames())[-1][1]
+        img = dict(_frames())["overcast"]
         hrow = np.linspace(0.45, 0.6, 160) * 120
         on = Segmenter((480, 360), p).run(img, hrow)[1]
         off = Segmenter((480, 360), SegmentParams(crown_model="")).run(img, hrow)[1]
         assert np.mean(on[:35] == 9) > 0.9 and np.mean(off[:35] == 9) < 0.1
+    if name == "facade base bands":  # the band rule moved feet on the facade frame, so it was compared
+        img = dict(_frames())["facade with a dark base"]
+        hrow = np.linspace(0.45, 0.6, 160) * 120
+        off = Segmenter((480, 360), preset("sidewalk")).run(img, hrow)[1]
+        assert np.sum(Segmenter((480, 360), p).run(img, hrow)[1] != off) > 500
     if name == "crown model on":
         assert {0, 4} <= seen  # the crown model split building from tree on these frames
     if name == "sky-gap model, low threshold":
@@ -106,6 +133,11 @@ def test_params_validated():
         SegmentParams(wall_reach=-1)
     with pytest.raises(InputError, match="wall_reach"):
         SegmentParams(wall_reach=1.5)
+    with pytest.raises(InputError, match="wall_base"):
+        SegmentParams(wall_base=-0.1)
+    with pytest.raises(InputError, match="wall_base"):
+        SegmentParams(wall_base=1.0)  # a band as tall as the camera reaches the horizon: no bound at all
+    SegmentParams(wall_base=0.0), SegmentParams(wall_base=0.99)
 
 
 def _ground_frame(ground_bgr, patch_bgr=None, side_bgr=None, side_cols=(0, 40)):
@@ -279,3 +311,98 @@ def test_wall_reach_needs_a_visible_foot():
     assert labels.tolist() == [BUILDING] * 5 + [SIDEWALK] * 7
     labels, _ = _wall_column_case(0, start_row=5, foot_l=120.0)
     assert labels.tolist() == [BUILDING] * 12
+
+
+def _base_band_column(base, *, band_end=21, facade_l=120, band_l=60, band_exgr=-0.133, ref_l=200, below=None,
+                      band_label=None, reach=0, start_row=5, band_b=128):
+    """One hand-made column of 26 rows for the facade's base band (``wall_base``), horizon at row 5.3:
+    building rows 0 .. ``start_row``; rows 6-11 labelled sidewalk but of the facade's colour (L
+    ``facade_l``); row 12 the mixed pixel of the facade's lower edge (L 90); rows 13 .. ``band_end`` - 1
+    the band (L ``band_l``, labelled grass as the segmenter often calls a dark plinth, ExG - ExR
+    ``band_exgr``: -0.133 is a neutral grey's, 2/3 - 1/3 - 1/3 minus 1.4/3 - 1/3, worked by hand); from
+    ``band_end`` on the robot's surface (L ``ref_l`` = the patch's, labelled sidewalk) or the class
+    ``below``. a* = b* = 128 everywhere."""
+    from tinyloc.perception import _kernels as K
+    from tinyloc.perception.segment import _IS_GROUND
+    from tinyloc.classes import BUILDING, NUM_CLASSES
+
+    h = 26
+    labels = np.full((h, 1), SIDEWALK, np.uint8)
+    labels[:start_row + 1] = BUILDING
+    labels[13:band_end] = GRASS if band_label is None else band_label
+    if below is not None:
+        labels[band_end:] = below
+    lab = np.full((h, 1, 3), 128, np.uint8)
+    lab[:12, :, 0] = facade_l
+    lab[12, :, 0] = 90
+    lab[13:band_end, :, 0] = band_l
+    lab[13:band_end, :, 2] = band_b
+    lab[band_end:, :, 0] = ref_l
+    feat = np.zeros((K.NF, h, 1), np.float32)
+    feat[K.F_EXGR] = -0.133
+    feat[K.F_EXGR, 13:band_end] = band_exgr
+    probs = np.zeros((NUM_CLASSES, h, 1), np.float32)
+    probs[labels[:, 0], np.arange(h), 0] = 1.0
+    ref = np.array([float(ref_l), 128.0, 128.0])
+    prm = replace(preset("sidewalk"), wall_base=base, wall_reach=reach).vector()
+    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels)
+    return labels[:, 0], probs
+
+
+def _building_rows(labels):
+    from tinyloc.classes import BUILDING
+
+    return [i for i, c in enumerate(labels) if c == BUILDING]
+
+
+@pytest.mark.parametrize("base, band_end, foot", [
+    # off: the carry stops at the facade's lower edge (row 12: distance 0.5 * 30 = 15 > wall_dist 13.1)
+    (0.0, 21, 12),
+    # the band's top boundary lies 12 - 0.5 - 5.3 = 6.2 rows below the horizon, its bottom (row 21) at
+    # 21 - 0.5 - 5.3 = 15.2: 6.2 >= (1 - 0.6) x 15.2 = 6.08, so the band is the wall's: carried to row 21
+    (0.6, 21, 21),
+    # one row deeper: 6.2 < 0.4 x 16.2 = 6.48, too thick for a wall's base, the foot stays at row 12
+    (0.6, 22, 12),
+    # a lower limit: 0.5 needs 6.2 >= 0.5 x 15.2 = 7.6, no
+    (0.5, 21, 12),
+    # a one-pixel band (rows 13 only) is not a band
+    (0.6, 14, 12),
+])
+def test_wall_base_hand_worked(base, band_end, foot):
+    labels, probs = _base_band_column(base, band_end=band_end)
+    assert _building_rows(labels) == list(range(foot))
+    assert np.all(probs[:, :foot].argmax(axis=0) == 0) and np.all(probs[0, :foot] == 1.0)
+
+
+def test_wall_base_not_on_green_or_objects_or_paving():
+    from tinyloc.classes import TREE
+
+    # a green band (ExG - ExR 0.05 > green0 -0.02) is a verge in front of the facade, not its base
+    labels, _ = _base_band_column(0.6, band_exgr=0.05)
+    assert _building_rows(labels) == list(range(12))
+    # a yellowish band (b* 8 above the robot's surface's, more than soil_b 6) is dry grass or bare ground
+    labels, _ = _base_band_column(0.6, band_b=136)
+    assert _building_rows(labels) == list(range(12))
+    labels, _ = _base_band_column(0.6, band_b=134)  # 6 above: still a band (the limit is inclusive)
+    assert _building_rows(labels) == list(range(21))
+    # a band that stands on an object (a tree label below it) has no foot on ground
+    labels, _ = _base_band_column(0.6, below=TREE)
+    assert _building_rows(labels) == list(range(12))
+    # a band the colour of the robot's surface (distance 0 < wall_ground 6) is that surface
+    labels, _ = _base_band_column(0.6, band_l=200)
+    assert _building_rows(labels) == list(range(12))
+
+
+def test_wall_base_carries_a_facade_coloured_like_the_paving():
+    # the facade's lower part looks like the robot's surface (L 200 = the patch): off, the carry stops at
+    # once (row 6); with the band rule the colour carry goes on to the band and through it to the foot
+    labels, _ = _base_band_column(0.0, facade_l=200)
+    assert _building_rows(labels) == list(range(6))
+    labels, _ = _base_band_column(0.6, facade_l=200)
+    assert _building_rows(labels) == list(range(21))
+    # ... but without a band that passes, it still stops at the first paving-like pixel
+    labels, _ = _base_band_column(0.6, facade_l=200, band_end=22)
+    assert _building_rows(labels) == list(range(6))
+    # found above the horizon (wall_reach 2, facade to row 4): kept, the band's bottom is a visible foot
+    labels, _ = _base_band_column(0.6, facade_l=200, reach=2, start_row=4)
+    assert _building_rows(labels) == list(range(21))

@@ -22,8 +22,9 @@ NF = 10
 (P_SKY_TEX, P_SKY_V, P_SKY_S, P_SKY_BLUE, P_SKY_V2, P_SKY_BELOW, P_GREEN0, P_GREEN_W, P_G_U0, P_G_W,
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
  P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND,
- P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T, P_SOIL_B, P_SOIL_W, P_WALL_REACH) = range(38)
-NP = 38
+ P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T, P_SOIL_B, P_SOIL_W, P_WALL_REACH,
+ P_WALL_BASE) = range(39)
+NP = 39
 
 # Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
 BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
@@ -381,6 +382,52 @@ def thin_and_low(feat, hrow, prm, probs, labels, mark):
 
 
 @njit(**JIT)
+def _ref_dist(lab, i, j, ref, refl):
+    """Colour distance of pixel (i, j) to the surface under the robot (lightness weighted by refl)."""
+    return abs(lab[i, j, 0] - ref[0]) * refl + abs(lab[i, j, 1] - ref[1]) + abs(lab[i, j, 2] - ref[2])
+
+
+@njit(**JIT)
+def _band_pixel(feat, lab, labels, is_ground, ref, refl, refd, green0, soil_b, i, j):
+    """Pixel (i, j) may belong to a facade's base band: ground-labelled, neither green nor (soil_b > 0)
+    yellowish like bare or dry ground, and unlike the robot's surface."""
+    return labels[i, j] != BUILDING and is_ground[labels[i, j]] and feat[F_EXGR, i, j] < green0 \
+        and (soil_b <= 0.0 or lab[i, j, 2] - ref[2] <= soil_b) and _ref_dist(lab, i, j, ref, refl) >= refd
+
+
+@njit(**JIT)
+def _base_band(feat, lab, labels, is_ground, ref, refl, refd, dmax, green0, soil_b, hr, base, j, e):
+    """The row below a facade's base band that starts at row e of column j, or e (see extend_walls)."""
+    h = labels.shape[0]
+    if e + 4 >= h:
+        return e
+    for q in range(e + 1, e + 3):
+        if not _band_pixel(feat, lab, labels, is_ground, ref, refl, refd, green0, soil_b, q, j):
+            return e
+    c0 = 0.5 * (float(lab[e + 1, j, 0]) + lab[e + 2, j, 0])
+    c1 = 0.5 * (float(lab[e + 1, j, 1]) + lab[e + 2, j, 1])
+    c2 = 0.5 * (float(lab[e + 1, j, 2]) + lab[e + 2, j, 2])
+    b = e + 3
+    while b < h - 1:
+        if not _band_pixel(feat, lab, labels, is_ground, ref, refl, refd, green0, soil_b, b, j):
+            break
+        if 0.5 * abs(lab[b, j, 0] - c0) + abs(lab[b, j, 1] - c1) + abs(lab[b, j, 2] - c2) > dmax:
+            break
+        b += 1
+    # the band stands on ground (this pixel and the next) of another colour (this one, or the next after a
+    # mixed pixel)
+    if b >= h - 1 or labels[b, j] == BUILDING or not is_ground[labels[b, j]] or labels[b + 1, j] == BUILDING \
+            or not is_ground[labels[b + 1, j]]:
+        return e
+    if 0.5 * abs(lab[b + 1, j, 0] - c0) + abs(lab[b + 1, j, 1] - c1) + abs(lab[b + 1, j, 2] - c2) <= dmax:
+        return e
+    # thin enough to be a wall's base: top depth >= (1 - base) x bottom depth (boundaries at half rows)
+    if (e - 0.5 - hr) < (1.0 - base) * (b - 0.5 - hr):
+        return e
+    return b
+
+
+@njit(**JIT)
 def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
     """Carry buildings down across the horizon to their foot.
 
@@ -397,6 +444,17 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
     up to the row above the horizon). The carry then starts at that building pixel, and is kept only
     if it ends at a visible foot (colour change, edge or a non-ground class), not at a pixel that looks
     like the robot's surface.
+
+    With ``wall_base`` = b > 0 a carry stopped by a colour change or an edge may go on across the
+    facade's base band (a plinth, a shop front's base, the contact shadow where wall meets ground): a
+    run of at least two ground-labelled pixels of one colour (within ``wall_dist`` of the mean of its
+    second and third pixel, the first being the mixed pixel of the boundary) that ends directly on
+    the robot's own surface (that pixel or the next within ``wall_ground`` of ``ref``). It is taken
+    as the wall's only when it is thin enough to be one: for a level camera at height H a horizontal
+    band from height 0 to t on a vertical wall spans the rows whose depths below the horizon are in
+    the ratio (H - t) / H, while a strip of ground in front of a distant facade may span any ratio; so
+    the band's top must lie at least (1 - b) of the way from the horizon to its bottom (a band at most
+    b H tall). A band that fails the test leaves the foot where the carry stopped.
     """
     nc, h, w = probs.shape
     dmax = prm[P_WALL_DIST]
@@ -404,6 +462,9 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
     refl = prm[P_REF_L]
     refd = prm[P_WALL_GROUND]
     reach = int(prm[P_WALL_REACH])
+    base = prm[P_WALL_BASE]
+    green0 = prm[P_GREEN0]
+    soil_b = prm[P_SOIL_B]
     for j in range(w):
         r = int(math.floor(hrow[j]))
         if r < 3 or r >= h - 1:
@@ -429,6 +490,8 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
         c2 /= 3.0
         e = h  # first row the facade does not continue into
         at_edge = False
+        by_colour = False
+        e_ref = h  # first row that looks like the robot's surface (the carry's stop without a base band)
         for i in range(r + 1, h):
             if labels[i, j] == BUILDING:
                 continue
@@ -440,11 +503,20 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels):
             if d > dmax or feat[F_GY, i, j] > emax:
                 e = i
                 at_edge = True
+                by_colour = True
                 break
-            dg = abs(lab[i, j, 0] - ref[0]) * refl + abs(lab[i, j, 1] - ref[1]) + abs(lab[i, j, 2] - ref[2])
-            if dg < refd:
-                e = i
-                break
+            if e_ref == h and _ref_dist(lab, i, j, ref, refl) < refd:
+                e_ref = i
+                if base <= 0.0:
+                    break
+        if base > 0.0 and by_colour:
+            b = _base_band(feat, lab, labels, is_ground, ref, refl, refd, dmax, green0, soil_b, hrow[j], base, j, e)
+            if b > e:
+                e = b
+                e_ref = h
+        if e_ref < e:  # stopped by a pixel like the robot's surface before any foot
+            e = e_ref
+            at_edge = False
         # a facade found above the horizon is carried down only to a visible foot (a change of colour, an
         # edge or a non-ground class): stopped by ground-like colour, a facade coloured like the paving
         # may go on lower, and a foot placed too high puts the facade too far away
