@@ -8,8 +8,9 @@ features of the scoring model alone (road, sidewalk, grass: a legal model with f
 log-likelihood at the box's centre heading is sampled on a small grid of offsets (along, left) about
 the filter's estimate, and folded into a decaying sum ``acc = memory * acc + weight (L - max L)``.
 The offset of the sum's maximum is the family's say about where the robot is, relative to the
-estimate, over the last few seconds. The tracker adds ``gain * o o^T`` (in the world frame) to the
-reported position covariance while tracking (``track.cue_cov``, docs/tracking.md).
+estimate, over the last few seconds. The tracker adds ``gain`` times the offset's squares, as variances
+along and across the heading, to the reported position covariance while tracking (``track.cue_cov``,
+docs/tracking.md).
 
 Where the ground cannot tell along the street (a long uniform street) the maximum wanders to the
 edge of the grid and the term is large: conservative, and said so. A sum with no evidence at all
@@ -109,8 +110,13 @@ class CueOffset:
         return float(self.offs[p]), float(self.offs[q])
 
     def term(self, yaw_rad: float) -> tuple[float, float, float]:
-        """The offset's outer product in the world frame: (xx, yy, xy) in m^2."""
+        """The offset as variances along and across the heading, in the world frame: (xx, yy, xy) in m^2.
+
+        ``R diag(u^2, v^2) R^T`` with (u, v) the (along, left) offset and R the heading's rotation. Not the
+        outer product ``o o^T``: that ellipse is flat across o, so a little noise in the offset's direction
+        leaves an error along the street far outside it (tests/test_track_cueoffset.py, planted drive).
+        """
         u, v = self.offset()
         c, s = math.cos(yaw_rad), math.sin(yaw_rad)
-        ox, oy = c * u - s * v, s * u + c * v
-        return ox * ox, oy * oy, ox * oy
+        uu, vv = u * u, v * v
+        return c * c * uu + s * s * vv, s * s * uu + c * c * vv, c * s * (uu - vv)

@@ -246,8 +246,8 @@ class TrackParams:
         tinyloc/track/cueoffset.py): the loop also scores each frame with the ground-surface features
         of the scoring model alone (``cue_features``), keeps a decaying sum of that log-likelihood on a
         grid of offsets about the estimate, and while tracking the position part is
-        ``cue_cov_scale`` x posterior + ``cue_sigma_m``^2 I + ``cue_gain`` o o^T, o the offset of the
-        sum's maximum (world frame); otherwise (fewer than ``cue_min_frames`` frames since a restart,
+        ``cue_cov_scale`` x posterior + ``cue_sigma_m``^2 I + ``cue_gain`` R diag(u^2, v^2) R^T, (u, v)
+        the (along, left) offset of the sum's maximum and R the heading's rotation; otherwise (fewer than ``cue_min_frames`` frames since a restart,
         searching, degraded) the default formula. Costs one more tracking correlation per frame with
         the named features [False].
     cue_cov_scale, cue_sigma_m, cue_gain : float
@@ -1257,7 +1257,7 @@ class Tracker:
         drag = self.odo_scale.drag_m
         p = self.p
         if p.cue_cov and quality == "tracking" and self.cue.frames >= p.cue_min_frames:
-            # scaled posterior (position only; heading as by default) + floor + the ground cues' offset
+            # scaled posterior (position; heading as by default) + floor + the ground cues' offset along/across
             ka, kh = math.sqrt(p.cue_cov_scale), math.sqrt(p.cov_scale)
             cov = est.cov.copy()
             cov[:2, :2] *= ka * ka
