@@ -296,3 +296,21 @@ def test_cue_family_plus_the_rest_is_the_full_score_and_a_small_box_agrees():
     assert np.max(np.abs(sv - bv[di:di + 11, dj:dj + 11])) <= 1e-4 * max(1.0, float(np.max(np.abs(bv))))
     with pytest.raises(InputError, match="cue_features"):
         cue_model(full, "road,lamp")
+
+
+def test_the_cue_term_needs_a_calibrated_accelerometer():
+    # uncalibrated (every loop.accel_bias_* 0), the tilt moves far ground and the ground cues' offset does
+    # not show it (measured: drive 11 fell to 75 % inside): the matcher then builds no cue correlator, the
+    # tracker gets no cue layers and keeps the default formula
+    from tinyloc.runtime._adapters import CorrelatorAdapter
+    from tinyloc.runtime.config import load_config
+
+    geom = MapGeometry(0.0, 400.0, 0.5)
+    cfg = load_config(None, ["track.cue_cov=true", "match.search_window_cells=128"])
+    assert CorrelatorAdapter(None, cfg, geom).cue_corr is None
+    cfg = load_config(None, ["track.cue_cov=true", "match.search_window_cells=128", "loop.accel_bias_z=0.01"])
+    ad = CorrelatorAdapter(None, cfg, geom)
+    assert ad.cue_corr is not None and ad.cue_corr.model.names == ("road", "sidewalk", "grass")
+    assert ad.cue_radius == 9  # ceil((2 m x sqrt 2 + 1.5 m) / 0.5 m)
+    assert CorrelatorAdapter(None, load_config(None, ["match.search_window_cells=128", "loop.accel_bias_z=0.01"]),
+                             geom).cue_corr is None  # off by default
