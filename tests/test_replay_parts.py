@@ -7,7 +7,7 @@ import numpy as np
 
 from _replay_helpers import make_map
 from tinyloc.classes import TREE
-from tinyloc.replay.batch import Bar, format_table
+from tinyloc.replay.batch import Bar, format_table, summary_row, wheel_scale_hint
 from tinyloc.replay.gaps import GapParams, frame_gaps, gnss_outages, stream_gaps
 from tinyloc.replay.records import FrameRecords
 from tinyloc.replay.replay import worst_frames
@@ -111,6 +111,25 @@ def test_summary_table_marks_failures():
             {"run": "/x/b", "error": "/x/b/run.json: missing"}]
     text = format_table(rows)
     assert "FAILED" in text and "failed: /x/b/run.json: missing" in text and "0.500" in text
+
+
+def test_summary_reports_the_learnt_wheel_scale():
+    """The loop's health (odometry_scale) reaches the table and, for one run, the operator's hint."""
+    m = {"frames": 3, "recall": {"1m_3deg": 1.0}, "median_error_m": 0.1, "p90_error_m": 0.2,
+         "gnss_median_error_m": 1.0, "inside_95_ellipse": 1.0, "first_good_fix": {"time_s": 1.0},
+         "lost": {"spells": 0}, "gaps": {"count": 0}, "frame_ms_median": 5.0, "replay": {"frames_per_s": 9.0},
+         "loop_health": {"odometry_scale": 0.98765}}
+    row = summary_row("/x/a", m)
+    assert row["odometry_scale"] == 0.98765
+    text = format_table([row])
+    assert "wheel" in text.splitlines()[0] and "0.9877" in text
+    hint = wheel_scale_hint([row])
+    assert hint is not None and "odometry_scale = 0.9877" in hint and "[track]" in hint
+    # several runs (maybe several robots), an unlearnt factor, or no loop health: no hint, no column
+    assert wheel_scale_hint([row, dict(row, run="/x/b")]) is None
+    assert wheel_scale_hint([dict(row, odometry_scale=1.0)]) is None
+    bare = summary_row("/x/c", {k: v for k, v in m.items() if k != "loop_health"})
+    assert bare["odometry_scale"] is None and "wheel" not in format_table([bare]) and wheel_scale_hint([bare]) is None
 
 
 def test_truth_and_gnss_move_to_the_map_frame_when_origins_differ(tmp_path):

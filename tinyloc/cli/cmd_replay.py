@@ -111,7 +111,7 @@ def _params(args):
 
 
 def run(args) -> int:
-    from ..replay.batch import Job, format_table, resolve_factory, run_batch
+    from ..replay.batch import Job, format_table, resolve_factory, run_batch, wheel_scale_hint
 
     from ..replay.signoff import parse_rule
 
@@ -160,6 +160,9 @@ def run(args) -> int:
                                        for r in rows]}, allow_nan=False))
     else:
         print(format_table(rows))
+        hint = wheel_scale_hint(rows)
+        if hint:
+            print(hint)
         print(f"outputs in {out}/")
     rc = 0
     if failed:

@@ -213,6 +213,7 @@ def summary_row(run: str, m: dict) -> dict:
             "inside_95_ellipse": m["inside_95_ellipse"], "first_good_fix_s": m["first_good_fix"]["time_s"],
             "lost_spells": m["lost"]["spells"], "gaps": m["gaps"]["count"], "frame_ms_median": m["frame_ms_median"],
             "frames_per_s": m["replay"]["frames_per_s"],
+            "odometry_scale": m.get("loop_health", {}).get("odometry_scale"),
             "signoff": (m["signoff"]["passed"] if "signoff" in m else None),
             "change_recall_1m_3deg": (m["compare"]["figures"]["recall|1m_3deg"]["change"] if "compare" in m else None),
             "change_median_error_m": (m["compare"]["figures"]["median_error_m"]["change"] if "compare" in m else None),
@@ -336,6 +337,8 @@ def format_table(rows: list[dict]) -> str:
             ("dr_median_error_m", "DR m", "{:.2f}"), ("inside_95_ellipse", "in95", "{:.3f}"),
             ("first_good_fix_s", "fix s", "{:.1f}"), ("lost_spells", "lost", "{}"), ("gaps", "gaps", "{}"),
             ("frame_ms_median", "ms", "{:.1f}"), ("frames_per_s", "fps", "{:.1f}")]
+    if any(r.get("odometry_scale") is not None for r in rows):
+        cols.append(("odometry_scale", "wheel", "{:.4f}"))
     if any(r.get("change_recall_1m_3deg") is not None or r.get("change_median_error_m") is not None for r in rows):
         cols += [("change_recall_1m_3deg", "d 1m/3deg", "{:+.3f}"), ("change_median_error_m", "d med m", "{:+.2f}")]
     if any(r.get("signoff") is not None for r in rows):
@@ -355,6 +358,21 @@ def format_table(rows: list[dict]) -> str:
              for row in table]
     lines += [f"failed: {e}" for e in errors]
     return "\n".join(lines)
+
+
+def wheel_scale_hint(rows: list[dict]) -> str | None:
+    """One line telling the operator the wheel-odometry factor the tracker learnt, to start the next run with.
+
+    Only for a single run: several drives may be different robots, and a mean would hide that.
+    """
+    ok = [r for r in rows if not r.get("error")]
+    if len(ok) != 1 or ok[0].get("odometry_scale") is None:
+        return None
+    s = float(ok[0]["odometry_scale"])
+    if not math.isfinite(s) or s == 1.0:
+        return None
+    return (f"wheel odometry: the tracker learnt a factor of {s:.4f} on this drive; to start the next run with it, "
+            f"put odometry_scale = {s:.4f} under [track] in the loop config")
 
 
 def _short(run: str) -> str:
