@@ -117,7 +117,16 @@ class CorrelatorAdapter:
     def warmup(self) -> None:
         self.corr.warm_up(("fast", "track_exact") if self.exact else ("fast", "track"))
         if self.cue_corr is not None:
-            self.cue_corr.warm_up(("track_exact",) if self.exact else ("track",))
+            c = self.cue_corr
+            c.warm_up(("track_exact",) if self.exact else ("track",))
+            # and the call the loop makes (one heading, the small box): its transforms are sized by the box
+            from ..correlate.synth import SyntheticBev
+
+            p = self.params
+            z = np.full((NUM_MAP_CLASSES,) + p.bev_shape, 0.1, np.float32)
+            c.set_map(self.win)  # the window buffer (zeros before the first move; set again at every move)
+            c.track(SyntheticBev(z, z[0], z[0], p.res_m, p.origin_row, p.origin_col), self.n // 2, self.n // 2, 0,
+                    exact=self.exact, radius_cells=self.cue_radius, half_headings=0)
 
     # ---- map window -----------------------------------------------------------------------------
     def _move_window(self, x, y) -> None:
