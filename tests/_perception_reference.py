@@ -34,7 +34,7 @@ def _base_band_reference(lab, labels, exgr, ref, p, ground, hr, j, top):
     above the robot's surface's) and unlike the robot's surface, and within wall_dist
     of the mean colour of its first two; at least two such pixels; it must stand on two ground pixels,
     the second unlike the band's colour; and its top's depth below the horizon must be at least
-    (1 - wall_base) of its bottom's (boundaries at half rows).
+    (1 - wall_base) of its bottom's (boundaries at half rows) and at least 6 rows.
     """
     h = labels.shape[0]
     ok = [labels[i, j] in ground and exgr[i, j] < p.green0 and (p.soil_b <= 0 or lab[i, j, 2] - ref[2] <= p.soil_b)
@@ -49,9 +49,33 @@ def _base_band_reference(lab, labels, exgr, ref, p, ground, hr, j, top):
         return None
     if _lab_dist(lab[end + 1, j], c) <= p.wall_dist:
         return None
-    if (top - 0.5 - hr) < (1 - p.wall_base) * (end - 0.5 - hr):
+    if (top - 0.5 - hr) < 6.0 or (top - 0.5 - hr) < (1 - p.wall_base) * (end - 0.5 - hr):
         return None
     return end
+
+
+def _band_goes_on(lab, labels, hrow, bands, p, ground, end, step):
+    """Whether the base band of column ``end`` shows on the ground past the wall's side: the first column in
+    direction ``step`` (within 8) whose horizon pixel is not building has the band's colour (within
+    wall_dist of the mean of its first two pixels) on ground in at least half of the band's rows."""
+    h, w = labels.shape
+    _, top, bottom = bands[end]
+    c = lab[top + 1:top + 3, end].astype(float).mean(axis=0)
+    k = end + step
+    for _ in range(8):
+        if not 0 <= k < w:
+            return False
+        r = int(math.floor(hrow[k]))
+        if not (0 <= r < h and labels[r, k] == BUILDING):
+            break
+        k += step
+    else:
+        return False
+    if not 0 <= k < w:
+        return False
+    rows = range(top + 1, bottom)
+    same = sum(1 for i in rows if labels[i, k] in ground and _lab_dist(lab[i, k], c) <= p.wall_dist)
+    return 2 * same >= len(rows)
 
 
 def crown_features_reference(bgr, g01, s, v, exgr, u, sky):
@@ -193,6 +217,7 @@ def segment_reference(bgr, p, hrow=None):
     gy = np.zeros_like(g01)
     gy[1:-1] = np.abs(g01[2:] - g01[:-2]) * 0.5
     ground = {ROAD, SIDEWALK, GRASS, 7, 8}
+    bands = {}  # column -> (carry start, band top, band bottom)
     for j in range(w):
         r = int(math.floor(hrow[j]))
         if r < 3 or r >= h - 1:
@@ -223,8 +248,8 @@ def segment_reference(bgr, p, hrow=None):
         band_end = _base_band_reference(lab, labels, exgr, ref, p, ground, hrow[j], j, stop) \
             if p.wall_base > 0 and by_colour else None
         if band_end is not None:
-            carry += [i for i in range(stop, band_end) if labels[i, j] != BUILDING]
-        elif on_ref:
+            bands[j] = (r, stop, band_end)
+        if on_ref:
             carry, foot = [i for i in carry if i < on_ref[0]], False
         if from_above and not foot:  # started above the horizon: kept only down to a visible foot
             continue
@@ -232,6 +257,25 @@ def segment_reference(bgr, p, hrow=None):
             labels[i, j] = BUILDING
             probs[:, i, j] = 0.0
             probs[BUILDING, i, j] = 1.0
+    # base bands, by runs of neighbouring columns: kept unless the band's colour goes on past the wall's side
+    cols = sorted(bands)
+    runs = [[k] for k in cols[:1]]
+    for k in cols[1:]:
+        if k == runs[-1][-1] + 1:
+            runs[-1].append(k)
+        else:
+            runs.append([k])
+    for run in runs:
+        if _band_goes_on(lab, labels, hrow, bands, p, ground, run[0], -1) or \
+                _band_goes_on(lab, labels, hrow, bands, p, ground, run[-1], 1):
+            continue
+        for k in run:
+            start, _, bottom = bands[k]
+            for i in range(start + 1, bottom):
+                if labels[i, k] != BUILDING:
+                    labels[i, k] = BUILDING
+                    probs[:, i, k] = 0.0
+                    probs[BUILDING, i, k] = 1.0
     # sky seen through crowns: sky pixels whose window is mostly tree
     if model is not None and p.crown_sky_share > 0:
         share = box_mean((labels == TREE).astype(float), p.crown_sky_window)

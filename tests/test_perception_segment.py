@@ -24,13 +24,15 @@ def _frames():
     dull = cv2.resize(_street_like(seed=5), (480, 360))
     dull[:120] = np.clip(rng.normal(0, 1.5, (120, 480, 3)) + (140, 141, 143), 0, 255).astype(np.uint8)
     yield "overcast", dull  # a grey sky darker than sky_v: only the sky-by-colour rule takes it
-    yield "facade with a dark base", _plinth_frame()  # the base-band rule (wall_base) changes 799 pixels
+    yield "facade with a dark base", _plinth_frame()  # the base-band rule (wall_base) changes many pixels
+    yield "facade behind a dark strip", _plinth_frame(strip=True)  # ... and here its side check undoes it
 
 
-def _plinth_frame(seed=3):
+def _plinth_frame(seed=3, strip=False):
     """480 x 360: sky, paving below the test's horizon (0.45 .. 0.6 of the raster's height, 160 x 120), and
-    in the right half a facade whose lower edge and dark base band are lines through the horizon's
-    left end at depths 0.25 and 0.5 raster rows per column (the band's top at half its bottom's depth)."""
+    from raster column 80 on a facade whose lower edge and dark base band are lines through the horizon's
+    left end at depths 0.12 and 0.24 raster rows per column (the band's top at half its bottom's depth).
+    With ``strip`` the dark band goes on from column 40, beside the facade: a strip of ground in front."""
     rng = np.random.default_rng(seed)
     width, height = 480, 360
     hrow = np.linspace(0.45, 0.6, 160) * 120
@@ -40,9 +42,9 @@ def _plinth_frame(seed=3):
     hz = (hrow[j] + 0.5) * 3
     img[np.broadcast_to(rows > hz, (height, width))] = (165, 165, 165)
     fac = j >= 80
-    top, bot = hz + 0.75 * (j - 80), hz + 1.5 * (j - 80)
+    top, bot = hz + 0.36 * j, hz + 0.72 * j
     img[np.broadcast_to(fac & (rows <= top), (height, width))] = (120, 130, 140)
-    img[np.broadcast_to(fac & (rows > top) & (rows <= bot), (height, width))] = (70, 72, 72)
+    img[np.broadcast_to((j >= (40 if strip else 80)) & (rows > top) & (rows <= bot), (height, width))] = (70, 72, 72)
     img += rng.normal(0, 2.0, img.shape)
     return np.clip(img, 0, 255).astype(np.uint8)
 
@@ -97,7 +99,10 @@ def test_kernels_match_reference(name):
         img = dict(_frames())["facade with a dark base"]
         hrow = np.linspace(0.45, 0.6, 160) * 120
         off = Segmenter((480, 360), preset("sidewalk")).run(img, hrow)[1]
-        assert np.sum(Segmenter((480, 360), p).run(img, hrow)[1] != off) > 500
+        assert np.sum(Segmenter((480, 360), p).run(img, hrow)[1] != off) > 400
+        img = dict(_frames())["facade behind a dark strip"]
+        off = Segmenter((480, 360), preset("sidewalk")).run(img, hrow)[1]
+        assert np.sum(Segmenter((480, 360), p).run(img, hrow)[1] != off) == 0
     if name == "crown model on":
         assert {0, 4} <= seen  # the crown model split building from tree on these frames
     if name == "sky-gap model, low threshold":
@@ -267,7 +272,7 @@ def _wall_column_case(reach, *, start_row, foot_l=60.0, facade_l=120.0, ref_l=20
     probs[BUILDING, :start_row + 1], probs[SIDEWALK, :start_row + 1] = 1.0, 0.0
     ref = np.array([ref_l, 128.0, 128.0])
     prm = replace(preset("sidewalk"), wall_reach=reach).vector()
-    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels)
+    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 1), np.int32))
     return labels[:, 0], probs
 
 
@@ -314,7 +319,7 @@ def test_wall_reach_needs_a_visible_foot():
 
 
 def _base_band_column(base, *, band_end=21, facade_l=120, band_l=60, band_exgr=-0.133, ref_l=200, below=None,
-                      band_label=None, reach=0, start_row=5, band_b=128):
+                      band_label=None, reach=0, start_row=5, band_b=128, edge_row=12):
     """One hand-made column of 26 rows for the facade's base band (``wall_base``), horizon at row 5.3:
     building rows 0 .. ``start_row``; rows 6-11 labelled sidewalk but of the facade's colour (L
     ``facade_l``); row 12 the mixed pixel of the facade's lower edge (L 90); rows 13 .. ``band_end`` - 1
@@ -329,23 +334,23 @@ def _base_band_column(base, *, band_end=21, facade_l=120, band_l=60, band_exgr=-
     h = 26
     labels = np.full((h, 1), SIDEWALK, np.uint8)
     labels[:start_row + 1] = BUILDING
-    labels[13:band_end] = GRASS if band_label is None else band_label
+    labels[edge_row + 1:band_end] = GRASS if band_label is None else band_label
     if below is not None:
         labels[band_end:] = below
     lab = np.full((h, 1, 3), 128, np.uint8)
-    lab[:12, :, 0] = facade_l
-    lab[12, :, 0] = 90
-    lab[13:band_end, :, 0] = band_l
-    lab[13:band_end, :, 2] = band_b
+    lab[:edge_row, :, 0] = facade_l
+    lab[edge_row, :, 0] = 90
+    lab[edge_row + 1:band_end, :, 0] = band_l
+    lab[edge_row + 1:band_end, :, 2] = band_b
     lab[band_end:, :, 0] = ref_l
     feat = np.zeros((K.NF, h, 1), np.float32)
     feat[K.F_EXGR] = -0.133
-    feat[K.F_EXGR, 13:band_end] = band_exgr
+    feat[K.F_EXGR, edge_row + 1:band_end] = band_exgr
     probs = np.zeros((NUM_CLASSES, h, 1), np.float32)
     probs[labels[:, 0], np.arange(h), 0] = 1.0
     ref = np.array([float(ref_l), 128.0, 128.0])
     prm = replace(preset("sidewalk"), wall_base=base, wall_reach=reach).vector()
-    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels)
+    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 1), np.int32))
     return labels[:, 0], probs
 
 
@@ -372,6 +377,15 @@ def test_wall_base_hand_worked(base, band_end, foot):
     labels, probs = _base_band_column(base, band_end=band_end)
     assert _building_rows(labels) == list(range(foot))
     assert np.all(probs[:, :foot].argmax(axis=0) == 0) and np.all(probs[0, :foot] == 1.0)
+
+
+def test_wall_base_needs_a_readable_depth():
+    # with wall_base 0.9 the ratio passes easily (top >= 0.1 x bottom); the band's top must still lie at least
+    # 6 rows below the horizon: edge at row 12 -> 12 - 0.5 - 5.3 = 6.2 rows, carried; at row 11 -> 5.2, not
+    labels, _ = _base_band_column(0.9, edge_row=12)
+    assert _building_rows(labels) == list(range(21))
+    labels, _ = _base_band_column(0.9, edge_row=11)
+    assert _building_rows(labels) == list(range(11))
 
 
 def test_wall_base_not_on_green_or_objects_or_paving():
@@ -406,3 +420,53 @@ def test_wall_base_carries_a_facade_coloured_like_the_paving():
     # found above the horizon (wall_reach 2, facade to row 4): kept, the band's bottom is a visible foot
     labels, _ = _base_band_column(0.6, facade_l=200, reach=2, start_row=4)
     assert _building_rows(labels) == list(range(21))
+
+
+def _band_raster(beside_l, *, wall_cols=(1, 2, 3), width=5):
+    """``width`` columns: the hand-made band column (``_base_band_column``'s, wall_base 0.6, passing) in
+    ``wall_cols``; elsewhere no wall (sky down to the horizon pixel, row 5) and below it ground labelled
+    sidewalk of lightness ``beside_l`` in the band's rows 13-20 and the robot's surface elsewhere."""
+    from tinyloc.perception import _kernels as K
+    from tinyloc.perception.segment import _IS_GROUND
+    from tinyloc.classes import BUILDING, NUM_CLASSES, SKY
+
+    h = 26
+    labels = np.full((h, width), SIDEWALK, np.uint8)
+    lab = np.full((h, width, 3), 128, np.uint8)
+    lab[:, :, 0] = 200
+    feat = np.zeros((K.NF, h, width), np.float32)
+    feat[K.F_EXGR] = -0.133
+    for j in range(width):
+        if j in wall_cols:
+            labels[:6, j] = BUILDING
+            labels[13:21, j] = GRASS
+            lab[:12, j, 0], lab[12, j, 0], lab[13:21, j, 0] = 120, 90, 60
+        else:
+            labels[:6, j] = SKY
+            lab[13:21, j, 0] = beside_l
+    probs = np.zeros((NUM_CLASSES, h, width), np.float32)
+    probs[labels, np.arange(h)[:, None], np.arange(width)[None, :]] = 1.0
+    ref = np.array([200.0, 128.0, 128.0])
+    prm = replace(preset("sidewalk"), wall_base=0.6).vector()
+    K.extend_walls(feat, lab, np.full(width, 5.3), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, width), np.int32))
+    return labels
+
+
+def test_wall_base_not_a_strip_beside_the_wall():
+    from tinyloc.classes import BUILDING
+
+    # beside the wall the ground in the band's rows is the robot's surface (L 200, distance 0.5 x 140 from
+    # the band's L 60): a wall's base, carried to row 21 in the wall's columns
+    labels = _band_raster(200)
+    assert [_building_rows(labels[:, j]) for j in (1, 2, 3)] == [list(range(21))] * 3
+    assert not np.any(labels[6:, [0, 4]] == BUILDING)
+    # the band's colour goes on beside the wall on both sides (L 60, distance 0): a strip of ground in front
+    # of it, so the foot stays at the wall's lower edge (row 12) in every column of the run
+    labels = _band_raster(60)
+    assert [_building_rows(labels[:, j]) for j in (1, 2, 3)] == [list(range(12))] * 3
+    # on one side only (L 66 on the left: 0.5 x 6 = 3 <= wall_dist 13.1; the right side is the image's edge)
+    labels = _band_raster(66, wall_cols=(1, 2, 3, 4))
+    assert [_building_rows(labels[:, j]) for j in (1, 2, 3, 4)] == [list(range(12))] * 4
+    # a wall reaching the image's edge on both sides: nothing seen beside it, carried
+    labels = _band_raster(60, wall_cols=(0, 1, 2, 3, 4))
+    assert [_building_rows(labels[:, j]) for j in range(5)] == [list(range(21))] * 5

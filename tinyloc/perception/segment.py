@@ -254,6 +254,7 @@ class Segmenter:
         self.gmean = np.zeros((h, w), f32)
         self.g2mean = np.zeros((h, w), f32)
         self.queue = np.zeros(h * w, np.int32)
+        self.band = np.zeros((3, w), np.int32)  # facade base bands per column (extend_walls' scratch)
         self.crown_model = load_crown_model(params.crown_model)
         if self.crown_model is not None:
             self._cw, self._cb = self.crown_model.folded()
@@ -340,7 +341,7 @@ class Segmenter:
             self._crown_prob()
         K.seg_scores(self.feat, self.lab, self.tex, self.sky, self.brightmix, self.gmean, self.g2mean, self.crown,
                      self.ref, self._prm, self.probs, self.labels)
-        K.extend_walls(self.feat, self.lab, hrow, self.ref, self._prm, _IS_GROUND, self.probs, self.labels)
+        K.extend_walls(self.feat, self.lab, hrow, self.ref, self._prm, _IS_GROUND, self.probs, self.labels, self.band)
         if self.crown_model is not None and p.crown_sky_share > 0.0:
             t = self._t
             K.class_indicator(self.labels, K.TREE, t[0])
