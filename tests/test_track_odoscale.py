@@ -195,19 +195,7 @@ def test_adaptive_output_formula_by_hand():
 def test_adaptive_covariance_keeps_ambiguity_large_and_kidnapping_recovers():
     import test_track_tracker as T
 
-    p = T._params(adapt_cov=True)
-    rng = np.random.default_rng(8)
-    m = T.PlantedMatcher(rng, second_mode=(12.0 * math.cos(0.3), 12.0 * math.sin(0.3)))
-    _, out = T.drive(rng, 120, matcher=m, turn=0.0, gnss_off=set(range(120)), params=p)
-    last = out[-1][1]
-    assert last.quality != "tracking" and math.sqrt(last.cov[0, 0] + last.cov[1, 1]) > 4.0
-    rng = np.random.default_rng(9)
-    tr, out = T.drive(rng, 500, kidnap_at=200, params=p)
-    q = [o.quality for _, o in out]
-    assert any(s in ("searching", "degraded") for s in q[200:350])
-    errs = [T._err(t, o)[0] for t, o in out[200:]]
-    k = next(i for i in range(len(errs)) if all(e < 1.0 for e in errs[i:i + 20]))
-    assert k * 0.1 <= 15.0 and q[-1] == "tracking" and tr.counters["lost"] >= 1
+    T.check_ambiguity_and_kidnapping(T._params(adapt_cov=True))
 
 
 def test_adaptive_covariance_on_calibrated_planted_evidence_stays_in_the_band():

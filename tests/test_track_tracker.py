@@ -148,6 +148,28 @@ def _err(truth, o):
     return math.hypot(o.x - truth[0], o.y - truth[1]), abs(wrap_angle(o.yaw - truth[2]))
 
 
+def check_ambiguity_and_kidnapping(params, kidnap_matcher=None):
+    """An option of the reported covariance must keep the two safety properties of the tracker.
+
+    A posterior with two modes 12 m apart stays flagged not-tracking with a large covariance; a
+    50 m kidnapping drops the flag and the filter is back within 1 m within 15 s of driving (#6).
+    ``kidnap_matcher(rng)`` makes the matcher of the kidnapping drive (default: the planted one).
+    """
+    rng = np.random.default_rng(8)
+    m = PlantedMatcher(rng, second_mode=(12.0 * math.cos(0.3), 12.0 * math.sin(0.3)))
+    _, out = drive(rng, 120, matcher=m, turn=0.0, gnss_off=set(range(120)), params=params)
+    last = out[-1][1]
+    assert last.quality != "tracking" and math.sqrt(last.cov[0, 0] + last.cov[1, 1]) > 4.0
+    rng = np.random.default_rng(9)
+    tr, out = drive(rng, 500, kidnap_at=200, params=params,
+                    matcher=kidnap_matcher(rng) if kidnap_matcher is not None else None)
+    q = [o.quality for _, o in out]
+    assert any(s in ("searching", "degraded") for s in q[200:350])
+    errs = [_err(t, o)[0] for t, o in out[200:]]
+    k = next(i for i in range(len(errs)) if all(e < 1.0 for e in errs[i:i + 20]))
+    assert k * 0.1 <= 15.0 and q[-1] == "tracking" and tr.counters["lost"] >= 1
+
+
 def test_no_fix_until_something_arrives():
     tr = Tracker(GEOM, _params())
     o = tr.step(0.0, None, None, gnss=None)
