@@ -128,7 +128,7 @@ def test_roundtrip_of_the_simulators_demo_run(tmp_path):
     res = import_bag(bag, tmp_path / "out", ImportOptions(truth_topic="/ins/pose", progress=False,
                                                           origin=(o.lat0_deg, o.lon0_deg, o.h0_m)))
     out = RunFolder.open(tmp_path / "out")
-    assert res.complete and len(out) == len(src) == 120
+    assert res.complete and len(out) == len(src) == 239  # tinyloc/sim/demo.py FRAMES
     for i in range(len(src)):
         assert (out.path / out.frame_files[i]).read_bytes() == (src.path / src.frame_files[i]).read_bytes()
     _check_streams(src, out)

@@ -119,7 +119,9 @@ def test_bundled_demo_data_is_complete_and_consistent():
     row, col = pm.cell_of(rf.truth[:, 4], rf.truth[:, 5])
     assert np.all((row >= 0) & (row < m.rows) & (col >= 0) & (col < m.cols))
     total = sum(f.stat().st_size for f in p["run"].rglob("*") if f.is_file()) + p["map"].stat().st_size
-    assert total < 8e6  # small enough to ship in the wheel
+    # small enough to ship in the wheel: 239 JPEG frames at 4 Hz with their labels are 9.2 MB (at 2 Hz the demo
+    # was 4.3 MB, but half the frame rate doubled its median error: tinyloc/sim/demo.py)
+    assert total < 10e6
 
 
 def test_bundled_demo_config_is_the_calibration_of_its_recordings(tmp_path):
