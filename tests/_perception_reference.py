@@ -57,22 +57,23 @@ def _base_band_reference(lab, labels, exgr, ref, p, ground, hr, j, top):
 def _band_goes_on(lab, labels, hrow, bands, p, ground, end, step):
     """Whether the base band of column ``end`` shows on the ground past the wall's side: the first column in
     direction ``step`` (within 8) whose horizon pixel is not building has the band's colour (within
-    wall_dist of the mean of its first two pixels) on ground in at least half of the band's rows."""
+    wall_dist of the mean of its first two pixels) on ground in at least half of the band's rows; None when
+    no such column is seen (the image's edge, or 8 columns of wall)."""
     h, w = labels.shape
     _, top, bottom = bands[end]
     c = lab[top + 1:top + 3, end].astype(float).mean(axis=0)
     k = end + step
     for _ in range(8):
         if not 0 <= k < w:
-            return False
+            return None
         r = int(math.floor(hrow[k]))
         if not (0 <= r < h and labels[r, k] == BUILDING):
             break
         k += step
     else:
-        return False
+        return None
     if not 0 <= k < w:
-        return False
+        return None
     rows = range(top + 1, bottom)
     same = sum(1 for i in rows if labels[i, k] in ground and _lab_dist(lab[i, k], c) <= p.wall_dist)
     return 2 * same >= len(rows)
@@ -266,8 +267,9 @@ def segment_reference(bgr, p, hrow=None):
         else:
             runs.append([k])
     for run in runs:
-        if _band_goes_on(lab, labels, hrow, bands, p, ground, run[0], -1) or \
-                _band_goes_on(lab, labels, hrow, bands, p, ground, run[-1], 1):
+        sides = (_band_goes_on(lab, labels, hrow, bands, p, ground, run[0], -1),
+                 _band_goes_on(lab, labels, hrow, bands, p, ground, run[-1], 1))
+        if True in sides:  # the band goes on beside the wall: a strip of ground in front of it
             continue
         for k in run:
             start, _, bottom = bands[k]

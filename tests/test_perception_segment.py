@@ -326,32 +326,36 @@ def _base_band_column(base, *, band_end=21, facade_l=120, band_l=60, band_exgr=-
     the band (L ``band_l``, labelled grass as the segmenter often calls a dark plinth, ExG - ExR
     ``band_exgr``: -0.133 is a neutral grey's, 2/3 - 1/3 - 1/3 minus 1.4/3 - 1/3, worked by hand); from
     ``band_end`` on the robot's surface (L ``ref_l`` = the patch's, labelled sidewalk) or the class
-    ``below``. a* = b* = 128 everywhere."""
+    ``below``. a* = b* = 128 everywhere. Beside it a second column without a wall (sky, then the robot's
+    surface), so that the base band's side check sees the ground past the wall."""
     from tinyloc.perception import _kernels as K
     from tinyloc.perception.segment import _IS_GROUND
     from tinyloc.classes import BUILDING, NUM_CLASSES
 
+    from tinyloc.classes import SKY
+
     h = 26
-    labels = np.full((h, 1), SIDEWALK, np.uint8)
-    labels[:start_row + 1] = BUILDING
-    labels[edge_row + 1:band_end] = GRASS if band_label is None else band_label
+    labels = np.full((h, 2), SIDEWALK, np.uint8)
+    labels[:start_row + 1, 0] = BUILDING
+    labels[edge_row + 1:band_end, 0] = GRASS if band_label is None else band_label
     if below is not None:
-        labels[band_end:] = below
-    lab = np.full((h, 1, 3), 128, np.uint8)
-    lab[:edge_row, :, 0] = facade_l
-    lab[edge_row, :, 0] = 90
-    lab[edge_row + 1:band_end, :, 0] = band_l
-    lab[edge_row + 1:band_end, :, 2] = band_b
-    lab[band_end:, :, 0] = ref_l
-    feat = np.zeros((K.NF, h, 1), np.float32)
+        labels[band_end:, 0] = below
+    labels[:6, 1] = SKY  # beside the wall: sky, and the robot's surface below the horizon (the side check sees it)
+    lab = np.full((h, 2, 3), 128, np.uint8)
+    lab[:, :, 0] = ref_l
+    lab[:edge_row, 0, 0] = facade_l
+    lab[edge_row, 0, 0] = 90
+    lab[edge_row + 1:band_end, 0, 0] = band_l
+    lab[edge_row + 1:band_end, 0, 2] = band_b
+    feat = np.zeros((K.NF, h, 2), np.float32)
     feat[K.F_EXGR] = -0.133
-    feat[K.F_EXGR, edge_row + 1:band_end] = band_exgr
-    probs = np.zeros((NUM_CLASSES, h, 1), np.float32)
-    probs[labels[:, 0], np.arange(h), 0] = 1.0
+    feat[K.F_EXGR, edge_row + 1:band_end, 0] = band_exgr
+    probs = np.zeros((NUM_CLASSES, h, 2), np.float32)
+    probs[labels, np.arange(h)[:, None], np.arange(2)[None, :]] = 1.0
     ref = np.array([float(ref_l), 128.0, 128.0])
     prm = replace(preset("sidewalk"), wall_base=base, wall_reach=reach).vector()
-    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 1), np.int32))
-    return labels[:, 0], probs
+    K.extend_walls(feat, lab, np.full(2, 5.3), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 2), np.int32))
+    return labels[:, 0], probs[:, :, 0]
 
 
 def _building_rows(labels):
@@ -422,10 +426,11 @@ def test_wall_base_carries_a_facade_coloured_like_the_paving():
     assert _building_rows(labels) == list(range(21))
 
 
-def _band_raster(beside_l, *, wall_cols=(1, 2, 3), width=5):
+def _band_raster(beside_l, *, wall_cols=(1, 2, 3), width=5, plain_cols=()):
     """``width`` columns: the hand-made band column (``_base_band_column``'s, wall_base 0.6, passing) in
     ``wall_cols``; elsewhere no wall (sky down to the horizon pixel, row 5) and below it ground labelled
-    sidewalk of lightness ``beside_l`` in the band's rows 13-20 and the robot's surface elsewhere."""
+    sidewalk of lightness ``beside_l`` in the band's rows 13-20 and the robot's surface elsewhere; in
+    ``plain_cols`` a wall without a band (building down to the horizon pixel, the robot's surface below)."""
     from tinyloc.perception import _kernels as K
     from tinyloc.perception.segment import _IS_GROUND
     from tinyloc.classes import BUILDING, NUM_CLASSES, SKY
@@ -441,6 +446,9 @@ def _band_raster(beside_l, *, wall_cols=(1, 2, 3), width=5):
             labels[:6, j] = BUILDING
             labels[13:21, j] = GRASS
             lab[:12, j, 0], lab[12, j, 0], lab[13:21, j, 0] = 120, 90, 60
+        elif j in plain_cols:
+            labels[:6, j] = BUILDING
+            lab[:6, j, 0] = 120
         else:
             labels[:6, j] = SKY
             lab[13:21, j, 0] = beside_l
@@ -470,3 +478,12 @@ def test_wall_base_not_a_strip_beside_the_wall():
     # a wall reaching the image's edge on both sides: nothing seen beside it, carried
     labels = _band_raster(60, wall_cols=(0, 1, 2, 3, 4))
     assert [_building_rows(labels[:, j]) for j in range(5)] == [list(range(21))] * 5
+    # one side at the image's edge, the other showing the band's colour: not carried
+    labels = _band_raster(60, wall_cols=(0, 1, 2, 3))
+    assert [_building_rows(labels[:, j]) for j in range(4)] == [list(range(12))] * 4
+    # the wall goes on past the band's run (columns 0-1, left at the image's edge) without a band, then a
+    # column with the band's colour: after 7 such columns it is seen (not carried); after 8, not seen (carried)
+    labels = _band_raster(60, wall_cols=(0, 1), plain_cols=range(2, 9), width=11)
+    assert [_building_rows(labels[:, j]) for j in (0, 1)] == [list(range(12))] * 2
+    labels = _band_raster(60, wall_cols=(0, 1), plain_cols=range(2, 10), width=11)
+    assert [_building_rows(labels[:, j]) for j in (0, 1)] == [list(range(21))] * 2

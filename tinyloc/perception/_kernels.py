@@ -465,9 +465,10 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
     b H tall), and its top must lie at least BAND_MIN_DEPTH (6) rows below the horizon, where that
     ratio can be read. A band that fails the test leaves the foot where the carry stopped. A strip of
     ground in front of a wall passes both tests as easily as a plinth, but unlike a wall's base it
-    goes on beside the wall: so a run of neighbouring columns with bands is kept only if, on each side,
-    the first column past the wall (its horizon pixel not building, within 8 columns) does not show
-    the band's colour on ground pixels in at least half of the band's rows (the image's edge: kept).
+    goes on beside the wall: so a run of neighbouring columns with bands is dropped when, on either
+    side, the first column past the wall (its horizon pixel not building, within 8 columns) shows the
+    band's colour on ground pixels in at least half of the band's rows. A side not seen (the image's
+    edge, or 8 more columns of wall) does not drop it: a near facade often fills the picture's side.
 
     ``band`` (3, w) int32 is scratch: carry start, band top and band bottom row per column (-1: none).
     """
@@ -552,8 +553,9 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
         j0 = j
         while j < w and band[2, j] >= 0:
             j += 1
-        if _band_beside(lab, labels, is_ground, hrow, band, dmax, j0, -1) or \
-                _band_beside(lab, labels, is_ground, hrow, band, dmax, j - 1, 1):
+        left = _band_beside(lab, labels, is_ground, hrow, band, dmax, j0, -1)
+        right = _band_beside(lab, labels, is_ground, hrow, band, dmax, j - 1, 1)
+        if left == 1 or right == 1:
             continue
         for k in range(j0, j):
             _relabel_building(probs, labels, k, band[0, k] + 1, band[2, k])
@@ -573,7 +575,8 @@ def _relabel_building(probs, labels, j, i0, i1):
 
 @njit(**JIT)
 def _band_beside(lab, labels, is_ground, hrow, band, dmax, jj, step):
-    """Whether the base band of column jj (the end of a run of band columns) goes on past the wall's side."""
+    """Whether the base band of column jj (the end of a run of band columns) goes on past the wall's side:
+    1 yes, 0 no, -1 not seen (the wall reaches the image's edge, or goes on for 8 columns without a band)."""
     h, w = labels.shape
     top, bot = band[1, jj], band[2, jj]
     c0 = 0.5 * (float(lab[top + 1, jj, 0]) + lab[top + 2, jj, 0])
@@ -588,13 +591,13 @@ def _band_beside(lab, labels, is_ground, hrow, band, dmax, jj, step):
         k += step
         n += 1
     if k < 0 or k >= w or n >= 8:
-        return False
+        return -1
     same = 0
     for i in range(top + 1, bot):
         if labels[i, k] != BUILDING and is_ground[labels[i, k]] and \
                 0.5 * abs(lab[i, k, 0] - c0) + abs(lab[i, k, 1] - c1) + abs(lab[i, k, 2] - c2) <= dmax:
             same += 1
-    return 2 * same >= bot - top - 1
+    return 1 if 2 * same >= bot - top - 1 else 0
 
 
 @njit(**JIT)
