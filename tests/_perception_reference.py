@@ -56,14 +56,14 @@ def _base_band_reference(lab, labels, exgr, ref, p, ground, hr, j, top):
 
 def _band_goes_on(lab, labels, hrow, bands, p, ground, end, step):
     """Whether the base band of column ``end`` shows on the ground past the wall's side: the first column in
-    direction ``step`` (within 8) whose horizon pixel is not building has the band's colour (within
-    wall_dist of the mean of its first two pixels) on ground in at least half of the band's rows; None when
-    no such column is seen (the image's edge, or 8 columns of wall)."""
+    direction ``step`` whose horizon pixel is not building has the band's colour (within wall_dist of the
+    mean of its first two pixels) on ground in at least half of the band's rows; None when no such column
+    is seen (the wall reaches the image's edge)."""
     h, w = labels.shape
     _, top, bottom = bands[end]
     c = lab[top + 1:top + 3, end].astype(float).mean(axis=0)
     k = end + step
-    for _ in range(8):
+    for _ in range(w):
         if not 0 <= k < w:
             return None
         r = int(math.floor(hrow[k]))
@@ -269,7 +269,7 @@ def segment_reference(bgr, p, hrow=None):
     for run in runs:
         sides = (_band_goes_on(lab, labels, hrow, bands, p, ground, run[0], -1),
                  _band_goes_on(lab, labels, hrow, bands, p, ground, run[-1], 1))
-        if True in sides:  # the band goes on beside the wall: a strip of ground in front of it
+        if True in sides or sides == (None, None):  # goes on beside the wall, or neither side seen
             continue
         for k in run:
             start, _, bottom = bands[k]

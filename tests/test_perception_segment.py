@@ -475,15 +475,19 @@ def test_wall_base_not_a_strip_beside_the_wall():
     # on one side only (L 66 on the left: 0.5 x 6 = 3 <= wall_dist 13.1; the right side is the image's edge)
     labels = _band_raster(66, wall_cols=(1, 2, 3, 4))
     assert [_building_rows(labels[:, j]) for j in (1, 2, 3, 4)] == [list(range(12))] * 4
-    # a wall reaching the image's edge on both sides: nothing seen beside it, carried
-    labels = _band_raster(60, wall_cols=(0, 1, 2, 3, 4))
-    assert [_building_rows(labels[:, j]) for j in range(5)] == [list(range(21))] * 5
-    # one side at the image's edge, the other showing the band's colour: not carried
+    # a wall reaching the image's edge on both sides (a facade faced from a few metres): nothing seen beside
+    # it, so nothing tells its base from a path in front of it: not carried
+    labels = _band_raster(200, wall_cols=(0, 1, 2, 3, 4))
+    assert [_building_rows(labels[:, j]) for j in range(5)] == [list(range(12))] * 5
+    # one side at the image's edge, the other seen without the band's colour: carried
+    labels = _band_raster(200, wall_cols=(0, 1, 2, 3))
+    assert [_building_rows(labels[:, j]) for j in range(4)] == [list(range(21))] * 4
+    # ... or seen with it: not carried
     labels = _band_raster(60, wall_cols=(0, 1, 2, 3))
     assert [_building_rows(labels[:, j]) for j in range(4)] == [list(range(12))] * 4
-    # the wall goes on past the band's run (columns 0-1, left at the image's edge) without a band, then a
-    # column with the band's colour: after 7 such columns it is seen (not carried); after 8, not seen (carried)
-    labels = _band_raster(60, wall_cols=(0, 1), plain_cols=range(2, 9), width=11)
-    assert [_building_rows(labels[:, j]) for j in (0, 1)] == [list(range(12))] * 2
-    labels = _band_raster(60, wall_cols=(0, 1), plain_cols=range(2, 10), width=11)
+    # the wall goes on past the band's run (columns 0-1, left at the image's edge) without a band: the side
+    # is the first column past all of it (column 10 here, clean: carried); a wall to the edge: not seen
+    labels = _band_raster(200, wall_cols=(0, 1), plain_cols=range(2, 10), width=11)
     assert [_building_rows(labels[:, j]) for j in (0, 1)] == [list(range(21))] * 2
+    labels = _band_raster(200, wall_cols=(0, 1), plain_cols=range(2, 11), width=11)
+    assert [_building_rows(labels[:, j]) for j in (0, 1)] == [list(range(12))] * 2

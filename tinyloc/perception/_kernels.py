@@ -466,9 +466,11 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
     ratio can be read. A band that fails the test leaves the foot where the carry stopped. A strip of
     ground in front of a wall passes both tests as easily as a plinth, but unlike a wall's base it
     goes on beside the wall: so a run of neighbouring columns with bands is dropped when, on either
-    side, the first column past the wall (its horizon pixel not building, within 8 columns) shows the
-    band's colour on ground pixels in at least half of the band's rows. A side not seen (the image's
-    edge, or 8 more columns of wall) does not drop it: a near facade often fills the picture's side.
+    side, the first column past the wall (its horizon pixel not building) shows the band's colour on
+    ground pixels in at least half of the band's rows, or when neither side can be seen (the wall
+    reaches the image's edge both ways, as a facade faced from a few metres does: then nothing tells
+    its base from a path in front of it). One side seen is enough: a facade along the street often
+    fills one side of the picture and ends, or reaches the vanishing point, on the other.
 
     ``band`` (3, w) int32 is scratch: carry start, band top and band bottom row per column (-1: none).
     """
@@ -555,7 +557,7 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
             j += 1
         left = _band_beside(lab, labels, is_ground, hrow, band, dmax, j0, -1)
         right = _band_beside(lab, labels, is_ground, hrow, band, dmax, j - 1, 1)
-        if left == 1 or right == 1:
+        if left == 1 or right == 1 or (left < 0 and right < 0):
             continue
         for k in range(j0, j):
             _relabel_building(probs, labels, k, band[0, k] + 1, band[2, k])
@@ -576,7 +578,7 @@ def _relabel_building(probs, labels, j, i0, i1):
 @njit(**JIT)
 def _band_beside(lab, labels, is_ground, hrow, band, dmax, jj, step):
     """Whether the base band of column jj (the end of a run of band columns) goes on past the wall's side:
-    1 yes, 0 no, -1 not seen (the wall reaches the image's edge, or goes on for 8 columns without a band)."""
+    1 yes, 0 no, -1 not seen (the wall, with or without a band, reaches the image's edge)."""
     h, w = labels.shape
     top, bot = band[1, jj], band[2, jj]
     c0 = 0.5 * (float(lab[top + 1, jj, 0]) + lab[top + 2, jj, 0])
@@ -584,13 +586,13 @@ def _band_beside(lab, labels, is_ground, hrow, band, dmax, jj, step):
     c2 = 0.5 * (float(lab[top + 1, jj, 2]) + lab[top + 2, jj, 2])
     k = jj + step
     n = 0
-    while 0 <= k < w and n < 8:
+    while 0 <= k < w and n < w:
         r = int(math.floor(hrow[k]))
         if r < 0 or r >= h or labels[r, k] != BUILDING:
             break
         k += step
         n += 1
-    if k < 0 or k >= w or n >= 8:
+    if k < 0 or k >= w or n >= w:
         return -1
     same = 0
     for i in range(top + 1, bot):
