@@ -321,8 +321,9 @@ def test_wall_reach_needs_a_visible_foot():
 def _base_band_column(base, *, band_end=21, facade_l=120, band_l=60, band_exgr=-0.133, ref_l=200, below=None,
                       band_label=None, reach=0, start_row=5, band_b=128, edge_row=12):
     """One hand-made column of 26 rows for the facade's base band (``wall_base``), horizon at row 5.3:
-    building rows 0 .. ``start_row``; rows 6-11 labelled sidewalk but of the facade's colour (L
-    ``facade_l``); row 12 the mixed pixel of the facade's lower edge (L 90); rows 13 .. ``band_end`` - 1
+    building rows 0 .. ``start_row``; rows 6 .. ``edge_row`` - 1 (11) labelled sidewalk but of the facade's
+    colour (L ``facade_l``); ``edge_row`` (12) the mixed pixel of the facade's lower edge (L 90); from there
+    to ``band_end`` - 1
     the band (L ``band_l``, labelled grass as the segmenter often calls a dark plinth, ExG - ExR
     ``band_exgr``: -0.133 is a neutral grey's, 2/3 - 1/3 - 1/3 minus 1.4/3 - 1/3, worked by hand); from
     ``band_end`` on the robot's surface (L ``ref_l`` = the patch's, labelled sidewalk) or the class
