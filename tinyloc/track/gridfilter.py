@@ -135,6 +135,16 @@ class TrackParams:
         at 5 Hz and about 0.25 m per frame successive frames see nearly the same scene, so they are
         far from independent. The product is 1 / 150 of the raw score. 0.1 was kept after a
         sweep of 0.05-0.2 on drives not in the reported table (docs/tracking.md).
+    evidence_step_m : float
+        Path per frame that ``likelihood_weight`` stands for (0.25 m: 5 Hz at walking pace, where it
+        was chosen). A frame taken further along the path than this, because the camera is slower or
+        the loop dropped frames that were late, holds the new evidence of the frames it stands for:
+        its weight is ``likelihood_weight * min(evidence_max, max(1, d / evidence_step_m))``, d the
+        odometry path since the previous frame. Frames closer together keep the full weight (more
+        frames gave smaller errors at 8 Hz on the demo drive, docs/tracking.md "Evidence per metre") [0.25].
+    evidence_max : float
+        Largest factor on a frame's weight from ``evidence_step_m``; 1 gives every frame the same
+        weight (the behaviour before this option) [4.0].
     loglik_clip : float
         Dynamic range kept below the frame's best log-likelihood [40].
     outside_fill : str
@@ -288,6 +298,8 @@ class TrackParams:
     headings: int = 256
     floor: float = 1e-4
     likelihood_weight: float = 0.1
+    evidence_step_m: float = 0.25
+    evidence_max: float = 4.0
     loglik_clip: float = 40.0
     outside_fill: str = "mean"
     q_xy_m2: float = 1e-4
@@ -380,6 +392,9 @@ class TrackParams:
             raise InputError(f"track.outside_fill = {self.outside_fill!r}: must be \"min\" or \"mean\"")
         if not 0.0 < self.likelihood_weight <= 10.0:
             raise InputError(f"track.likelihood_weight = {self.likelihood_weight}: must be in (0, 10]")
+        if not (0.01 <= self.evidence_step_m <= 100.0 and 1.0 <= self.evidence_max <= 100.0):
+            raise InputError(f"track.evidence_step_m = {self.evidence_step_m} must be in [0.01, 100] and "
+                             f"track.evidence_max = {self.evidence_max} in [1, 100]")
         for k in ("q_xy_m2", "q_xy_per_m", "q_yaw_rad2", "q_yaw_per_m", "q_yaw_per_rad",
                   "q_no_odometry_m2", "q_no_odometry_rad2"):
             v = getattr(self, k)
@@ -828,6 +843,14 @@ class TrackOutput:
     global_search: bool = False
 
 
+def evidence_factor(step_m: float, p: "TrackParams") -> float:
+    """How many frames' worth of new evidence a frame holds: ``min(evidence_max, max(1, step / evidence_step_m))``.
+
+    ``step_m`` is the odometry path since the previous frame (m).
+    """
+    return min(p.evidence_max, max(1.0, step_m / p.evidence_step_m))
+
+
 class Tracker:
     """The filter plus the lost/recovered logic and the GNSS prior: the tracker the loop calls.
 
@@ -868,6 +891,7 @@ class Tracker:
         self.frames = 0
         self._converge = 0
         self._no_update = 0
+        self._evidence = 1.0
         self._surprised = 0
         self._votes = 0
         self._since_verify = 0
@@ -1008,7 +1032,7 @@ class Tracker:
         if self._course is not None and self.state == "searching" and p.course_weight > 0:
             f.update_heading(self._course[0], self._course[1], nu=p.gnss.nu, weight=p.course_weight)
         if vol is not None:
-            surprise = f.update(vol)
+            surprise = f.update(vol, weight=p.likelihood_weight * self._evidence)
             self._no_update = 0
             self._surprised = self._surprised + 1 if surprise < p.surprise_lost else 0
         else:
@@ -1078,6 +1102,7 @@ class Tracker:
     def _predict(self, odo, notes) -> None:
         p = self.p
         f = self.filter
+        self._evidence = 1.0  # no usable odometry: the frame counts as one
         if odo is None or not all(math.isfinite(v) for v in odo):
             self.counters["no_odometry"] += 1
             notes.append("no odometry")
@@ -1101,6 +1126,7 @@ class Tracker:
         k = self.odo_scale.scale
         self.catchup.moved(d_fwd * k, d_left * k, d_yaw)
         f.predict(d_fwd * k, d_left * k, d_yaw)
+        self._evidence = evidence_factor(math.hypot(d_fwd, d_left) * k, p)
 
     def _global_decision(self, ev: "GlobalEvidence", g, notes) -> tuple[float, float, float]:
         """Compare the best pose of a global search with the best near the belief; move, vote or flag."""
