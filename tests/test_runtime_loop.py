@@ -31,8 +31,10 @@ ORIGIN = (46.5, 7.25, 500.0)  # an arbitrary georeference of the invented site
 SIZE = 320
 CAM = CameraModel(width=64, height=48, fx=50.0, fy=50.0, cx=31.5, cy=23.5)
 # smaller than the defaults (64 m search window, 128 headings) to keep the tests quick; the stand-in
-# evidence draws fresh noise every frame (real frames share most of their view), so it is not tempered
-FAST = ["match.search_window_cells=128", "match.headings=128", "track.headings=128", "track.likelihood_weight=1.0"]
+# evidence draws fresh noise every frame (real frames share most of their view), so it is not tempered,
+# and each frame is one independent frame however far apart they are (no evidence per metre)
+FAST = ["match.search_window_cells=128", "match.headings=128", "track.headings=128", "track.likelihood_weight=1.0",
+        "track.evidence_max=1.0"]
 
 
 def _cfg(*more):
