@@ -20,7 +20,9 @@ length ``drift_m`` (m). With ``memory`` 0.9 it spans about the last 10 frames (2
 random corrections largely cancel, a steady pull adds up (0.04 m per frame gives 0.4 m).
 
 Frames without usable odometry (missing, or a jump the tracker ignored) break the chain: the sum
-is forgotten, since the estimate's motion there says nothing about the map. So is a restart.
+is forgotten, since the estimate's motion there says nothing about the map. So is a restart, and
+the tracker adds nothing while it is searching (a global search moves the belief by metres on
+purpose): the sum covers the frames since the last lock-on.
 Plain floats, no allocation.
 """
 
@@ -58,12 +60,18 @@ class CatchUp:
         self._f, self._l, self._dpsi = d_fwd_m, d_left_m, d_yaw_rad
         self._have_step = True
 
-    def observe(self, x_m: float, y_m: float, yaw_rad: float) -> None:
-        """This frame's estimate: add its correction against the dead-reckoned previous estimate."""
+    def observe(self, x_m: float, y_m: float, yaw_rad: float, *, add: bool = True) -> None:
+        """This frame's estimate: add its correction against the dead-reckoned previous estimate.
+
+        With ``add`` False the estimate is only remembered and the sum starts again from zero (the
+        tracker does this while searching, where the belief is expected to move).
+        """
         if not (math.isfinite(x_m) and math.isfinite(y_m) and math.isfinite(yaw_rad)):
             self.reset()
             return
-        if self._have_prev and self._have_step:
+        if not add:
+            self.sx = self.sy = 0.0
+        elif self._have_prev and self._have_step:
             h = self._pyaw + 0.5 * self._dpsi
             c, s = math.cos(h), math.sin(h)
             cx = x_m - self._px - (c * self._f - s * self._l)
