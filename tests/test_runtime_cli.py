@@ -63,6 +63,19 @@ def test_print_config_is_the_documented_defaults():
     assert tomllib.loads(r.stdout) == config_to_dict(LoopConfig())
 
 
+def test_uncalibrated_accelerometer_is_warned_at_start():
+    from tinyloc.cli.cmd_run import uncalibrated_warning
+    from tinyloc.runtime.config import load_config
+
+    w = uncalibrated_warning(load_config(None, []))
+    assert w is not None and "not calibrated" in w and "tinyloc calibrate imu" in w
+    assert uncalibrated_warning(load_config(None, ["loop.accel_bias_z=0.03"])) is None
+    # the demo robot's configuration holds its calibration: no warning
+    from tinyloc.sim.demo import demo_paths
+
+    assert uncalibrated_warning(load_config(demo_paths()["run"].parent / "loop.toml", [])) is None
+
+
 def test_bad_override_is_one_line(site_and_run):
     d = site_and_run
     r = tinyloc("run", "--map", d / "site.tlm", "--source", d / "run", "--set", "track.bogus=1")
