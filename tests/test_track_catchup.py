@@ -211,22 +211,9 @@ def test_bad_values_are_rejected_with_the_key_named(key, bad):
 
 # ---- planted drives ------------------------------------------------------------------------------------
 def test_planted_drive_same_estimate_only_the_flag_moves():
-    # the same seeded drive twice: the check must not move any estimate (the wheel scale still learns on
-    # the frames it flags), and with a threshold inside the planted drive's spread of drift it must turn
-    # some tracking frames degraded and nothing else
-    runs = {}
-    for c in (0.0, 0.05):
-        _, out = T.drive(np.random.default_rng(5), 200, params=T._params(catchup_m=c))
-        runs[c] = out
-    a, b = runs[0.0], runs[0.05]
-    xa = np.array([[o.x, o.y, o.yaw] for _, o in a])
-    xb = np.array([[o.x, o.y, o.yaw] for _, o in b])
-    assert np.nanmax(np.abs(xa - xb)) < 1e-9
-    qa = [o.quality for _, o in a]
-    qb = [o.quality for _, o in b]
-    assert qa.count("tracking") > 150
-    moved = [i for i in range(len(qa)) if qa[i] != qb[i]]
-    assert moved and all(qa[i] == "tracking" and qb[i] == "degraded" for i in moved)
+    # the check must not move any estimate (the wheel scale still learns on the frames it flags), and with
+    # a threshold inside the planted drive's spread of drift it must turn some tracking frames degraded
+    T.check_only_the_flag_moves(T._params(catchup_m=0.0), T._params(catchup_m=0.05))
 
 
 class _BiasedThenTrue(T.PlantedMatcher):

@@ -148,6 +148,27 @@ def _err(truth, o):
     return math.hypot(o.x - truth[0], o.y - truth[1]), abs(wrap_angle(o.yaw - truth[2]))
 
 
+def check_only_the_flag_moves(params_off, params_on, *, seed=5, n=200):
+    """A check of the quality flag must not move any estimate, and must only turn tracking into degraded.
+
+    The same seeded planted drive runs twice; ``params_on`` has the check at a threshold the planted
+    drive crosses, so some frames must change, each from tracking to degraded.
+    """
+    runs = []
+    for p in (params_off, params_on):
+        _, out = drive(np.random.default_rng(seed), n, params=p)
+        runs.append(out)
+    a, b = runs
+    xa = np.array([[o.x, o.y, o.yaw] for _, o in a])
+    xb = np.array([[o.x, o.y, o.yaw] for _, o in b])
+    assert np.nanmax(np.abs(xa - xb)) < 1e-9
+    qa = [o.quality for _, o in a]
+    qb = [o.quality for _, o in b]
+    assert qa.count("tracking") > 150
+    moved = [i for i in range(len(qa)) if qa[i] != qb[i]]
+    assert moved and all(qa[i] == "tracking" and qb[i] == "degraded" for i in moved)
+
+
 def check_ambiguity_and_kidnapping(params, kidnap_matcher=None):
     """An option of the reported covariance must keep the two safety properties of the tracker.
 
