@@ -1444,13 +1444,4 @@ class _PoseScorer:
         n = self._load(modes)
         K.climb_poses(self.cells_in[:n], max_steps, max(1, heading_radius), A, self.fr, self.uv, self.vals,
                       self.count, self.bnd, self.valid, G, self.cube, self.acc8, self.cells_out[:n], self.nb[:n])
-        out = []
-        for k in range(n):
-            a, i, j = (int(x) for x in self.cells_out[k])
-            s0, rm, rp, cm, cp, hm, hp = (float(x) * inv_temp for x in self.nb[k])
-            dr, vr = parabola(rm, s0, rp)
-            dc, vc = parabola(cm, s0, cp)
-            dh, vh = parabola(hm, s0, hp)
-            peak = s0 + (vr - s0) + (vc - s0) + (vh - s0)
-            out.append(Mode(i + dr, j + dc, float((a + dh) % A), float(peak), (a, i, j), s0))
-        return out
+        return [self._mode_at(k, inv_temp) for k in range(n)]
