@@ -17,6 +17,9 @@ For each seed: ``tinyloc sim site --seed S`` (map errors on, the simulator's def
 ``--imu-cal`` first calibrates each drive's accelerometer bias the way an operator would
 (``tinyloc calibrate imu`` on the two recordings at rest the simulator writes beside the drive,
 docs/camera.md step 3) and runs the loop with it; without it the loop runs uncalibrated.
+``--wheel-cal`` likewise calibrates the wheel-odometry factor (``tinyloc calibrate wheel`` on the
+two drives along a measured 20 m line the simulator writes, docs/camera.md step 4); without it the
+loop starts from 1 and only learns the factor online.
 
 Figures per run (definitions in tinyloc/runtime/summary.py): recall within 1 m and 3 deg after
 the first 30 m, median position and heading error, the satellite receiver's median error on
@@ -149,6 +152,23 @@ def _imu_cal(run: Path) -> list[str]:
     return [f"loop.accel_bias_{ax}={float(v)!r}" for ax, v in zip("xyz", bias)]
 
 
+def _wheel_cal(run: Path) -> list[str]:
+    """Loop override with the wheel factor from the run's straight-line drives (made if missing)."""
+    from dataclasses import fields
+
+    from tinyloc.camera.wheel_line import calibrate_from_files
+    from tinyloc.sim.runs import WHEEL_LINE_FILES, WHEEL_LINE_M, write_wheel_line
+    from tinyloc.sim.sensors import OdometryParams
+
+    paths = [run / rel for rel in WHEEL_LINE_FILES]
+    if not all(p.is_file() for p in paths):
+        sim = json.loads((run / "run.json").read_text())["simulated"]
+        names = {f.name for f in fields(OdometryParams)}
+        write_wheel_line(run, int(sim["seed"]),
+                         OdometryParams(**{k: v for k, v in sim["odometry"].items() if k in names}))
+    return [f"track.odometry_scale={calibrate_from_files(paths, WHEEL_LINE_M).factor!r}"]
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--seeds", type=int, nargs="+", default=[1, 2, 3, 4, 5])
@@ -162,6 +182,10 @@ def main(argv=None) -> int:
                     help="calibrate each drive's accelerometer first, as an operator would (tinyloc calibrate imu on "
                          "the run's two recordings at rest, calibration/imu_rest_*.csv; made for older cached runs), "
                          "and run the loop with that bias")
+    ap.add_argument("--wheel-cal", action="store_true",
+                    help="calibrate each drive's wheel-odometry factor first, as an operator would (tinyloc calibrate "
+                         "wheel on the run's two drives along a measured 20 m line, calibration/wheel_line_*.csv; made "
+                         "for older cached runs), and start the loop with it (it is still learnt online)")
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args(argv)
     work = Path(a.work)
@@ -174,7 +198,7 @@ def main(argv=None) -> int:
             _sim(a, "site", "--seed", str(seed), "--size", a.size, "-o", str(site))
         if not (run / "run.json").is_file():
             _sim(a, "run", str(site), "--seed", str(seed), "--frames", str(a.frames), "-o", str(run))
-        cal = _imu_cal(run) if a.imu_cal else []
+        cal = (_imu_cal(run) if a.imu_cal else []) + (_wheel_cal(run) if a.wheel_cal else [])
         for mode in a.modes:
             ov = list(a.set) + cal + (["loop.external_labels=true"] if mode == "labels" else [])
             try:
@@ -182,7 +206,7 @@ def main(argv=None) -> int:
             except Exception as e:  # one bad seed must not hide the others
                 print(f"seed {seed} {mode}: failed: {type(e).__name__}: {e}", file=sys.stderr, flush=True)
                 continue
-            s.update(seed=seed, mode=mode, imu_cal=bool(a.imu_cal))
+            s.update(seed=seed, mode=mode, imu_cal=bool(a.imu_cal), wheel_cal=bool(a.wheel_cal))
             rows.append(s)
             print(f"seed {seed} {mode:<9} recall {s['recall_1m_3deg']:.2f}  median {s['median_error_m']:.2f} m "
                   f"{s['median_heading_error_deg']:.2f} deg  gnss {s['gnss_median_error_m']:.2f} m "

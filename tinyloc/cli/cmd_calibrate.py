@@ -1,4 +1,4 @@
-"""``tinyloc calibrate``: camera intrinsics from checkerboard photos; camera height and pitch on the robot."""
+"""``tinyloc calibrate``: camera intrinsics and mount, accelerometer bias, wheel-odometry factor."""
 
 from __future__ import annotations
 
@@ -8,10 +8,11 @@ import sys
 from pathlib import Path
 
 NAME = "calibrate"
-HELP = "calibrate the camera (intrinsics from a checkerboard), its mount (height, pitch) and the accelerometer bias"
+HELP = ("calibrate the camera (intrinsics from a checkerboard), its mount (height, pitch), the accelerometer "
+        "bias and the wheel-odometry factor")
 DESCRIPTION = """\
-Camera calibration in two steps, both writing the same camera.toml (docs/camera.md), and the
-accelerometer bias for the loop configuration.
+Camera calibration in two steps, both writing the same camera.toml (docs/camera.md), then the
+accelerometer bias and the wheel-odometry factor for the loop configuration.
 
 1. Intrinsics and lens distortion, from 10-30 photos of a printed checkerboard held at
    varied angles and distances, filling the corners of the picture too:
@@ -33,7 +34,13 @@ accelerometer bias for the loop configuration.
    about range^2 x tilt / camera height): record a few seconds at rest, turn the robot in
    place by half a turn, record again, then
      tinyloc calibrate imu rest_a.csv rest_b.csv -o loop.toml
-   and start the loop with --config loop.toml."""
+   and start the loop with --config loop.toml.
+
+4. The wheels' distance factor (tyres are rarely the size configured; 2 % off makes the
+   belief trail or lead the robot): mark two points on flat ground, measure their distance
+   with a tape, drive straight from one to the other and stop, record the wheel odometry
+   (t,x,y,yaw), drive back and record again, then
+     tinyloc calibrate wheel line_a.csv line_b.csv --distance 20.0 -o loop.toml"""
 
 _INTR_HELP = """\
 Detect the checkerboard's inner corners in every photo (OpenCV), refine them to
@@ -110,6 +117,31 @@ def register(parser):
                         "over the Earth and only the z bias depends on it)")
     p.add_argument("--json", action="store_true", help="print the result as one JSON object")
     p.set_defaults(func=_imu)
+
+    p = sub.add_parser("wheel", help="wheel-odometry distance factor from straight drives of measured length",
+                       description=_WHEEL_HELP, formatter_class=parser.formatter_class,
+                       epilog="examples:\n  tinyloc calibrate wheel line_a.csv line_b.csv --distance 20.0\n"
+                              "  tinyloc calibrate wheel runs/line_there runs/line_back --distance 25.4 -o loop.toml")
+    p.add_argument("lines", nargs="+", metavar="LINE",
+                   help="odometry of one drive along the line: a CSV with t,x,y,yaw (odometry.csv format) or a "
+                        "run folder (its odometry.csv)")
+    p.add_argument("--distance", type=float, required=True, metavar="M",
+                   help="the line's length between the two marks (m, from a tape; the same for every recording)")
+    p.add_argument("-o", "--out", metavar="loop.toml",
+                   help="loop configuration to write the factor into ([track] odometry_scale); created if "
+                        "missing, other values kept (comments are not)")
+    p.add_argument("--json", action="store_true", help="print the result as one JSON object")
+    p.set_defaults(func=_wheel)
+
+
+_WHEEL_HELP = """\
+Estimate the factor the loop multiplies wheel-odometry distances by (track.odometry_scale) from
+drives along a straight line of measured length (common practice: the straight-line test). The
+factor is the tape's distance over the odometry's start-to-end distance, pooled over the
+recordings (sum of tapes / sum of odometry), so more passes or a longer line average the slip
+down. Each recording must start and end at rest, be straight (heading change within 5 deg, path
+within 0.5 % of the start-to-end distance) and give a factor within 0.8 .. 1.25. Prints the
+factor and each recording's own, and with -o writes it into a loop configuration."""
 
 
 def _read_image(path):
@@ -235,7 +267,6 @@ def _imu(args) -> int:
     from ..camera.imu_rest import calibrate_from_files
     from ..errors import CalibrationError
     from ..perception.gravity import G0
-    from ..tomlio import read_toml, write_toml
 
     g = G0 if args.g is None else args.g
     if not 9.7 <= g <= 9.9:
@@ -245,17 +276,7 @@ def _imu(args) -> int:
     a, b = res.first, res.second
     bx, by, bz = (float(v) for v in res.bias)
     if args.out:
-        out = Path(args.out)
-        doc = read_toml(out, cls=CalibrationError) if out.is_file() else {}
-        loop = doc.get("loop", {})
-        if not isinstance(loop, dict):
-            raise CalibrationError(f"{out}: 'loop' is not a table")
-        loop.update(accel_bias_x=bx, accel_bias_y=by, accel_bias_z=bz)
-        doc["loop"] = loop
-        try:
-            write_toml(out, doc, header="tinyloc loop configuration (docs/runtime.md)")
-        except (OSError, TypeError, ValueError) as e:
-            raise CalibrationError(f"{out}: cannot write ({getattr(e, 'strerror', None) or e})") from None
+        _update_config(args.out, "loop", accel_bias_x=bx, accel_bias_y=by, accel_bias_z=bz)
     report = {"bias_mps2": [bx, by, bz], "tilt_deg": res.tilt_deg, "g_mps2": g,
               "tilt_from_bias_deg": math.degrees(math.hypot(bx, by) / g), "out": args.out,
               "recordings": [{"path": r.path, "samples": r.n, "seconds": r.seconds, "mean": [float(v) for v in r.mean],
@@ -271,4 +292,47 @@ def _imu(args) -> int:
               "recordings were taken on the same spot, turned in place", file=sys.stderr)
     if args.out:
         print(f"  wrote [loop] accel_bias_x/y/z to {args.out}")
+    return 0
+
+
+def _update_config(path, section: str, **values) -> None:
+    """Set ``values`` in table ``section`` of the loop configuration at ``path`` (created if missing)."""
+    from ..errors import CalibrationError
+    from ..tomlio import read_toml, write_toml
+
+    out = Path(path)
+    doc = read_toml(out, cls=CalibrationError) if out.is_file() else {}
+    table = doc.get(section, {})
+    if not isinstance(table, dict):
+        raise CalibrationError(f"{out}: '{section}' is not a table")
+    table.update(values)
+    doc[section] = table
+    try:
+        write_toml(out, doc, header="tinyloc loop configuration (docs/runtime.md)")
+    except (OSError, TypeError, ValueError) as e:
+        raise CalibrationError(f"{out}: cannot write ({getattr(e, 'strerror', None) or e})") from None
+
+
+def _wheel(args) -> int:
+    from ..camera.wheel_line import calibrate_from_files
+
+    res = calibrate_from_files(args.lines, args.distance)
+    if args.out:
+        _update_config(args.out, "track", odometry_scale=round(res.factor, 5))
+    report = {"odometry_scale": res.factor, "distance_m": res.distance_m, "spread": res.spread, "out": args.out,
+              "recordings": [{"path": d.path, "odometry_m": d.chord_m, "path_m": d.path_m, "turn_deg": d.turn_deg,
+                              "seconds": d.seconds, "factor": res.distance_m / d.chord_m} for d in res.drives]}
+    if args.json:
+        print(json.dumps(report))
+        return 0
+    print(f"wheel-odometry factor: {res.factor:.5f} (odometry {100 * (1 / res.factor - 1):+.2f} % long) from "
+          f"{len(res.drives)} drive(s) along {res.distance_m:g} m")
+    for d in res.drives:
+        print(f"  {d.path}: odometry {d.chord_m:.3f} m, factor {res.distance_m / d.chord_m:.5f}, "
+              f"heading change {d.turn_deg:.1f} deg")
+    if len(res.drives) > 1 and res.spread > 0.01:
+        print(f"  warning: the recordings differ by {100 * res.spread:.1f} % from their pooled factor; slip or a "
+              "drive that did not stop on the mark? Repeat the drives", file=sys.stderr)
+    if args.out:
+        print(f"  wrote [track] odometry_scale to {args.out}")
     return 0

@@ -72,21 +72,35 @@ def write_demo(data_dir, maps_dir=None, *, progress=None, run_seed: int = RUN_SE
 
 
 def write_demo_config(data_dir) -> Path:
-    """The demo robot's loop.toml: its accelerometer bias, calibrated from the run's recordings at rest.
+    """The demo robot's loop.toml: its accelerometer bias and wheel factor, calibrated from its recordings.
 
-    What an operator does once per robot (docs/camera.md, step 3: ``tinyloc calibrate imu``), done on
-    the simulated robot's two recordings (``calibration/imu_rest_*.csv``, written with the run).
+    What an operator does once per robot (docs/camera.md, steps 3 and 4: ``tinyloc calibrate imu`` and
+    ``tinyloc calibrate wheel``), done on the simulated robot's recordings at rest
+    (``calibration/imu_rest_*.csv``) and along a measured line (``calibration/wheel_line_*.csv``), written
+    with the run (the line drives are made here when the run folder predates them).
     """
     from ..camera.imu_rest import calibrate_from_files
+    from ..camera.wheel_line import calibrate_from_files as wheel_from_files
     from ..tomlio import write_toml
-    from .runs import IMU_REST_FILES
+    from .runs import IMU_REST_FILES, WHEEL_LINE_FILES, WHEEL_LINE_M, write_wheel_line
+    from .sensors import OdometryParams
 
     data_dir = Path(data_dir)
-    bias = calibrate_from_files(*(data_dir / "run" / rel for rel in IMU_REST_FILES)).bias
+    run = data_dir / "run"
+    bias = calibrate_from_files(*(run / rel for rel in IMU_REST_FILES)).bias
+    lines = [run / rel for rel in WHEEL_LINE_FILES]
+    if not all(p.is_file() for p in lines):
+        sim = json.loads((run / "run.json").read_text(encoding="utf-8"))["simulated"]
+        write_wheel_line(run, int(sim["seed"]), OdometryParams(**sim["odometry"]))
+    factor = wheel_from_files(lines, WHEEL_LINE_M).factor
     out = data_dir / "loop.toml"
-    write_toml(out, {"loop": {f"accel_bias_{ax}": round(float(v), 5) for ax, v in zip("xyz", bias)}},
+    write_toml(out, {"loop": {f"accel_bias_{ax}": round(float(v), 5) for ax, v in zip("xyz", bias)},
+                     "track": {"odometry_scale": round(float(factor), 5)}},
                header="The demo robot's loop configuration: its accelerometer bias from\n"
-                      "tinyloc calibrate imu run/calibration/imu_rest_a.csv run/calibration/imu_rest_b.csv")
+                      "tinyloc calibrate imu run/calibration/imu_rest_a.csv run/calibration/imu_rest_b.csv\n"
+                      "and its wheel factor from\n"
+                      f"tinyloc calibrate wheel run/calibration/wheel_line_a.csv run/calibration/wheel_line_b.csv "
+                      f"--distance {WHEEL_LINE_M:g}")
     return out
 
 

@@ -21,7 +21,8 @@ from ..errors import InputError
 from ..runfolder import RunWriter
 from .render import Renderer, RenderParams
 from .rover import DriveParams, drive
-from .sensors import G0, GnssParams, ImuParams, OdometryParams, gnss_samples, imu_samples, odometry_samples, rest_imu_pair
+from .sensors import (G0, GnssParams, ImuParams, OdometryParams, gnss_samples, imu_samples, line_odometry_pair,
+                      odometry_samples, rest_imu_pair)
 from .world import World
 
 # The simulator's default camera: VGA, about 70 degrees across, mild barrel distortion, 0.8 m up, 8 deg down.
@@ -149,6 +150,7 @@ def make_run(world: World, out_dir, *, seed: int, params: RunParams = RunParams(
             w.add_gnss(float(gn["t"][k]), float(lat_g[k]), float(lon_g[k]), float(world.origin[2] + gn["h"][k]),
                        float(gn["acc_m"][k]))
     write_imu_rest(out_dir, seed, params.imu)
+    write_wheel_line(out_dir, seed, params.odometry)
     dist = float(traj.s[-1])
     d_odo = float(np.sum(np.hypot(*np.diff(odo[:, :2], axis=0).T)))
     return {"frames": n, "duration_s": float(traj.t[-1]), "distance_m": dist,
@@ -185,6 +187,32 @@ def write_imu_rest(run_dir, seed: int, imu: ImuParams = ImuParams()) -> list[Pat
             fh.write("# simulated recording at rest for tinyloc calibrate imu (docs/camera.md, step 3)\nt,fx,fy,fz\n")
             for k in range(len(t)):
                 fh.write(f"{t[k]:.3f},{f[k, 0]:.5f},{f[k, 1]:.5f},{f[k, 2]:.5f}\n")
+        paths.append(p)
+    return paths
+
+
+WHEEL_LINE_FILES = ("calibration/wheel_line_a.csv", "calibration/wheel_line_b.csv")
+WHEEL_LINE_M = 20.0  # the measured line's length, as the operator's tape says
+
+
+def write_wheel_line(run_dir, seed: int, odometry: OdometryParams = OdometryParams()) -> list[Path]:
+    """Write the robot's two drives along a measured straight line (``WHEEL_LINE_FILES``, ``WHEEL_LINE_M``).
+
+    For ``tinyloc calibrate wheel``: the same wheel model as the drive (its scale error, slip, heading
+    drift), from a random stream of its own, so adding the files changes nothing else in the run. Runs
+    made before these files existed get them by calling this with the run's seed and odometry
+    parameters (run.json ``simulated``).
+    """
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed), 0x52554E, 0x574C]))
+    paths = []
+    for rel, (t, pose) in zip(WHEEL_LINE_FILES, line_odometry_pair(rng, odometry, length_m=WHEEL_LINE_M)):
+        p = Path(run_dir) / rel
+        p.parent.mkdir(parents=True, exist_ok=True)
+        with open(p, "w") as fh:
+            fh.write(f"# simulated drive along a straight line measured {WHEEL_LINE_M:g} m, for tinyloc calibrate "
+                     "wheel (docs/camera.md)\nt,x,y,yaw\n")
+            for k in range(len(t)):
+                fh.write(f"{t[k]:.3f},{pose[k, 0]:.4f},{pose[k, 1]:.4f},{pose[k, 2]:.5f}\n")
         paths.append(p)
     return paths
 

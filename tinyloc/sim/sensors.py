@@ -142,6 +142,38 @@ def rest_imu_pair(bias, rng: np.random.Generator, p: ImuParams = ImuParams(), *,
     return out
 
 
+def line_odometry_pair(rng: np.random.Generator, p: OdometryParams = OdometryParams(), *, length_m: float = 20.0,
+                       speed_mps: float = 0.8, accel_mps2: float = 0.5):
+    """Wheel odometry of two drives along one straight measured line, there and back.
+
+    What an operator records for ``tinyloc calibrate wheel``: the robot starts at rest on one mark,
+    drives straight to a second mark ``length_m`` away (measured with a tape), stops, and drives back.
+    The speed ramps up and down at ``accel_mps2``; the odometry is :func:`odometry_samples` of that
+    straight drive (the run's own scale error, slip and heading drift), with 1 s at rest before and after.
+
+    Returns
+    -------
+    list of (t (N,), pose (N, 3))
+        The two recordings (s; x, y m and yaw rad in each recording's own odom frame).
+    """
+    from .rover import Trajectory
+
+    ramp_t = speed_mps / accel_mps2
+    ramp_s = 0.5 * accel_mps2 * ramp_t ** 2
+    cruise_t = max(0.0, (length_m - 2.0 * ramp_s) / speed_mps)
+    drive_t = 2.0 * ramp_t + cruise_t
+    t = np.arange(0.0, drive_t + 2.0, 0.01)
+    tau = np.clip(t - 1.0, 0.0, drive_t)
+    up = np.minimum(tau, ramp_t)
+    down = np.clip(tau - ramp_t - cruise_t, 0.0, ramp_t)
+    s = 0.5 * accel_mps2 * up ** 2 + speed_mps * np.clip(tau - ramp_t, 0.0, cruise_t) \
+        + speed_mps * down - 0.5 * accel_mps2 * down ** 2
+    s *= length_m / float(s[-1])
+    z = np.zeros_like(t)
+    traj = Trajectory(t, s.copy(), z, z, z, z, np.gradient(s, t), z, z, z, s)
+    return [odometry_samples(traj, rng, p) for _ in range(2)]
+
+
 def odometry_samples(traj: Trajectory, rng: np.random.Generator, p: OdometryParams = OdometryParams()):
     """(t, pose (N,3)) wheel-odometry pose (x, y, yaw) in its own frame, starting at (0, 0, 0)."""
     t = np.arange(traj.t[0], traj.t[-1], 1.0 / p.rate_hz)
