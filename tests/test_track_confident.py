@@ -81,3 +81,45 @@ def test_planted_drive_same_estimate_only_the_flag_moves():
     import test_track_tracker as T
 
     T.check_only_the_flag_moves(T._params(confident_sigma_m=0.0), T._params(confident_sigma_m=0.15))
+
+def _est_heading(sigma_deg, sigma_m=0.4):
+    s = math.radians(sigma_deg)
+    cov = np.diag([sigma_m ** 2, 0.01, s ** 2])
+    return FilterEstimate(10.0, 20.0, 0.0, cov, [], 0.9, sigma_m, s)
+
+
+@pytest.mark.parametrize("sigma_deg, confident, want", [
+    (2.1, 0.0, "tracking"),    # off: only track_sigma_deg (4.0) counts
+    (2.1, 1.6, "degraded"),    # a 2.1 deg heading cannot promise a pose within 3 deg
+    (1.6, 1.6, "tracking"),    # at the threshold: still tracking (the test is "above")
+    (1.3, 1.6, "tracking"),
+])
+def test_heading_spread_while_tracking_by_hand(sigma_deg, confident, want):
+    tr = _tracker(confident_sigma_deg=confident)
+    tr.state, tr.started = "tracking", True
+    notes = []
+    tr._decide(_est_heading(sigma_deg), notes)
+    assert tr.state == want
+    if want == "degraded":
+        assert notes == [f"degraded: heading spread {sigma_deg:.1f} deg"]
+
+
+def test_lock_on_with_a_broad_heading_is_degraded_and_either_spread_counts():
+    tr = _tracker(confident_sigma_deg=1.6)
+    tr.state, tr.started = "searching", True
+    for _ in range(3):
+        notes = []
+        tr._decide(_est_heading(2.5), notes)
+    assert tr.state == "degraded" and "locked on" in notes and "degraded: heading spread 2.5 deg" in notes
+    # with both checks on, a broad position is named first
+    tr = _tracker(confident_sigma_m=0.85, confident_sigma_deg=1.6)
+    tr.state, tr.started = "tracking", True
+    notes = []
+    tr._decide(_est_heading(2.5, sigma_m=0.95), notes)
+    assert tr.state == "degraded" and notes == ["degraded: position spread 0.95 m"]
+
+
+@pytest.mark.parametrize("bad", [-0.1, math.nan, math.inf, 181.0])
+def test_bad_heading_values_are_rejected_with_the_key_named(bad):
+    with pytest.raises(InputError, match="track.confident_sigma_deg"):
+        TrackParams(confident_sigma_deg=bad)

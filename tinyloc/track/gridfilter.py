@@ -180,6 +180,13 @@ class TrackParams:
         0 turns the check off [0.85]. Adopted with ``odo_scale_rate`` 0.02 after the held-out drives
         1-5 (lead, 89b209a): wrong-while-tracking over whole drives 0/0/2/13/21 % -> 0/0/1/0/4 %,
         recall 99.3 -> 99.6 %, mean median 0.291 -> 0.269 m (docs/tracking.md).
+    confident_sigma_deg : float
+        The same for the heading: "tracking" only while the posterior's heading 1-sigma is at most
+        this (deg); above it the flag says "degraded" ("heading spread"). A heading that is 2 deg
+        uncertain cannot promise the 3 deg a pose within spec needs, and a segmenter whose facade
+        feet drift with range pulls the heading that way: on a tuning drive 4-5 deg off while
+        tracking, the posterior's heading 1-sigma was 2.0-2.2 deg, against 1.2-1.4 deg where the
+        heading was right (docs/tracking.md, "Confident heading"). 0 turns the check off [0.0].
     lost_sigma_m, lost_sigma_deg : float
         Beyond these the filter is lost and searches again [6.0, 30.0].
     converge_frames : int
@@ -322,6 +329,7 @@ class TrackParams:
     track_sigma_m: float = 1.0
     track_sigma_deg: float = 4.0
     confident_sigma_m: float = 0.85
+    confident_sigma_deg: float = 0.0
     lost_sigma_m: float = 6.0
     lost_sigma_deg: float = 30.0
     converge_frames: int = 3
@@ -386,6 +394,8 @@ class TrackParams:
             raise InputError("track.odo_scale_*: span_m must be >= 0, rate in [0, 1], max_dev in [0, 0.5]")
         if not (math.isfinite(self.confident_sigma_m) and 0.0 <= self.confident_sigma_m <= 100.0):
             raise InputError(f"track.confident_sigma_m = {self.confident_sigma_m}: must be in [0, 100] (0: off)")
+        if not (math.isfinite(self.confident_sigma_deg) and 0.0 <= self.confident_sigma_deg <= 180.0):
+            raise InputError(f"track.confident_sigma_deg = {self.confident_sigma_deg}: must be in [0, 180] (0: off)")
         if not (math.isfinite(self.catchup_m) and 0.0 <= self.catchup_m <= 100.0):
             raise InputError(f"track.catchup_m = {self.catchup_m}: must be in [0, 100] (0: off)")
         if not 0.0 <= self.catchup_memory < 1.0:
@@ -1257,6 +1267,15 @@ class Tracker:
         self.catchup.reset()  # the restart moves the belief; that is not the map pulling it
         notes.append(f"lost: {why}")
 
+    def _spread(self, est: FilterEstimate) -> str:
+        """Why the posterior is too broad to promise a pose within spec ("" when it is not)."""
+        p = self.p
+        if 0.0 < p.confident_sigma_m < est.sigma_xy_m:
+            return f"position spread {est.sigma_xy_m:.2f} m"
+        if 0.0 < p.confident_sigma_deg < math.degrees(est.sigma_yaw_rad):
+            return f"heading spread {math.degrees(est.sigma_yaw_rad):.1f} deg"
+        return ""
+
     def _decide(self, est: FilterEstimate, notes) -> None:
         p = self.p
         self._learn_catching = False
@@ -1266,9 +1285,10 @@ class Tracker:
             if self._converge >= p.converge_frames:
                 self.counters["recovered"] += 1
                 notes.append("locked on")
-                if 0.0 < p.confident_sigma_m < est.sigma_xy_m:
+                why = self._spread(est)
+                if why:
                     self.state = "degraded"
-                    notes.append(f"degraded: position spread {est.sigma_xy_m:.2f} m")
+                    notes.append(f"degraded: {why}")
                 else:
                     self.state = "tracking"
             return
@@ -1292,7 +1312,8 @@ class Tracker:
         off = math.hypot(self._off_e, self._off_n)
         offset = p.gnss.offset_degrade_m > 0 and off > p.gnss.offset_degrade_m  # NaN (no fix yet) is False
         # a broad posterior along the street is often a neighbour mode the frames cannot yet tell apart
-        spread = 0.0 < p.confident_sigma_m < est.sigma_xy_m
+        why_spread = self._spread(est)
+        spread = bool(why_spread)
         # a belief the map keeps pulling against the odometry has not settled, however tight it is
         catching = 0.0 < p.catchup_m < self.catchup.drift_m
         other = (not ok_sigma or self._no_update >= p.degraded_frames
@@ -1304,7 +1325,7 @@ class Tracker:
         if degraded:
             if self.state != "degraded":
                 why = ("uncertainty grew" if not ok_sigma else
-                       f"position spread {est.sigma_xy_m:.2f} m" if spread else
+                       why_spread if spread else
                        f"catching up {self.catchup.drift_m:.2f} m" if catching else
                        "no usable frames" if self._no_update >= p.degraded_frames else
                        "ambiguous" if self._ambig is not None else
