@@ -54,6 +54,33 @@ def _base_band_reference(lab, labels, exgr, ref, p, ground, hr, j, top):
     return end
 
 
+def _dark_gap_reference(lab, labels, ground, hr, c0, p, j, top):
+    """Row below the dark gap under an object starting at row ``top`` of column j (the carry's colour stop),
+    or None.
+
+    Written from the rule in segment.py (``wall_dark``): after an optional mixed first pixel (ground, lighter
+    than the limit), at least two ground pixels no lighter than wall_dark x the facade's lightness ``c0``;
+    the two pixels below them ground and at least 10 (Lab L) lighter than the gap's mean; the gap's top at
+    least 2 rows below the horizon and at least 0.2 of its bottom's depth (at most 0.8 of the camera's
+    height tall; boundaries at half rows).
+    """
+    h = labels.shape[0]
+    lim = p.wall_dark * c0
+    start = top + 1 if (top + 1 < h and lab[top, j, 0] > lim and labels[top, j] in ground) else top
+    end = start
+    while end < h - 2 and labels[end, j] in ground and lab[end, j, 0] <= lim:
+        end += 1
+    if end - start < 2 or end >= h - 2:
+        return None
+    mean = float(lab[start:end, j, 0].astype(float).mean())
+    if any(labels[q, j] not in ground or lab[q, j, 0] < mean + 10.0 for q in (end, end + 1)):
+        return None
+    depth = top - 0.5 - hr
+    if depth < 2.0 or depth < 0.2 * (end - 0.5 - hr):
+        return None
+    return end
+
+
 def _band_goes_on(lab, labels, hrow, bands, p, ground, end, step):
     """Whether the base band of column ``end`` shows on the ground past the wall's side: the first column in
     direction ``step`` whose horizon pixel is not building has the band's colour (within wall_dist of the
@@ -246,6 +273,12 @@ def segment_reference(bgr, p, hrow=None):
         # the first pixel like the robot's surface ends the carry, unless (wall_base) the colour carry past
         # it ends on a thin base band that stands on other ground
         on_ref = [i for i in carry if _ref_lab_dist(lab[i, j], ref, p.ref_l_weight) < p.wall_ground]
+        # wall_dark: a colour stop that is the dark gap under an object carries on through the gap
+        gap_end = _dark_gap_reference(lab, labels, ground, hrow[j], c[0], p, j, stop) \
+            if p.wall_dark > 0 and by_colour and not on_ref else None
+        if gap_end is not None:
+            carry += list(range(stop, gap_end))
+            by_colour = False
         band_end = _base_band_reference(lab, labels, exgr, ref, p, ground, hrow[j], j, stop) \
             if p.wall_base > 0 and by_colour else None
         if band_end is not None:

@@ -26,6 +26,7 @@ def _frames():
     yield "overcast", dull  # a grey sky darker than sky_v: only the sky-by-colour rule takes it
     yield "facade with a dark base", _plinth_frame()  # the base-band rule (wall_base) changes many pixels
     yield "facade behind a dark strip", _plinth_frame(strip=True)  # ... and here its side check undoes it
+    yield "vehicle on the road", _vehicle_frame()  # the dark-gap rule (wall_dark) changes many pixels
 
 
 def _plinth_frame(seed=3, strip=False):
@@ -49,6 +50,27 @@ def _plinth_frame(seed=3, strip=False):
     return np.clip(img, 0, 255).astype(np.uint8)
 
 
+def _vehicle_frame(seed=6):
+    """480 x 360: sky, asphalt below the test's horizon (0.45 .. 0.6 of the raster's height, 160 x 120) and
+    from raster column 30 to 100 a grey body (a parked van's side) from 10 raster rows above the
+    horizon down to 12 rows below it, then the dark gap under it (6 raster rows, L about 20) on the road,
+    and lighter paving (the robot's surface) from 24 rows below the horizon."""
+    rng = np.random.default_rng(seed)
+    width, height = 480, 360
+    hrow = np.linspace(0.45, 0.6, 160) * 120
+    img = np.empty((height, width, 3), np.float64)
+    img[:] = (235, 215, 190)
+    rows, j = np.arange(height)[:, None] / 3.0, np.arange(width)[None, :] // 3
+    hz = hrow[j] + 0.5
+    img[np.broadcast_to(rows > hz, (height, width))] = (95, 95, 95)
+    img[np.broadcast_to(rows > hz + 24, (height, width))] = (175, 178, 180)
+    body = (j >= 30) & (j < 100)
+    img[np.broadcast_to(body & (rows > hz - 10) & (rows <= hz + 12), (height, width))] = (120, 130, 140)
+    img[np.broadcast_to(body & (rows > hz + 12) & (rows <= hz + 18), (height, width))] = (22, 22, 24)
+    img += rng.normal(0, 2.0, img.shape)
+    return np.clip(img, 0, 255).astype(np.uint8)
+
+
 CASES = {**{n: preset(n) for n in PRESETS},
          "poles and fences on": SegmentParams(pole_contrast=0.05, pole_run=0.1, fence_top=0.08, crown_model=""),
          "crown model on": SegmentParams(crown_model="default", gap_model=""),
@@ -64,7 +86,9 @@ CASES = {**{n: preset(n) for n in PRESETS},
          "surface with the darker-paving guard": SegmentParams(surface_auto=5.0, surface_share=0.005,
                                                                surface_dark=0.05, crown_model=""),
          "facades starting above the horizon": replace(preset("sidewalk"), wall_reach=2),
-         "facade base bands": replace(preset("sidewalk"), wall_base=0.6)}
+         "facade base bands": replace(preset("sidewalk"), wall_base=0.6),
+         "dark gaps under objects": replace(preset("sidewalk"), wall_dark=0.5),
+         "dark gaps and base bands": replace(preset("sidewalk"), wall_dark=0.5, wall_base=0.6, wall_reach=2)}
 
 
 @pytest.mark.parametrize("name", list(CASES))
@@ -492,3 +516,96 @@ def test_wall_base_not_a_strip_beside_the_wall():
     assert [_building_rows(labels[:, j]) for j in (0, 1)] == [list(range(21))] * 2
     labels = _band_raster(200, wall_cols=(0, 1), plain_cols=range(2, 11), width=11)
     assert [_building_rows(labels[:, j]) for j in (0, 1)] == [list(range(12))] * 2
+
+
+def _dark_gap_column(dark, *, gap=(9, 13), gap_l=40, first_l=None, below_l=80, below=None, start_row=5, h=26,
+                     reach=0):
+    """One hand-made column for the dark gap under an object (``wall_dark``), horizon at row 5.3 (the
+    horizon pixel is row 5): building rows 0 .. ``start_row``, then road-labelled pixels of the object's
+    colour (L 120) down to the gap, the gap rows ``gap[0]`` .. ``gap[1]`` - 1 (road-labelled, L ``gap_l``;
+    the first L ``first_l`` when given, a mixed pixel), and below it road of L ``below_l`` (or the class
+    ``below``). The robot's surface is far in colour (L 250). a* = b* = 128 everywhere."""
+    from tinyloc.perception import _kernels as K
+    from tinyloc.perception.segment import _IS_GROUND
+    from tinyloc.classes import BUILDING, NUM_CLASSES
+
+    labels = np.full((h, 1), ROAD, np.uint8)
+    labels[:start_row + 1] = BUILDING
+    if below is not None:
+        labels[gap[1]:] = below
+    lab = np.full((h, 1, 3), 128, np.uint8)
+    lab[:gap[0], 0, 0] = 120
+    lab[gap[0]:gap[1], 0, 0] = gap_l
+    if first_l is not None:
+        lab[gap[0], 0, 0] = first_l
+    lab[gap[1]:, 0, 0] = below_l
+    feat = np.zeros((K.NF, h, 1), np.float32)
+    probs = np.zeros((NUM_CLASSES, h, 1), np.float32)
+    probs[labels, np.arange(h)[:, None], np.arange(1)[None, :]] = 1.0
+    ref = np.array([250.0, 128.0, 128.0])
+    prm = replace(preset("sidewalk"), wall_dark=dark, wall_reach=reach).vector()
+    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 1), np.int32))
+    return labels[:, 0], probs[:, :, 0]
+
+
+@pytest.mark.parametrize("dark, kw, foot", [
+    # off: the carry (L 120, rows 6-8) stops at the gap's colour change (row 9: 0.5 x 80 = 40 > wall_dist 13.1)
+    (0.0, {}, 9),
+    # on: the gap (L 40 <= 0.5 x 120 = 60, rows 9-12) stands on road of L 80 >= 40 + 10; its top lies
+    # 9 - 0.5 - 5.3 = 3.2 rows below the horizon (>= 2) and >= 0.2 x (13 - 0.5 - 5.3) = 1.44: carried to row 13
+    (0.5, {}, 13),
+    (0.5, {"gap_l": 60}, 13),                       # 60 = 0.5 x 120: still dark (the limit is inclusive)
+    (0.5, {"gap_l": 61}, 9),                        # one lighter: no gap
+    (0.4, {}, 13),                                  # 40 <= 0.4 x 120 = 48: carried ...
+    (0.3, {}, 9),                                   # ... and 40 > 0.3 x 120 = 36: not
+    # ground above the limit 60 must also be 10 lighter than the gap: 65 = 55 + 10 yes, 64 no
+    (0.5, {"gap_l": 55, "below_l": 65}, 13),
+    (0.5, {"gap_l": 55, "below_l": 64}, 9),
+    (0.5, {"below_l": 60}, 9),                      # ground as dark as the limit is taken for more gap: no foot
+    (0.5, {"gap": (9, 10)}, 9),                     # a one-pixel gap is not a gap
+    (0.5, {"first_l": 90}, 13),                     # a mixed first pixel (L 90 > 60) is taken with the gap
+    (0.5, {"first_l": 90, "gap": (9, 11)}, 9),      # ... but does not count: one dark pixel left
+    (0.5, {"below": 4}, 9),                         # a gap standing on a tree (no ground below) has no foot
+    # tall gaps: top depth 3.2 >= 0.2 x (21 - 0.5 - 5.3) = 3.04, carried; to row 22: 3.24 > 3.2, not
+    (0.5, {"gap": (9, 21)}, 21),
+    (0.5, {"gap": (9, 22)}, 9),
+])
+def test_wall_dark_hand_worked(dark, kw, foot):
+    labels, probs = _dark_gap_column(dark, **kw)
+    assert _building_rows(labels) == list(range(foot))
+    assert np.all(probs[0, :foot] == 1.0)
+    assert np.all(labels[foot:] != 0)
+
+
+def test_wall_dark_needs_a_gap_below_the_horizon():
+    from tinyloc.perception import _kernels as K
+
+    # the gap's top must lie at least 2 rows below the horizon (5.3): the object's colour down to row 6 and the
+    # gap from row 7 (7 - 0.5 - 5.3 = 1.2 rows): not carried; from row 8 (2.2 rows): carried
+    labels, _ = _dark_gap_column(0.5, gap=(7, 11))
+    assert _building_rows(labels) == list(range(7))
+    labels, _ = _dark_gap_column(0.5, gap=(8, 12))
+    assert _building_rows(labels) == list(range(12))
+    assert K.DARK_MIN_DEPTH == 2.0 and K.DARK_STEP == 10.0 and K.DARK_MAX_SHARE == 0.8  # the figures above
+
+
+def test_wall_dark_on_a_rendered_vehicle():
+    # the frame's van side (raster columns 30-99) ends in a dark gap 12 .. 18 rows below the horizon: off, its
+    # lower edge is the gap's top and the gap is road; on, the building label reaches the gap's bottom
+    img = _vehicle_frame()
+    hrow = np.linspace(0.45, 0.6, 160) * 120
+    out = {}
+    for dark in (0.0, 0.5):
+        seg = Segmenter((img.shape[1], img.shape[0]), replace(preset("sidewalk"), wall_dark=dark))
+        _, labels = seg.run(img, hrow)
+        out[dark] = labels.copy()
+    cols = np.arange(35, 95)
+    lowest = {d: np.array([np.flatnonzero(out[d][:, j] == 0).max() - hrow[j] for j in cols]) for d in out}
+    assert np.all(lowest[0.0] < 13.5), lowest[0.0]          # stops at the body's lower edge (12 rows down)
+    assert np.all(np.abs(lowest[0.5] - 18) <= 1.5), lowest[0.5]  # reaches the gap's bottom (18 rows down)
+    # beside the van the rule changes nothing
+    assert np.array_equal(out[0.0][:, :25], out[0.5][:, :25]) and np.array_equal(out[0.0][:, 105:], out[0.5][:, 105:])
+    with pytest.raises(InputError, match="wall_dark"):
+        SegmentParams(wall_dark=1.0)
+    with pytest.raises(InputError, match="wall_dark"):
+        SegmentParams(wall_dark=-0.1)

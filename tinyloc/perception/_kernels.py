@@ -23,14 +23,23 @@ NF = 10
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
  P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND,
  P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T, P_SOIL_B, P_SOIL_W, P_WALL_REACH,
- P_WALL_BASE) = range(39)
-NP = 39
+ P_WALL_BASE, P_WALL_DARK) = range(40)
+NP = 40
 
 # A facade's base band is tested by the ratio of two depths below the horizon, each known to about half a
 # raster row: its top must lie at least this many rows down (ratio to about +-0.5 / 6). On the tuning drives
 # 11-17 (every 5th frame, bands within 20 m passing the ratio at wall_base 0.6) the bands with a shallower
 # top were truly building in 95 of 961 cases, the deeper ones in 635 of 1723.
 BAND_MIN_DEPTH = 6.0
+
+# The dark gap under an object (wall_dark): the ground it stands on must be at least this much lighter
+# (Lab L, 0..255) than the gap's mean, in the two rows below it; and the gap's top at least
+# DARK_MIN_DEPTH rows below the horizon, at most DARK_MAX_SHARE of the camera's height tall by the
+# depth ratio of extend_walls' docstring (a vehicle's underside and wheels, up to about 0.6 m under a
+# camera at 0.8 m).
+DARK_STEP = 10.0
+DARK_MIN_DEPTH = 2.0
+DARK_MAX_SHARE = 0.8
 
 # Class indices (tinyloc.classes); repeated as literals because kernels cannot import the table.
 BUILDING, ROAD, SIDEWALK, GRASS, TREE, POLE, FENCE, PARKING, WATER, SKY, DYNAMIC = range(11)
@@ -436,6 +445,31 @@ def _base_band(feat, lab, labels, is_ground, ref, refl, refd, dmax, green0, soil
 
 
 @njit(**JIT)
+def _dark_gap(lab, labels, is_ground, hr, c0, dark, j, e):
+    """The row below the dark gap under an object that starts at row e of column j, or e (see extend_walls)."""
+    h = labels.shape[0]
+    lim = dark * c0
+    # the first pixel may mix the object and the gap (boundaries fall inside raster pixels)
+    b = e + 1 if (e + 1 < h and lab[e, j, 0] > lim and labels[e, j] != BUILDING and is_ground[labels[e, j]]) else e
+    e1 = b
+    s = 0.0
+    while b < h - 2 and labels[b, j] != BUILDING and is_ground[labels[b, j]] and lab[b, j, 0] <= lim:
+        s += lab[b, j, 0]
+        b += 1
+    n = b - e1
+    if n < 2 or b >= h - 2:
+        return e
+    mean = s / n
+    for q in range(b, b + 2):
+        if labels[q, j] == BUILDING or not is_ground[labels[q, j]] or lab[q, j, 0] < mean + DARK_STEP:
+            return e
+    top = e - 0.5 - hr
+    if top < DARK_MIN_DEPTH or top < (1.0 - DARK_MAX_SHARE) * (b - 0.5 - hr):
+        return e
+    return b
+
+
+@njit(**JIT)
 def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
     """Carry buildings down across the horizon to their foot.
 
@@ -472,9 +506,18 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
     its base from a path in front of it). One side seen is enough: a facade along the street often
     fills one side of the picture and ends, or reaches the vanishing point, on the other.
 
+    With ``wall_dark`` = q > 0 a carry stopped by a colour change goes on across the dark gap under an
+    object (the unlit underside and wheels of a parked vehicle, the contact shadow at a wall's foot):
+    at least two ground-labelled pixels, from the stop down, no lighter than q times the facade's
+    lightness, standing on two ground pixels at least DARK_STEP lighter than the gap's mean, with the
+    gap's top at least DARK_MIN_DEPTH rows below the horizon and the gap at most DARK_MAX_SHARE of the
+    camera's height tall (the depth ratio above). Without it the gap scores as ground and both the
+    object's foot and that ground land metres too far away.
+
     ``band`` (3, w) int32 is scratch: carry start, band top and band bottom row per column (-1: none).
     """
     nc, h, w = probs.shape
+    dark = prm[P_WALL_DARK]
     dmax = prm[P_WALL_DIST]
     emax = prm[P_WALL_EDGE]
     refl = prm[P_REF_L]
@@ -530,6 +573,11 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
                 e_ref = i
                 if base <= 0.0:
                     break
+        if dark > 0.0 and by_colour and e < e_ref:
+            b = _dark_gap(lab, labels, is_ground, hrow[j], c0, dark, j, e)
+            if b > e:
+                e = b
+                by_colour = False
         if base > 0.0 and by_colour:
             b = _base_band(feat, lab, labels, is_ground, ref, refl, refd, dmax, green0, soil_b, hrow[j], base, j, e)
             if b > e:  # carried across the band after the side check below; first the carry without it

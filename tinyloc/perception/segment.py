@@ -95,6 +95,8 @@ class SegmentParams:
     wall_reach: int = 0  # rows above the horizon pixel a facade may start, ground pixels between (0: off)
     wall_base: float = 0.0  # a carry stopped by a colour change goes on across a base band of one colour that
     #                         ends on the robot's surface, if at most this share of the camera height tall (0: off)
+    wall_dark: float = 0.0  # ... or across the dark gap under an object: ground pixels no lighter than this share
+    #                         of the facade's lightness, on lighter ground (0: off; seventh round)
     pole_contrast: float = 0.0  # a pole is a line this much darker/brighter than both sides (0: off)
     pole_run: float = 0.15  # ... at least this long (image heights), crossing the horizon
     fence_top: float = 0.0  # building runs ending less than this above the horizon are fences (0: off)
@@ -139,6 +141,8 @@ class SegmentParams:
             raise InputError(f"wall_reach must be a whole number of rows within 0 .. 8, got {self.wall_reach!r}")
         if not 0.0 <= self.wall_base < 1.0:
             raise InputError(f"wall_base must be within 0 .. 1 (a share of the camera height), got {self.wall_base}")
+        if not 0.0 <= self.wall_dark < 1.0:
+            raise InputError(f"wall_dark must be within 0 .. 1 (a share of the facade's lightness), got {self.wall_dark}")
         if not 0.0 <= self.tree_low <= 1.0:
             raise InputError("tree_low must be within 0 .. 1")
         if self.tex_window % 2 == 0 or self.mix_window % 2 == 0:
@@ -181,6 +185,7 @@ class SegmentParams:
         v[K.P_SOIL_B], v[K.P_SOIL_W] = self.soil_b, self.soil_w
         v[K.P_WALL_REACH] = self.wall_reach
         v[K.P_WALL_BASE] = self.wall_base
+        v[K.P_WALL_DARK] = self.wall_dark
         return v
 
 
@@ -203,6 +208,10 @@ PRESETS: dict[str, SegmentParams] = {
     # with the base band (wall_base 0.6) and sidewalk's own surface margin (20)
     "frontage": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
                               gap_model="", soil_b=6.0, surface_auto=20.0, wall_reach=2, wall_base=0.6),
+    # candidate (seventh round, docs/perception.md): "sidewalk" with the dark gap under parked vehicles
+    # carried into the object above it (wall_dark 0.5)
+    "parked": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
+                            gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
                           grass_weight=0.7, crown_model="", gap_model=""),
 }
