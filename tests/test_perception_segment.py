@@ -295,7 +295,8 @@ def _wall_column_case(reach, *, start_row, foot_l=60.0, facade_l=120.0, ref_l=20
     probs[SIDEWALK] = 1.0
     probs[BUILDING, :start_row + 1], probs[SIDEWALK, :start_row + 1] = 1.0, 0.0
     ref = np.array([ref_l, 128.0, 128.0])
-    prm = replace(preset("sidewalk"), wall_reach=reach).vector()
+    # the dark-gap rule (on in "sidewalk") off: a band at half the facade's lightness would also be a dark gap
+    prm = replace(preset("sidewalk"), wall_reach=reach, wall_dark=0.0).vector()
     K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 1), np.int32))
     return labels[:, 0], probs
 
@@ -378,7 +379,8 @@ def _base_band_column(base, *, band_end=21, facade_l=120, band_l=60, band_exgr=-
     probs = np.zeros((NUM_CLASSES, h, 2), np.float32)
     probs[labels, np.arange(h)[:, None], np.arange(2)[None, :]] = 1.0
     ref = np.array([float(ref_l), 128.0, 128.0])
-    prm = replace(preset("sidewalk"), wall_base=base, wall_reach=reach).vector()
+    # the dark-gap rule (on in "sidewalk") off: a band at half the facade's lightness would also be a dark gap
+    prm = replace(preset("sidewalk"), wall_base=base, wall_reach=reach, wall_dark=0.0).vector()
     K.extend_walls(feat, lab, np.full(2, 5.3), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 2), np.int32))
     return labels[:, 0], probs[:, :, 0]
 
@@ -480,7 +482,8 @@ def _band_raster(beside_l, *, wall_cols=(1, 2, 3), width=5, plain_cols=()):
     probs = np.zeros((NUM_CLASSES, h, width), np.float32)
     probs[labels, np.arange(h)[:, None], np.arange(width)[None, :]] = 1.0
     ref = np.array([200.0, 128.0, 128.0])
-    prm = replace(preset("sidewalk"), wall_base=0.6).vector()
+    # the dark-gap rule (on in "sidewalk") off: a band at half the facade's lightness would also be a dark gap
+    prm = replace(preset("sidewalk"), wall_base=0.6, wall_dark=0.0).vector()
     K.extend_walls(feat, lab, np.full(width, 5.3), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, width), np.int32))
     return labels
 

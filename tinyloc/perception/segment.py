@@ -198,8 +198,12 @@ class SegmentParams:
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
+    # the dark gap under parked vehicles carried into the object above it (wall_dark 0.5, seventh round,
+    # docs/perception.md); "sidewalk_nogap" is the preset without it, as it was until then
     "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
-                              gap_model="", soil_b=6.0, surface_auto=20.0),
+                              gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5),
+    "sidewalk_nogap": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0,
+                                    crown_model="", gap_model="", soil_b=6.0, surface_auto=20.0),
     # candidate for "sidewalk" (fifth round, docs/perception.md): facades found up to 2 rows above the
     # horizon pixel are carried down to a visible foot, and the per-frame surface margin is 15 (was 20)
     "footway": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
@@ -208,10 +212,6 @@ PRESETS: dict[str, SegmentParams] = {
     # with the base band (wall_base 0.6) and sidewalk's own surface margin (20)
     "frontage": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
                               gap_model="", soil_b=6.0, surface_auto=20.0, wall_reach=2, wall_base=0.6),
-    # candidate (seventh round, docs/perception.md): "sidewalk" with the dark gap under parked vehicles
-    # carried into the object above it (wall_dark 0.5)
-    "parked": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
-                            gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5),
     "park": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=18.0, green0=-0.04,
                           grass_weight=0.7, crown_model="", gap_model=""),
 }
