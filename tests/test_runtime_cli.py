@@ -68,8 +68,12 @@ def test_uncalibrated_accelerometer_is_warned_at_start():
     from tinyloc.runtime.config import load_config
 
     w = uncalibrated_warning(load_config(None, []))
-    assert w is not None and "not calibrated" in w and "tinyloc calibrate imu" in w
-    assert uncalibrated_warning(load_config(None, ["loop.accel_bias_z=0.03"])) is None
+    assert w is not None and "not calibrated" in w and "tinyloc calibrate imu" in w and "calibrate wheel" in w
+    w = uncalibrated_warning(load_config(None, ["loop.accel_bias_z=0.03"]))
+    assert "calibrate wheel" in w and "calibrate imu" not in w
+    w = uncalibrated_warning(load_config(None, ["track.odometry_scale=0.98"]))
+    assert "calibrate imu" in w and "calibrate wheel" not in w
+    assert uncalibrated_warning(load_config(None, ["loop.accel_bias_z=0.03", "track.odometry_scale=0.98"])) is None
     # the demo robot's configuration holds its calibration: no warning
     from tinyloc.sim.demo import demo_paths
 
