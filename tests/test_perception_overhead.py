@@ -401,3 +401,38 @@ def test_trunk_under_a_crown():
     probs, labels = scene(slice(40, 120), BUILDING, foot=85)  # ... nor a wide one
     at_top.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0 and grid.evidence[TREE].sum() == 0
+
+
+def test_low_run_on_the_road():
+    """``low_on_road_as``: a run too low for a house whose foot stands on road or parking (a parked vehicle)
+    takes that class instead of ``low_building_as``; on sidewalk it stays a fence. The wall scene's low wall
+    (top at row 40, under this camera's horizon) stands on road."""
+    cam = _cam()
+    hrow = OverheadProjector(cam, OverheadParams()).horizon(np.eye(3))
+    probs, labels = _wall_scene(cam, 40)
+    grid = OverheadParams().new_grid()
+    out = {}
+    for what in ("", "dynamic", "none", "fence"):
+        p = OverheadParams(building_depth_m=0.0, building_start_m=0.0, low_on_road_as=what)
+        n = OverheadProjector(cam, p).project(probs, labels, np.eye(3), hrow, grid, tilted=False)
+        out[what] = (n, grid.evidence[FENCE].sum(), grid.free.copy(), grid.visible.copy())
+    assert out[""][0] == cam.width and out[""][1] > 0          # off: a fence, as before
+    assert out["fence"][1] == out[""][1]
+    assert out["dynamic"][0] == cam.width and out["dynamic"][1] == 0  # placed, without map evidence ...
+    feet = _expected_cells(OverheadProjector(cam, OverheadParams()), grid, np.arange(cam.width), 0.0)
+    assert np.all(out["dynamic"][2][feet] == 0) and np.all(out["dynamic"][3][feet] == 1)  # ... free cleared there
+    assert out["none"][0] == 0 and out["none"][1] == 0           # not placed at all
+    # the same wall on sidewalk (and on parking) is judged by what it stands on
+    from tinyloc.classes import PARKING
+    for ground, fence in ((SIDEWALK, True), (PARKING, False)):
+        lb = labels.copy()
+        lb[81:] = ground
+        pr = np.zeros_like(probs)
+        pr[BUILDING][lb == BUILDING] = 1.0
+        pr[ground][lb == ground] = 1.0
+        p = OverheadParams(building_depth_m=0.0, building_start_m=0.0, low_on_road_as="dynamic")
+        OverheadProjector(cam, p).project(pr, lb, np.eye(3), hrow, grid, tilted=False)
+        assert (grid.evidence[FENCE].sum() > 0) == fence, ground
+    from tinyloc.errors import InputError
+    with pytest.raises(InputError, match="low_on_road_as"):
+        OverheadParams(low_on_road_as="car")

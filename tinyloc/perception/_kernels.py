@@ -869,6 +869,10 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
       leaves the picture at the top below ``geom[0]`` metres (its height unverified), is placed as class
       ``geom[3]``.
 
+    A building too low that stands on road (the ground pixel under its foot labelled road or parking) is
+    placed as class ``geom[10]`` instead of ``geom[4]`` when ``geom[11]`` > 0 (a vehicle: walls, fences
+    and hedges stand beside the carriageway, not on it).
+
     Returns the number of feet placed.
     """
     nc, h, w = probs.shape
@@ -939,6 +943,8 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                 wide = (b - a + 1) * dh / fx >= min_w
                                 if not tall:
                                     kk = low
+                                    if geom[11] > 0.0 and (labels[i + 1, j] == ROAD or labels[i + 1, j] == PARKING):
+                                        kk = int(geom[10])
                                 elif not wide:
                                     kk = thin
                                 elif tr_w > 0.0 and (b - a + 1) * dh / fx < tr_w and \

@@ -137,6 +137,10 @@ class OverheadParams:
         What a building run too low for a house becomes: "none" (not placed), "fence" (a wall, fence or
         hedge, ``object_depth_m`` deep) or "dynamic" (an obstacle without map evidence: free space is
         cleared, no class evidence).
+    low_on_road_as : str
+        ... when it stands on road or parking (the ground pixel under its foot): "" (as
+        ``low_building_as``), "none", "fence" or "dynamic" (a parked vehicle; walls and hedges stand
+        beside the carriageway).
     min_run_px : int
         A vertical class must cover this many pixels upward from its foot to count (segmentation pixels).
     stack_share, stack_dist, stack_base_m : float
@@ -174,6 +178,7 @@ class OverheadParams:
     min_building_height_m: float = 3.0
     min_building_width_m: float = 0.0
     low_building_as: str = "fence"
+    low_on_road_as: str = ""
     min_run_px: int = 3
     stack_share: float = 0.2
     stack_dist: float = 15.0
@@ -195,6 +200,8 @@ class OverheadParams:
                 raise InputError(f"{name} must be within 0 .. 20 m")
         if self.low_building_as not in ("none", "fence", "dynamic"):
             raise InputError(f"low_building_as must be 'none', 'fence' or 'dynamic', got {self.low_building_as!r}")
+        if self.low_on_road_as not in ("", "none", "fence", "dynamic"):
+            raise InputError(f"low_on_road_as must be '', 'none', 'fence' or 'dynamic', got {self.low_on_road_as!r}")
         if not (math.isfinite(self.stack_share) and 0.0 <= self.stack_share <= 1.0):
             raise InputError("stack_share must be within 0 .. 1")
         if not (math.isfinite(self.stack_dist) and self.stack_dist > 0.0):
@@ -287,10 +294,13 @@ class OverheadProjector:
             if c.vertical:
                 self.depth[c.index] = params.building_depth_m if c.index == BUILDING else params.object_depth_m
         self.start[BUILDING] = params.building_start_m
-        low = {"none": -1, "fence": FENCE, "dynamic": DYNAMIC}[params.low_building_as]
+        lowmap = {"none": -1, "fence": FENCE, "dynamic": DYNAMIC}
+        low = lowmap[params.low_building_as]
         self._geom = np.array([params.min_building_height_m, params.min_building_width_m, cam.fx, TREE, low,
                                params.stack_share, params.stack_dist, params.stack_base_m, params.trunk_width_m,
-                               1.0 if params.trunk_at_top else 0.0],
+                               1.0 if params.trunk_at_top else 0.0,
+                               float(lowmap[params.low_on_road_as or params.low_building_as]),
+                               1.0 if params.low_on_road_as else 0.0],
                               np.float64)
         self._geom_nocolour = self._geom.copy()
         self._geom_nocolour[5] = 0.0  # a label image has no colour: no stacked-object check
