@@ -207,6 +207,13 @@ def segment_reference(bgr, p, hrow=None):
                 robot_on = "road"
             elif med <= ref[0] - p.surface_auto:
                 robot_on = "sidewalk"
+    if p.surface_joints > 0:  # also on the road when the patch under the robot shows no paving joints
+        gxr = np.zeros_like(g01)
+        gyr = np.zeros_like(g01)
+        gxr[:, 1:-1] = np.abs(g01[:, 2:] - g01[:, :-2]) * 0.5
+        gyr[1:-1] = np.abs(g01[2:] - g01[:-2]) * 0.5
+        if np.mean((gxr + gyr)[r0:r1, c0:c1] > 0.02) < p.surface_joints:
+            robot_on = "road"
     model = load_crown_model(p.crown_model)
     if model is None:
         crown = _sig((brightmix - p.crown_bright) / 0.05) * _sig((var - p.crown_var) / p.crown_var_w)

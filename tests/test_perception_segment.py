@@ -88,7 +88,10 @@ CASES = {**{n: preset(n) for n in PRESETS},
          "facades starting above the horizon": replace(preset("sidewalk"), wall_reach=2),
          "facade base bands": replace(preset("sidewalk"), wall_base=0.6),
          "dark gaps under objects": replace(preset("sidewalk"), wall_dark=0.5),
-         "dark gaps and base bands": replace(preset("sidewalk"), wall_dark=0.5, wall_base=0.6, wall_reach=2)}
+         "dark gaps and base bands": replace(preset("sidewalk"), wall_dark=0.5, wall_base=0.6, wall_reach=2),
+         # the paving-joint decision alone (no lightness rule), and a threshold the noise frame's patch passes
+         "paving joints alone": replace(preset("sidewalk"), surface_auto=0.0, surface_joints=0.02),
+         "paving joints, high share": replace(preset("sidewalk"), surface_joints=0.9)}
 
 
 @pytest.mark.parametrize("name", list(CASES))
@@ -199,8 +202,9 @@ def test_soil_rule_hand_worked():
     exgr = float(exg_minus_exr(np.array([[soil]], np.uint8))[0, 0])
     assert abs(exgr - (-60.0 / 330.0)) < 1e-9 and exgr < preset("sidewalk").green0
     img = _ground_frame(paving, side_bgr=soil)
-    on = Segmenter((160, 120), replace(preset("sidewalk"), soil_b=6.0)).run(img, HROW)[1]
-    off = Segmenter((160, 120), replace(preset("sidewalk"), soil_b=0.0)).run(img, HROW)[1]
+    # (the paving-joint decision off: this hand-made paving is smooth and would be taken for asphalt)
+    on = Segmenter((160, 120), replace(preset("sidewalk"), soil_b=6.0, surface_joints=0.0)).run(img, HROW)[1]
+    off = Segmenter((160, 120), replace(preset("sidewalk"), soil_b=0.0, surface_joints=0.0)).run(img, HROW)[1]
     assert np.all(on[75:, 2:38] == GRASS)
     assert not np.any(off[75:, 2:38] == GRASS)
     # the paving itself is untouched (its b* equals the reference's)
@@ -212,7 +216,7 @@ def test_soil_rule_hand_worked():
 def test_surface_decided_per_frame(patch, side, expect):
     """The robot on dark asphalt with lighter paving beside it is on the road (a crossing); on paving with
     darker asphalt beside it, on the sidewalk. The other surface gets the other paved class."""
-    p = replace(preset("sidewalk"), surface_auto=20.0)
+    p = replace(preset("sidewalk"), surface_auto=20.0, surface_joints=0.0)  # the lightness rule alone
     lab = cv2.cvtColor(np.array([[patch, side]], np.uint8), cv2.COLOR_BGR2Lab).astype(float)[0]
     assert abs(lab[1, 0] - lab[0, 0]) > 2 * 20.0  # lightness apart by far more than the margin
     other = {"road": SIDEWALK, "sidewalk": ROAD}[expect]
@@ -227,7 +231,7 @@ def test_surface_decided_per_frame(patch, side, expect):
 
 def test_surface_kept_without_other_paving():
     """Only the robot's own surface in view (or too little of the other): the preset's robot_on stands."""
-    p = replace(preset("sidewalk"), surface_auto=20.0)
+    p = replace(preset("sidewalk"), surface_auto=20.0, surface_joints=0.0)  # the lightness rule alone
     seg = Segmenter((160, 120), p)
     seg.run(_ground_frame((60, 60, 62)), HROW)
     assert seg.surface == "sidewalk"
@@ -238,7 +242,7 @@ def test_surface_kept_without_other_paving():
 @pytest.mark.parametrize("keep, expect", [(False, "sidewalk"), (True, "road")])
 def test_surface_kept_from_previous_frame(keep, expect):
     """With surface_keep, an undecided frame keeps the previous frame's surface instead of robot_on."""
-    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_keep=keep))
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_keep=keep, surface_joints=0.0))
     seg.run(_ground_frame((60, 60, 62), patch_bgr=(60, 60, 62), side_bgr=(140, 145, 150)), HROW)
     assert seg.surface == "road"
     seg.run(_ground_frame((60, 60, 62)), HROW)  # only asphalt in view: undecided
@@ -255,7 +259,7 @@ def test_surface_not_road_when_darker_paving_in_view():
     assert lab[1, 0] - lab[0, 0] > 20.0 and lab[0, 0] - lab[2, 0] > 20.0  # both beyond surface_auto
     img = _ground_frame(shade, patch_bgr=shade, side_bgr=sunlit, side_cols=(0, 60))
     img[70:, 130:] = asphalt  # less of it than of the sunlit paving: the median is the sunlit paving's
-    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0))
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_joints=0.0))
     seg.run(img, HROW)
     assert seg.surface == "road"  # the known failure without the guard
     n = int(seg.hist[0].sum())
@@ -263,11 +267,11 @@ def test_surface_not_road_when_darker_paving_in_view():
     assert 0 < dark < n / 2
     share = dark / n
     for lim, expect in ((share - 0.01, "sidewalk"), (share + 0.01, "road")):
-        seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_dark=lim))
+        seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_dark=lim, surface_joints=0.0))
         seg.run(img, HROW)
         assert seg.surface == expect, (lim, share)
     # the robot truly on asphalt (nothing darker in view) is still on the road with the guard
-    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_dark=0.05))
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_dark=0.05, surface_joints=0.0))
     seg.run(_ground_frame(asphalt, patch_bgr=asphalt, side_bgr=sunlit), HROW)
     assert seg.surface == "road"
 
@@ -612,3 +616,58 @@ def test_wall_dark_on_a_rendered_vehicle():
         SegmentParams(wall_dark=1.0)
     with pytest.raises(InputError, match="wall_dark"):
         SegmentParams(wall_dark=-0.1)
+
+
+def test_patch_edge_share_hand_worked():
+    """The kernel counts the patch pixels whose |dI/dx| + |dI/dy| exceeds the threshold (strictly)."""
+    from tinyloc.perception import _kernels as K
+
+    feat = np.zeros((K.NF, 4, 5), np.float32)
+    feat[K.F_GX, 1, 1], feat[K.F_GY, 1, 1] = 0.015, 0.01   # 0.025 > 0.02
+    feat[K.F_GX, 2, 3] = 0.02                               # exactly 0.02: not above
+    feat[K.F_GY, 3, 4] = 0.5                                # outside the patch
+    assert K.patch_edge_share(feat, 0, 3, 0, 4, 0.02) == pytest.approx(1 / 12)
+    assert K.patch_edge_share(feat, 0, 3, 0, 4, 0.019) == pytest.approx(2 / 12)
+    assert K.patch_edge_share(feat, 0, 4, 0, 5, 0.019) == pytest.approx(3 / 20)
+    assert K.patch_edge_share(feat, 2, 2, 0, 5, 0.01) == 0.0   # an empty patch
+
+
+def _paved_frame(patch_joints: bool, patch_bgr=(150, 150, 152)):
+    """160 x 120: brick-red wall above row 50, uniform ground below; the robot's patch (rows 95.., columns
+    50-110) in ``patch_bgr``, with dark joint lines every 8 pixels across and along when ``patch_joints``."""
+    img = np.zeros((120, 160, 3), np.uint8)
+    img[:50] = (50, 60, 150)
+    img[50:] = patch_bgr
+    if patch_joints:
+        img[96::8, 50:110] = (110, 110, 112)
+        img[95:, 52:110:8] = (110, 110, 112)
+    return img
+
+
+@pytest.mark.parametrize("joints, expect", [(True, "sidewalk"), (False, "road")])
+def test_surface_by_paving_joints(joints, expect):
+    """Paving slabs under the robot show joint lines (grey steps of 40 / 255 across two pixels: |dI/dx| about
+    0.078 > 0.02 at every joint's neighbours); smooth asphalt shows none: the robot is on the road. Lightness is
+    the same for both (the other paved ground is the patch's colour: the lightness rule stays undecided)."""
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_joints=0.02))
+    seg.run(_paved_frame(joints), HROW)
+    assert seg.surface == expect
+    # the share of joint pixels in the patch (rows 102-119, columns 56-103 of the 160 x 120 raster) is far from
+    # the threshold either way
+    from tinyloc.perception import _kernels as K
+
+    r0, r1, c0, c1 = seg._patch
+    share = K.patch_edge_share(seg.feat, r0, r1, c0, c1, K.JOINT_EDGE)
+    assert (share > 0.2) if joints else (share == 0.0)
+    # off: the preset's robot_on stands whatever the patch shows
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_joints=0.0))
+    seg.run(_paved_frame(False), HROW)
+    assert seg.surface == "sidewalk"
+    # the joints only add "road": a frame the lightness rule calls road stays road with joints under the robot
+    seg = Segmenter((160, 120), replace(preset("sidewalk"), surface_auto=20.0, surface_joints=0.02))
+    img = _ground_frame((60, 60, 62), patch_bgr=(60, 60, 62), side_bgr=(140, 145, 150))
+    img[96::8, 50:110] = (20, 20, 22)
+    seg.run(img, HROW)
+    assert seg.surface == "road"
+    with pytest.raises(InputError, match="surface_joints"):
+        SegmentParams(surface_joints=1.0)

@@ -126,6 +126,8 @@ class SegmentParams:
     surface_share: float = 0.02  # ... and only when they cover this share of the raster
     surface_keep: bool = False  # ... otherwise keep the previous frame's decision (False: fall back to robot_on)
     surface_dark: float = 0.0  # ... but not "road" when this share of those pixels is clearly darker (0: off)
+    surface_joints: float = 0.0  # the robot is also on the road when less than this share of the patch under
+    #                              it shows paving joints (0: off; seventh round)
 
     def __post_init__(self):
         if not 32 <= int(self.width) <= 1024:
@@ -155,6 +157,8 @@ class SegmentParams:
             raise InputError("gap_near must be within 0 .. 1")
         if not (self.soil_b >= 0.0 and self.soil_w > 0.0 and self.surface_auto >= 0.0):
             raise InputError("soil_b and surface_auto must be >= 0 and soil_w > 0")
+        if not 0.0 <= self.surface_joints < 1.0:
+            raise InputError(f"surface_joints must be within 0 .. 1 (a share of the patch), got {self.surface_joints}")
         if not 0.0 <= self.surface_dark <= 1.0:
             raise InputError("surface_dark must be within 0 .. 1")
         if not (-1.0 <= self.surface_u <= 0.0 and 0.0 <= self.surface_share <= 1.0):
@@ -198,10 +202,14 @@ class SegmentParams:
 #: expects more vegetation (not tuned on data).
 PRESETS: dict[str, SegmentParams] = {
     "street": SegmentParams(),
-    # the dark gap under parked vehicles carried into the object above it (wall_dark 0.5, seventh round,
-    # docs/perception.md); "sidewalk_nogap" is the preset without it, as it was until then
+    # the dark gap under parked vehicles carried into the object above it (wall_dark 0.5) and the robot on
+    # the road also when no paving joints show under it (surface_joints 0.02; seventh round,
+    # docs/perception.md); "sidewalk_nojoints" is the set without the joints (c97f383), "sidewalk_nogap" the
+    # set without either, as it was until then
     "sidewalk": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
-                              gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5),
+                              gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5, surface_joints=0.02),
+    "sidewalk_nojoints": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0,
+                                       crown_model="", gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5),
     "sidewalk_nogap": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0,
                                     crown_model="", gap_model="", soil_b=6.0, surface_auto=20.0),
     # candidate for "sidewalk" (fifth round, docs/perception.md): facades found up to 2 rows above the
@@ -345,6 +353,8 @@ class Segmenter:
         K.patch_median_lab(self.lab, r0, r1, c0, c1, self.hist, self.ref)
         if p.surface_auto > 0.0:
             self._decide_surface()
+        if p.surface_joints > 0.0:
+            self._decide_surface_by_joints()
         if self.crown_model is not None:
             self.crown_features(self.small if (w, h) == self.frame_size else bgr)
             self._crown_prob()
@@ -361,6 +371,19 @@ class Segmenter:
             K.sky_gaps(self.tfeat, self.gextra, self._gw, self._gb, self._gz, p.gap_near, self.probs, self.labels)
         K.thin_and_low(self.feat, hrow, self._prm, self.probs, self.labels, self.cand)
         return self.probs, self.labels
+
+    def _decide_surface_by_joints(self) -> None:
+        """The robot is on the road also when the patch under it shows no paving joints: fewer than
+        ``surface_joints`` of its pixels with an edge above ``_kernels.JOINT_EDGE`` (asphalt shows none,
+        slabs show their joints). Lightness misses it where a lit carriageway is as light as the footway
+        (docs/perception.md, "Seventh round"); a footway of asphalt is taken for road. Runs after the
+        lightness decision (``surface_auto``), or alone on the preset's ``robot_on``."""
+        r0, r1, c0, c1 = self._patch
+        share = K.patch_edge_share(self.feat, r0, r1, c0, c1, K.JOINT_EDGE)
+        p = self.params
+        on_road = share < p.surface_joints or (self.surface if p.surface_auto > 0.0 else p.robot_on) == "road"
+        self._prm[K.P_ON_ROAD] = 1.0 if on_road else 0.0
+        self.surface = "road" if on_road else "sidewalk"
 
     def _decide_surface(self) -> None:
         """Which paved surface is under the robot, for this frame: asphalt is the darker one. When the other
