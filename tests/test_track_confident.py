@@ -23,8 +23,8 @@ def _est(sigma_m):
     return FilterEstimate(10.0, 20.0, 0.0, cov, [], 0.9, sigma_m, 0.01)
 
 
-def _tracker(**kw):
-    return Tracker(GEOM, TrackParams(window_cells=32, headings=64, course_span_m=0.0, **kw))
+def _tracker(headings=64, **kw):
+    return Tracker(GEOM, TrackParams(window_cells=32, headings=headings, course_span_m=0.0, **kw))
 
 
 @pytest.mark.parametrize("sigma_m, confident, want", [
@@ -90,12 +90,13 @@ def _est_heading(sigma_deg, sigma_m=0.4):
 
 @pytest.mark.parametrize("sigma_deg, confident, want", [
     (2.1, 0.0, "tracking"),    # off: only track_sigma_deg (4.0) counts
+    (2.1, None, "degraded"),   # the default (1.6)
     (2.1, 1.6, "degraded"),    # a 2.1 deg heading cannot promise a pose within 3 deg
     (1.6, 1.6, "tracking"),    # at the threshold: still tracking (the test is "above")
     (1.3, 1.6, "tracking"),
 ])
 def test_heading_spread_while_tracking_by_hand(sigma_deg, confident, want):
-    tr = _tracker(confident_sigma_deg=confident)
+    tr = _tracker(256) if confident is None else _tracker(256, confident_sigma_deg=confident)
     tr.state, tr.started = "tracking", True
     notes = []
     tr._decide(_est_heading(sigma_deg), notes)
@@ -105,14 +106,14 @@ def test_heading_spread_while_tracking_by_hand(sigma_deg, confident, want):
 
 
 def test_lock_on_with_a_broad_heading_is_degraded_and_either_spread_counts():
-    tr = _tracker(confident_sigma_deg=1.6)
+    tr = _tracker(256, confident_sigma_deg=1.6)
     tr.state, tr.started = "searching", True
     for _ in range(3):
         notes = []
         tr._decide(_est_heading(2.5), notes)
     assert tr.state == "degraded" and "locked on" in notes and "degraded: heading spread 2.5 deg" in notes
     # with both checks on, a broad position is named first
-    tr = _tracker(confident_sigma_m=0.85, confident_sigma_deg=1.6)
+    tr = _tracker(256, confident_sigma_m=0.85, confident_sigma_deg=1.6)
     tr.state, tr.started = "tracking", True
     notes = []
     tr._decide(_est_heading(2.5, sigma_m=0.95), notes)
@@ -123,3 +124,17 @@ def test_lock_on_with_a_broad_heading_is_degraded_and_either_spread_counts():
 def test_bad_heading_values_are_rejected_with_the_key_named(bad):
     with pytest.raises(InputError, match="track.confident_sigma_deg"):
         TrackParams(confident_sigma_deg=bad)
+
+
+@pytest.mark.parametrize("headings, sigma_deg, want", [
+    (256, 2.0, "degraded"),   # 1.1 layers = 1.55 deg: the 1.6 deg threshold holds
+    (256, 1.58, "tracking"),
+    (128, 2.0, "tracking"),   # 1.1 layers = 3.09 deg: a right heading on this lattice spreads 2.1-2.4 deg
+    (128, 3.2, "degraded"),
+])
+def test_heading_threshold_never_below_the_lattice(headings, sigma_deg, want):
+    tr = _tracker(headings, confident_sigma_deg=1.6)
+    tr.state, tr.started = "tracking", True
+    notes = []
+    tr._decide(_est_heading(sigma_deg), notes)
+    assert tr.state == want
