@@ -1271,17 +1271,23 @@ class Tracker:
         self.catchup.reset()  # the restart moves the belief; that is not the map pulling it
         notes.append(f"lost: {why}")
 
-    def _spread(self, est: FilterEstimate) -> str:
-        """Why the posterior is too broad to promise a pose within spec ("" when it is not)."""
+    def _spread(self, est: FilterEstimate) -> int:
+        """Whether the posterior is too broad to promise a pose within spec: 0 no, 1 position, 2 heading."""
         p = self.p
         if 0.0 < p.confident_sigma_m < est.sigma_xy_m:
-            return f"position spread {est.sigma_xy_m:.2f} m"
+            return 1
         # a posterior is rarely narrower than its heading lattice: never ask for less than 1.1 layers
         # (1.55 deg at 256 headings, below the default; with 128 a right heading carries 2.1-2.4 deg)
         if p.confident_sigma_deg > 0.0 and math.degrees(est.sigma_yaw_rad) > max(
                 p.confident_sigma_deg, 1.1 * math.degrees(self.filter.dyaw)):
-            return f"heading spread {math.degrees(est.sigma_yaw_rad):.1f} deg"
-        return ""
+            return 2
+        return 0
+
+    @staticmethod
+    def _spread_note(kind: int, est: FilterEstimate) -> str:
+        if kind == 1:
+            return f"position spread {est.sigma_xy_m:.2f} m"
+        return f"heading spread {math.degrees(est.sigma_yaw_rad):.1f} deg"
 
     def _decide(self, est: FilterEstimate, notes) -> None:
         p = self.p
@@ -1292,10 +1298,10 @@ class Tracker:
             if self._converge >= p.converge_frames:
                 self.counters["recovered"] += 1
                 notes.append("locked on")
-                why = self._spread(est)
-                if why:
+                kind = self._spread(est)
+                if kind:
                     self.state = "degraded"
-                    notes.append(f"degraded: {why}")
+                    notes.append(f"degraded: {self._spread_note(kind, est)}")
                 else:
                     self.state = "tracking"
             return
@@ -1319,10 +1325,10 @@ class Tracker:
         off = math.hypot(self._off_e, self._off_n)
         offset = p.gnss.offset_degrade_m > 0 and off > p.gnss.offset_degrade_m  # NaN (no fix yet) is False
         # a broad posterior along the street is often a neighbour mode the frames cannot yet tell apart
-        why_spread = self._spread(est)
-        spread = bool(why_spread)
+        kind = self._spread(est)
+        spread = kind != 0
         # a heading spread says nothing about the distance driven
-        head_only = spread and not why_spread.startswith("position")
+        head_only = kind == 2
         # a belief the map keeps pulling against the odometry has not settled, however tight it is
         catching = 0.0 < p.catchup_m < self.catchup.drift_m
         other = (not ok_sigma or self._no_update >= p.degraded_frames
@@ -1336,7 +1342,7 @@ class Tracker:
         if degraded:
             if self.state != "degraded":
                 why = ("uncertainty grew" if not ok_sigma else
-                       why_spread if spread else
+                       self._spread_note(kind, est) if spread else
                        f"catching up {self.catchup.drift_m:.2f} m" if catching else
                        "no usable frames" if self._no_update >= p.degraded_frames else
                        "ambiguous" if self._ambig is not None else
