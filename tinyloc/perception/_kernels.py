@@ -456,10 +456,7 @@ def _base_band(feat, lab, labels, is_ground, ref, refl, refd, dmax, green0, soil
         return e
     # thin enough to be a wall's base: top depth >= (1 - base) x bottom depth (boundaries at half rows),
     # read only where the depths are large enough to give that ratio to about +-0.08
-    top = e - 0.5 - hr
-    if top < BAND_MIN_DEPTH or top < (1.0 - base) * (b - 0.5 - hr):
-        return e
-    return b
+    return b if _thin_band(e, b, hr, BAND_MIN_DEPTH, base) else e
 
 
 @njit(**JIT)
@@ -481,10 +478,16 @@ def _dark_gap(lab, labels, is_ground, hr, c0, dark, j, e):
     for q in range(b, b + 2):
         if labels[q, j] == BUILDING or not is_ground[labels[q, j]] or lab[q, j, 0] < mean + DARK_STEP:
             return e
+    return b if _thin_band(e, b, hr, DARK_MIN_DEPTH, DARK_MAX_SHARE) else e
+
+
+@njit(**JIT)
+def _thin_band(e, b, hr, min_depth, share):
+    """Rows e..b-1 below the horizon row hr are thin enough to be an object's base: the depth below the
+    horizon at their top (boundaries at half rows) is at least ``min_depth`` rows and at least (1 - share) of
+    the depth at their bottom."""
     top = e - 0.5 - hr
-    if top < DARK_MIN_DEPTH or top < (1.0 - DARK_MAX_SHARE) * (b - 0.5 - hr):
-        return e
-    return b
+    return top >= min_depth and top >= (1.0 - share) * (b - 0.5 - hr)
 
 
 @njit(**JIT)
