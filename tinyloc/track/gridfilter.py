@@ -1285,6 +1285,7 @@ class Tracker:
 
     @staticmethod
     def _spread_note(kind: int, est: FilterEstimate) -> str:
+        """The flag's note for a spread of ``kind`` (1 position, 2 heading)."""
         if kind == 1:
             return f"position spread {est.sigma_xy_m:.2f} m"
         return f"heading spread {math.degrees(est.sigma_yaw_rad):.1f} deg"
@@ -1326,14 +1327,13 @@ class Tracker:
         offset = p.gnss.offset_degrade_m > 0 and off > p.gnss.offset_degrade_m  # NaN (no fix yet) is False
         # a broad posterior along the street is often a neighbour mode the frames cannot yet tell apart
         kind = self._spread(est)
-        spread = kind != 0
         # a heading spread says nothing about the distance driven
         head_only = kind == 2
         # a belief the map keeps pulling against the odometry has not settled, however tight it is
         catching = 0.0 < p.catchup_m < self.catchup.drift_m
         other = (not ok_sigma or self._no_update >= p.degraded_frames
                  or self._gnss_disagree_s >= p.gnss.disagree_s or self._ambig is not None or offset
-                 or (spread and not head_only))
+                 or kind == 1)
         degraded = other or catching or head_only
         # the catch-up and heading checks change only the flag: the wheel scale learns on those frames as before
         # (with the learning stopped there too, tuning drive 16 started learning 6 s later and its median rose
@@ -1342,7 +1342,7 @@ class Tracker:
         if degraded:
             if self.state != "degraded":
                 why = ("uncertainty grew" if not ok_sigma else
-                       self._spread_note(kind, est) if spread else
+                       self._spread_note(kind, est) if kind else
                        f"catching up {self.catchup.drift_m:.2f} m" if catching else
                        "no usable frames" if self._no_update >= p.degraded_frames else
                        "ambiguous" if self._ambig is not None else
