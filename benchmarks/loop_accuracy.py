@@ -154,19 +154,10 @@ def _imu_cal(run: Path) -> list[str]:
 
 def _wheel_cal(run: Path) -> list[str]:
     """Loop override with the wheel factor from the run's straight-line drives (made if missing)."""
-    from dataclasses import fields
-
     from tinyloc.camera.wheel_line import calibrate_from_files
-    from tinyloc.sim.runs import WHEEL_LINE_FILES, WHEEL_LINE_M, write_wheel_line
-    from tinyloc.sim.sensors import OdometryParams
+    from tinyloc.sim.runs import WHEEL_LINE_M, ensure_wheel_line
 
-    paths = [run / rel for rel in WHEEL_LINE_FILES]
-    if not all(p.is_file() for p in paths):
-        sim = json.loads((run / "run.json").read_text())["simulated"]
-        names = {f.name for f in fields(OdometryParams)}
-        write_wheel_line(run, int(sim["seed"]),
-                         OdometryParams(**{k: v for k, v in sim["odometry"].items() if k in names}))
-    return [f"track.odometry_scale={calibrate_from_files(paths, WHEEL_LINE_M).factor!r}"]
+    return [f"track.odometry_scale={calibrate_from_files(ensure_wheel_line(run), WHEEL_LINE_M).factor!r}"]
 
 
 def main(argv=None) -> int:

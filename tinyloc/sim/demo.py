@@ -82,17 +82,12 @@ def write_demo_config(data_dir) -> Path:
     from ..camera.imu_rest import calibrate_from_files
     from ..camera.wheel_line import calibrate_from_files as wheel_from_files
     from ..tomlio import write_toml
-    from .runs import IMU_REST_FILES, WHEEL_LINE_FILES, WHEEL_LINE_M, write_wheel_line
-    from .sensors import OdometryParams
+    from .runs import IMU_REST_FILES, WHEEL_LINE_M, ensure_wheel_line
 
     data_dir = Path(data_dir)
     run = data_dir / "run"
     bias = calibrate_from_files(*(run / rel for rel in IMU_REST_FILES)).bias
-    lines = [run / rel for rel in WHEEL_LINE_FILES]
-    if not all(p.is_file() for p in lines):
-        sim = json.loads((run / "run.json").read_text(encoding="utf-8"))["simulated"]
-        write_wheel_line(run, int(sim["seed"]), OdometryParams(**sim["odometry"]))
-    factor = wheel_from_files(lines, WHEEL_LINE_M).factor
+    factor = wheel_from_files(ensure_wheel_line(run), WHEEL_LINE_M).factor
     out = data_dir / "loop.toml"
     write_toml(out, {"loop": {f"accel_bias_{ax}": round(float(v), 5) for ax, v in zip("xyz", bias)},
                      "track": {"odometry_scale": round(float(factor), 5)}},

@@ -9,9 +9,10 @@ change the route.
 
 from __future__ import annotations
 
+import json
 import math
 import sys
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 
 import numpy as np
@@ -214,6 +215,20 @@ def write_wheel_line(run_dir, seed: int, odometry: OdometryParams = OdometryPara
             for k in range(len(t)):
                 fh.write(f"{t[k]:.3f},{pose[k, 0]:.4f},{pose[k, 1]:.4f},{pose[k, 2]:.5f}\n")
         paths.append(p)
+    return paths
+
+
+def ensure_wheel_line(run_dir) -> list[Path]:
+    """The run's straight-line drives (``WHEEL_LINE_FILES``), written first when the run predates them.
+
+    They are made from the run's own seed and wheel model as recorded in run.json (``simulated``).
+    """
+    paths = [Path(run_dir) / rel for rel in WHEEL_LINE_FILES]
+    if not all(p.is_file() for p in paths):
+        sim = json.loads((Path(run_dir) / "run.json").read_text(encoding="utf-8"))["simulated"]
+        names = {f.name for f in fields(OdometryParams)}
+        write_wheel_line(run_dir, int(sim["seed"]),
+                         OdometryParams(**{k: v for k, v in sim["odometry"].items() if k in names}))
     return paths
 
 
