@@ -277,3 +277,29 @@ def test_tracking_range_cut_matches_a_per_cell_reference():
             assert np.array_equal(bev.evidence[:, i, j], ref[0][:, i, j] if inside else np.zeros(bev.evidence.shape[0]))
             assert bev.free[i, j] == (ref[1][i, j] if inside else 0.0)
     assert 0 < int(bev.visible.sum()) < 40 * 30
+
+
+def test_building_taper_matches_a_per_cell_reference():
+    """loop.building_taper_m: only the building evidence is weighed, by 1 / (1 + (r / r0)^4) (per-cell loop as reference)."""
+    from types import SimpleNamespace
+
+    from tinyloc.perception.overhead import BevGrid
+    from tinyloc.runtime._adapters import CorrelatorAdapter
+
+    rng = np.random.default_rng(7)
+    bev = BevGrid.empty(40, 30, res_m=0.5, origin_row=20.0, origin_col=3.0)
+    bev.evidence[...] = rng.random(bev.evidence.shape)
+    bev.free[...] = rng.random(bev.free.shape)
+    bev.visible[...] = 1.0
+    ref = (bev.evidence.copy(), bev.free.copy())
+    holder = SimpleNamespace(building_taper_m=4.0, _taper=None)
+    CorrelatorAdapter._taper_buildings(holder, bev)
+    for i in range(40):
+        for j in range(30):
+            r = math.hypot(i + 0.5 - 20.0, j + 0.5 - 3.0) * 0.5
+            w = 1.0 / (1.0 + (r / 4.0) ** 4)
+            assert abs(bev.evidence[0, i, j] - w * ref[0][0, i, j]) < 1e-6
+    assert np.array_equal(bev.evidence[1:], ref[0][1:]) and np.array_equal(bev.free, ref[1])
+    assert np.all(bev.visible == 1.0)
+    # the cell centred 0.25 m across and 3.75 m along: 1 / (1 + (3.758 / 4)^4) = 0.562 (by hand)
+    assert abs(holder._taper[20, 10] - 0.562) < 1e-3

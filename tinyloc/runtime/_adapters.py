@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 
-from ..classes import NUM_MAP_CLASSES
+from ..classes import BUILDING, NUM_MAP_CLASSES
 from ..track.gridfilter import GlobalEvidence, LikelihoodVolume
 
 
@@ -100,6 +100,8 @@ class CorrelatorAdapter:
         rng = float(getattr(cfg.loop, "bev_range_m", 0.0))
         self.track_range_m = rng if (rng > 0.0 and getattr(cfg.loop, "search_full_range", False)) else 0.0
         self._range_mask = None
+        self.building_taper_m = float(getattr(cfg.loop, "building_taper_m", 0.0))
+        self._taper = None
         # track.cue_cov: a second tracking correlation with the cue family's features alone (docs/tracking.md)
         self.cue_corr = None
         tp = getattr(cfg, "track", None)
@@ -177,10 +179,23 @@ class CorrelatorAdapter:
         np.multiply(bev.free, m, out=bev.free)
         np.multiply(bev.visible, m, out=bev.visible)
 
+    def _taper_buildings(self, bev) -> None:
+        """Weigh the building evidence by 1 / (1 + (r / building_taper_m)^4) (in place; the weights are made once)."""
+        w = self._taper
+        if w is None or w.shape != bev.visible.shape:
+            h, wd = bev.visible.shape
+            i = (np.arange(h) + 0.5 - float(bev.origin_row))[:, None]
+            j = (np.arange(wd) + 0.5 - float(bev.origin_col))[None, :]
+            r = np.hypot(i, j) * float(bev.res_m)
+            w = self._taper = (1.0 / (1.0 + (r / self.building_taper_m) ** 4)).astype(np.float32)
+        np.multiply(bev.evidence[BUILDING], w, out=bev.evidence[BUILDING])
+
     def track(self, bev, x, y, yaw):
         """Full-resolution volume over the tracking box around (x, y, yaw), or None (see status)."""
         if self.track_range_m > 0.0:
             self._cut_range(bev)
+        if self.building_taper_m > 0.0:
+            self._taper_buildings(bev)
         moved = self._ensure(x, y, self.margin)
         r, c = self.geom.cell_of(x, y)
         a = int(round((yaw if math.isfinite(yaw) else 0.0) / self.dyaw)) % self.A

@@ -98,6 +98,11 @@ class LoopParams:
     search_full_range : bool
         Project as far as the projector can and cut the grid at ``bev_range_m`` only for the
         tracking-mode match, so global searches still see the far field [False].
+    building_taper_m : float
+        Weigh the building evidence of the tracking-mode match by 1 / (1 + (r / building_taper_m)^4), r a
+        cell's distance from the robot (m): a facade foot found a pixel off moves by r^2 / focal x height,
+        and on a tuning drive far facades pulled the heading 2.5 deg off (docs/tracking.md, "Building
+        taper"). 0 leaves it off [0.0].
     """
 
     realtime: bool = False
@@ -117,6 +122,7 @@ class LoopParams:
     accel_bias_z: float = 0.0
     bev_range_m: float = 13.5
     search_full_range: bool = False
+    building_taper_m: float = 0.0
 
     def __post_init__(self):
         from ..perception.segment import PRESETS
@@ -130,6 +136,8 @@ class LoopParams:
             raise InputError(f"loop.gravity_window_s = {self.gravity_window_s}: must be within 0 .. 5 s")
         if not (0.0 <= self.bev_range_m <= 1000.0):
             raise InputError(f"loop.bev_range_m = {self.bev_range_m}: must be within 0 .. 1000 m (0: the projector's)")
+        if not (0.0 <= self.building_taper_m <= 1000.0):
+            raise InputError(f"loop.building_taper_m = {self.building_taper_m}: must be within 0 .. 1000 m (0: off)")
 
 
 @dataclass(frozen=True)
