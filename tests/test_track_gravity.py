@@ -255,19 +255,25 @@ def test_two_position_bias_on_a_slope_against_the_simulated_accelerometer():
     assert abs(r_deg - math.degrees(roll[100])) < 0.05 and abs(p_deg - math.degrees(pitch[100])) < 0.05
 
 
-def test_tracking_range_cut_matches_a_per_cell_reference():
-    """loop.search_full_range: the grid is cut at bev_range_m before the tracking match (per-cell loop as reference)."""
-    from types import SimpleNamespace
-
+def _random_bev(seed):
+    """A 40 x 30 grid (0.5 m cells, robot at row 20, column 3) of random evidence, all visible, and copies."""
     from tinyloc.perception.overhead import BevGrid
-    from tinyloc.runtime._adapters import CorrelatorAdapter
 
-    rng = np.random.default_rng(5)
+    rng = np.random.default_rng(seed)
     bev = BevGrid.empty(40, 30, res_m=0.5, origin_row=20.0, origin_col=3.0)
     bev.evidence[...] = rng.random(bev.evidence.shape)
     bev.free[...] = rng.random(bev.free.shape)
     bev.visible[...] = 1.0
-    ref = (bev.evidence.copy(), bev.free.copy())
+    return bev, (bev.evidence.copy(), bev.free.copy())
+
+
+def test_tracking_range_cut_matches_a_per_cell_reference():
+    """loop.search_full_range: the grid is cut at bev_range_m before the tracking match (per-cell loop as reference)."""
+    from types import SimpleNamespace
+
+    from tinyloc.runtime._adapters import CorrelatorAdapter
+
+    bev, ref = _random_bev(5)
     holder = SimpleNamespace(track_range_m=6.0, _range_mask=None)
     CorrelatorAdapter._cut_range(holder, bev)
     for i in range(40):
@@ -283,15 +289,9 @@ def test_building_taper_matches_a_per_cell_reference():
     """loop.building_taper_m: only the building evidence is weighed, by 1 / (1 + (r / r0)^4) (per-cell loop as reference)."""
     from types import SimpleNamespace
 
-    from tinyloc.perception.overhead import BevGrid
     from tinyloc.runtime._adapters import CorrelatorAdapter
 
-    rng = np.random.default_rng(7)
-    bev = BevGrid.empty(40, 30, res_m=0.5, origin_row=20.0, origin_col=3.0)
-    bev.evidence[...] = rng.random(bev.evidence.shape)
-    bev.free[...] = rng.random(bev.free.shape)
-    bev.visible[...] = 1.0
-    ref = (bev.evidence.copy(), bev.free.copy())
+    bev, ref = _random_bev(7)
     holder = SimpleNamespace(building_taper_m=4.0, _taper=None)
     CorrelatorAdapter._taper_buildings(holder, bev)
     for i in range(40):

@@ -171,10 +171,7 @@ class CorrelatorAdapter:
         """Zero the grid beyond ``track_range_m`` from the robot (in place; the mask is made once)."""
         m = self._range_mask
         if m is None or m.shape != bev.visible.shape:
-            h, w = bev.visible.shape
-            i = (np.arange(h) + 0.5 - float(bev.origin_row))[:, None]
-            j = (np.arange(w) + 0.5 - float(bev.origin_col))[None, :]
-            m = self._range_mask = (np.hypot(i, j) * float(bev.res_m) <= self.track_range_m).astype(np.float32)
+            m = self._range_mask = (cell_range_m(bev) <= self.track_range_m).astype(np.float32)
         np.multiply(bev.evidence, m, out=bev.evidence)
         np.multiply(bev.free, m, out=bev.free)
         np.multiply(bev.visible, m, out=bev.visible)
@@ -183,11 +180,7 @@ class CorrelatorAdapter:
         """Weigh the building evidence by 1 / (1 + (r / building_taper_m)^4) (in place; the weights are made once)."""
         w = self._taper
         if w is None or w.shape != bev.visible.shape:
-            h, wd = bev.visible.shape
-            i = (np.arange(h) + 0.5 - float(bev.origin_row))[:, None]
-            j = (np.arange(wd) + 0.5 - float(bev.origin_col))[None, :]
-            r = np.hypot(i, j) * float(bev.res_m)
-            w = self._taper = (1.0 / (1.0 + (r / self.building_taper_m) ** 4)).astype(np.float32)
+            w = self._taper = (1.0 / (1.0 + (cell_range_m(bev) / self.building_taper_m) ** 4)).astype(np.float32)
         np.multiply(bev.evidence[BUILDING], w, out=bev.evidence[BUILDING])
 
     def track(self, bev, x, y, yaw):
@@ -216,6 +209,14 @@ class CorrelatorAdapter:
                                        cr.a0 * cs * self.dyaw, cs * self.dyaw, cs)
         return LikelihoodVolume(res.volume, self.wrow0 + s * res.row0, self.wcol0 + s * res.col0,
                                 res.a0 * s * self.dyaw, s * self.dyaw, s, cue)
+
+
+def cell_range_m(bev) -> np.ndarray:
+    """Horizontal distance of every cell centre of a bird's-eye grid from the robot (m, float64, the grid's shape)."""
+    h, w = bev.visible.shape
+    i = (np.arange(h) + 0.5 - float(bev.origin_row))[:, None]
+    j = (np.arange(w) + 0.5 - float(bev.origin_col))[None, :]
+    return np.hypot(i, j) * float(bev.res_m)
 
 
 def cue_model(model, names: str):
