@@ -267,6 +267,13 @@ def _random_bev(seed):
     return bev, (bev.evidence.copy(), bev.free.copy())
 
 
+def _cells():
+    """Every cell (i, j) of that grid with its centre's distance from the robot, worked cell by cell (m)."""
+    for i in range(40):
+        for j in range(30):
+            yield i, j, math.hypot(i + 0.5 - 20.0, j + 0.5 - 3.0) * 0.5
+
+
 def test_tracking_range_cut_matches_a_per_cell_reference():
     """loop.search_full_range: the grid is cut at bev_range_m before the tracking match (per-cell loop as reference)."""
     from types import SimpleNamespace
@@ -276,12 +283,11 @@ def test_tracking_range_cut_matches_a_per_cell_reference():
     bev, ref = _random_bev(5)
     holder = SimpleNamespace(track_range_m=6.0, _range_mask=None)
     CorrelatorAdapter._cut_range(holder, bev)
-    for i in range(40):
-        for j in range(30):
-            inside = math.hypot(i + 0.5 - 20.0, j + 0.5 - 3.0) * 0.5 <= 6.0
-            assert bev.visible[i, j] == (1.0 if inside else 0.0)
-            assert np.array_equal(bev.evidence[:, i, j], ref[0][:, i, j] if inside else np.zeros(bev.evidence.shape[0]))
-            assert bev.free[i, j] == (ref[1][i, j] if inside else 0.0)
+    for i, j, r in _cells():
+        inside = r <= 6.0
+        assert bev.visible[i, j] == (1.0 if inside else 0.0)
+        assert np.array_equal(bev.evidence[:, i, j], ref[0][:, i, j] if inside else np.zeros(bev.evidence.shape[0]))
+        assert bev.free[i, j] == (ref[1][i, j] if inside else 0.0)
     assert 0 < int(bev.visible.sum()) < 40 * 30
 
 
@@ -294,11 +300,9 @@ def test_building_taper_matches_a_per_cell_reference():
     bev, ref = _random_bev(7)
     holder = SimpleNamespace(building_taper_m=4.0, _taper=None)
     CorrelatorAdapter._taper_buildings(holder, bev)
-    for i in range(40):
-        for j in range(30):
-            r = math.hypot(i + 0.5 - 20.0, j + 0.5 - 3.0) * 0.5
-            w = 1.0 / (1.0 + (r / 4.0) ** 4)
-            assert abs(bev.evidence[0, i, j] - w * ref[0][0, i, j]) < 1e-6
+    for i, j, r in _cells():
+        w = 1.0 / (1.0 + (r / 4.0) ** 4)
+        assert abs(bev.evidence[0, i, j] - w * ref[0][0, i, j]) < 1e-6
     assert np.array_equal(bev.evidence[1:], ref[0][1:]) and np.array_equal(bev.free, ref[1])
     assert np.all(bev.visible == 1.0)
     # the cell centred 0.25 m across and 3.75 m along: 1 / (1 + (3.758 / 4)^4) = 0.562 (by hand)
