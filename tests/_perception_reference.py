@@ -246,6 +246,11 @@ def segment_reference(bgr, p, hrow=None):
         sc[BUILDING] = (1 - below) * p.building_weight * (1 - crown)
         sc[TREE] = (1 - below) * p.building_weight * crown / odds + below * green * p.tree_weight * (1 - p.tree_low)
     labels = sc.argmax(axis=0).astype(np.uint8)
+    if p.ground_power != 1.0:  # ground probabilities re-split by their scores' power, same sum, labels kept
+        gsum = sc[ROAD] + sc[SIDEWALK] + sc[GRASS]
+        pw = sc[[ROAD, SIDEWALK, GRASS]] ** p.ground_power
+        psum = pw.sum(axis=0)
+        sc[[ROAD, SIDEWALK, GRASS]] = np.where(gsum > 0, pw * gsum / np.where(psum > 0, psum, 1.0), 0.0)
     tot = sc.sum(axis=0)
     probs = np.where(tot > 0, sc / np.where(tot > 0, tot, 1.0), 0.0)
     # facades carried down across the horizon
@@ -265,7 +270,13 @@ def segment_reference(bgr, p, hrow=None):
             if not starts:
                 continue
             r, from_above = starts[0], True
-        c = lab[r - 2:r + 1, j].mean(axis=0)
+        if p.wall_median:  # the facade's colour where it meets the ground: the lowest three building pixels
+            s = r
+            while s + 1 < h and labels[s + 1, j] == BUILDING:
+                s += 1
+            c = np.median(lab[s - 2:s + 1, j], axis=0)
+        else:
+            c = lab[r - 2:r + 1, j].mean(axis=0)
         carry, foot, stop, by_colour = [], False, h, False
         for i in range(r + 1, h):
             if labels[i, j] == BUILDING:

@@ -671,3 +671,87 @@ def test_surface_by_paving_joints(joints, expect):
     assert seg.surface == "road"
     with pytest.raises(InputError, match="surface_joints"):
         SegmentParams(surface_joints=1.0)
+
+
+def _sill_column(median, sill_rows, *, bottom=5, sill=(200, 128, 110)):
+    """One hand-made column for the facade's colour in the carry (``wall_median``): 12 rows, horizon at row
+    5.3 (horizon pixel row 5), building rows 0 to ``bottom``, sidewalk below; facade Lab (120, 128, 128) down
+    to row 8, its foot L 60 from row 9; ``sill_rows`` drawn as a light window sill ``sill``; the robot's
+    surface L 200, far from the facade (0.8 x 80 = 64 > wall_ground 6)."""
+    from tinyloc.perception import _kernels as K
+    from tinyloc.perception.segment import _IS_GROUND
+    from tinyloc.classes import BUILDING, SIDEWALK, NUM_CLASSES
+
+    h, w = 12, 1
+    labels = np.full((h, w), SIDEWALK, np.uint8)
+    labels[:bottom + 1] = BUILDING
+    lab = np.full((h, w, 3), 128, np.uint8)
+    lab[:, :, 0] = 120
+    lab[9:, :, 0] = 60
+    for r in sill_rows:
+        lab[r, 0] = sill
+    feat = np.zeros((K.NF, h, w), np.float32)
+    probs = np.zeros((NUM_CLASSES, h, w), np.float32)
+    probs[SIDEWALK] = 1.0
+    probs[BUILDING, :bottom + 1], probs[SIDEWALK, :bottom + 1] = 1.0, 0.0
+    ref = np.array([200.0, 128.0, 128.0])
+    prm = replace(preset("sidewalk"), wall_dark=0.0, wall_median=median).vector()
+    K.extend_walls(feat, lab, np.array([5.3]), ref, prm, _IS_GROUND, probs, labels, np.zeros((3, 1), np.int32))
+    return [int(i) for i in np.flatnonzero(labels[:, 0] == BUILDING)]
+
+
+@pytest.mark.parametrize("median, sill_rows, bottom, carried_to", [
+    (False, [], 5, 8),      # no sill: the facade (distance 0 to its own colour) is carried to its foot, row 9
+    (False, [3], 5, 5),     # a sill in one of the rows 3-5 at the horizon: their mean is L 146.7, b* 122, so
+    #                         row 6 is 0.5 x 26.7 + 6 = 19.3 from it (> wall_dist 13.125): the carry stops at once
+    (True, [3], 5, 8),      # the median of the lowest three building pixels (rows 3-5) is the facade's colour
+    (True, [4], 5, 8),      # the sill in the middle one: the same
+    (True, [3, 4], 5, 5),   # two of three are sill: the median is the sill (distance 0.5 x 80 + 18 = 58): stops
+    (False, [3, 4], 6, 6),  # building scored down to row 6: the mean of rows 3-5 (two sill) stops the carry at 7
+    (True, [3, 4], 6, 8),   # ... the lowest three building pixels are rows 4-6 (one sill): carried to the foot
+])
+def test_wall_median_hand_worked(median, sill_rows, bottom, carried_to):
+    assert _sill_column(median, sill_rows, bottom=bottom) == list(range(carried_to + 1))
+
+
+def test_wall_median_is_the_middle_value():
+    from itertools import permutations
+    from tinyloc.perception import _kernels as K
+
+    # against NumPy's median, all orders of three values (with ties)
+    for v in [(1, 2, 3), (5, 5, 1), (0, 255, 128), (7, 7, 7)]:
+        for perm in set(permutations(v)):
+            assert K._median3(*perm) == float(np.median(perm))
+
+
+def test_ground_power_hand_worked():
+    """``ground_power`` on one hand-made ground pixel: the robot on the sidewalk and an asphalt-grey pixel far
+    from its colour (on = 0), smooth (texture 0), ExG - ExR = green0 (the vegetation step at 1/2), well below
+    the horizon. Scores worked by hand: road = other_weight x (1 - 1/2) = 0.103, sidewalk = ground_floor x 1/2 =
+    0.032625, grass = grass_weight x 1/2 = 0.29; power 2 re-splits their sum 0.425625 as 0.103^2 : 0.032625^2 :
+    0.29^2. The label (grass, the largest) is the same with and without."""
+    from tinyloc.perception import _kernels as K
+    from tinyloc.classes import ROAD, SIDEWALK, GRASS, NUM_CLASSES
+
+    def one_pixel(power):
+        p = replace(preset("sidewalk"), soil_b=0.0, ground_power=power)
+        feat = np.zeros((K.NF, 1, 1), np.float32)
+        feat[K.F_EXGR] = p.green0
+        feat[K.F_U] = -0.5
+        lab = np.array([[[60, 128, 128]]], np.uint8)
+        ref = np.array([200.0, 128.0, 128.0])
+        z = np.zeros((1, 1), np.float32)
+        probs = np.zeros((NUM_CLASSES, 1, 1), np.float32)
+        labels = np.zeros((1, 1), np.uint8)
+        K.seg_scores(feat, lab, z, np.zeros((1, 1), np.uint8), z, z, z, z, ref, p.vector(), probs, labels)
+        return probs[[ROAD, SIDEWALK, GRASS], 0, 0].astype(np.float64), int(labels[0, 0])
+
+    s = np.array([0.206 * 0.5, 0.06525 * 0.5, 0.58 * 0.5])
+    p1, l1 = one_pixel(1.0)
+    np.testing.assert_allclose(p1, s / s.sum(), atol=1e-5)
+    p2, l2 = one_pixel(2.0)
+    np.testing.assert_allclose(p2, s ** 2 / (s ** 2).sum(), atol=1e-5)
+    assert l1 == l2 == GRASS
+    assert abs(p2.sum() - 1.0) < 1e-5  # only ground scored here: the ground share stays all of the pixel
+    with pytest.raises(InputError, match="ground_power"):
+        SegmentParams(ground_power=0.5)

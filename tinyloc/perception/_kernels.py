@@ -23,8 +23,8 @@ NF = 10
  P_T_SMOOTH, P_T_W, P_ROAD_W, P_SIDE_W, P_GRASS_W, P_BLD_W, P_TREE_W, P_MIX_W, P_GROUND_FLOOR, P_REF_L,
  P_REF_D, P_REF_W, P_MIX0, P_VAR0, P_VAR_W, P_TREE_LOW, P_ON_ROAD, P_WALL_DIST, P_WALL_EDGE, P_WALL_GROUND,
  P_POLE_CONTRAST, P_POLE_RUN, P_FENCE_TOP, P_CROWN_MODEL, P_CROWN_T, P_SOIL_B, P_SOIL_W, P_WALL_REACH,
- P_WALL_BASE, P_WALL_DARK) = range(40)
-NP = 40
+ P_WALL_BASE, P_WALL_DARK, P_WALL_MEDIAN, P_GROUND_POWER) = range(42)
+NP = 42
 
 # A facade's base band is tested by the ratio of two depths below the horizon, each known to about half a
 # raster row: its top must lie at least this many rows down (ratio to about +-0.5 / 6). On the tuning drives
@@ -273,6 +273,9 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, crown_in, ref, prm
     alone splits tree from building above the horizon (tree where crown_in > prm[P_CROWN_T]), instead
     of the vegetation index and the bright-mix crown rule;
     ref (3,) Lab of the surface under the robot; prm (NP,) f64; scores (C, h, w) f32; labels (h, w) u8.
+    With prm[P_GROUND_POWER] = g != 1 the probabilities (not the labels) of road, sidewalk and grass keep
+    their sum but are split in proportion to their scores to the power g: the soft vegetation step and the
+    small weight of the other paved surface otherwise leave a clearly paved pixel only about half its class.
     Only the scored classes' planes (building, road, sidewalk, grass, tree, sky) are written; the
     caller keeps the other planes at zero. Ties go to the lower class index.
     """
@@ -290,6 +293,7 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, crown_in, ref, prm
     soil_b, isoilw = prm[P_SOIL_B], 1.0 / prm[P_SOIL_W]
     use_model = prm[P_CROWN_MODEL] > 0.5
     codds = prm[P_CROWN_T] / (1.0 - prm[P_CROWN_T])  # tree wins where crown > crown_threshold
+    gpow = prm[P_GROUND_POWER]
     for i in range(h):
         for j in range(w):
             u = feat[F_U, i, j]
@@ -341,6 +345,13 @@ def seg_scores(feat, lab, tex, sky, brightmix, gmean, g2mean, crown_in, ref, prm
             if s_sky > bv:
                 best, bv = SKY, s_sky
             labels[i, j] = best
+            if gpow != 1.0:
+                # the ground share re-split among the ground classes by their scores' power (labels unchanged)
+                g = s_road + s_side + s_grass
+                if g > 0.0:
+                    pr, ps, pg = s_road ** gpow, s_side ** gpow, s_grass ** gpow
+                    kg = g / (pr + ps + pg)
+                    s_road, s_side, s_grass = pr * kg, ps * kg, pg * kg
             tot = s_bld + s_road + s_side + s_grass + s_tree + s_sky
             k = 1.0 / tot if tot > 0.0 else 0.0
             scores[BUILDING, i, j] = s_bld * k
@@ -491,13 +502,23 @@ def _thin_band(e, b, hr, min_depth, share):
 
 
 @njit(**JIT)
+def _median3(a, b, c):
+    """The middle one of three values (as float)."""
+    a, b, c = float(a), float(b), float(c)
+    return max(min(a, b), min(max(a, b), c))
+
+
+@njit(**JIT)
 def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
     """Carry buildings down across the horizon to their foot.
 
     Everything nearer than the camera's height appears below the horizon, so the bottom of a facade
     first scores as ground. In each column whose pixel at the horizon is building, pixels below it
     that look like ground are relabelled building while their Lab colour stays within ``wall_dist``
-    of the facade's (the mean of the three pixels above the horizon) and no horizontal edge stronger
+    of the facade's (the mean of the three pixels above the horizon; with ``wall_median`` the per-channel
+    median of the three building pixels directly above the first pixel that is not building, i.e. the
+    facade's colour where it meets the ground, which a window sill at the horizon or one odd pixel does not
+    move) and no horizontal edge stronger
     than ``wall_edge`` (|dI/dy|, 0..1) is crossed: the foot of a wall is such an edge. It also stops
     at a pixel that looks like the surface under the robot (within ``wall_ground`` of ``ref``).
 
@@ -563,16 +584,26 @@ def extend_walls(feat, lab, hrow, ref, prm, is_ground, probs, labels, band):
                 continue
             r = k
             moved = True
-        c0 = 0.0
-        c1 = 0.0
-        c2 = 0.0
-        for q in range(r - 2, r + 1):
-            c0 += lab[q, j, 0]
-            c1 += lab[q, j, 1]
-            c2 += lab[q, j, 2]
-        c0 /= 3.0
-        c1 /= 3.0
-        c2 /= 3.0
+        if prm[P_WALL_MEDIAN] > 0.5:
+            # the facade's colour where it meets what scores as ground: the three building pixels directly
+            # above the first non-building pixel below the start
+            s = r
+            while s + 1 < h and labels[s + 1, j] == BUILDING:
+                s += 1
+            c0 = _median3(lab[s - 2, j, 0], lab[s - 1, j, 0], lab[s, j, 0])
+            c1 = _median3(lab[s - 2, j, 1], lab[s - 1, j, 1], lab[s, j, 1])
+            c2 = _median3(lab[s - 2, j, 2], lab[s - 1, j, 2], lab[s, j, 2])
+        else:
+            c0 = 0.0
+            c1 = 0.0
+            c2 = 0.0
+            for q in range(r - 2, r + 1):
+                c0 += lab[q, j, 0]
+                c1 += lab[q, j, 1]
+                c2 += lab[q, j, 2]
+            c0 /= 3.0
+            c1 /= 3.0
+            c2 /= 3.0
         e = h  # first row the facade does not continue into
         at_edge = False
         by_colour = False

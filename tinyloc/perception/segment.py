@@ -97,6 +97,11 @@ class SegmentParams:
     #                         ends on the robot's surface, if at most this share of the camera height tall (0: off)
     wall_dark: float = 0.0  # ... or across the dark gap under an object: ground pixels no lighter than this share
     #                         of the facade's lightness, on lighter ground (0: off; seventh round)
+    ground_power: float = 1.0  # the ground probabilities (road, sidewalk, grass; not the labels) are re-split by
+    #                            their scores to this power, keeping their sum (1: off; eighth round)
+    wall_median: bool = False  # the facade's colour for the carry is the per-channel median of its three lowest
+    #                            building pixels instead of the mean of the three at the horizon (a window sill
+    #                            at the horizon; eighth round)
     pole_contrast: float = 0.0  # a pole is a line this much darker/brighter than both sides (0: off)
     pole_run: float = 0.15  # ... at least this long (image heights), crossing the horizon
     fence_top: float = 0.0  # building runs ending less than this above the horizon are fences (0: off)
@@ -159,6 +164,8 @@ class SegmentParams:
             raise InputError("soil_b and surface_auto must be >= 0 and soil_w > 0")
         if not 0.0 <= self.surface_joints < 1.0:
             raise InputError(f"surface_joints must be within 0 .. 1 (a share of the patch), got {self.surface_joints}")
+        if not 1.0 <= self.ground_power <= 8.0:
+            raise InputError(f"ground_power must be within 1 .. 8, got {self.ground_power}")
         if not 0.0 <= self.surface_dark <= 1.0:
             raise InputError("surface_dark must be within 0 .. 1")
         if not (-1.0 <= self.surface_u <= 0.0 and 0.0 <= self.surface_share <= 1.0):
@@ -190,6 +197,8 @@ class SegmentParams:
         v[K.P_WALL_REACH] = self.wall_reach
         v[K.P_WALL_BASE] = self.wall_base
         v[K.P_WALL_DARK] = self.wall_dark
+        v[K.P_WALL_MEDIAN] = 1.0 if self.wall_median else 0.0
+        v[K.P_GROUND_POWER] = self.ground_power
         return v
 
 
@@ -212,6 +221,15 @@ PRESETS: dict[str, SegmentParams] = {
                                        crown_model="", gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5),
     "sidewalk_nogap": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0,
                                     crown_model="", gap_model="", soil_b=6.0, surface_auto=20.0),
+    # candidate for "sidewalk" (eighth round, docs/perception.md): the facade's colour for the carry is the
+    # median of its three lowest building pixels, so a window sill at the horizon does not stop the carry
+    # candidate (eighth round): the ground probabilities sharpened (ground_power 3), labels unchanged
+    "sidewalk_sharp": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0,
+                                    crown_model="", gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5,
+                                    surface_joints=0.02, ground_power=3.0),
+    "sidewalk_median": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0,
+                                     crown_model="", gap_model="", soil_b=6.0, surface_auto=20.0, wall_dark=0.5,
+                                     surface_joints=0.02, wall_median=True),
     # candidate for "sidewalk" (fifth round, docs/perception.md): facades found up to 2 rows above the
     # horizon pixel are carried down to a visible foot, and the per-frame surface margin is 15 (was 20)
     "footway": SegmentParams(robot_on="sidewalk", wall_ground=6.0, ref_l_weight=0.8, ref_dist=12.0, crown_model="",
