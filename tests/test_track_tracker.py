@@ -323,3 +323,36 @@ def test_wild_gnss_does_not_drag_a_confident_belief(rng):
         if k >= 80:
             worst = max(worst, math.hypot(o.x - x, o.y - y))
     assert worst < 1.0
+
+
+def _check_with_gap(tr, gap, away_m=15.0):
+    """A hand-made global search: flat, the best near the estimate at 0 and a pose ``away_m`` east at ``gap``."""
+    est = tr.last
+    n = 81
+    r, c = GEOM.cell_of(est.x, est.y)
+    row0, col0 = int(r) - n // 2, int(c) - n // 2
+    best = np.full((n, n), -20.0, np.float32)
+    i, j = int(r) - row0, int(c) - col0
+    best[i, j] = 0.0
+    ar, ac = GEOM.cell_of(est.x + away_m, est.y)
+    best[int(ar) - row0, int(ac) - col0] = gap  # likelihood_weight 1 in _params(): the gap as scored
+    notes = []
+    tr._global_decision(GlobalEvidence(best, row0, col0, 1, np.full((n, n), est.yaw)), None, notes)
+    return notes
+
+
+def test_a_check_votes_elsewhere_only_beyond_the_switch_margin(rng):
+    # two checks in a row better elsewhere by more than switch_margin lose the belief; by less they
+    # do not vote (tuning drives 25 and 27 lost right tracks on checks 4.4-5.4 better at margin 4)
+    p = _params()
+    assert p.switch_margin == 6.0 and p.switch_votes == 2
+    tr, out = drive(rng, 60, params=p)
+    assert out[-1][1].quality in ("tracking", "degraded")
+    for _ in range(3):
+        notes = _check_with_gap(tr, 5.5)
+        assert not any("better pose" in n for n in notes), notes
+    assert tr.state != "searching"
+    assert any("better pose 15 m away (1/2)" in n for n in _check_with_gap(tr, 6.5))
+    notes = _check_with_gap(tr, 6.5)
+    assert any("lost: global check found a better pose elsewhere" in n for n in notes), notes
+    assert tr.state == "searching"
