@@ -18,7 +18,7 @@ from tinyloc.classes import BUILDING, FENCE, NUM_CLASSES, ROAD, SIDEWALK, TREE
 from tinyloc.frames import rot_x, rot_y
 from tinyloc.perception import _kernels as K
 from tinyloc.perception.gravity import horizon_rows_reference, level_from_base
-from tinyloc.perception.overhead import IS_GROUND, TO_MAP, OverheadParams, OverheadProjector
+from tinyloc.perception.overhead import IS_GROUND, STACK_DIST_15, TO_MAP, OverheadParams, OverheadProjector
 
 
 def _cam(dist=(0.0,) * 5, mount=Mount(0.8, 10.0, 0.0, 0.0, 0.0, 0.0)):
@@ -344,8 +344,19 @@ def test_stacked_object_in_front_of_facade():
     # no colour (label images): the facade is placed
     proj.project(probs, labels, np.eye(3), hrow, grid, tilted=False)
     assert grid.evidence[BUILDING].sum() > 0
-    # on by default (0.2, 15); off at 0
-    assert (OverheadParams().stack_share, OverheadParams().stack_dist) == (0.2, 15.0)
+    # on by default (0.2, 10 since the eighth round; 15 before); off at 0
+    assert (OverheadParams().stack_share, OverheadParams().stack_dist) == (0.2, 10.0)
+    # the default's colour distance at its limit (0.5 |dL| by hand): 9 counts as the base's colour, 11 does not
+    pd = OverheadProjector(cam, OverheadParams(building_depth_m=0.0))
+    for dl, stacked in ((18, False), (22, True)):
+        labd, _ = _stack_lab(cam, z, base, (100 + dl, 128, 128))
+        pd.project(probs, labels, np.eye(3), hrow, grid, tilted=False, lab=labd)
+        assert (grid.evidence[BUILDING].sum() == 0) == stacked, dl
+    # ... where the previous 15 kept the facade for both
+    pp = OverheadProjector(cam, OverheadParams(building_depth_m=0.0, **STACK_DIST_15))
+    labd, _ = _stack_lab(cam, z, base, (122, 128, 128))
+    pp.project(probs, labels, np.eye(3), hrow, grid, tilted=False, lab=labd)
+    assert grid.evidence[BUILDING].sum() > 0
     OverheadProjector(cam, OverheadParams(building_depth_m=0.0, stack_share=0.0)).project(
         probs, labels, np.eye(3), hrow, grid, tilted=False, lab=lab)
     assert grid.evidence[BUILDING].sum() > 0
