@@ -47,10 +47,21 @@ from tinyloc.runtime.sources import RunFolderSource  # noqa: E402
 from tinyloc.runtime.summary import gnss_at_frames, summarize  # noqa: E402
 
 
-def _sim(args, *cmd):
+def _sim(*cmd):
     r = subprocess.run([sys.executable, "-W", "ignore", "-m", "tinyloc", "sim", *cmd], capture_output=True, text=True)
     if r.returncode != 0:
         raise RuntimeError(f"tinyloc sim {' '.join(cmd)} failed: {r.stderr.strip()[-300:]}")
+
+
+def ensure_drive(work: Path, seed: int, size: str = "demo", frames: int = 300) -> tuple[Path, Path]:
+    """The generated site and run of ``seed`` in ``work`` (made with ``tinyloc sim`` if missing)."""
+    site = work / f"site{seed}"
+    run = work / f"run{seed}_{frames}"
+    if not (site / "site.tlm").is_file():
+        _sim("site", "--seed", str(seed), "--size", size, "-o", str(site))
+    if not (run / "run.json").is_file():
+        _sim("run", str(site), "--seed", str(seed), "--frames", str(frames), "-o", str(run))
+    return site, run
 
 
 def _fresh_map(site: Path) -> Path:
@@ -183,12 +194,7 @@ def main(argv=None) -> int:
     work.mkdir(parents=True, exist_ok=True)
     rows = []
     for seed in a.seeds:
-        site = work / f"site{seed}"
-        run = work / f"run{seed}_{a.frames}"
-        if not (site / "site.tlm").is_file():
-            _sim(a, "site", "--seed", str(seed), "--size", a.size, "-o", str(site))
-        if not (run / "run.json").is_file():
-            _sim(a, "run", str(site), "--seed", str(seed), "--frames", str(a.frames), "-o", str(run))
+        site, run = ensure_drive(work, seed, a.size, a.frames)
         cal = (_imu_cal(run) if a.imu_cal else []) + (_wheel_cal(run) if a.wheel_cal else [])
         for mode in a.modes:
             ov = list(a.set) + cal + (["loop.external_labels=true"] if mode == "labels" else [])
