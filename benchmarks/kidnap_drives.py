@@ -107,6 +107,10 @@ def kidnap(run: Path, site_map: Path, overrides, at: int, skip: int, hold: int =
     }
 
 
+def _secs(v) -> str:
+    return "not yet" if v is None else f"{v:.1f} s"
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--seeds", type=int, nargs="+", default=[11, 12, 13, 14, 15, 16, 17])
@@ -129,10 +133,9 @@ def main(argv=None) -> int:
         ov = list(a.set) + (_imu_cal(run) if a.imu_cal else []) + (_wheel_cal(run) if a.wheel_cal else [])
         r = {"seed": seed, **kidnap(run, _fresh_map(site), ov, a.at, a.skip, a.hold)}
         rows.append(r)
-        fmt = lambda v: "not yet" if v is None else f"{v:.1f} s"  # noqa: E731
         print(f"seed {seed}: carried {r['jump_m']:.0f} m ({r['quality_before']} before)  flag dropped "
-              f"{'yes' if r['flag_dropped'] else 'NO'}  within 1 m / 3 deg after {fmt(r['back_within_1m_3deg_s'])}"
-              f", and tracking after {fmt(r['back_and_tracking_s'])}  (of {r['seconds_after']:.0f} s)  tracking "
+              f"{'yes' if r['flag_dropped'] else 'NO'}  within 1 m / 3 deg after {_secs(r['back_within_1m_3deg_s'])}"
+              f", and tracking after {_secs(r['back_and_tracking_s'])}  (of {r['seconds_after']:.0f} s)  tracking "
               f"while wrong: {r['tracking_wrong_frames']} frames", file=sys.stderr, flush=True)
     back = [r["back_within_1m_3deg_s"] for r in rows]
     n15 = sum(v is not None and v <= 15.0 for v in back)

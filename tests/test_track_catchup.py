@@ -138,9 +138,9 @@ def test_flag_while_tracking_by_hand(drift, catchup, want):
     assert tr.state == want
     if want == "degraded":
         assert notes == [f"degraded: catching up {drift:.2f} m"]
-        assert tr._learn_catching  # the only reason: the wheel scale learns as if tracking
+        assert tr._learn_while_degraded  # the only reason: the wheel scale learns as if tracking
     else:
-        assert not tr._learn_catching
+        assert not tr._learn_while_degraded
 
 
 def test_with_another_reason_the_wheel_scale_does_not_learn():
@@ -150,7 +150,7 @@ def test_with_another_reason_the_wheel_scale_does_not_learn():
     notes = []
     tr._decide(_est(0.9), notes)  # also broader than the confident check allows
     assert tr.state == "degraded" and notes == ["degraded: position spread 0.90 m"]
-    assert not tr._learn_catching
+    assert not tr._learn_while_degraded
 
 
 def test_back_to_tracking_when_the_pull_stops():

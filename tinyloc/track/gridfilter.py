@@ -935,7 +935,8 @@ class Tracker:
         self.catchup.reset()
         self._course = None  # (yaw, sigma) of the current frame, or None
         self._course_off = 0
-        self._learn_catching = False  # degraded only by the catch-up check: the wheel scale learns as if tracking
+        # degraded only by the catch-up or heading check: the wheel scale learns as if tracking
+        self._learn_while_degraded = False
         self._off_e = self._off_n = math.nan  # average (estimate - fix) over recent fixes (m)
         self._off_t = -math.inf
         self.counters = {"global_searches": 0, "lost": 0, "recovered": 0, "odometry_jumps": 0,
@@ -1092,7 +1093,7 @@ class Tracker:
                 f.recentre(est.x, est.y)
         f.add_floor()
         self.last = est
-        if self.state == "tracking" or self._learn_catching:
+        if self.state == "tracking" or self._learn_while_degraded:
             # learn the wheel scale from poses the map holds; the catch-up check changes only the flag
             self.odo_scale.pose(est.x, est.y)
         elif self.state == "searching":
@@ -1297,7 +1298,7 @@ class Tracker:
 
     def _decide(self, est: FilterEstimate, notes) -> None:
         p = self.p
-        self._learn_catching = False
+        self._learn_while_degraded = False
         ok_sigma = (est.sigma_xy_m <= p.track_sigma_m and math.degrees(est.sigma_yaw_rad) <= p.track_sigma_deg)
         if self.state == "searching":
             self._converge = self._converge + 1 if (ok_sigma and self._no_update == 0) else 0
@@ -1343,7 +1344,7 @@ class Tracker:
         # the catch-up and heading checks change only the flag: the wheel scale learns on those frames as before
         # (with the learning stopped there too, tuning drive 16 started learning 6 s later and its median rose
         # 0.13 -> 0.19 m; with the heading check, drive 17 0.28 -> 0.43 m)
-        self._learn_catching = (catching or head_only) and not other
+        self._learn_while_degraded = (catching or head_only) and not other
         if degraded:
             if self.state != "degraded":
                 why = ("uncertainty grew" if not ok_sigma else
