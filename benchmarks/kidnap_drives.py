@@ -139,9 +139,10 @@ def main(argv=None) -> int:
               f"while wrong: {r['tracking_wrong_frames']} frames", file=sys.stderr, flush=True)
     back = [r["back_within_1m_3deg_s"] for r in rows]
     n15 = sum(v is not None and v <= 15.0 for v in back)
-    print(f"back within 1 m / 3 deg within 15 s on {n15} of {len(rows)} drives; flag dropped on "
-          f"{sum(r['flag_dropped'] for r in rows)}; tracking while wrong {sum(r['tracking_wrong_frames'] for r in rows)}"
-          " frames in all", file=sys.stderr)
+    dropped = sum(r["flag_dropped"] for r in rows)
+    wrong = sum(r["tracking_wrong_frames"] for r in rows)
+    print(f"back within 1 m / 3 deg within 15 s on {n15} of {len(rows)} drives; flag dropped on {dropped}; "
+          f"tracking while wrong {wrong} frames in all", file=sys.stderr)
     if a.json:
         print(json.dumps(rows, indent=1))
     return 0
