@@ -10,9 +10,11 @@ are shifted back in time), and the odometry sees one impossible step across the 
 ("odometry jump ignored"), as when a robot is lifted and set down. The truth is used only to measure.
 
 Per drive: the jump (m), whether the flag left "tracking" after it, the time from the jump until the
-estimate is within 1 m and 3 deg for ``--hold`` frames in a row (the time of the first of them), the same
-with the flag also "tracking", and the frames flagged "tracking" while wrong after the jump (the dangerous
-case). Drives are generated with ``tinyloc sim`` into --work if missing, as in loop_accuracy.py.
+estimate is within 1 m for ``--hold`` frames in a row (the time of the first of them; the criterion of
+issue #6, "back within 1 m within 15 s of driving"), the same within 1 m and 3 deg (this project's recall
+criterion, stricter), the same with the flag also "tracking", and the frames flagged "tracking" while wrong
+(beyond 1 m or 3 deg) after the jump (the dangerous case). Drives are generated with ``tinyloc sim`` into
+--work if missing, as in loop_accuracy.py.
 """
 
 from __future__ import annotations
@@ -59,8 +61,8 @@ def kidnap(run: Path, site_map: Path, overrides, at: int, skip: int, hold: int =
     truth = np.asarray(src.truth_xy(pm.frame), dtype=np.float64)
     loc = Localizer(pm, src.camera, cfg)
     t_prev, dt, off, t_jump = None, None, None, None
-    dropped, wrong, ok_run, trk_run = False, 0, 0, 0
-    back_s = back_trk_s = None
+    dropped, wrong, ok_run, trk_run, near_run = False, 0, 0, 0, 0
+    back_s = back_trk_s = near_s = None
     before_quality, after = None, 0
     try:
         for f in src:
@@ -83,12 +85,15 @@ def kidnap(run: Path, site_map: Path, overrides, at: int, skip: int, hold: int =
                 t_jump = f.t
             after += 1
             tx, ty, tyaw = truth[i]
-            good = (math.hypot(p.x - tx, p.y - ty) <= 1.0
-                    and math.degrees(abs(wrap_angle(p.yaw - tyaw))) <= 3.0)
+            near = math.hypot(p.x - tx, p.y - ty) <= 1.0
+            good = near and math.degrees(abs(wrap_angle(p.yaw - tyaw))) <= 3.0
             dropped |= p.quality != "tracking"
             wrong += int(p.quality == "tracking" and not good)
+            near_run = near_run + 1 if near else 0
             ok_run = ok_run + 1 if good else 0
             trk_run = trk_run + 1 if (good and p.quality == "tracking") else 0
+            if near_run == hold and near_s is None:
+                near_s = f.t - t_jump - (hold - 1) * dt
             if ok_run == hold and back_s is None:
                 back_s = f.t - t_jump - (hold - 1) * dt
             if trk_run == hold and back_trk_s is None:
@@ -99,6 +104,7 @@ def kidnap(run: Path, site_map: Path, overrides, at: int, skip: int, hold: int =
         "jump_m": float(np.hypot(*(truth[at + skip, :2] - truth[at - 1, :2]))),
         "quality_before": before_quality,
         "flag_dropped": bool(dropped),
+        "back_within_1m_s": near_s,
         "back_within_1m_3deg_s": back_s,
         "back_and_tracking_s": back_trk_s,
         "tracking_wrong_frames": wrong,
@@ -134,14 +140,17 @@ def main(argv=None) -> int:
         r = {"seed": seed, **kidnap(run, _fresh_map(site), ov, a.at, a.skip, a.hold)}
         rows.append(r)
         print(f"seed {seed}: carried {r['jump_m']:.0f} m ({r['quality_before']} before)  flag dropped "
-              f"{'yes' if r['flag_dropped'] else 'NO'}  within 1 m / 3 deg after {_secs(r['back_within_1m_3deg_s'])}"
+              f"{'yes' if r['flag_dropped'] else 'NO'}  within 1 m after {_secs(r['back_within_1m_s'])}, "
+              f"1 m / 3 deg after {_secs(r['back_within_1m_3deg_s'])}"
               f", and tracking after {_secs(r['back_and_tracking_s'])}  (of {r['seconds_after']:.0f} s)  tracking "
               f"while wrong: {r['tracking_wrong_frames']} frames", file=sys.stderr, flush=True)
-    back = [r["back_within_1m_3deg_s"] for r in rows]
-    n15 = sum(v is not None and v <= 15.0 for v in back)
+    def within_15(key):
+        return sum(r[key] is not None and r[key] <= 15.0 for r in rows)
+
     dropped = sum(r["flag_dropped"] for r in rows)
     wrong = sum(r["tracking_wrong_frames"] for r in rows)
-    print(f"back within 1 m / 3 deg within 15 s on {n15} of {len(rows)} drives; flag dropped on {dropped}; "
+    print(f"back within 15 s on {within_15('back_within_1m_s')} of {len(rows)} drives within 1 m, on "
+          f"{within_15('back_within_1m_3deg_s')} within 1 m / 3 deg; flag dropped on {dropped}; "
           f"tracking while wrong {wrong} frames in all", file=sys.stderr)
     if a.json:
         print(json.dumps(rows, indent=1))
