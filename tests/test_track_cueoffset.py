@@ -127,7 +127,7 @@ def test_no_allocation_per_frame():
 
 def test_output_formula_by_hand():
     p = TrackParams(window_cells=32, headings=64, cue_cov=True, cue_cov_scale=0.1, cue_sigma_m=0.1, cue_gain=1.0,
-                    cue_min_frames=10, model_sigma_m=0.5, model_sigma_deg=0.5)
+                    cue_min_frames=10, model_sigma_m=0.5, model_sigma_deg=0.5, cov_scale_xy=1.0)
     tr = Tracker(GEOM, p)
     post = np.array([[0.04, 0.01, 0.002], [0.01, 0.09, 0.001], [0.002, 0.001, 1e-4]])
     est = FilterEstimate(100.25, 199.75, math.pi / 2, post.copy(), [], 1.0, 0.3, 0.01)

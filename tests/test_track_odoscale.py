@@ -174,7 +174,7 @@ def test_adaptive_output_formula_by_hand():
     from tinyloc.track.gridfilter import FilterEstimate
 
     p = TrackParams(window_cells=32, headings=64, adapt_cov=True, adapt_cov_scale=0.35, adapt_sigma_m=0.2,
-                    model_sigma_m=0.5, model_sigma_deg=0.5)
+                    model_sigma_m=0.5, model_sigma_deg=0.5, cov_scale_xy=1.0)
     tr = Tracker(GEOM, p)
     post = np.diag([0.04, 0.09, 1e-4])
     est = FilterEstimate(10.0, 20.0, math.pi / 2, post.copy(), [], 1.0, 0.3, 0.01)  # heading north

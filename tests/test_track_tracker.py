@@ -77,11 +77,13 @@ class PlantedMatcher:
 def _params(**kw):
     # planted frames are independent and their log-likelihoods calibrated (no tempering), and the
     # planted evidence has no model error (no covariance floor): this checks the posterior itself
-    # (cov_scale 1: the default scale calibrates the tempered real correlator's posterior, not this one)
+    # (cov_scale and cov_scale_xy 1: the default scales calibrate the tempered real correlator's posterior,
+    # not this one)
     kw.setdefault("likelihood_weight", 1.0)
     kw.setdefault("model_sigma_m", 0.0)
     kw.setdefault("model_sigma_deg", 0.0)
     kw.setdefault("cov_scale", 1.0)
+    kw.setdefault("cov_scale_xy", 1.0)
     return TrackParams(window_cells=48, headings=64, **kw)
 
 
@@ -384,3 +386,26 @@ def test_after_an_odometry_jump_every_frame_is_checked(rng):
     assert out[-1][1].quality == "tracking"
     with pytest.raises(InputError, match="watch_frames"):
         _params(watch_frames=-1)
+
+
+def test_default_output_covariance_by_hand():
+    # the default formula: 0.25 x the posterior's position block + 0.15 m floor, the heading's own
+    # variance + 0.5 deg floor, cross terms x sqrt(0.25 x 1); while not tracking the fix is added as a
+    # competing pose with weight 0.25 (w (S + d d^T), the second moment of a two-pose mixture)
+    from tinyloc.track.gridfilter import FilterEstimate
+
+    p = TrackParams(window_cells=32, headings=64)
+    assert (p.cov_scale_xy, p.cov_scale, p.model_sigma_m, p.model_sigma_deg) == (0.25, 1.0, 0.15, 0.5)
+    tr = Tracker(GEOM, p)
+    post = np.array([[0.16, 0.04, 0.002], [0.04, 0.36, 0.001], [0.002, 0.001, 1e-4]])
+    est = FilterEstimate(10.0, 20.0, 0.3, post.copy(), [], 1.0, 0.5, 0.01)
+    cov = tr._output(0.0, "tracking", [], est).cov
+    assert np.allclose(cov[:2, :2], [[0.04 + 0.0225, 0.01], [0.01, 0.09 + 0.0225]], atol=1e-12)
+    assert abs(cov[2, 2] - (1e-4 + math.radians(0.5) ** 2)) < 1e-15
+    assert np.allclose(cov[:2, 2], 0.5 * post[:2, 2], atol=1e-15) and np.allclose(cov[2, :2], cov[:2, 2])
+    tr._g = (13.0, 24.0, 3.0, 0.0)  # a fix 3 m east and 4 m north of the estimate, 3 m sigma
+    deg = tr._output(0.0, "degraded", [], est).cov
+    assert np.allclose(deg[:2, :2] - cov[:2, :2], 0.25 * (9.0 * np.eye(2) + np.outer([3.0, 4.0], [3.0, 4.0])),
+                       atol=1e-12)
+    with pytest.raises(InputError, match="cov_scale_xy"):
+        TrackParams(cov_scale_xy=0.0)
