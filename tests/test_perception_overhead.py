@@ -362,6 +362,37 @@ def test_stacked_object_in_front_of_facade():
     assert grid.evidence[BUILDING].sum() > 0
 
 
+def test_stacked_object_by_hue():
+    """``stack_chroma``: an upper pixel matches the base only when its hue distance |da| + |db| is within
+    the limit too. Worked by hand on the drive-26 case (ninth round, docs/perception.md): a wooden fence
+    L 83, a* 129, b* 132 in front of a grey facade L 84, a* 128, b* 124 is 0.5 x 1 + 1 + 8 = 9.5 from it,
+    under ``stack_dist`` 10, so the default places the pair as one facade at the fence's foot; with
+    ``stack_chroma`` 8 the hue distance 9 > 8 makes the fence another object; 9 (equal: still near)
+    keeps the facade. A base of the same hue but lighter (a grey wall) is unaffected by the limit."""
+    cam = _cam(mount=Mount(0.8, 0.0))
+    z = _row_heights(cam, OverheadProjector(cam, OverheadParams()), foot_row=72.5)
+    probs, labels = _tall_wall(cam, 72)
+    base, facade = (83, 129, 132), (84, 128, 124)
+    lab, _ = _stack_lab(cam, z, base, facade)
+    for chroma, stacked in ((0.0, False), (9.0, False), (8.0, True)):
+        proj = OverheadProjector(cam, OverheadParams(building_depth_m=0.0, stack_chroma=chroma))
+        grid = OverheadParams().new_grid()
+        proj.project(probs, labels, np.eye(3), proj.horizon(np.eye(3)), grid, tilted=False, lab=lab)
+        assert (grid.evidence[BUILDING].sum() == 0) == stacked, chroma
+        assert (grid.evidence[FENCE].sum() > 0) == stacked, chroma
+    # same hue, lighter by 18 (0.5 x 18 = 9 <= 10): a facade with or without the hue limit
+    labg, _ = _stack_lab(cam, z, (100, 128, 128), (118, 128, 128))
+    for chroma in (0.0, 8.0):
+        proj = OverheadProjector(cam, OverheadParams(building_depth_m=0.0, stack_chroma=chroma))
+        grid = OverheadParams().new_grid()
+        proj.project(probs, labels, np.eye(3), proj.horizon(np.eye(3)), grid, tilted=False, lab=labg)
+        assert grid.evidence[BUILDING].sum() > 0, chroma
+    assert OverheadParams().stack_chroma == 0.0  # off by default
+    from tinyloc.errors import InputError
+    with pytest.raises(InputError, match="stack_chroma"):
+        OverheadParams(stack_chroma=-1.0)
+
+
 def test_trunk_under_a_crown():
     """A tall building run 4 columns wide (about 0.26 m at 8 m) topped by tree pixels is a trunk when
     ``trunk_width_m`` is on; the same run topped by sky, or a wide run under a crown, stays building."""

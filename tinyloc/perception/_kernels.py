@@ -847,11 +847,13 @@ def _write_along(gx, gy, ux, uy, d0, depth_m, m, val, res_m, origin_row, origin_
 
 
 @njit(**JIT)
-def _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh, min_h, share, dist, base_m):
+def _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh, min_h, share, dist, base_m, chroma):
     """True when the base of the building run (rows ii+1..i of column j, foot range dh) is another object.
 
     The base is the run's pixels 0.2 .. ``base_m`` metres above the ground at range ``dh``; the upper part
-    is every building pixel of rows topi..i at least ``min_h`` up. Needs 2 base and 3 upper pixels.
+    is every building pixel of rows topi..i at least ``min_h`` up. Needs 2 base and 3 upper pixels. An
+    upper pixel matches the base when within ``dist`` (0.5 |dL| + |da| + |db|) and, with ``chroma`` > 0,
+    its hue difference |da| + |db| is at most ``chroma`` too.
     """
     c0 = 0.0
     c1 = 0.0
@@ -875,8 +877,8 @@ def _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh, min_h, share, di
         if labels[q, j] != BUILDING or _height_at(rays, level, cam, q, j, dh) < min_h:
             continue
         nu += 1
-        d = 0.5 * abs(lab[q, j, 0] - c0) + abs(lab[q, j, 1] - c1) + abs(lab[q, j, 2] - c2)
-        if d <= dist:
+        dc = abs(lab[q, j, 1] - c1) + abs(lab[q, j, 2] - c2)
+        if 0.5 * abs(lab[q, j, 0] - c0) + dc <= dist and (chroma <= 0.0 or dc <= chroma):
             near += 1
     return nu >= 3 and near < share * nu
 
@@ -887,7 +889,8 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
     # depth_m, start_m: (256,) float64, metres of evidence behind the foot and where it starts, per class
     # geom: (min_building_height_m, min_building_width_m, fx of the segmentation raster (px), thin_class,
     #        low_class (-1: not placed), stack_share (0: off), stack_dist (Lab), stack_base_m,
-    #        trunk_width_m (0: off), trunk_at_top (1: a narrow run leaving the picture's top is a trunk too))
+    #        trunk_width_m (0: off), trunk_at_top (1: a narrow run leaving the picture's top is a trunk too),
+    #        low_on_road_class, low_on_road (1: on), stack_chroma (Lab |da| + |db|, 0: off))
     # lab: (h, w, 3) uint8 Lab of the segmentation raster (read only when stack_share > 0)
     """Deposit vertical classes at their ground contacts, column by column.
 
@@ -915,7 +918,9 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
       ``stack_share`` of the run's building pixels at least ``geom[0]`` metres up lie within ``geom[6]``
       of it (distance 0.5 |dL| + |da| + |db|), the base is another object (a car, a bus, a garden wall)
       standing in front of the facade: the foot is that object's and is placed as class ``geom[4]``;
-      the facade above has no visible foot and is not placed;
+      the facade above has no visible foot and is not placed; with ``geom[12]`` = stack_chroma > 0 an
+      upper pixel matches the base only when its |da| + |db| to it is at most that too (a wooden fence
+      as light as the grey facade behind it differs in hue only);
     - a trunk (``geom[8]`` = trunk_width_m > 0): a run narrower than that across the horizon row whose
       top ends under a tree crown (the first pixel above the bridged top is tree), or with ``geom[9]`` > 0
       leaves the picture at the top below ``geom[0]`` metres (its height unverified), is placed as class
@@ -981,7 +986,7 @@ def vertical_contacts(labels, probs, rays, level, cam, hrow, is_vertical, is_gro
                                 # (the upper part starts at min_h: without a height check above the base, no check)
                                 if tall and st_share > 0.0 and min_h > st_base and \
                                         _stacked(labels, lab, rays, level, cam, j, i, ii, topi, dh, min_h, st_share,
-                                                 st_dist, st_base):
+                                                 st_dist, st_base, geom[12]):
                                     tall = False
                                 # width where the run crosses the horizon (the foot row wanders
                                 # between columns on an oblique or ragged foot)

@@ -151,6 +151,11 @@ class OverheadParams:
         a car, bus or garden wall standing in front: it is placed as ``low_building_as`` and the facade,
         whose own foot is hidden, is not placed. It acts only with the height check on
         (``min_building_height_m`` above ``stack_base_m``), whose height bounds the upper part.
+    stack_chroma : float
+        ... and, when above 0, an upper pixel matches the base only if its hue distance |da| + |db|
+        (Lab) to the base's mean is at most this too: a fence or wall as light as the facade behind it
+        but of another hue (wood in front of grey render) is another object (0: off; ninth round,
+        docs/perception.md).
     trunk_width_m : float
         A tall building run narrower than this across the horizon row and topped by a tree crown is a
         trunk and placed as one (0: off).
@@ -185,6 +190,7 @@ class OverheadParams:
     # (tuning drives 11-17 and 25-30: mean recall 95.25 -> 99.05 %, docs/perception.md, "Eighth round")
     stack_dist: float = 10.0
     stack_base_m: float = 1.0
+    stack_chroma: float = 0.0
     trunk_width_m: float = 1.0
     trunk_at_top: bool = False
 
@@ -208,6 +214,8 @@ class OverheadParams:
             raise InputError("stack_share must be within 0 .. 1")
         if not (math.isfinite(self.stack_dist) and self.stack_dist > 0.0):
             raise InputError("stack_dist must be a positive Lab distance")
+        if not (math.isfinite(self.stack_chroma) and self.stack_chroma >= 0.0):
+            raise InputError("stack_chroma must be a Lab distance >= 0 (0: off)")
         if not 1 <= int(self.min_run_px) <= 100:
             raise InputError("min_run_px must be within 1 .. 100")
 
@@ -304,7 +312,7 @@ class OverheadProjector:
                                params.stack_share, params.stack_dist, params.stack_base_m, params.trunk_width_m,
                                1.0 if params.trunk_at_top else 0.0,
                                float(lowmap[params.low_on_road_as or params.low_building_as]),
-                               1.0 if params.low_on_road_as else 0.0],
+                               1.0 if params.low_on_road_as else 0.0, params.stack_chroma],
                               np.float64)
         self._geom_nocolour = self._geom.copy()
         self._geom_nocolour[5] = 0.0  # a label image has no colour: no stacked-object check
