@@ -18,7 +18,8 @@ from tinyloc.classes import BUILDING, FENCE, NUM_CLASSES, ROAD, SIDEWALK, TREE
 from tinyloc.frames import rot_x, rot_y
 from tinyloc.perception import _kernels as K
 from tinyloc.perception.gravity import horizon_rows_reference, level_from_base
-from tinyloc.perception.overhead import IS_GROUND, STACK_DIST_15, TO_MAP, OverheadParams, OverheadProjector
+from tinyloc.perception.overhead import IS_GROUND, STACK_CHROMA_OFF, STACK_DIST_15, TO_MAP, OverheadParams, \
+    OverheadProjector
 
 
 def _cam(dist=(0.0,) * 5, mount=Mount(0.8, 10.0, 0.0, 0.0, 0.0, 0.0)):
@@ -374,7 +375,7 @@ def test_stacked_object_by_hue():
     probs, labels = _tall_wall(cam, 72)
     base, facade = (83, 129, 132), (84, 128, 124)
     lab, _ = _stack_lab(cam, z, base, facade)
-    for chroma, stacked in ((0.0, False), (9.0, False), (8.0, True)):
+    for chroma, stacked in ((0.0, False), (9.0, False), (8.0, True), (6.0, True)):
         proj = OverheadProjector(cam, OverheadParams(building_depth_m=0.0, stack_chroma=chroma))
         grid = OverheadParams().new_grid()
         proj.project(probs, labels, np.eye(3), proj.horizon(np.eye(3)), grid, tilted=False, lab=lab)
@@ -387,7 +388,8 @@ def test_stacked_object_by_hue():
         grid = OverheadParams().new_grid()
         proj.project(probs, labels, np.eye(3), proj.horizon(np.eye(3)), grid, tilted=False, lab=labg)
         assert grid.evidence[BUILDING].sum() > 0, chroma
-    assert OverheadParams().stack_chroma == 0.0  # off by default
+    assert OverheadParams().stack_chroma == 6.0  # on by default since the ninth round; off at 0
+    assert OverheadParams(**STACK_CHROMA_OFF).stack_chroma == 0.0
     from tinyloc.errors import InputError
     with pytest.raises(InputError, match="stack_chroma"):
         OverheadParams(stack_chroma=-1.0)
