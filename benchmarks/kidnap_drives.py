@@ -13,8 +13,8 @@ Per drive: the jump (m), whether the flag left "tracking" after it, the time fro
 estimate is within 1 m for ``--hold`` frames in a row (the time of the first of them; the criterion of
 issue #6, "back within 1 m within 15 s of driving"), the same within 1 m and 3 deg (this project's recall
 criterion, stricter), the same with the flag also "tracking", and the frames flagged "tracking" while wrong
-(beyond 1 m or 3 deg) after the jump (the dangerous case). Drives are generated with ``tinyloc sim`` into
---work if missing, as in loop_accuracy.py.
+(beyond 1 m or 3 deg) after the jump (the dangerous case) with the worst position and heading error among
+them. Drives are generated with ``tinyloc sim`` into --work if missing, as in loop_accuracy.py.
 """
 
 from __future__ import annotations
@@ -62,6 +62,7 @@ def kidnap(run: Path, site_map: Path, overrides, at: int, skip: int, hold: int =
     loc = Localizer(pm, src.camera, cfg)
     t_prev, dt, off, t_jump = None, None, None, None
     dropped, wrong, ok_run, trk_run, near_run = False, 0, 0, 0, 0
+    worst_m = worst_deg = 0.0
     back_s = back_trk_s = near_s = None
     before_quality, after = None, 0
     try:
@@ -85,10 +86,13 @@ def kidnap(run: Path, site_map: Path, overrides, at: int, skip: int, hold: int =
                 t_jump = f.t
             after += 1
             tx, ty, tyaw = truth[i]
-            near = math.hypot(p.x - tx, p.y - ty) <= 1.0
-            good = near and math.degrees(abs(wrap_angle(p.yaw - tyaw))) <= 3.0
+            err_m, err_deg = math.hypot(p.x - tx, p.y - ty), math.degrees(abs(wrap_angle(p.yaw - tyaw)))
+            near = err_m <= 1.0
+            good = near and err_deg <= 3.0
             dropped |= p.quality != "tracking"
-            wrong += int(p.quality == "tracking" and not good)
+            if p.quality == "tracking" and not good:
+                wrong += 1
+                worst_m, worst_deg = max(worst_m, err_m), max(worst_deg, err_deg)
             near_run = near_run + 1 if near else 0
             ok_run = ok_run + 1 if good else 0
             trk_run = trk_run + 1 if (good and p.quality == "tracking") else 0
@@ -108,6 +112,8 @@ def kidnap(run: Path, site_map: Path, overrides, at: int, skip: int, hold: int =
         "back_within_1m_3deg_s": back_s,
         "back_and_tracking_s": back_trk_s,
         "tracking_wrong_frames": wrong,
+        "tracking_wrong_worst_m": worst_m,
+        "tracking_wrong_worst_deg": worst_deg,
         "frames_after": after,
         "seconds_after": (after - 1) * dt if after and dt else 0.0,
     }
@@ -143,7 +149,9 @@ def main(argv=None) -> int:
               f"{'yes' if r['flag_dropped'] else 'NO'}  within 1 m after {_secs(r['back_within_1m_s'])}, "
               f"1 m / 3 deg after {_secs(r['back_within_1m_3deg_s'])}"
               f", and tracking after {_secs(r['back_and_tracking_s'])}  (of {r['seconds_after']:.0f} s)  tracking "
-              f"while wrong: {r['tracking_wrong_frames']} frames", file=sys.stderr, flush=True)
+              f"while wrong: {r['tracking_wrong_frames']} frames"
+              + (f" (worst {r['tracking_wrong_worst_m']:.2f} m, {r['tracking_wrong_worst_deg']:.1f} deg)"
+                 if r["tracking_wrong_frames"] else ""), file=sys.stderr, flush=True)
     def within_15(key):
         return sum(r[key] is not None and r[key] <= 15.0 for r in rows)
 
@@ -151,7 +159,9 @@ def main(argv=None) -> int:
     wrong = sum(r["tracking_wrong_frames"] for r in rows)
     print(f"back within 15 s on {within_15('back_within_1m_s')} of {len(rows)} drives within 1 m, on "
           f"{within_15('back_within_1m_3deg_s')} within 1 m / 3 deg; flag dropped on {dropped}; "
-          f"tracking while wrong {wrong} frames in all", file=sys.stderr)
+          f"tracking while wrong {wrong} frames in all"
+          + (f" (worst {max(r['tracking_wrong_worst_m'] for r in rows):.2f} m, "
+             f"{max(r['tracking_wrong_worst_deg'] for r in rows):.1f} deg)" if wrong else ""), file=sys.stderr)
     if a.json:
         print(json.dumps(rows, indent=1))
     return 0

@@ -409,3 +409,35 @@ def test_default_output_covariance_by_hand():
                        atol=1e-12)
     with pytest.raises(InputError, match="cov_scale_xy"):
         TrackParams(cov_scale_xy=0.0)
+
+
+def test_fixes_while_searching_count_by_the_time_between_them(rng, monkeypatch):
+    # while searching, the first fix counts in full and each later one as min(1, dt / search_tau_s) of a
+    # fix (a receiver's error wanders over tens of seconds: 1 Hz fixes are not independent); once
+    # tracking, weight_track; after a loss the first fix of the new search counts in full again
+    from tinyloc.track.gnss_prior import GnssParams, search_fix_weight
+
+    g = GnssParams()
+    assert (g.search_tau_s, g.weight_search) == (4.0, 1.0)
+    assert search_fix_weight(None, g) == 1.0 and search_fix_weight(1.0, g) == 0.25
+    assert search_fix_weight(10.0, g) == 1.0 and search_fix_weight(-1.0, g) == 0.0
+    assert search_fix_weight(1.0, GnssParams(search_tau_s=0.0)) == 1.0
+    tr = Tracker(GEOM, _params())
+    weights = []
+    real = tr.filter.update_xy
+    monkeypatch.setattr(tr.filter, "update_xy", lambda *a, **k: (weights.append((tr.state, k["weight"])),
+                                                                  real(*a, **k)))
+    m = PlantedMatcher(rng)
+    m.truth = (200.0, 200.0, 0.3)
+    for k in range(5):  # fixes 1 s apart (the first starts the filter), frames without a likelihood
+        tr.begin(float(k), None, (200.0, 200.0, 1.0, float(k)), have_frame=False)
+        tr.finish(None)
+    assert weights == [("searching", 1.0)] + [("searching", 0.25)] * 3
+    tr.state = "tracking"
+    tr.begin(5.0, None, (200.0, 200.0, 1.0, 5.0))
+    tr._lose([], "planted")
+    tr.begin(6.0, None, (200.0, 200.0, 1.0, 6.0))
+    tr.begin(7.0, None, (200.0, 200.0, 1.0, 7.0))
+    assert weights[4:] == [("tracking", 0.02), ("searching", 1.0), ("searching", 0.25)]
+    with pytest.raises(InputError, match="search_tau_s"):
+        TrackParams(gnss=GnssParams(search_tau_s=-1.0))

@@ -37,6 +37,13 @@ class GnssParams:
         Tempering exponent while searching (the fix is the main prior then).
     weight_track : float
         Tempering exponent per fix while tracking (fixes share a wandering bias).
+    search_tau_s : float
+        While searching, each fix after the first counts as ``min(1, dt / search_tau_s)`` of one
+        (``dt`` the time since the previous fix used), so 1 Hz fixes count a quarter each [4.0]; 0
+        counts each in full. Fixes a second apart share most of their error (a receiver's bias wanders
+        over tens of seconds, common practice; the simulator's has a 60 s correlation time), and with
+        each counted in full the search settled where the bias put it, 1.5-3 m along the street, and
+        locked on there (docs/tracking.md, "Fixes while searching").
     max_acc_m : float
         Fixes reporting a worse accuracy than this are ignored (m).
     max_age_s : float
@@ -62,6 +69,7 @@ class GnssParams:
     nu: float = 3.0
     weight_search: float = 1.0
     weight_track: float = 0.02
+    search_tau_s: float = 4.0
     max_acc_m: float = 100.0
     max_age_s: float = 2.0
     disagree_m: float = 10.0
@@ -69,6 +77,13 @@ class GnssParams:
     gate_m: float = 30.0
     offset_degrade_m: float = 3.0
     offset_alpha: float = 0.1
+
+
+def search_fix_weight(dt_s: float | None, p: GnssParams) -> float:
+    """Tempering exponent of a fix used while searching, ``dt_s`` after the previous one (None: the first)."""
+    if dt_s is None or p.search_tau_s <= 0.0:
+        return p.weight_search
+    return p.weight_search * min(1.0, max(dt_s, 0.0) / p.search_tau_s)
 
 
 def effective_sigma_m(acc_m: float, p: GnssParams) -> float:

@@ -40,7 +40,7 @@ import numpy as np
 from ..errors import InputError
 from ..frames import wrap_angle
 from . import _kernels as K
-from .gnss_prior import GnssParams
+from .gnss_prior import GnssParams, search_fix_weight
 
 QUALITIES = ("no-fix", "searching", "tracking", "degraded")
 
@@ -429,6 +429,8 @@ class TrackParams:
             raise InputError(f"track.catchup_m = {self.catchup_m}: must be in [0, 100] (0: off)")
         if not 0.0 <= self.catchup_memory < 1.0:
             raise InputError(f"track.catchup_memory = {self.catchup_memory}: must be in [0, 1)")
+        if not (math.isfinite(self.gnss.search_tau_s) and 0.0 <= self.gnss.search_tau_s <= 3600.0):
+            raise InputError(f"track.gnss.search_tau_s = {self.gnss.search_tau_s}: must be in [0, 3600] s (0: off)")
         if not 0 <= self.watch_frames <= 10000:
             raise InputError(f"track.watch_frames = {self.watch_frames}: must be in [0, 10000] (0: off)")
         if not 0.0 <= self.fallback_weight <= 1.0:
@@ -940,6 +942,7 @@ class Tracker:
         self._surprised = 0
         self._votes = 0
         self._since_verify = 0
+        self._search_fix_t = None  # time of the last fix used while searching
         self._watch = 0  # frames left with a global check on each (after an odometry jump)
         self._gnss_disagree_s = 0.0
         self._gnss_xy = None  # last usable fix (x, y, sigma, t)
@@ -1043,7 +1046,12 @@ class Tracker:
         self._course = self.course.heading() if p.course_span_m > 0 else None
         if g is not None and g[3] > self._fix_used_t:
             self._fix_used_t = g[3]
-            w = p.gnss.weight_search if self.state == "searching" else p.gnss.weight_track
+            if self.state == "searching":
+                w = search_fix_weight(None if self._search_fix_t is None else g[3] - self._search_fix_t, p.gnss)
+                self._search_fix_t = g[3]
+            else:
+                w = p.gnss.weight_track
+                self._search_fix_t = None  # the next search counts its first fix in full
             if self.state == "searching" and self._far_from_window(g[0], g[1]):
                 f.recentre(g[0], g[1])
             f.update_xy(g[0], g[1], g[2], nu=p.gnss.nu, weight=w)
