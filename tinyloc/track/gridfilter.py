@@ -890,6 +890,19 @@ class TrackOutput:
     global_search: bool = False
 
 
+def _scaled_blocks(cov: np.ndarray, k_xy: float, k_yaw: float) -> np.ndarray:
+    """A copy of a 3x3 (x, y, yaw) covariance with the position block x ``k_xy``, the heading variance x ``k_yaw``
+    and the cross terms x ``sqrt(k_xy k_yaw)`` (the covariance of the position scaled by sqrt(k_xy) and the heading
+    by sqrt(k_yaw): still positive definite)."""
+    a, h = math.sqrt(k_xy), math.sqrt(k_yaw)
+    out = cov.copy()
+    out[:2, :2] *= a * a
+    out[:2, 2] *= a * h
+    out[2, :2] *= a * h
+    out[2, 2] *= h * h
+    return out
+
+
 def evidence_factor(step_m: float, p: "TrackParams") -> float:
     """How many frames' worth of new evidence a frame holds: ``min(evidence_max, max(1, step / evidence_step_m))``.
 
@@ -1404,12 +1417,7 @@ class Tracker:
         p = self.p
         if p.cue_cov and quality == "tracking" and self.cue.frames >= p.cue_min_frames:
             # scaled posterior (position; heading as by default) + floor + the ground cues' offset along/across
-            ka, kh = math.sqrt(p.cue_cov_scale), math.sqrt(p.cov_scale)
-            cov = est.cov.copy()
-            cov[:2, :2] *= ka * ka
-            cov[:2, 2] *= ka * kh
-            cov[2, :2] *= ka * kh
-            cov[2, 2] *= kh * kh
+            cov = _scaled_blocks(est.cov, p.cue_cov_scale, p.cov_scale)
             xx, yy, xy = self.cue.term(est.yaw)
             v = p.cue_sigma_m ** 2
             cov[0, 0] += v + p.cue_gain * xx
@@ -1427,12 +1435,7 @@ class Tracker:
             cov[0, 1] += d2 * c * s
             cov[1, 0] += d2 * c * s
         else:
-            kx, kh = math.sqrt(p.cov_scale_xy), math.sqrt(p.cov_scale)
-            cov = est.cov.copy()
-            cov[:2, :2] *= kx * kx
-            cov[:2, 2] *= kx * kh
-            cov[2, :2] *= kx * kh
-            cov[2, 2] *= kh * kh
+            cov = _scaled_blocks(est.cov, p.cov_scale_xy, p.cov_scale)
             cov[0, 0] += self.p.model_sigma_m ** 2
             cov[1, 1] += self.p.model_sigma_m ** 2
         cov[2, 2] += math.radians(self.p.model_sigma_deg) ** 2
