@@ -389,20 +389,20 @@ def test_after_an_odometry_jump_every_frame_is_checked(rng):
 
 
 def test_default_output_covariance_by_hand():
-    # the default formula: 0.25 x the posterior's position block + 0.15 m floor, the heading's own
-    # variance + 0.5 deg floor, cross terms x sqrt(0.25 x 1); while not tracking the fix is added as a
+    # the default formula: 0.3 x the posterior's position block + 0.15 m floor, the heading's own
+    # variance + 0.5 deg floor, cross terms x sqrt(0.3 x 1); while not tracking the fix is added as a
     # competing pose with weight 0.25 (w (S + d d^T), the second moment of a two-pose mixture)
     from tinyloc.track.gridfilter import FilterEstimate
 
     p = TrackParams(window_cells=32, headings=64)
-    assert (p.cov_scale_xy, p.cov_scale, p.model_sigma_m, p.model_sigma_deg) == (0.25, 1.0, 0.15, 0.5)
+    assert (p.cov_scale_xy, p.cov_scale, p.model_sigma_m, p.model_sigma_deg) == (0.3, 1.0, 0.15, 0.5)
     tr = Tracker(GEOM, p)
     post = np.array([[0.16, 0.04, 0.002], [0.04, 0.36, 0.001], [0.002, 0.001, 1e-4]])
     est = FilterEstimate(10.0, 20.0, 0.3, post.copy(), [], 1.0, 0.5, 0.01)
     cov = tr._output(0.0, "tracking", [], est).cov
-    assert np.allclose(cov[:2, :2], [[0.04 + 0.0225, 0.01], [0.01, 0.09 + 0.0225]], atol=1e-12)
+    assert np.allclose(cov[:2, :2], [[0.048 + 0.0225, 0.012], [0.012, 0.108 + 0.0225]], atol=1e-12)
     assert abs(cov[2, 2] - (1e-4 + math.radians(0.5) ** 2)) < 1e-15
-    assert np.allclose(cov[:2, 2], 0.5 * post[:2, 2], atol=1e-15) and np.allclose(cov[2, :2], cov[:2, 2])
+    assert np.allclose(cov[:2, 2], math.sqrt(0.3) * post[:2, 2], atol=1e-15) and np.allclose(cov[2, :2], cov[:2, 2])
     tr._g = (13.0, 24.0, 3.0, 0.0)  # a fix 3 m east and 4 m north of the estimate, 3 m sigma
     deg = tr._output(0.0, "degraded", [], est).cov
     assert np.allclose(deg[:2, :2] - cov[:2, :2], 0.25 * (9.0 * np.eye(2) + np.outer([3.0, 4.0], [3.0, 4.0])),

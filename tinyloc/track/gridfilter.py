@@ -252,14 +252,13 @@ class TrackParams:
         fall to 82 / 69 % inside their 95 % heading interval; at 1 all tuning drives are at 99-100 %.
     cov_scale_xy : float
         Multiplier of the posterior's own position covariance in the default formula (the cross terms
-        take ``sqrt(cov_scale_xy * cov_scale)``) [0.25]. The tempered grid posterior is broader than
+        take ``sqrt(cov_scale_xy * cov_scale)``) [0.3]. The tempered grid posterior is broader than
         the errors it holds: with 1 and a 0.5 m floor every drive had 100 % of its frames inside the 95 %
-        ellipse (median d^2 0.01-0.09 against 1.39 for a calibrated one). 0.25 with the 0.15 m floor is
-        the most conservative pair of a grid that brings the 13 tuning drives' pooled share into the
-        85-99 % band: 98.6 %, every drive 92-100 %; smaller pairs take drive 26 (a 0.46 m along-street
-        bias) below 85 %. Held-out drives 1-5: pooled 99.0 %, each 95-100 % (docs/tracking.md,
-        "Covariance, eighth session"). With an uncalibrated accelerometer the floor stays 0.5 m
-        (``model_sigma_uncal_m``).
+        ellipse (median d^2 0.01-0.09 against 1.39 for a calibrated one). With the 0.15 m floor, 0.3
+        brings the 13 tuning drives' pooled share into the 85-99 % band (98.4 %, every drive 90-100 %);
+        0.25 gave 97.4 % but drive 26 (a 0.44 m bias across the street) 84 % (docs/tracking.md,
+        "Covariance, eighth session"). Held-out drives 1-5: pooled 99.9 %. With an uncalibrated
+        accelerometer the floor stays 0.5 m (``model_sigma_uncal_m``).
     odometry_scale : float
         Factor on odometry distances at start: a calibrated wheel scale, or 1 [1.0].
     odo_scale_span_m : float
@@ -375,7 +374,7 @@ class TrackParams:
     model_sigma_deg: float = 0.5
     model_sigma_uncal_m: float = 0.5
     cov_scale: float = 1.0
-    cov_scale_xy: float = 0.25
+    cov_scale_xy: float = 0.3
     odometry_scale: float = 1.0
     odo_scale_span_m: float = 30.0
     odo_scale_rate: float = 0.02
