@@ -411,7 +411,7 @@ def test_default_output_covariance_by_hand():
         TrackParams(cov_scale_xy=0.0)
 
 
-def test_fixes_while_searching_count_by_the_time_between_them(rng, monkeypatch):
+def test_fixes_while_searching_count_by_the_time_between_them(monkeypatch):
     # while searching, the first fix counts in full and each later one as min(1, dt / search_tau_s) of a
     # fix (a receiver's error wanders over tens of seconds: 1 Hz fixes are not independent); once
     # tracking, weight_track; after a loss the first fix of the new search counts in full again
@@ -427,8 +427,6 @@ def test_fixes_while_searching_count_by_the_time_between_them(rng, monkeypatch):
     real = tr.filter.update_xy
     monkeypatch.setattr(tr.filter, "update_xy", lambda *a, **k: (weights.append((tr.state, k["weight"])),
                                                                   real(*a, **k)))
-    m = PlantedMatcher(rng)
-    m.truth = (200.0, 200.0, 0.3)
     for k in range(5):  # fixes 1 s apart (the first starts the filter), frames without a likelihood
         tr.begin(float(k), None, (200.0, 200.0, 1.0, float(k)), have_frame=False)
         tr.finish(None)
@@ -438,6 +436,10 @@ def test_fixes_while_searching_count_by_the_time_between_them(rng, monkeypatch):
     tr._lose([], "planted")
     tr.begin(6.0, None, (200.0, 200.0, 1.0, 6.0))
     tr.begin(7.0, None, (200.0, 200.0, 1.0, 7.0))
-    assert weights[4:] == [("tracking", 0.02), ("searching", 1.0), ("searching", 0.25)]
+    # a loss with no fix while tracking: the new search still counts its first fix in full
+    tr.state = "tracking"
+    tr._lose([], "planted")
+    tr.begin(7.5, None, (200.0, 200.0, 1.0, 7.5))
+    assert weights[4:] == [("tracking", 0.02), ("searching", 1.0), ("searching", 0.25), ("searching", 1.0)]
     with pytest.raises(InputError, match="search_tau_s"):
         TrackParams(gnss=GnssParams(search_tau_s=-1.0))

@@ -1063,7 +1063,6 @@ class Tracker:
                 self._search_fix_t = g[3]
             else:
                 w = p.gnss.weight_track
-                self._search_fix_t = None  # the next search counts its first fix in full
             if self.state == "searching" and self._far_from_window(g[0], g[1]):
                 f.recentre(g[0], g[1])
             f.update_xy(g[0], g[1], g[2], nu=p.gnss.nu, weight=w)
@@ -1313,6 +1312,7 @@ class Tracker:
         self.state = "searching"
         self.counters["lost"] += 1
         self._watch = 0  # searching checks every frame anyway
+        self._search_fix_t = None  # the new search counts its first fix in full
         self.odo_scale.reset()
         self._converge = 0
         self._votes = 0
